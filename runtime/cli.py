@@ -16,6 +16,10 @@ from .errors import JogwireError
 # name → (module, one-line help). Add a command by adding its module here.
 COMMANDS: dict[str, tuple[str, str]] = {
     "probe": ("runtime.commands.probe", "kinematics at a pose: TCP pose, Jacobian, singular values"),
+    "inspect": ("runtime.commands.inspect", "summarise a recorded session log; export its cycle table"),
+    "sim": ("runtime.commands.sim", "run the PyBullet simulated arm (the arm side of the wire)"),
+    "bridge": ("runtime.commands.bridge", "run the hardware bridge stub around a Driver"),
+    "keys": ("runtime.commands.keys", "make CURVE key pairs for a link off this machine"),
 }
 
 

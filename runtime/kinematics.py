@@ -27,16 +27,18 @@ Jacobian = NDArray[np.float64]  # (6, n)
 
 
 def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
-    """origin_i · Motion_i(q_i) for every joint, as one (n, 4, 4) batch."""
+    """origin_i · Motion_i(q_i) for every joint, as one (n, 4, 4) batch (base not included)."""
     O = arm.origins
-    rev = arm.is_revolute
-    c = np.where(rev, np.cos(q), 1.0)
-    s = np.where(rev, np.sin(q), 0.0)
+    q = np.asarray(q, dtype=float)
+    c = np.cos(q)[:, None]
+    s = np.sin(q)[:, None]
     L = O.copy()
     # Right-multiplying by Rz(q) mixes columns 0 and 1; by Tz(q) shifts column 3 along column 2.
-    L[:, :, 0] = O[:, :, 0] * c[:, None] + O[:, :, 1] * s[:, None]
-    L[:, :, 1] = O[:, :, 1] * c[:, None] - O[:, :, 0] * s[:, None]
-    L[:, :, 3] += O[:, :, 2] * np.where(rev, 0.0, q)[:, None]
+    rev = arm.is_revolute
+    L[rev, :, 0] = (O[:, :, 0] * c + O[:, :, 1] * s)[rev]
+    L[rev, :, 1] = (O[:, :, 1] * c - O[:, :, 0] * s)[rev]
+    pri = arm.prismatic_index
+    L[pri, :, 3] += O[pri, :, 2] * q[pri, None]
     return L
 
 
@@ -44,13 +46,22 @@ def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64],
     """All joint frames in the base frame, (n, 4, 4), after each joint's motion, and T_tcp.
 
     Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3].
+
+    This is the hot path (every control cycle), written to keep the count of numpy calls
+    low, since each costs about a microsecond whatever the array size: all link transforms
+    come from one matrix product with `arm.motion_terms` (base folded into joint 0), and the
+    chain product is one matrix product per joint, written straight into `frames`.
     """
-    L = link_transforms(arm, q)
+    offset, matrix = arm.motion_terms
+    dot = np.dot  # np.dot has less call overhead than the @ operator on small arrays
+    L = dot(matrix, np.concatenate((np.cos(q), np.sin(q), q)))
+    L += offset
+    L = L.reshape(-1, 4, 4)
     frames = np.empty_like(L)
-    T = arm.base
-    for i in range(len(L)):  # the chain product is sequential by nature
-        T = frames[i] = T @ L[i]
-    return frames, T @ arm.tip
+    T = frames[0] = L[0]
+    for i in range(1, len(L)):  # the chain product is sequential by nature
+        T = dot(T, L[i], out=frames[i])
+    return frames, dot(T, arm.tip)
 
 
 def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:
@@ -58,14 +69,24 @@ def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:
     return joint_frames(arm, q)[1]
 
 
+# ε_kij as a (3, 9) matrix: (z × r)_k = Σ_ij ε_kij z_i r_j, so one matrix product turns the
+# batch of outer products z_i r_j into the batch of cross products (np.cross costs ~30 µs).
+_LEVI_CIVITA = np.zeros((3, 9))
+for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
+    _LEVI_CIVITA[_k, 3 * _i + _j] = 1.0
+    _LEVI_CIVITA[_k, 3 * _j + _i] = -1.0
+
+
 def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> Jacobian:
     """Geometric Jacobian (6×n, base frame, TCP reference point) from `joint_frames`."""
     z = frames[:, :3, 2]
     r = T_tcp[:3, 3] - frames[:, :3, 3]
-    rev = arm.is_revolute[:, None]
-    J = np.empty((6, len(frames)))
-    J[:3] = np.where(rev, np.cross(z, r), z).T
-    J[3:] = np.where(rev, z, 0.0).T
+    outer = (z[:, :, None] * r[:, None, :]).reshape(-1, 9)  # z_i r_j per joint
+    J = np.concatenate((np.dot(_LEVI_CIVITA, outer.T), z.T))
+    pri = arm.prismatic_index
+    if len(pri):
+        J[:3, pri] = z[pri].T
+        J[3:, pri] = 0.0
     return J
 
 

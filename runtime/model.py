@@ -17,8 +17,6 @@ from __future__ import annotations
 import hashlib
 import math
 import os
-import re
-import tomllib
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -28,6 +26,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from .errors import ConfigError
+from .tomlsource import TomlSource as _Source, read_toml
 from .transforms import Mat4, make_transform, rot4, rotx, rotz, trans
 
 TASK_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
@@ -155,12 +154,49 @@ class Arm:
     def task_mask(self) -> NDArray[np.bool_]:
         return np.array(self.task_axes)
 
+    @cached_property
+    def motion_terms(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """The link transforms as one affine map of u = [cos q; sin q; q] (length 3n):
+
+            vec(L) = offset + matrix · u,   shapes (16n,) and (16n, 3n),
+
+        where L_0 = base·origin_0·Motion_0(q_0), L_i = origin_i·Motion_i(q_i), each 4×4
+        flattened row by row. This holds because Motion_z(q) is K0 + cos q·Kc + sin q·Ks for
+        a rotation and I + q·Kd for a translation (constant K's), so the kinematics builds
+        every link transform with one matrix product instead of per-joint work.
+        """
+        n = self.n
+        K = np.zeros((4, 4, 4))   # Rot_z(q) = K[0] + cos q·K[1] + sin q·K[2]
+        K[0, 2, 2] = K[0, 3, 3] = 1.0
+        K[1, 0, 0] = K[1, 1, 1] = 1.0
+        K[2, 1, 0], K[2, 0, 1] = 1.0, -1.0
+        P = np.zeros((4, 4, 4))   # Trans_z(q) = P[0] + q·P[3]
+        P[0] = np.eye(4)
+        P[3, 2, 3] = 1.0
+        origins = self.origins.copy()
+        origins[0] = self.base @ origins[0]
+        offset = np.empty((n, 16))
+        matrix = np.zeros((n, 16, 3, n))
+        for i, (origin, joint) in enumerate(zip(origins, self.joints)):
+            basis = K if joint.is_revolute else P
+            offset[i] = (origin @ basis[0]).ravel()
+            for k in range(3):  # the columns multiplying cos q_i, sin q_i and q_i
+                matrix[i, :, k, i] = (origin @ basis[k + 1]).ravel()
+        return offset.ravel(), matrix.reshape(16 * n, 3 * n)
+
+    @cached_property
+    def prismatic_index(self) -> NDArray[np.intp]:
+        """Indices of the prismatic joints (often empty)."""
+        return np.flatnonzero(~self.is_revolute)
+
     def home(self) -> NDArray[np.float64]:
         """The configured start pose, else mid-range (0 for unlimited joints); rad or m."""
         if self.home_q is not None:
             return np.array(self.home_q)
-        mid = 0.5 * (self.lower + self.upper)
-        return np.where(np.isfinite(mid), mid, 0.0)
+        finite = np.isfinite(self.lower) & np.isfinite(self.upper)
+        mid = np.zeros(self.n)
+        mid[finite] = 0.5 * (self.lower[finite] + self.upper[finite])
+        return np.clip(mid, self.lower, self.upper)  # 0, or the nearer limit if half-bounded
 
     def with_changes(self, **changes: Any) -> "Arm":
         from dataclasses import replace
@@ -219,41 +255,6 @@ def chain_from_dh(rows: list[DHRow], kinds: list[str], modified: bool
 # TOML loading
 # ----------------------------------------------------------------------------------------
 
-class _Source:
-    """A TOML file's text, for pointing errors at a line."""
-
-    def __init__(self, path: Path, text: str) -> None:
-        self.path = path
-        self.lines = text.splitlines()
-
-    def line_of(self, table: str | None, index: int | None, key: str | None) -> int | None:
-        """Line (1-based) of `key` inside `[table]` / the index-th `[[table]]`."""
-        current: str | None = None
-        count = -1
-        header_line = None
-        for no, raw in enumerate(self.lines, start=1):
-            line = raw.split("#", 1)[0].strip()
-            m = re.fullmatch(r"\[\[\s*([\w.\-]+)\s*\]\]", line) or \
-                re.fullmatch(r"\[\s*([\w.\-]+)\s*\]", line)
-            if m:
-                current = m.group(1)
-                if current == table:
-                    count += 1
-                    if index is None or count == index:
-                        header_line = no
-                continue
-            in_scope = (current == table and (index is None or count == index)) if table \
-                else current is None
-            if in_scope and key and re.match(rf"{re.escape(key)}\s*=", line):
-                return no
-        return header_line
-
-    def error(self, message: str, field_name: str, table: str | None = None,
-              index: int | None = None, key: str | None = None) -> ConfigError:
-        return ConfigError(message, path=self.path, line=self.line_of(table, index, key),
-                           field=field_name)
-
-
 def resolve_arm_path(name_or_path: str | Path) -> Path:
     """A shipped arm name (`elbow6`) or a path to a .toml / .urdf file."""
     p = Path(name_or_path)
@@ -274,17 +275,8 @@ def load_arm(name_or_path: str | Path, *, base_link: str | None = None,
     if path.suffix == ".urdf":
         from .urdf_loader import load_urdf_arm
         return load_urdf_arm(path, base_link=base_link, tip_link=tip_link)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(f"cannot read arm file: {exc.strerror}", path=path) from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        m = re.search(r"line (\d+)", str(exc))
-        raise ConfigError(f"not valid TOML: {exc}", path=path,
-                          line=int(m.group(1)) if m else None) from None
-    return arm_from_toml(data, _Source(path, text))
+    data, src = read_toml(path, "arm")
+    return arm_from_toml(data, src)
 
 
 def _number(src: _Source, value: Any, field_name: str, table: str | None, index: int | None,
@@ -304,7 +296,7 @@ def _vector3(src: _Source, value: Any, field_name: str, table: str, key: str) ->
 
 def _unit(src: _Source, data: dict, key: str, table: dict[str, float], default: str) -> float:
     name = data.get(key, default)
-    if name not in table:
+    if not isinstance(name, str) or name not in table:
         raise src.error(f"unknown unit {name!r}; use one of {', '.join(table)}", key, None, None,
                         key)
     return table[name]
@@ -388,6 +380,7 @@ def arm_from_toml(data: dict, src: _Source) -> Arm:
         raise src.error("an arm needs at least one [[joints]] table", "joints")
     rows, kinds, limits, names = [], [], [], []
     for i, spec in enumerate(specs):
+        _require_table(src, spec, f"joints[{i}]", "joints", i)
         for key in spec:
             if key not in _JOINT_KEYS:
                 raise src.error(f"unknown key {key!r}", f"joints[{i}].{key}", "joints", i, key)
@@ -416,6 +409,14 @@ def arm_from_toml(data: dict, src: _Source) -> Arm:
                **common)
 
 
+def _require_table(src: _Source, value: Any, field_name: str, table: str, index: int | None
+                   ) -> None:
+    if not isinstance(value, dict):
+        message = f"must be a table, got {value!r}"
+        err = src.error(message, field_name, table, index, None)
+        raise err if err.line is not None else src.error(message, field_name, None, None, table)
+
+
 def _home(data: dict, src: _Source, joints: tuple[Joint, ...], angle: float, length: float
           ) -> tuple[float, ...] | None:
     """The optional start pose `home = [...]` (angle/length units), inside the limits."""
@@ -441,6 +442,8 @@ def _common_fields(data: dict, src: _Source, angle: float) -> dict[str, Any]:
                         None, None, "task")
     tcp = data.get("tcp_limits", {})
     solver_spec = data.get("solver", {})
+    _require_table(src, tcp, "tcp_limits", "tcp_limits", None)
+    _require_table(src, solver_spec, "solver", "solver", None)
     solver_kwargs = {}
     solver_units = {"damping_threshold": 1.0, "damping_max": 1.0, "nullspace_gain": 1.0,
                     "limit_margin_rad": 1.0, "limit_margin_m": 1.0}
@@ -484,34 +487,60 @@ def _common_fields(data: dict, src: _Source, angle: float) -> dict[str, Any]:
     )
 
 
+_URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_accel"}
+
+
 def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm:
-    """An arm TOML that points at a URDF file and adds what URDF lacks (accelerations, task)."""
+    """An arm TOML that points at a URDF file and adds what URDF lacks (accelerations, task).
+
+    `[[joints]]` tables here only override speeds and accelerations of URDF joints by name.
+    """
     from dataclasses import replace
 
     from .urdf_loader import load_urdf_arm
     if "urdf" not in data:
         raise src.error("convention 'urdf' needs a 'urdf' path", "urdf")
-    urdf_path = (src.path.parent / str(data["urdf"])).resolve()
+    for key in ("urdf", "base_link", "tip_link"):
+        if key in data and not isinstance(data[key], str):
+            raise src.error(f"must be a string, got {data[key]!r}", key, None, None, key)
+    urdf_path = (src.path.parent / data["urdf"]).resolve()
     arm = load_urdf_arm(urdf_path, base_link=data.get("base_link"), tip_link=data.get("tip_link"))
-    overrides = {j.get("name"): (i, j) for i, j in enumerate(data.get("joints", []))}
+    specs = data.get("joints", [])
+    if not isinstance(specs, list):
+        raise src.error("must be a list of [[joints]] tables", "joints", None, None, "joints")
+    overrides: dict[str, tuple[int, dict]] = {}
+    for i, spec in enumerate(specs):
+        _require_table(src, spec, f"joints[{i}]", "joints", i)
+        for key in spec:
+            if key not in _URDF_OVERRIDE_KEYS:
+                raise src.error(f"unknown key {key!r}; a URDF arm's [[joints]] may set "
+                                f"{', '.join(sorted(_URDF_OVERRIDE_KEYS))}",
+                                f"joints[{i}].{key}", "joints", i, key)
+        if "name" not in spec:
+            raise src.error("joint has no 'name'", f"joints[{i}].name", "joints", i, None)
+        overrides[str(spec["name"])] = (i, spec)
+    angle, length = ANGLE_UNITS[data.get("angle_unit", "deg")], \
+        LENGTH_UNITS[data.get("length_unit", "m")]
     joints = []
     for j in arm.joints:
         if j.name in overrides:
             i, spec = overrides.pop(j.name)
-            scale = ANGLE_UNITS[data.get("angle_unit", "deg")] if j.is_revolute else \
-                LENGTH_UNITS[data.get("length_unit", "m")]
+            scale = angle if j.is_revolute else length
             changes = {}
             for key in ("max_speed", "max_accel", "rated_speed", "rated_accel"):
                 if key in spec:
                     v = _number(src, spec[key], f"joints[{i}].{key}", "joints", i, key)
                     if v <= 0:
-                        raise src.error("must be positive", f"joints[{i}].{key}", "joints", i, key)
+                        raise src.error(f"must be positive, got {spec[key]}",
+                                        f"joints[{i}].{key}", "joints", i, key)
                     changes[key] = v * scale
             j = replace(j, **changes)
         joints.append(j)
     if overrides:
         name, (i, _) = next(iter(overrides.items()))
-        raise src.error(f"no joint named {name!r} in {urdf_path.name}", f"joints[{i}].name",
-                        "joints", i, "name")
+        raise src.error(f"no joint named {name!r} in {urdf_path.name}; its moving joints: "
+                        f"{', '.join(arm.joint_names)}", f"joints[{i}].name", "joints", i, "name")
+    joints_t = tuple(joints)
     common = dict(common, base=common["base"] @ arm.base, tool=arm.tool @ common["tool"])
-    return Arm(joints=tuple(joints), flange=arm.flange, **common)
+    return Arm(joints=joints_t, flange=arm.flange,
+               home_q=_home(data, src, joints_t, angle, length), **common)

@@ -1,0 +1,138 @@
+"""`jogwire probe ARM [--q v1,v2,…]`: kinematics at one pose.
+
+Prints the TCP pose, the geometric Jacobian (base frame, TCP reference point), its singular
+values, Yoshikawa manipulability and condition number, as a table or as one JSON object.
+
+The JSON keys are stable (other tools read them); `probe_report` builds that object, and
+further options add keys to it (e.g. a twist solve adds joint rates and scale factors).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+from typing import Any
+
+import numpy as np
+
+from ..errors import ConfigError
+from ..kinematics import KinematicsReport, analyse_pose
+from ..model import TASK_AXES, Arm, load_arm
+from ..transforms import matrix_to_rpy
+
+SINGULAR_RATIO = 1e-9  # σ_min / σ_max below this is reported as a singular pose (round-off)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("arm", metavar="ARM",
+                        help="a shipped arm name (e.g. elbow6), an arm .toml or a .urdf file")
+    parser.add_argument("--q", metavar="V", nargs="+",
+                        help="joint values in rad and m (deg and m with --deg), separated by "
+                             "commas or spaces; write --q=-0.5,1 when the first value is "
+                             "negative and commas are used. Default: the arm's home pose")
+    parser.add_argument("--deg", action="store_true",
+                        help="revolute values in --q and in the table are in degrees")
+    parser.add_argument("--json", action="store_true",
+                        help="print one JSON object (SI units whatever --deg says)")
+    parser.add_argument("--base", metavar="LINK", help="URDF only: the link the chain starts at")
+    parser.add_argument("--tip", metavar="LINK", help="URDF only: the link the chain ends at")
+
+
+def parse_q(text: str | list[str], arm: Arm, *, degrees: bool) -> np.ndarray:
+    """Joint values from `v1,v2,…` in SI (rad, m); degrees converted for revolute joints."""
+    if not isinstance(text, str):
+        text = ",".join(text)
+    parts = [p.strip() for p in text.replace(" ", ",").split(",") if p.strip()]
+    if len(parts) != arm.n:
+        raise ConfigError(f"{arm.name} has {arm.n} joints ({', '.join(arm.joint_names)}); "
+                          f"got {len(parts)} values", field="--q")
+    q = np.empty(arm.n)
+    for i, (part, joint) in enumerate(zip(parts, arm.joints)):
+        try:
+            value = float(part)
+        except ValueError:
+            raise ConfigError(f"{joint.name}: {part!r} is not a number", field="--q") from None
+        if not math.isfinite(value):
+            raise ConfigError(f"{joint.name}: {part!r} is not a finite number", field="--q")
+        q[i] = math.radians(value) if degrees and joint.is_revolute else value
+    return q
+
+
+def _finite_or_none(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
+def probe_report(arm: Arm, q: np.ndarray, report: KinematicsReport | None = None
+                 ) -> dict[str, Any]:
+    """The JSON object of `jogwire probe --json` (SI units; null where a value is infinite).
+
+    Keys: arm, joint_names, q, tcp_pose (4×4, base frame, m), jacobian (6×n, rows vx vy vz
+    wx wy wz, base frame, reference point TCP), task_axes, singular_values (of the task rows),
+    manipulability, condition_number.
+    """
+    r = report if report is not None else analyse_pose(arm, q)
+    return {
+        "arm": arm.name,
+        "joint_names": list(arm.joint_names),
+        "q": r.q.tolist(),
+        "tcp_pose": r.tcp_pose.tolist(),
+        "jacobian": r.jacobian.tolist(),
+        "task_axes": [ax for ax, on in zip(TASK_AXES, arm.task_axes) if on],
+        "singular_values": r.singular_values.tolist(),
+        "manipulability": r.manipulability,
+        "condition_number": _finite_or_none(r.condition_number),
+    }
+
+
+def _fmt(x: float, width: int = 10, digits: int = 4) -> str:
+    if not math.isfinite(x):
+        return f"{'inf' if x > 0 else '-inf':>{width}}"
+    return f"{round(x, digits) + 0.0:{width}.{digits}f}"  # + 0.0: no "-0.0000"
+
+
+def format_report(arm: Arm, r: KinematicsReport, *, degrees: bool) -> str:
+    """The human-readable table of `jogwire probe`."""
+    to_deg = 180.0 / math.pi if degrees else 1.0
+    angle_unit = "deg" if degrees else "rad"
+    width = max(8, *(len(n) for n in arm.joint_names))
+    out = [f"arm {arm.name}: {arm.n} joints" + (f" — {arm.summary}" if arm.summary else ""),
+           ""]
+    out.append(f"  {'joint':<{width}}  {'value':>10}  unit   {'lower':>10}  {'upper':>10}")
+    for j, qi in zip(arm.joints, r.q):
+        k, unit = (to_deg, angle_unit) if j.is_revolute else (1.0, "m")
+        outside = "   outside its limits" if not j.lower <= qi <= j.upper else ""
+        out.append(f"  {j.name:<{width}}  {_fmt(qi * k)}  {unit:<5}  {_fmt(j.lower * k)}  "
+                   f"{_fmt(j.upper * k)}{outside}")
+    T = r.tcp_pose
+    rpy = matrix_to_rpy(T[:3, :3]) * to_deg
+    out += ["", "TCP pose in the base frame",
+            f"  position  x {_fmt(T[0, 3], 9)}  y {_fmt(T[1, 3], 9)}  z {_fmt(T[2, 3], 9)}  m",
+            f"  rpy    roll {_fmt(rpy[0], 9)}  pitch {_fmt(rpy[1], 9)}  yaw {_fmt(rpy[2], 9)}  "
+            f"{angle_unit}", ""]
+    out.append("Jacobian (base frame, reference point TCP; m/s and rad/s per unit joint rate)")
+    col = max(10, *(len(n) for n in arm.joint_names))
+    out.append("    " + "".join(f"  {n:>{col}}" for n in arm.joint_names) + "  task")
+    for name, row, on in zip(TASK_AXES, r.jacobian, arm.task_axes):
+        out.append(f"  {name}" + "".join(f"  {_fmt(v, col)}" for v in row) +
+                   ("   •" if on else ""))
+    task = " ".join(ax for ax, on in zip(TASK_AXES, arm.task_axes) if on)
+    out += ["", f"Dexterity of the task rows ({task})",
+            "  singular values   " + " ".join(f"{s:.6g}" for s in r.singular_values),
+            f"  manipulability    {r.manipulability:.6g}   (Yoshikawa, product of σ)",
+            f"  condition number  {r.condition_number:.6g}   (σ_max / σ_min)"]
+    sv = r.singular_values
+    if sv[-1] <= SINGULAR_RATIO * sv[0]:
+        out.append("  singular pose: the task cannot move in every direction here")
+    return "\n".join(out)
+
+
+def run(args: argparse.Namespace) -> int:
+    arm = load_arm(args.arm, base_link=args.base, tip_link=args.tip)
+    q = arm.home() if args.q is None else parse_q(args.q, arm, degrees=args.deg)
+    report = analyse_pose(arm, q)
+    if args.json:
+        print(json.dumps(probe_report(arm, q, report), allow_nan=False))
+    else:
+        print(format_report(arm, report, degrees=args.deg))
+    return 0

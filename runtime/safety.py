@@ -1,0 +1,144 @@
+"""Hold-to-move gate: enable switch, watchdog and stop latch (pure; the caller passes now_s).
+
+Motion is allowed only while the operator holds enable, pressed fresh, and nothing is wrong.
+The gate has five states (names are ours):
+
+    ready    enable released and nothing wrong: pressing enable starts motion
+    moving   enable held after a fresh press, device present, arm state fresh → allowed
+    rearm    enable held but not freshly pressed (held at start, held when the device
+             appeared, held through a fault or a stop): release it, then press again
+    blocked  something forbids motion whatever the operator does: no input device, no or
+             stale arm state, a streak of loop overruns, or a hold reason from the caller
+    stopped  stop was pressed; latched until reset is pressed with enable (and stop) released
+
+Every `update` returns a `Verdict(allowed, state, reason)`. Releasing enable zeroes motion in
+the same cycle. Any fault makes the gate forget the press, so after the fault clears the
+operator must release and press enable again — the same rule as a three-position enabling
+device, where going back to the centre position must not restart motion (IEC 60204-1 10.9,
+ISO 10218-1:2011 5.8.3, from memory; REFERENCES §4).
+
+This is an operational interlock in software. It is not a safety function: a real arm needs
+a safety-rated enabling device and stop (docs/SAFETY.md).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import NamedTuple
+
+READY = "ready"
+MOVING = "moving"
+REARM = "rearm"
+BLOCKED = "blocked"
+STOPPED = "stopped"
+STATES = (READY, MOVING, REARM, BLOCKED, STOPPED)
+
+
+@dataclass(frozen=True)
+class SafetySettings:
+    """stale_after_s: arm state older than this (s) forbids motion.
+    overrun_limit: this many overrunning loop cycles in a row forbid motion."""
+
+    stale_after_s: float = 0.05
+    overrun_limit: int = 5
+
+    def __post_init__(self) -> None:
+        if not self.stale_after_s > 0:
+            raise ValueError(f"stale_after_s must be positive, got {self.stale_after_s}")
+        if self.overrun_limit < 1:
+            raise ValueError(f"overrun_limit must be ≥ 1, got {self.overrun_limit}")
+
+
+class Verdict(NamedTuple):
+    allowed: bool
+    state: str
+    reason: str
+
+
+class SafetyGate:
+    """The hold-to-move state machine. One `update` per control cycle."""
+
+    def __init__(self, settings: SafetySettings = SafetySettings()) -> None:
+        self.settings = settings
+        self._need_release = True          # a press counts only after a release
+        self._rearm_cause = "enable was held at start"
+        self._stopped = False
+        self._prev_reset: bool | None = None  # None: no baseline yet (reset held ≠ pressed)
+        self._seen_device = False
+        self._state: str | None = None
+        self.since_s = 0.0                  # when the current state was entered
+
+    @property
+    def state(self) -> str | None:
+        return self._state
+
+    def update(self, now_s: float, *, enable: bool, stop: bool = False, reset: bool = False,
+               present: bool = True, state_stamp_s: float | None = None,
+               overrun_streak: int = 0, hold: str | None = None) -> Verdict:
+        """One cycle.
+
+        enable / stop / reset: held levels from the operator's device.
+        present: the input device is there (readings from an absent device are ignored).
+        state_stamp_s: when the newest arm state was received (same clock as now_s), or None.
+        overrun_streak: consecutive overrunning loop cycles up to now.
+        hold: a reason from the caller that forbids motion (e.g. target not ready), or None.
+        """
+        block = self._block_reason(now_s, present, state_stamp_s, overrun_streak, hold)
+        self._latch_stop(present, enable, stop, reset)
+        if block is not None or self._stopped:
+            if not present:
+                self._rearm_cause = "enable was held when the device appeared"
+            elif not self._need_release:
+                self._rearm_cause = f"enable held through: {block or 'stop'}"
+            self._need_release = True
+        elif present and not enable:
+            self._need_release = False
+        verdict = self._verdict(block, enable, stop)
+        if verdict.state != self._state:
+            self._state, self.since_s = verdict.state, now_s
+        return verdict
+
+    def _block_reason(self, now_s: float, present: bool, stamp_s: float | None,
+                      overrun_streak: int, hold: str | None) -> str | None:
+        s = self.settings
+        if not present:
+            return "input device lost" if self._seen_device else "no input device"
+        self._seen_device = True
+        if stamp_s is None:
+            return "no arm state yet"
+        age_s = now_s - stamp_s
+        if age_s > s.stale_after_s:
+            return (f"arm state stale: {age_s * 1e3:.0f} ms old "
+                    f"(limit {s.stale_after_s * 1e3:.0f} ms)")
+        if overrun_streak >= s.overrun_limit:
+            return f"control loop overran {overrun_streak} cycles in a row"
+        return hold
+
+    def _latch_stop(self, present: bool, enable: bool, stop: bool, reset: bool) -> None:
+        if not present:
+            self._prev_reset = None  # a device that comes back sets a new baseline
+            return
+        pressed = reset and self._prev_reset is False
+        self._prev_reset = reset
+        if stop:
+            self._stopped = True
+            return
+        if self._stopped and pressed and not enable:
+            self._stopped = False
+
+    def _verdict(self, block: str | None, enable: bool, stop: bool) -> Verdict:
+        if self._stopped:
+            if stop:
+                why = "stop held"
+            elif enable:
+                why = "stop pressed: release enable, then press reset"
+            else:
+                why = "stop pressed: press reset to clear"
+            return Verdict(False, STOPPED, why)
+        if block is not None:
+            return Verdict(False, BLOCKED, block)
+        if not enable:
+            return Verdict(False, READY, "hold enable to move")
+        if self._need_release:
+            return Verdict(False, REARM, f"release enable and press again ({self._rearm_cause})")
+        return Verdict(True, MOVING, "enable held")

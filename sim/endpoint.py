@@ -1,0 +1,181 @@
+"""The arm side's serving loop: socket in, `ArmSession` decides, a target moves, state out.
+
+A *target* is anything with `arm`, `step_s`, `command` (the rates commanded on the last
+step), `set_rates(qd)`, `step()` and `read_state() -> Reading`: the PyBullet arm
+(`sim.arm.SimulatedArm`) or the bridge around a driver (`sim.bridge.BridgeTarget`).
+
+Two ways to serve:
+- paced: one step every `step_s` of wall-clock time (sleep, then spin the last
+  `SPIN_S` to the deadline); the watchdog ramps to zero when rates go stale. Steps missed
+  in a short stall are caught up back to back; after a stall longer than `CATCH_UP_S` the
+  schedule restarts from now.
+- lockstep: one step per accepted rates message and no pacing, so a run is deterministic
+  and as fast as the two processes allow (preflight, tests). A state goes out after every
+  step and once when a peer's hello is accepted.
+"""
+
+from __future__ import annotations
+
+import logging
+import signal
+import time
+from typing import Callable, Protocol
+
+import numpy as np
+
+from runtime.model import Arm
+from runtime.transport import ArmServer
+
+from .arm_side import ArmSession, Reading, ramp_to_zero
+
+SPIN_S = 0.0002   # busy-wait the last 200 µs before a deadline; time.sleep overshoots ~70 µs
+CATCH_UP_S = 0.05  # a stall up to this long is caught up step by step; longer ones are skipped
+
+log = logging.getLogger("jogwire.arm")
+
+
+class Target(Protocol):
+    arm: Arm
+    step_s: float
+    command: np.ndarray
+
+    def set_rates(self, qd: np.ndarray) -> None: ...
+    def step(self) -> None: ...
+    def read_state(self) -> Reading: ...
+
+
+class ArmEndpoint:
+    """Serves one target on one ArmServer socket."""
+
+    def __init__(self, server: ArmServer, target: Target, session: ArmSession, *,
+                 clock_ns: Callable[[], int] = time.monotonic_ns,
+                 sleep: Callable[[float], None] = time.sleep) -> None:
+        self.server = server
+        self.target = target
+        self.session = session
+        self.clock_ns = clock_ns
+        self.sleep = sleep
+        self.steps = 0
+        self.late_steps = 0      # steps that started after their deadline (then caught up)
+        self.overruns = 0        # stalls longer than CATCH_UP_S: simulated time fell behind
+        self.send_failures = 0
+
+    # -- one cycle -----------------------------------------------------------------------
+
+    def receive(self, now_ns: int) -> None:
+        """Drain the socket into the session and send its replies."""
+        for peer, item in self.server.drain():
+            for to, reply in self.session.on_message(peer, item, now_ns):
+                self._send(to, reply)
+        for text in self.session.events:
+            log.warning(text)
+        self.session.events.clear()
+
+    def _send(self, peer: bytes, msg) -> None:
+        result = self.server.send(peer, msg)
+        if result == "gone":
+            self.session.forget(peer)
+        elif result == "full":
+            self.send_failures += 1
+
+    def publish(self, now_ns: int) -> None:
+        state = self.session.state(self.target.read_state(), now_ns)
+        for peer in self.session.recipients():
+            self._send(peer, state)
+
+    def cycle_paced(self) -> None:
+        """Receive, decide (follow or ramp to zero), step once, publish."""
+        now = self.clock_ns()
+        self.receive(now)
+        decision = self.session.decide(now)
+        target = self.target
+        qd = decision.qd if decision.qd is not None else \
+            ramp_to_zero(target.command, target.arm.rated_accel, target.step_s)
+        target.set_rates(qd)
+        target.step()
+        self.steps += 1
+        self.publish(self.clock_ns())
+
+    def cycle_lockstep(self, timeout_s: float) -> bool:
+        """Wait up to timeout_s for messages; step once if new rates came. True if stepped."""
+        if not self.server.poll(timeout_s):
+            return False
+        now = self.clock_ns()
+        self.receive(now)
+        rates = self.session.take_pending(now)
+        if rates is not None:
+            self.target.set_rates(np.asarray(rates.qd))
+            self.target.step()
+            self.steps += 1
+            self.publish(self.clock_ns())
+            return True
+        if self.session.greet:
+            self.publish(self.clock_ns())
+        return False
+
+    # -- loops ---------------------------------------------------------------------------
+
+    def serve_paced(self, should_stop: Callable[[], bool]) -> None:
+        """One step per step_s of wall-clock time. Steps missed by a short stall are run
+        back to back (simulated time keeps up with the clock); after a stall longer than
+        CATCH_UP_S the schedule restarts from now instead (counted in `overruns`)."""
+        step_ns = int(round(self.target.step_s * 1e9))
+        deadline = self.clock_ns()
+        while not should_stop():
+            self.cycle_paced()
+            deadline += step_ns
+            late = self.clock_ns() - deadline
+            if late > 0:
+                self.late_steps += 1
+                if late > CATCH_UP_S * 1e9:
+                    self.overruns += 1
+                    deadline = self.clock_ns()
+                continue
+            self.wait_until(deadline)
+
+    def wait_until(self, deadline_ns: int) -> None:
+        """Sleep until SPIN_S before the deadline, then spin (sleep alone is too coarse)."""
+        remaining = (deadline_ns - self.clock_ns()) * 1e-9
+        if remaining > SPIN_S:
+            self.sleep(remaining - SPIN_S)
+        while self.clock_ns() < deadline_ns:
+            pass
+
+    def serve_lockstep(self, should_stop: Callable[[], bool], *, poll_s: float = 0.05) -> None:
+        while not should_stop():
+            self.cycle_lockstep(poll_s)
+
+    def summary(self) -> str:
+        dropped = self.server.dropped + self.session.dropped
+        drops = ", ".join(f"{k} {v}" for k, v in sorted(dropped.items())) or "none"
+        return (f"{self.steps} steps, {self.late_steps} late, {self.overruns} overruns, "
+                f"{self.server.received} "
+                f"messages received, dropped: {drops}")
+
+
+class StopFlag:
+    """True once SIGTERM/SIGINT arrived or `duration_s` ran out. A context manager that
+    installs its signal handlers on entry and puts the previous ones back on exit."""
+
+    SIGNALS = (signal.SIGTERM, signal.SIGINT)
+
+    def __init__(self, duration_s: float | None = None,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self.stopped = False
+        self.clock = clock
+        self.deadline = None if duration_s is None else clock() + duration_s
+        self._previous: dict = {}
+
+    def _stop(self, *_: object) -> None:
+        self.stopped = True
+
+    def __call__(self) -> bool:
+        return self.stopped or (self.deadline is not None and self.clock() >= self.deadline)
+
+    def __enter__(self) -> "StopFlag":
+        self._previous = {sig: signal.signal(sig, self._stop) for sig in self.SIGNALS}
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        for sig, handler in self._previous.items():
+            signal.signal(sig, handler)

@@ -1,0 +1,20 @@
+"""Shared test setup. Keep fixtures small; add yours below, do not rewrite others'."""
+
+from __future__ import annotations
+
+import os
+
+import pytest
+
+# Headless: SDL reads these when pygame initialises, which may happen while test modules are
+# imported (collection), so they are set here at import time as well as in the fixture.
+HEADLESS_ENV = {"SDL_VIDEODRIVER": "dummy", "SDL_AUDIODRIVER": "dummy"}
+for _key, _value in HEADLESS_ENV.items():
+    os.environ.setdefault(_key, _value)
+
+
+@pytest.fixture(autouse=True, scope="session")
+def headless_sdl() -> None:
+    """No window and no sound device in tests, unless the environment asks otherwise."""
+    for key, value in HEADLESS_ENV.items():
+        os.environ.setdefault(key, value)
