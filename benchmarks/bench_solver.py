@@ -1,7 +1,7 @@
 """One full solve per control cycle: jogwire against a plain reference cycle, same run.
 
   jogwire    runtime.solver.solve(arm, q, twist, prev_rates=…, dt_s=…): FK + Jacobian,
-             adaptive-damping DLS (σ_min from one eigh of JJᵀ), null-space centring,
+             adaptive-damping DLS (σ_min from the eigenvalues of JJᵀ), null-space centring,
              joint-limit check, and every limit (speed, position brake, acceleration,
              TCP caps)
   reference  pin forwardKinematics + updateFramePlacement + computeFrameJacobian
@@ -9,10 +9,12 @@
              q̇ = Jᵀ·numpy.linalg.solve(JJᵀ + λ²I, v) with a fixed λ and one uniform
              joint-speed scaling: the least a DLS jog cycle can do
 
-Both run call by call, interleaved, on the poses of a simulated jog (q += q̇·dt at 500 Hz,
-the twist changing direction every 0.5 s), so the machine's load hits both alike and the
-jogwire path sees the limits bind as they would in use. Also times the candidate ways of
-getting σ_min (the choice made in runtime/solver.py). Run from the repository root:
+Both run call by call, interleaved (with jogwire's FK + Jacobian alone as a third column),
+on the poses of a simulated jog (q += q̇·dt at 500 Hz; WORKLOADS below), so the machine's
+load hits all alike and the jogwire path sees damping and limits as they come in use;
+medians are also given per path (clear of limits and singularities, near a position limit,
+damped). Also times the candidate ways of getting σ_min (the choice made
+in runtime/solver.py). Run from the repository root:
 
     python benchmarks/bench_solver.py [--cycles N] [--arm reach7]
 """
@@ -29,29 +31,39 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.kinematics import geometric_jacobian  # noqa: E402
+from runtime.kinematics import geometric_jacobian, jacobian_from_frames, joint_frames  # noqa: E402
+from runtime.limits import JointBounds, clear_of_limits  # noqa: E402
 from runtime.model import Arm, load_arm  # noqa: E402
-from runtime.solver import solve  # noqa: E402
+from runtime.solver import _eigvalsh, _solve, solve  # noqa: E402
 from sim.urdf import write_urdf  # noqa: E402
 
 DT_S = 0.002
 REFERENCE_DAMPING = 0.05
 
 
+WORKLOADS = {
+    "gestures": "gestures from the home pose: 0.5 s along a random twist, 0.5 s back",
+    "wander": "the same gestures chained without returning home: the arm drifts into "
+              "singular and near-limit poses",
+}
+
+
 def jog_twists(cycles: int, seed: int = 11) -> np.ndarray:
-    """A twist per cycle: 0.2 m/s and 0.5 rad/s along a direction redrawn every 0.5 s."""
+    """A twist per cycle: gestures of 0.2 m/s and 0.5 rad/s along a random direction for
+    0.5 s, then back the opposite way for 0.5 s."""
     rng = np.random.default_rng(seed)
     hold = int(0.5 / DT_S)
     out = np.empty((cycles, 6))
-    for start in range(0, cycles, hold):
+    for start in range(0, cycles, 2 * hold):
         d = rng.normal(size=6)
         d[:3] *= 0.2 / np.linalg.norm(d[:3])
         d[3:] *= 0.5 / np.linalg.norm(d[3:])
         out[start:start + hold] = d
+        out[start + hold:start + 2 * hold] = -d
     return out
 
 
-def run(arm: Arm, urdf: Path, cycles: int) -> dict[str, np.ndarray | float]:
+def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarray | float]:
     import pinocchio as pin
 
     model = pin.buildModelFromUrdf(str(urdf))
@@ -72,7 +84,10 @@ def run(arm: Arm, urdf: Path, cycles: int) -> dict[str, np.ndarray | float]:
     twists = jog_twists(cycles)
     ours = np.empty(cycles)
     theirs = np.empty(cycles)
+    kinematics = np.empty(cycles)
+    paths = np.empty(cycles, dtype=object)
     binding: dict[str, int] = {}
+    bounds = JointBounds.of(arm)
     q = arm.home()
     prev = np.zeros(arm.n)
     for _ in range(2):  # warm-up of both paths
@@ -80,17 +95,26 @@ def run(arm: Arm, urdf: Path, cycles: int) -> dict[str, np.ndarray | float]:
             solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
             reference(q, v)
     clock = time.perf_counter
+    gesture = int(1.0 / DT_S)
     for k, v in enumerate(twists):
+        if workload == "gestures" and k % gesture == 0:  # start at rest at the home pose
+            q, prev = arm.home(), np.zeros(arm.n)
         t0 = clock()
         sol = solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
         t1 = clock()
         reference(q, v)
         t2 = clock()
-        ours[k], theirs[k] = t1 - t0, t2 - t1
+        jacobian_from_frames(arm, *joint_frames(arm, q))
+        t3 = clock()
+        ours[k], theirs[k], kinematics[k] = t1 - t0, t2 - t1, t3 - t2
         binding[str(sol.binding_limit)] = binding.get(str(sol.binding_limit), 0) + 1
+        paths[k] = ("damped" if sol.damping > 0 else
+                    "near a position limit" if not clear_of_limits(bounds, q, DT_S) else
+                    "clear, undamped")
         prev = sol.rates
         q = q + prev * DT_S
-    return {"ours": ours, "theirs": theirs, "binding": binding, "q_end": q}
+    return {"ours": ours, "theirs": theirs, "kinematics": kinematics, "paths": paths,
+            "binding": binding}
 
 
 def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
@@ -105,19 +129,19 @@ def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
         "eigvalsh(JJᵀ)": lambda J: np.linalg.eigvalsh(J @ J.T),
         "eigvalsh(JJᵀ) + solve": lambda J: (np.linalg.eigvalsh(G := J @ J.T),
                                            np.linalg.solve(G, v)),
-        "eigh(JJᵀ) (chosen: σ², solve, projector)": lambda J: np.linalg.eigh(J @ J.T),
+        "eigh(JJᵀ)": lambda J: np.linalg.eigh(J @ J.T),
+        "chosen: eigvalsh(JJᵀ) + solve, numpy's gufuncs": lambda J: (_eigvalsh(G := J @ J.T),
+                                                                   _solve(G, v)),
     }
-    out = {}
+    times = {name: np.empty(repeat) for name in options}
     clock = time.perf_counter
-    for name, f in options.items():
-        times = np.empty(repeat)
-        for k in range(repeat):
-            J = Js[k % 64]
+    for k in range(repeat):  # round-robin, so the machine's load falls on all alike
+        J = Js[k % 64]
+        for name, f in options.items():
             t0 = clock()
             f(J)
-            times[k] = clock() - t0
-        out[name] = float(np.median(times)) * 1e6
-    return out
+            times[name][k] = clock() - t0
+    return {name: float(np.median(t)) * 1e6 for name, t in times.items()}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -128,22 +152,31 @@ def main(argv: list[str] | None = None) -> int:
     arm = load_arm(args.arm)
     with tempfile.TemporaryDirectory() as tmp:
         urdf = write_urdf(arm, Path(tmp) / f"{arm.name}.urdf")
-        result = run(arm, urdf, args.cycles)
+        results = {w: run(arm, urdf, args.cycles, w) for w in WORKLOADS}
     us = 1e6
-    ours, theirs = result["ours"] * us, result["theirs"] * us
-    print(f"Full solve per cycle, {arm.name} ({arm.n} joints), {args.cycles} cycles of a "
-          f"simulated jog at {1 / DT_S:.0f} Hz (numpy {np.__version__}, "
-          f"Python {sys.version.split()[0]})")
-    print(f"  jogwire solve      median {np.median(ours):6.1f} µs   p99 {np.percentile(ours, 99):6.1f} µs")
-    print(f"  reference (pin J + numpy.linalg.solve DLS + speed scaling)"
-          f"  median {np.median(theirs):6.1f} µs   p99 {np.percentile(theirs, 99):6.1f} µs")
-    print(f"  ratio of medians   {np.median(ours) / np.median(theirs):.2f}")
-    share = ", ".join(f"{k} {v / args.cycles:.0%}" for k, v in
-                      sorted(result["binding"].items(), key=lambda kv: -kv[1]))
-    print(f"  binding limit over the run: {share}")
+    print(f"Full solve per cycle, {arm.name} ({arm.n} joints), {args.cycles} cycles per workload "
+          f"at {1 / DT_S:.0f} Hz (numpy {np.__version__}, Python {sys.version.split()[0]})")
+    for workload, result in results.items():
+        ours, theirs = result["ours"] * us, result["theirs"] * us
+        print(f"{workload}: {WORKLOADS[workload]}")
+        rows = [("jogwire solve", ours), ("reference: pin J + numpy.linalg.solve DLS", theirs),
+                ("  (jogwire FK + Jacobian alone)", result["kinematics"] * us)]
+        for name, t in rows:
+            print(f"  {name:<44} median {np.median(t):6.1f} µs   "
+                  f"p99 {np.percentile(t, 99):6.1f} µs")
+        print(f"  ratio of medians, solve / reference: {np.median(ours) / np.median(theirs):.2f}")
+        for path in ("clear, undamped", "near a position limit", "damped"):
+            chosen = result["paths"] == path
+            if chosen.any():
+                print(f"  path {path:<22} {chosen.mean():4.0%} of cycles   median "
+                      f"{np.median(ours[chosen]):6.1f} µs   ratio "
+                      f"{np.median(ours[chosen]) / np.median(theirs[chosen]):.2f}")
+        share = ", ".join(f"{k} {v / args.cycles:.0%}" for k, v in
+                          sorted(result["binding"].items(), key=lambda kv: -kv[1]))
+        print(f"  binding limit: {share}")
     print("σ_min options on 6×n Jacobians (median µs):")
     for name, t in sigma_min_options(arm, 5000).items():
-        print(f"  {name:<44} {t:6.1f}")
+        print(f"  {name:<48} {t:6.1f}")
     return 0
 
 

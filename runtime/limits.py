@@ -1,24 +1,26 @@
 """Joint-rate limits that keep the Cartesian direction (pure: no I/O, no clock; dt is an argument).
 
-Every limit here shrinks the whole joint-rate vector by one factor in [0, 1], so the TCP keeps
+Each limit acts on the whole joint-rate vector with one factor in [0, 1], so the TCP keeps
 moving in the commanded direction, only slower. Each factor is reported by name:
 
     joint_speed      |q̇_i| ≤ max_speed_i
     position_brake   a joint heading for a position limit can still stop before it
+                     (|q̇_i| ≤ √(2·a_i·d_i), one-period-latency form, REFERENCES §5)
     acceleration     |q̇_k − q̇_{k−1}| ≤ max_accel_i·dt (the fraction of the step taken)
     tcp_linear       ‖v_tcp‖ ≤ arm.tcp_max_linear_m_s
     tcp_angular      ‖ω_tcp‖ ≤ arm.tcp_max_angular_rad_s
     reduced_speed    ‖v_tcp‖ ≤ REDUCED_SPEED_M_S when reduced speed is on (ISO 10218-1)
 
-Order. The velocity-level limits (speed, brake, TCP caps) shape a *target* for this cycle;
-the acceleration limit then moves from the previous rates toward that target. Capping the
-target first means a steady motion at a cap never tugs against the acceleration limit.
-After the acceleration step the speed and position bounds hold by construction, and a final
-check re-applies the hard caps (TCP, reduced speed) in case the previous rates, blended in,
-were above them (reduced speed switched on while moving): the cap outranks the ramp.
+Order. The velocity-level limits (joint speed, position brake, TCP caps, reduced speed)
+scale this cycle's *target*, in that order. The acceleration limit then steps from the
+previous rates toward the target (`acceleration_step`); its factor is the fraction of the
+step taken, not a scaling of the target. Capping the target first means a steady motion at
+a cap never tugs against the ramp. After the step the speed and position bounds still hold
+(by construction), and the TCP caps are checked once more: the previous rates may be over a
+cap at this pose (reduced speed switched on while moving), and the cap outranks the ramp.
 
-Small vectors (n ≤ ~10) make numpy's per-call overhead (~1 µs) the cost, so the scalar
-reductions below run on Python floats; the vector arithmetic stays in numpy.
+Small vectors (n ≤ ~10) make numpy's per-call overhead (~1 µs) the cost, so the per-joint
+loops and reductions below run on Python floats; the vector arithmetic stays in numpy.
 
 Software limits are operational limits, not safety functions: a real arm needs its own
 safety-rated speed monitoring, stops and enabling device (REFERENCES §4).
@@ -60,15 +62,23 @@ class JointBounds:
     high: Vector
     speed: Vector
     accel: Vector
-    inv_speed: tuple[float, ...]  # 1/max_speed, as Python floats for the fast reductions
+    # The same as Python floats, for the per-joint loops (n ≤ ~10: cheaper than numpy calls)
+    low_f: tuple[float, ...]
+    high_f: tuple[float, ...]
+    speed_f: tuple[float, ...]
+    accel_f: tuple[float, ...]
+    inv_speed: tuple[float, ...]  # 1/max_speed
     inv_accel: tuple[float, ...]  # 1/max_accel
 
     @staticmethod
     @lru_cache(maxsize=32)
     def of(arm: Arm) -> "JointBounds":
+        low, high = arm.lower + arm.limit_margin, arm.upper - arm.limit_margin
         speed, accel = arm.max_speed.astype(float), arm.max_accel.astype(float)
-        return JointBounds(low=arm.lower + arm.limit_margin, high=arm.upper - arm.limit_margin,
-                           speed=speed, accel=accel, inv_speed=tuple((1.0 / speed).tolist()),
+        return JointBounds(low=low, high=high, speed=speed, accel=accel,
+                           low_f=tuple(low.tolist()), high_f=tuple(high.tolist()),
+                           speed_f=tuple(speed.tolist()), accel_f=tuple(accel.tolist()),
+                           inv_speed=tuple((1.0 / speed).tolist()),
                            inv_accel=tuple((1.0 / accel).tolist()))
 
     @lru_cache(maxsize=8)
@@ -112,6 +122,18 @@ def braking_speed(accel: Vector | float, distance: Vector | float, dt_s: float) 
     return 2.0 * d / (dt_s + np.sqrt(dt_s * dt_s + 2.0 * d / accel))
 
 
+def _braking_speed_1(accel: float, distance: float, dt_s: float) -> float:
+    """`braking_speed` for one joint, on Python floats."""
+    d = min(max(distance, 0.0), _FAR)
+    return 2.0 * d / (dt_s + math.sqrt(dt_s * dt_s + 2.0 * d / accel))
+
+
+def _ahead(bounds: JointBounds, q: list[float], rates: list[float]) -> list[float]:
+    """`distance_ahead` on Python floats."""
+    return [high - x if r > 0.0 else x - low
+            for x, r, low, high in zip(q, rates, bounds.low_f, bounds.high_f)]
+
+
 def clear_of_limits(bounds: JointBounds, q: Vector, dt_s: float) -> bool:
     """True when no joint is within braking reach of a position limit (`braking_zone`)."""
     low, high = bounds.braking_zone(dt_s)
@@ -128,7 +150,10 @@ def pushing_into_limits(bounds: JointBounds, q: Vector, rates: Vector, dt_s: flo
                         ) -> NDArray[np.bool_]:
     """Joints at a position limit (within one period's braking distance, a·dt²) that the
     rates push further in. These are the ones the solver takes out and re-solves without."""
-    return (distance_ahead(bounds, q, rates) <= bounds.accel * (dt_s * dt_s)) & (rates != 0.0)
+    r = rates.tolist()
+    dt2 = dt_s * dt_s
+    return np.array([v != 0.0 and d <= a * dt2 for d, v, a in
+                     zip(_ahead(bounds, q.tolist(), r), r, bounds.accel_f)], dtype=bool)
 
 
 def _worst_ratio(values: Vector, inv_limits: tuple[float, ...]) -> float:
@@ -153,12 +178,13 @@ def braking_factor(bounds: JointBounds, q: Vector, rates: Vector, dt_s: float) -
     c_i = 2τ_i / (dt + √(dt² + 2·T·τ_i)). Each joint then meets |q̇_i| ≤ braking_speed(a_i, d_i),
     and the acceleration limit can follow the braking ramp without conflict.
     """
-    T = _worst_ratio(rates, bounds.inv_accel)
+    r = rates.tolist()
+    T = max(map(mul, map(abs, r), bounds.inv_accel))
     if T == 0.0:
         return 1.0
     # τ on Python floats: an absurd distance over a tiny rate is inf, not an overflow warning.
-    tau = min((d / abs(r) for d, r in zip(distance_ahead(bounds, q, rates).tolist(),
-                                          rates.tolist()) if r != 0.0), default=math.inf)
+    tau = min((d / abs(v) for d, v in zip(_ahead(bounds, q.tolist(), r), r) if v != 0.0),
+              default=math.inf)
     if tau <= 0.0:
         return 0.0
     if tau >= dt_s + 0.5 * T:  # c = 1 already satisfies c·dt + c²·T/2 ≤ τ
@@ -207,11 +233,9 @@ def acceleration_step(bounds: JointBounds, q: Vector, prev: Vector, target: Vect
     if worst <= 1.0:
         return target, 1.0
     s = 1.0 / worst
-    if not clear:
+    if not clear and _box_entry(bounds, q, prev, delta, dt_s) > s:
         lo, hi = rate_bounds(bounds, q, dt_s)
-        needed = max(_box_entry(prev.tolist(), delta.tolist(), lo.tolist(), hi.tolist()))
-        if needed > s:
-            return _per_joint_step(bounds, prev, target, lo, hi, dt_s)
+        return _per_joint_step(bounds, prev, target, lo, hi, dt_s)
     if start >= 1.0:
         return prev + s * delta, s
     origin = prev * start
@@ -223,16 +247,18 @@ def acceleration_step(bounds: JointBounds, q: Vector, prev: Vector, target: Vect
     return origin + s * step, s
 
 
-def _box_entry(prev: list[float], delta: list[float], lo: list[float], hi: list[float]
-               ) -> list[float]:
-    """Per joint, the smallest s with prev + s·delta inside [lo, hi] (target is inside)."""
-    out = [0.0]
-    for p, d, low, high in zip(prev, delta, lo, hi):
-        if p > high:
-            out.append((p - high) / -d if d < 0.0 else 1.0)
-        elif p < low:
-            out.append((low - p) / d if d > 0.0 else 1.0)
-    return [min(1.0, x) for x in out]
+def _box_entry(bounds: JointBounds, q: Vector, prev: Vector, delta: Vector, dt_s: float
+               ) -> float:
+    """Smallest s with prev + s·delta within this cycle's speed and braking bounds, given that
+    prev + delta (the target) is."""
+    p, d = prev.tolist(), delta.tolist()
+    needed = 0.0
+    for p_i, d_i, ahead, speed, accel in zip(p, d, _ahead(bounds, q.tolist(), p),
+                                             bounds.speed_f, bounds.accel_f):
+        excess = abs(p_i) - min(speed, _braking_speed_1(accel, ahead, dt_s))
+        if excess > 0.0:
+            needed = max(needed, 1.0 if d_i == 0.0 else min(1.0, excess / abs(d_i)))
+    return needed
 
 
 def _per_joint_step(bounds: JointBounds, prev: Vector, target: Vector, lo: Vector, hi: Vector,
@@ -286,7 +312,7 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
     f_brake = 1.0 if clear else braking_factor(b, q, r, dt_s)
     if f_brake < 1.0:
         r = r * f_brake
-    twist = J @ r
+    twist = np.dot(J, r)  # np.dot: cheaper than @ on small arrays
     f_lin, f_ang, f_red = tcp_caps(arm, twist, reduced)
     c = f_lin * f_ang * f_red
     if c < 1.0:
@@ -302,10 +328,10 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
         if f_acc < 1.0:
             # prev was capped at last cycle's pose; here it may be over a cap (the pose moved,
             # or reduced speed was just switched on): start the step from it brought within.
-            start = math.prod(tcp_caps(arm, J @ prev, reduced))
+            start = math.prod(tcp_caps(arm, np.dot(J, prev), reduced))
             if start < 1.0:
                 r, f_acc = acceleration_step(b, q, prev, target, dt_s, clear=clear, start=start)
-            twist = J @ r
+            twist = np.dot(J, r)
             # Safety net (per-joint steps, round-off): the cap outranks the ramp.
             g_lin, g_ang, g_red = tcp_caps(arm, twist, reduced)
             g = g_lin * g_ang * g_red

@@ -107,6 +107,11 @@ class CycleRecord:
     compute_s: float                    # time spent computing this cycle
     overrun: bool                       # the cycle missed its deadline
     reduced: bool = False               # reduced-speed mode active
+    # What a re-run needs to feed the same cycle through the pipeline again:
+    input: Mapping[str, Any] | None = None  # the input frame (runtime.pipeline.frame_to_wire)
+    state_age_s: float | None = None    # age of q when used (s); None: no arm state yet
+    overrun_streak: int = 0             # consecutive overrunning cycles before this one
+    safety_state: str = ""              # the safety gate's state name
 
     def to_wire(self) -> dict[str, Any]:
         """The msgpack map of this record (plain Python values only)."""
@@ -133,6 +138,10 @@ class CycleRecord:
             "compute_s": float(self.compute_s),
             "overrun": bool(self.overrun),
             "reduced": bool(self.reduced),
+            "input": None if self.input is None else dict(self.input),
+            "state_age_s": None if self.state_age_s is None else float(self.state_age_s),
+            "overrun_streak": int(self.overrun_streak),
+            "safety_state": str(self.safety_state),
         }
 
     @classmethod
@@ -161,6 +170,16 @@ class CycleRecord:
             values[key] = {_as_str(k): _as_float(v) for k, v in m[key].items()}
             key = "reduced"                       # optional: added fields keep a default
             values[key] = _as_bool(m.get(key, False))
+            key = "input"
+            values[key] = m.get(key)
+            if values[key] is not None and not isinstance(values[key], Mapping):
+                raise TypeError(f"{values[key]!r} is not a map")
+            key = "state_age_s"
+            values[key] = None if m.get(key) is None else _as_float(m[key])
+            key = "overrun_streak"
+            values[key] = int(m.get(key, 0))
+            key = "safety_state"
+            values[key] = _as_str(m.get(key, ""))
         except KeyError:
             raise LogError(f"cycle record has no {key!r}") from None
         except (TypeError, ValueError, AttributeError) as exc:

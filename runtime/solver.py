@@ -20,16 +20,20 @@ control loop, preflight and `jogwire probe` call. One cycle:
     with λ set by the smallest singular value (Chiaverini, Siciliano & Egeland 1994;
     Chiaverini 1997; REFERENCES §3.3): λ² = (1 − (σ_min/ε)²)·λ_max² below ε, else 0.
  4. Redundancy. With more joints than task rows, a joint-centring motion is added in the
-    null space of the task: (I − J⁺J)·k∇w (Liégeois 1977; w from Siciliano et al. 2009, ch. 3).
- 5. Position limits. A joint sitting at a limit that the solution pushes further is taken
-    out and the task re-solved with the others (saturation in the null space, Flacco, De Luca
-    & Khatib 2012/2015) — kept only if the arm then does no motion that was not asked for.
+    null space of the task: (I − J⁺J)·k∇w (Liégeois 1977; w from Siciliano et al. 2009,
+    ch. 3), with the exact projector so it never changes J·q̇. Only while a motion is
+    commanded: with a zero twist the arm does not move by itself.
+ 5. Position limits. Braking toward a limit slows the whole motion (`runtime.limits`); a
+    joint that has arrived (within a·dt² of its limit minus margin) and that the solution
+    pushes further is taken out and the task re-solved with the others (saturation in the
+    null space, Flacco, De Luca & Khatib 2012/2015), so the arm slides along the limit.
+    The re-solve is kept only if the arm then does no motion that was not asked for;
+    otherwise the arm stops at the limit.
  6. Limits by uniform scaling (`runtime.limits`).
 
-σ_min cheaply: the eigenvalues of the small Gram matrix JJᵀ (6×6) are σ², with fewer flops
-than an SVD of J (benchmarks/bench_solver.py measures the options: eigvalsh(JJᵀ) is the
-cheapest way to σ_min, and with one linear solve it gives the whole undamped step; the
-eigenvectors are computed only when damping is on).
+σ_min cheaply: the eigenvalues of the small Gram matrix JJᵀ (6×6) are the σ², for fewer
+flops than an SVD of J; benchmarks/bench_solver.py times the options. One eigvalsh and one
+linear solve give σ_min, the manipulability, the damped step and the null-space term.
 """
 
 from __future__ import annotations
@@ -65,20 +69,25 @@ _CUTOFF = 1e-14
 eigenvalues of JJᵀ are only known to about ε_mach·λ_max."""
 
 _REFINE_BELOW = 1e-6
-"""Gram eigenvalue ratio (σ ratio 1e-3) below which the null-space projection is refined."""
+"""Gram eigenvalue ratio (σ ratio 1e-3) below which G counts as nearly singular: the solve
+goes through its eigenvectors, and the null-space projection is refined."""
 
 _IS_LINEAR = (True, True, True, False, False, False)
+
+_dot = np.dot  # on these small arrays about 0.5 µs cheaper per call than the @ operator;
+# for a vector x, Jᵀx is written np.dot(x, J)
 
 
 def _linalg_kernels() -> tuple[Callable[..., Vector], Callable[..., Vector],
                                Callable[..., tuple[Vector, NDArray[np.float64]]]]:
     """eigvalsh, solve and eigh for small float64 matrices, as numpy's own gufuncs.
 
-    numpy's public wrappers spend about 5 µs per call on checks and error-state handling
-    (as much as the LAPACK work on a 6×6, and more than half the solver's budget). The
-    gufuncs underneath (numpy.linalg._umath_linalg, unchanged since numpy 1.8) are called
-    directly; the solver only hands them finite, symmetric matrices, and `solve` only well-
-    conditioned ones. If numpy moves them, the public functions stand in.
+    numpy's public wrappers spend about 5 µs per call on checks and error-state handling,
+    more than the LAPACK work on a 6×6, twice per cycle. The gufuncs underneath
+    (numpy.linalg._umath_linalg, unchanged since numpy 1.8) are called directly; the solver
+    only hands them finite, symmetric matrices, and `solve` only well-conditioned ones. They
+    are checked against the public functions at import; if numpy moves them, the public
+    functions stand in.
     """
     public = (np.linalg.eigvalsh, np.linalg.solve, np.linalg.eigh)
     try:
@@ -175,7 +184,7 @@ def damping_squared(sigma_min: float, threshold: float, damping_max: float) -> f
 
 
 def damped_least_squares(J: NDArray[np.float64], v: Vector, damping: float) -> Vector:
-    """q̇ = Jᵀ(JJᵀ + λ²I)⁻¹v for a fixed λ (reference form; `solve` uses the eigen form).
+    """q̇ = Jᵀ(JJᵀ + λ²I)⁻¹v for a fixed λ: the textbook form (`DampedSolve` is the one in use).
 
     Minimises ‖Jq̇ − v‖² + λ²‖q̇‖²; with λ > 0, ‖q̇‖ ≤ ‖v‖/(2λ) for any J (REFERENCES §3.2).
     """
@@ -202,17 +211,16 @@ def _centring_constants(lower: Vector, upper: Vector) -> tuple[Vector, Vector]:
 
 class DampedSolve:
     """Damped least squares on a task Jacobian J (m×k), with its damping and dexterity, and
-    an optional null-space motion z (needs k > m).
+    an optional null-space motion z (used when k > m).
 
-    The Gram matrix G = JJᵀ (m×m; JᵀJ when k < m, the same solution, REFERENCES §3.1) gives
-    σ² as its eigenvalues: σ_min sets the damping, Π σ the manipulability. Then:
-    - λ = 0 (σ_min ≥ ε, the usual case): q̇ = Jᵀ G⁻¹ v by one linear solve, which also gives
-      the null-space term z − Jᵀ G⁻¹ J z (G is well conditioned here, κ(G) ≤ (σ_max/ε)²);
-    - λ > 0: the eigenvectors U of G, q̇ = Jᵀ U (Λ + λ²)⁻¹ Uᵀ v, which stays finite and
-      bounded, ‖q̇‖ ≤ ‖v‖/(2λ), at and near singularities.
-    In both the null-space projector is the exact one of the undamped pseudo-inverse,
-    J⁺ = Jᵀ G⁺, so J·(I − J⁺J)z = 0 (up to directions with σ < 1e-7·σ_max): the damped
-    (I − J⁺_DLS J) would leak into the task (REFERENCES §3.4).
+    The Gram matrix G = JJᵀ (m×m; JᵀJ when k < m, the same solution, REFERENCES §3.1) has
+    the σ² as eigenvalues: σ_min sets the damping λ, Π σ the manipulability. Then
+        q̇ = Jᵀ (G + λ²I)⁻¹ v  +  z − Jᵀ G⁺ J z
+    by linear solves: G + λ²I is well conditioned whenever λ > 0 or σ_min ≥ ε
+    (κ ≤ (σ_max² + λ_max²)/min(ε², λ_max²)). The null-space term uses the undamped G⁺, the
+    exact projector, so J(I − J⁺J)z = 0: the damped (I − J⁺_DLS J) would leak into the task
+    (REFERENCES §3.4). Only when G is (nearly) singular, σ_min < 1e-3·σ_max, do the
+    eigenvectors of G come in, with a cut-off and iterative refinement (`_eigen_*`).
     """
 
     __slots__ = ("rates", "damping", "sigma_min", "manipulability")
@@ -221,46 +229,68 @@ class DampedSolve:
                  threshold: float, damping_max: float) -> None:
         m, k = J.shape
         wide = m <= k
-        G = J @ J.T if wide else J.T @ J
+        G = _dot(J, J.T) if wide else _dot(J.T, J)
         values = _eigvalsh(G).tolist()  # ascending; σ_i²
         smallest, largest = max(values[0], 0.0), max(values[-1], 0.0)
         self.sigma_min = math.sqrt(smallest)
         self.manipulability = math.sqrt(max(math.prod(values), 0.0))
         lam2 = damping_squared(self.sigma_min, threshold, damping_max)
         self.damping = math.sqrt(lam2)
-        with_z = z is not None and wide and m < k
-        if lam2 == 0.0 and smallest > _REFINE_BELOW * largest:
-            if not wide:
-                self.rates = _solve(G, J.T @ v)
-            elif not with_z:
-                self.rates = J.T @ _solve(G, v)
-            else:  # q̇ = Jᵀ G⁻¹ (v − Jz) + z: task and null-space term in one solve
-                self.rates = J.T @ _solve(G, v - J @ z) + z
-            return
-        self.rates = _eigen_solve(J, v, z if with_z else None, G, lam2, wide)
+        regular = smallest > _REFINE_BELOW * largest  # G itself safely invertible
+        if not wide:
+            self.rates = _damped_tall(J, v, G, lam2, smallest, largest)
+        elif z is None or m == k:
+            self.rates = _damped_wide(J, v, G, lam2, smallest, largest)
+        elif lam2 == 0.0 and regular:  # the usual case: task and null space in one solve
+            self.rates = _dot(_solve(G, v - _dot(J, z)), J) + z
+        else:
+            Jz = _dot(J, z)
+            null = z - _dot(_solve(G, Jz) if regular else _eigen_pinv_gram(J, Jz, G), J)
+            self.rates = _damped_wide(J, v, G, lam2, smallest, largest) + null
 
 
-def _eigen_solve(J: NDArray[np.float64], v: Vector, z: Vector | None, G: NDArray[np.float64],
-                 lam2: float, wide: bool) -> Vector:
-    """The damped solve through G = U·diag(Λ)·Uᵀ (near or at a singularity)."""
+def _damped_wide(J: NDArray[np.float64], v: Vector, G: NDArray[np.float64], lam2: float,
+                 smallest: float, largest: float) -> Vector:
+    """Jᵀ(JJᵀ + λ²I)⁻¹v."""
+    if smallest + lam2 > _REFINE_BELOW * (largest + lam2):
+        return _dot(_solve(G + lam2 * _identity(len(G)), v), J)
+    return _dot(_eigen_inverse(G, v, lam2), J)
+
+
+def _damped_tall(J: NDArray[np.float64], v: Vector, G: NDArray[np.float64], lam2: float,
+                 smallest: float, largest: float) -> Vector:
+    """(JᵀJ + λ²I)⁻¹Jᵀv, the same for fewer joints than task rows."""
+    b = _dot(v, J)
+    if smallest + lam2 > _REFINE_BELOW * (largest + lam2):
+        return _solve(G + lam2 * _identity(len(G)), b)
+    return _eigen_inverse(G, b, lam2)
+
+
+def _eigen_inverse(G: NDArray[np.float64], b: Vector, lam2: float) -> Vector:
+    """(G + λ²I)⁺b through G's eigenvectors, eigenvalues below the cut-off dropped (G
+    singular and no damping: a configuration with damping_max = 0, or J ≈ 0)."""
     lam, U = _eigh(G)
-    smallest, largest = max(float(lam[0]), 0.0), max(float(lam[-1]), 0.0)
-    cut = _CUTOFF * largest
-    y = U.T @ (v if wide else J.T @ v)
-    y *= _reciprocal(lam + lam2, cut, smallest + lam2)
-    if not wide:
-        return U @ y
-    rates = J.T @ (U @ y)
-    if z is None:
-        return rates
-    # G's eigenvectors carry errors of order ε_mach·κ(G) that Λ⁺ amplifies near a
-    # singularity: refine J⁺Jz against its own residual (iterative refinement).
-    inv = _reciprocal(lam, cut, smallest)
-    Jz = J @ z
-    projected = J.T @ (U @ (inv * (U.T @ Jz)))
+    cut = _CUTOFF * max(float(lam[-1]), 0.0)
+    return U @ (_reciprocal(lam + lam2, cut, max(float(lam[0]), 0.0) + lam2) * (U.T @ b))
+
+
+def _eigen_pinv_gram(J: NDArray[np.float64], Jz: Vector, G: NDArray[np.float64]) -> Vector:
+    """G⁺·Jz for the projection J⁺Jz = Jᵀ G⁺ J z when G is nearly singular.
+
+    G's eigenvectors carry errors of order ε_mach·κ(G), which Λ⁺ amplifies: the result is
+    refined twice against its own residual in J⁺Jz (iterative refinement)."""
+    lam, U = _eigh(G)
+    cut = _CUTOFF * max(float(lam[-1]), 0.0)
+    inv = _reciprocal(lam, cut, max(float(lam[0]), 0.0))
+    y = U @ (inv * (U.T @ Jz))
     for _ in range(2):
-        projected += J.T @ (U @ (inv * (U.T @ (Jz - J @ projected))))
-    return rates + z - projected
+        y += U @ (inv * (U.T @ (Jz - J @ (J.T @ y))))
+    return y
+
+
+@lru_cache(maxsize=16)
+def _identity(m: int) -> NDArray[np.float64]:
+    return np.eye(m)
 
 
 def _reciprocal(values: Vector, cut: float, smallest: float) -> Vector:
@@ -435,19 +465,22 @@ def _resolve_at_limits(arm: Arm, q: Vector, Jt: NDArray[np.float64], vt: Vector,
     bounds = JointBounds.of(arm)
     free = None
     settings = arm.solver
-    error = Jt @ rates - vt
-    slack = RESOLVE_TOLERANCE * math.sqrt(float(vt @ vt)) + math.sqrt(float(error @ error))
+    slack = None
     for _ in range(arm.n):
         pushing = pushing_into_limits(bounds, q, rates, dt_s)
         if free is not None:
             pushing &= free
         if not pushing.any():
             break
+        if slack is None:
+            error = Jt @ rates - vt
+            slack = RESOLVE_TOLERANCE * math.sqrt(float(vt @ vt)) + \
+                math.sqrt(float(error @ error))
         candidate = ~pushing if free is None else free & ~pushing
         if not candidate.any():
             break
         reduced = DampedSolve(Jt[:, candidate], vt, None if z is None else z[candidate],
-                         settings.damping_threshold, settings.damping_max)
+                              settings.damping_threshold, settings.damping_max)
         if not within_command(Jt[:, candidate] @ reduced.rates, vt, slack):
             break
         rates = np.zeros(arm.n)

@@ -232,14 +232,19 @@ class ArmSession:
             self.status = "tracking"
         return rates
 
-    def decide(self, now_ns: int) -> Decision:
+    def decide(self, now_ns: int, step_ns: int = 0) -> Decision:
         """Paced mode: follow the newest rates while they are fresh and their sender is
-        connected, else ramp to zero."""
+        connected, else ramp to zero.
+
+        Fresh means they will still be no older than stale_after at the end of the step
+        about to run (now + step_ns): rates are never followed past stale_after.
+        """
         self.take_pending(now_ns)
         if self.applied is None:
             self.status = "waiting"
             return Decision(None, self.status)
-        if self.controller is not None and now_ns - self.applied_ns <= self.stale_after_ns:
+        age_at_step_end = now_ns + step_ns - self.applied_ns
+        if self.controller is not None and age_at_step_end <= self.stale_after_ns:
             self.status = "tracking"
             return Decision(np.asarray(self.applied.qd), self.status)
         if self.status != "stale":

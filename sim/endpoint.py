@@ -87,8 +87,8 @@ class ArmEndpoint:
         """Receive, decide (follow or ramp to zero), step once, publish."""
         now = self.clock_ns()
         self.receive(now)
-        decision = self.session.decide(now)
         target = self.target
+        decision = self.session.decide(now, int(target.step_s * 1e9))
         qd = decision.qd if decision.qd is not None else \
             ramp_to_zero(target.command, target.arm.rated_accel, target.step_s)
         target.set_rates(qd)

@@ -14,6 +14,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 
 PURE = ["model", "kinematics", "solver", "limits", "mapping", "protocol", "safety", "transforms",
+        "tomlsource", "urdf_loader",
         "errors"]
 FORBIDDEN_IN_PURE = {"zmq", "pygame", "pybullet", "matplotlib", "time", "threading", "socket",
                      "subprocess", "sim"}

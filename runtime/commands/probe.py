@@ -1,7 +1,8 @@
-"""`jogwire probe ARM [--q v1,v2,…]`: kinematics at one pose.
+"""`jogwire probe ARM [--q v1,v2,…] [--twist vx,vy,vz,wx,wy,wz]`: kinematics at one pose.
 
 Prints the TCP pose, the geometric Jacobian (base frame, TCP reference point), its singular
-values, Yoshikawa manipulability and condition number, as a table or as one JSON object.
+values, Yoshikawa manipulability and condition number, as a table or as one JSON object;
+with --twist also the joint rates one control cycle would send (`runtime.solver.solve`).
 
 The JSON keys are stable (other tools read them); `probe_report` builds that object, and
 further options add keys to it (e.g. a twist solve adds joint rates and scale factors).
@@ -19,6 +20,7 @@ import numpy as np
 from ..errors import ConfigError
 from ..kinematics import KinematicsReport, analyse_pose
 from ..model import TASK_AXES, Arm, load_arm
+from ..solver import Solution, parse_axes, solve
 from ..transforms import matrix_to_rpy
 
 SINGULAR_RATIO = 1e-9  # σ_min / σ_max below this is reported as a singular pose (round-off)
@@ -37,6 +39,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print one JSON object (SI units whatever --deg says)")
     parser.add_argument("--base", metavar="LINK", help="URDF only: the link the chain starts at")
     parser.add_argument("--tip", metavar="LINK", help="URDF only: the link the chain ends at")
+    twist = parser.add_argument_group("twist solve (what jogging would send at this pose)")
+    twist.add_argument("--twist", metavar="V", nargs="+",
+                       help="TCP twist vx,vy,vz,wx,wy,wz in m/s and rad/s (SI whatever --deg "
+                            "says); write --twist=-0.1,0,… when the first value is negative")
+    twist.add_argument("--frame", choices=("base", "tool"), default="base",
+                       help="axes the twist is given in (default base)")
+    twist.add_argument("--reduced", action="store_true",
+                       help="reduced-speed mode: TCP linear speed at most 0.25 m/s")
+    twist.add_argument("--lock", metavar="AXES", default="",
+                       help="axes held still, e.g. wx,wy,wz to translate only")
 
 
 def parse_q(text: str | list[str], arm: Arm, *, degrees: bool) -> np.ndarray:
@@ -57,6 +69,66 @@ def parse_q(text: str | list[str], arm: Arm, *, degrees: bool) -> np.ndarray:
             raise ConfigError(f"{joint.name}: {part!r} is not a finite number", field="--q")
         q[i] = math.radians(value) if degrees and joint.is_revolute else value
     return q
+
+
+def parse_twist(text: str | list[str]) -> np.ndarray:
+    """Six numbers vx,vy,vz,wx,wy,wz (m/s, rad/s)."""
+    if not isinstance(text, str):
+        text = ",".join(text)
+    parts = [p.strip() for p in text.replace(" ", ",").split(",") if p.strip()]
+    if len(parts) != 6:
+        raise ConfigError(f"a twist is 6 numbers vx,vy,vz,wx,wy,wz; got {len(parts)}",
+                          field="--twist")
+    try:
+        twist = np.array([float(p) for p in parts])
+    except ValueError:
+        raise ConfigError(f"not a number in {text!r}", field="--twist") from None
+    if not np.isfinite(twist).all():
+        raise ConfigError(f"not a finite number in {text!r}", field="--twist")
+    return twist
+
+
+def twist_report(solution: Solution) -> dict[str, Any]:
+    """The keys a twist solve adds to the JSON object (SI, base axes, TCP reference point):
+    joint_rates, damping (λ), achieved_twist (J·q̇), scale (product of all factors), scales
+    (each limit's factor), binding_limit (null when none), and commanded_twist,
+    tracking_error, saturated_joints."""
+    return {
+        "joint_rates": solution.rates.tolist(),
+        "damping": solution.damping,
+        "commanded_twist": solution.commanded_twist.tolist(),
+        "achieved_twist": solution.achieved_twist.tolist(),
+        "tracking_error": solution.tracking_error,
+        "scale": solution.scale,
+        "scales": dict(solution.scales),
+        "binding_limit": solution.binding_limit,
+        "saturated_joints": list(solution.saturated_joints),
+    }
+
+
+def format_twist_report(arm: Arm, solution: Solution, *, degrees: bool = False) -> str:
+    """The twist-solve section of the human-readable output (revolute rates in deg/s with
+    `degrees`)."""
+    width = max(8, *(len(n) for n in arm.joint_names))
+    out = ["Twist solve (base axes, m/s and rad/s; one cycle, no acceleration history)",
+           "             " + " ".join(f"{ax:>8}" for ax in TASK_AXES),
+           "  commanded  " + " ".join(_fmt(x, 8) for x in solution.commanded_twist),
+           "  achieved   " + " ".join(_fmt(x, 8) for x in solution.achieved_twist),
+           f"  damping λ {solution.damping:.4g}   scale {solution.scale:.4g}   "
+           f"binding limit {solution.binding_limit or 'none'}"]
+    slowed = [f"{k} {v:.4g}" for k, v in solution.scales.items() if v < 1.0]
+    if slowed:
+        out.append("  factors    " + ", ".join(slowed))
+    if solution.saturated_joints:
+        out.append("  at a limit " + ", ".join(solution.saturated_joints))
+    out.append(f"  {'joint':<{width}}  {'rate':>10}  unit")
+    for j, rate in zip(arm.joints, solution.rates):
+        if j.is_revolute:
+            rate, unit = (math.degrees(rate), "deg/s") if degrees else (rate, "rad/s")
+        else:
+            unit = "m/s"
+        out.append(f"  {j.name:<{width}}  {_fmt(rate)}  {unit}")
+    return "\n".join(out)
 
 
 def _finite_or_none(x: float) -> float | None:
@@ -131,8 +203,18 @@ def run(args: argparse.Namespace) -> int:
     arm = load_arm(args.arm, base_link=args.base, tip_link=args.tip)
     q = arm.home() if args.q is None else parse_q(args.q, arm, degrees=args.deg)
     report = analyse_pose(arm, q)
+    solution = None
+    if args.twist is not None:
+        solution = solve(arm, q, parse_twist(args.twist), frame=args.frame,
+                         locked=parse_axes(args.lock, field_name="--lock"), reduced=args.reduced)
     if args.json:
-        print(json.dumps(probe_report(arm, q, report), allow_nan=False))
+        data = probe_report(arm, q, report)
+        if solution is not None:
+            data.update(twist_report(solution))
+        print(json.dumps(data, allow_nan=False))
     else:
-        print(format_report(arm, report, degrees=args.deg))
+        text = format_report(arm, report, degrees=args.deg)
+        if solution is not None:
+            text += "\n\n" + format_twist_report(arm, solution, degrees=args.deg)
+        print(text)
     return 0

@@ -448,3 +448,32 @@ def test_achieved_twist_is_parallel_to_the_command_away_from_singularity(case) -
     # and J q̇ is the achieved twist it reports
     np.testing.assert_allclose(s.achieved_twist, geometric_jacobian(arm, q) @ s.rates,
                                atol=1e-12)
+
+
+# ----------------------------------------------------------------------------------------
+# jogwire probe --twist
+# ----------------------------------------------------------------------------------------
+
+def test_probe_adds_the_twist_solve_to_its_json(capsys) -> None:
+    from runtime.cli import main
+    assert main(["probe", "reach7", "--twist=-0.3,0.2,0.1,0,0,1", "--reduced", "--lock", "wx",
+                 "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    arm = ARMS["reach7"]
+    s = solve(arm, arm.home(), [-0.3, 0.2, 0.1, 0, 0, 1], reduced=True, locked=("wx",))
+    np.testing.assert_allclose(data["joint_rates"], s.rates, atol=1e-15)
+    np.testing.assert_allclose(data["achieved_twist"], s.achieved_twist, atol=1e-15)
+    assert data["damping"] == s.damping
+    assert data["scales"] == s.scales and data["scale"] == pytest.approx(s.scale)
+    assert data["binding_limit"] == "reduced_speed"
+    assert np.linalg.norm(data["achieved_twist"][:3]) <= 0.25 + 1e-12  # ISO 10218-1
+    assert main(["probe", "elbow6", "--twist", "0,0,0,0,0,0", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["binding_limit"] is None
+
+
+def test_probe_rejects_a_bad_twist(capsys) -> None:
+    from runtime.cli import main
+    assert main(["probe", "elbow6", "--twist", "1,2"]) == 2
+    assert "6 numbers" in capsys.readouterr().err
+    assert main(["probe", "elbow6", "--twist", "0,0,0,0,0,0", "--lock", "wq"]) == 2
+    assert "unknown axis 'wq'" in capsys.readouterr().err

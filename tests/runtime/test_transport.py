@@ -341,6 +341,18 @@ def test_curve_client_trusting_another_server_key_gets_nothing_through(
     assert curve_case(keys, wrong, hello) == []
 
 
+def test_jogwire_keys_command(tmp_path: Path, capsys) -> None:
+    from runtime.cli import main
+    assert main(["keys", str(tmp_path / "k"), "--name", "operator-2"]) == 0
+    out = capsys.readouterr().out
+    assert "arm.key_secret" in out and "operator-2.key" in out
+    assert sorted(p.name for p in (tmp_path / "k" / "authorized").iterdir()) == \
+        ["operator-2.key", "runtime.key"]
+    assert main(["keys", str(tmp_path / "k")]) == 2            # no silent overwrite
+    assert "refusing to overwrite" in capsys.readouterr().err
+    assert main(["keys", str(tmp_path / "k"), "--force"]) == 0
+
+
 def test_missing_keys_say_how_to_make_them(tmp_path: Path) -> None:
     with pytest.raises(TransportError, match="jogwire keys"):
         load_server_keys(tmp_path)

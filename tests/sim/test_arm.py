@@ -190,6 +190,16 @@ def test_write_png_round_trips_through_another_decoder(tmp_path: Path) -> None:
     assert np.array_equal((back * 255).round().astype(np.uint8), rgba)
 
 
+def test_jogwire_sim_help_lists_every_option() -> None:
+    import re
+
+    from runtime.commands import sim as sim_command
+    from sim.arm import build_parser
+    options = {s for a in build_parser()._actions for s in a.option_strings if s.startswith("--")}
+    listed = set(re.findall(r"(--[\w-]+)", sim_command.OPTIONS_SUMMARY)) - {"--help"}
+    assert listed == options - {"--help"}
+
+
 def test_bad_snapshot_arguments_say_what_is_wrong(tmp_path: Path, capsys) -> None:
     assert main(["reach7", "--snapshot", str(tmp_path / "x.png"), "--q", "1,2"]) == 2
     assert "--q needs 7 finite values" in capsys.readouterr().err

@@ -184,9 +184,13 @@ def test_stale_then_fresh_again(session, arm) -> None:
     assert session.decide(100 * MS).status == "tracking"       # exactly stale_after: fresh
     stale = session.decide(100 * MS + 1)
     assert stale.status == "stale" and stale.qd is None
+    session.on_message(RUNTIME, rates(2, 150 * MS), 150 * MS)
+    # A 1 ms step starting 99.5 ms after arrival would end past stale_after: not followed.
+    assert session.decide(249 * MS, step_ns=1 * MS).status == "tracking"
+    assert session.decide(int(249.5 * MS), step_ns=1 * MS).status == "stale"
     assert any("ramping to zero" in e for e in session.events)
-    session.on_message(RUNTIME, rates(2, 200 * MS), 200 * MS)
-    assert session.decide(200 * MS).status == "tracking"
+    session.on_message(RUNTIME, rates(3, 300 * MS), 300 * MS)
+    assert session.decide(300 * MS).status == "tracking"
 
 
 def test_a_vanished_controller_is_ramped_down_at_once(session, arm) -> None:
