@@ -45,7 +45,9 @@ import msgpack
 import numpy as np
 
 from .errors import LogError
+from .mapping import InputFrame
 from .model import JOINT_KINDS, Arm, Joint, SolverSettings
+from .pipeline import CycleOutput, frame_to_wire
 
 SESSION_SUFFIX = ".jwlog"
 MAGIC = b"\x8fJWLOG\r\n"          # high first byte: binary; \r\n: catches text-mode mangling
@@ -973,3 +975,30 @@ def _check_lengths(rec: CycleRecord, n_joints: int) -> None:
             raise LogError(f"{name} has {len(getattr(rec, name))} values, not 6")
     if not math.isfinite(rec.t_s):
         raise LogError(f"t_s is {rec.t_s}")
+
+
+_BUTTONS_LOGGED = 16  # pad buttons 0…15 as flags; `input` keeps every key by name
+
+
+def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
+                 q: Sequence[float] | None, *, state_age_s: float | None, overrun_streak: int,
+                 period_s: float, compute_s: float, overrun: bool) -> CycleRecord:
+    """The log record of one `ControlCycle.step` (drive, preflight and re-runs share it)."""
+    sol, intent = out.solution, out.intent
+    nan = float("nan")
+    return CycleRecord(
+        cycle=cycle, t_s=t_s, axes=tuple(frame.axes),
+        buttons=frame.button_flags(_BUTTONS_LOGGED), enabled=out.verdict.allowed,
+        enable_reason=out.verdict.reason, twist=tuple(intent.twist.tolist()),
+        frame=intent.frame, q=() if q is None else tuple(float(v) for v in q),
+        rates=tuple(out.rates.tolist()),
+        damping=0.0 if sol is None else sol.damping,
+        sigma_min=nan if sol is None else sol.sigma_min,
+        manipulability=nan if sol is None else sol.manipulability,
+        achieved_twist=(0.0,) * 6 if sol is None else tuple(sol.achieved_twist.tolist()),
+        tracking_error=0.0 if sol is None else sol.tracking_error,
+        scales={} if sol is None else dict(sol.scales),
+        binding_limit=None if sol is None else sol.binding_limit,
+        period_s=period_s, compute_s=compute_s, overrun=overrun, reduced=intent.reduced,
+        input=frame_to_wire(frame), state_age_s=state_age_s, overrun_streak=overrun_streak,
+        safety_state=out.verdict.state)

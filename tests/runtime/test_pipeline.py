@@ -73,3 +73,29 @@ def test_input_frame_round_trips_through_plain_data():
     cmd = InputFrame(device="s", present=True,
                      command=DirectCommand(twist=(0.1, 0, 0, 0, 0, 0.2), frame="tool", joint=None))
     assert frame_from_wire(frame_to_wire(cmd)) == cmd
+
+
+def test_cycle_record_keeps_what_a_rerun_needs(tmp_path):
+    from runtime.recorder import SessionRecorder, cycle_record, read_session
+    arm = load_arm("elbow6")
+    outputs_frames = []
+    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    source = ScriptSource(load_script("square", arm))
+    q = arm.home()
+    path = tmp_path / "s.jwlog"
+    rec = SessionRecorder.start(path, arm, {"rate_hz": RATE_HZ})
+    for k in range(600):
+        now = k / RATE_HZ
+        frame = source.read(now)
+        out = cycle.step(frame, now, q, now)
+        rec.record(cycle_record(k, now, frame, out, q, state_age_s=0.0, overrun_streak=0,
+                                period_s=1 / RATE_HZ, compute_s=0.0, overrun=False))
+        outputs_frames.append((frame, out))
+        q = q + out.rates / RATE_HZ
+    rec.close()
+    session = read_session(path)
+    assert len(session.records) == 600
+    for r, (frame, out) in zip(session.records, outputs_frames):
+        assert frame_from_wire(r.input) == frame
+        assert r.rates == tuple(out.rates.tolist())
+        assert r.safety_state == out.verdict.state
