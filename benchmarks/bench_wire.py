@@ -55,7 +55,10 @@ def stats_us(values_ns) -> tuple[float, float]:
 # ----------------------------------------------------------------------------------------
 
 def echo(endpoint: str, count: int, raw: bool) -> int:
-    """Answer each message at once; print the one-way delays (ns) as JSON at the end."""
+    """Answer each message at once; print the one-way delays (ns) as JSON at the end.
+
+    Serves until nothing came for 2 s: closing right after the last reply (LINGER 0) could
+    drop that reply before it left."""
     n = load_arm(ARM).n
     one_way = []
     if raw:
@@ -64,7 +67,7 @@ def echo(endpoint: str, count: int, raw: bool) -> int:
         s.linger = 0
         s.bind(endpoint)
         print(json.dumps({"endpoint": s.getsockopt_string(zmq.LAST_ENDPOINT)}), flush=True)
-        for _ in range(count):
+        while s.poll(2000):          # until the parent has been quiet for 2 s
             peer, payload = s.recv_multipart()
             one_way.append(time.monotonic_ns() - int.from_bytes(payload[:8], "little"))
             s.send_multipart([peer, payload])
@@ -74,9 +77,7 @@ def echo(endpoint: str, count: int, raw: bool) -> int:
         with ArmServer(endpoint, n_joints=n) as server:
             print(json.dumps({"endpoint": server.endpoint}), flush=True)
             zeros = (0.0,) * n
-            while len(one_way) < count:
-                if not server.poll(5.0):
-                    break
+            while server.poll(2.0):   # until the parent has been quiet for 2 s
                 now = time.monotonic_ns()
                 for peer, msg in server.drain():
                     if isinstance(msg, Rates):
@@ -119,6 +120,8 @@ def latency(endpoint: str, count: int, raw: bool) -> dict:
             for _ in range(count):
                 t = time.monotonic_ns()
                 s.send(t.to_bytes(8, "little") + pad)
+                if not s.poll(2000):
+                    raise RuntimeError("no answer from the echo process")
                 s.recv()
                 rtt.append(time.monotonic_ns() - t)
                 next_ns = pace(next_ns, 1_000_000)
@@ -132,9 +135,9 @@ def latency(endpoint: str, count: int, raw: bool) -> dict:
                 next_ns = time.monotonic_ns()
                 for seq in range(1, count + 1):
                     c.send(Rates(seq, time.monotonic_ns(), qd))
-                    state = None
-                    while state is None:
-                        state = c.receive(1.0).state
+                    state = c.receive(2.0).state
+                    if state is None:
+                        raise RuntimeError(f"no answer to rates {seq}")
                     rtt.append(time.monotonic_ns() - state.echo_ns)
                     next_ns = pace(next_ns, 1_000_000)
         one_way = json.loads(proc.stdout.readline())["one_way_ns"]

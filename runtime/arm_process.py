@@ -36,16 +36,22 @@ def child_env() -> dict[str, str]:
 
 
 def child_argv(kind: str, arm: str, options: list[str]) -> list[str]:
-    return [sys.executable, "-m", MODULES[kind], arm, *options]
+    # -P: the working directory is not put on sys.path, so a stray sim.py there cannot
+    # shadow the package (PYTHONPATH from child_env still leads to this checkout).
+    return [sys.executable, "-P", "-m", MODULES[kind], arm, *options]
 
 
 class ArmProcess:
     """A running `sim.arm` / `sim.bridge` child. Use as a context manager; `stop()` ends it."""
 
     def __init__(self, kind: str, arm: str, options: list[str] = (), *,
-                 ready_timeout_s: float = 30.0, stderr: int | IO[Any] | None = None) -> None:
+                 ready_timeout_s: float = 30.0, stderr: int | IO[Any] | None = None,
+                 new_session: bool = False) -> None:
+        # new_session: the child leaves our process group, so a Ctrl-C at the terminal
+        # reaches only us and we stop it in order (zero rates first, then the child).
         self.proc = subprocess.Popen(child_argv(kind, arm, list(options)), env=child_env(),
-                                     stdout=subprocess.PIPE, stderr=stderr, text=True)
+                                     stdout=subprocess.PIPE, stderr=stderr, text=True,
+                                     start_new_session=new_session)
         self.output = self.errors = ""
         try:
             self.ready_line = self._read_ready(ready_timeout_s)

@@ -226,15 +226,18 @@ def build_parser() -> argparse.ArgumentParser:
                    help="physics steps per second of simulated time (default 1000)")
     p.add_argument("--lockstep", action="store_true",
                    help="one step per received rates message, no pacing (deterministic)")
+    p.add_argument("--substeps", type=int, default=1, metavar="N",
+                   help="with --lockstep: physics steps per rates message (default 1; e.g. "
+                        "2 for a 500 Hz control rate on a 1 ms step)")
     p.add_argument("--stale-after", type=float, default=0.1, metavar="S",
                    help="no fresh rates for S seconds → ramp to zero (default 0.1)")
     p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds")
     p.add_argument("--snapshot", metavar="FILE.png",
                    help="render the arm (home pose or --q) to a PNG and exit")
     p.add_argument("--q", metavar="V", nargs="+",
-                   help="joint values for --snapshot in rad and m (deg with --deg), separated "
-                        "by commas or spaces; write --q=-0.5,1 when the first is negative. "
-                        "Default: the arm's home pose")
+                   help="the start pose (or the pose --snapshot renders) in rad and m (deg "
+                        "with --deg), separated by commas or spaces; write --q=-0.5,1 when the "
+                        "first is negative. Default: the arm's home pose")
     p.add_argument("--deg", action="store_true", help="--q revolute values are in degrees")
     p.add_argument("--size", default="800x600", help="--snapshot image size (default 800x600)")
     return p
@@ -276,17 +279,25 @@ def serve(args: argparse.Namespace, arm: Arm) -> int:
         raise ConfigError("--step-hz must be between 1 and 20000", field="step-hz")
     if not args.stale_after > 0:
         raise ConfigError("--stale-after must be positive", field="stale-after")
+    if args.substeps != 1 and not args.lockstep:
+        raise ConfigError("--substeps needs --lockstep (paced mode steps by the clock)",
+                          field="substeps")
+    if not 1 <= args.substeps <= 1000:
+        raise ConfigError("--substeps must be between 1 and 1000", field="substeps")
+    q0 = _parse_q(arm, args.q, args.deg)
+    if np.any(q0 < arm.lower) or np.any(q0 > arm.upper):
+        raise ConfigError(f"--q is outside the joint limits of {arm.name}", field="q")
     keys = load_server_keys(args.keys) if args.keys else None
     with StopFlag(args.duration) as stop, \
-            SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui) as sim, \
+            SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui, q0=q0) as sim, \
             ArmServer(args.endpoint, n_joints=arm.n, keys=keys) as server:
         session = ArmSession(hello_for(arm, "sim", stale_after_s=args.stale_after),
                              stale_after_s=args.stale_after)
-        endpoint = ArmEndpoint(server, sim, session)
+        endpoint = ArmEndpoint(server, sim, session, substeps=args.substeps)
         mode = "lockstep" if args.lockstep else "paced"
         print(f"jogwire sim ready: arm={arm.name} joints={arm.n} endpoint={server.endpoint} "
-              f"step_s={sim.step_s:g} mode={mode} stale_after_s={args.stale_after:g}",
-              flush=True)
+              f"step_s={sim.step_s:g} mode={mode} stale_after_s={args.stale_after:g} "
+              f"substeps={args.substeps}", flush=True)
         if args.lockstep:
             endpoint.serve_lockstep(stop)
         else:

@@ -11,7 +11,9 @@ Two ways to serve:
   schedule restarts from now.
 - lockstep: one step per accepted rates message and no pacing, so a run is deterministic
   and as fast as the two processes allow (preflight, tests). A state goes out after every
-  step and once when a peer's hello is accepted.
+  step and once when a peer's hello is accepted. With `substeps` N > 1, one rates message
+  advances N physics steps (a 500 Hz control rate on a 1 ms physics step needs 2) and
+  the state goes out after the last of them.
 """
 
 from __future__ import annotations
@@ -49,12 +51,15 @@ class ArmEndpoint:
 
     def __init__(self, server: ArmServer, target: Target, session: ArmSession, *,
                  clock_ns: Callable[[], int] = time.monotonic_ns,
-                 sleep: Callable[[float], None] = time.sleep) -> None:
+                 sleep: Callable[[float], None] = time.sleep, substeps: int = 1) -> None:
+        if substeps < 1:
+            raise ValueError(f"substeps must be at least 1, got {substeps}")
         self.server = server
         self.target = target
         self.session = session
         self.clock_ns = clock_ns
         self.sleep = sleep
+        self.substeps = substeps  # physics steps per rates message (lockstep)
         self.steps = 0
         self.late_steps = 0      # steps that started after their deadline (then caught up)
         self.overruns = 0        # stalls longer than CATCH_UP_S: simulated time fell behind
@@ -97,7 +102,8 @@ class ArmEndpoint:
         self.publish(self.clock_ns())
 
     def cycle_lockstep(self, timeout_s: float) -> bool:
-        """Wait up to timeout_s for messages; step once if new rates came. True if stepped."""
+        """Wait up to timeout_s for messages; if new rates came, step `substeps` times with
+        them and publish the state. True if stepped."""
         if not self.server.poll(timeout_s):
             return False
         now = self.clock_ns()
@@ -105,8 +111,9 @@ class ArmEndpoint:
         rates = self.session.take_pending(now)
         if rates is not None:
             self.target.set_rates(np.asarray(rates.qd))
-            self.target.step()
-            self.steps += 1
+            for _ in range(self.substeps):
+                self.target.step()
+            self.steps += self.substeps
             self.publish(self.clock_ns())
             return True
         if self.session.greet:

@@ -1,0 +1,371 @@
+"""`jogwire replay LOG`: send a recorded session to a target, or re-run it through today's
+control cycle and show what would differ.
+
+Three ways:
+
+    jogwire replay LOG [--speed X] [--target E]    send the recorded rates, paced by the
+                                                   recorded times (the simulated arm by
+                                                   default, started at the recorded pose)
+    jogwire replay LOG --rerun [--arm A]           open loop: every recorded cycle stepped
+                                                   again on its recorded pose; per joint
+                                                   the largest rate difference
+    jogwire replay LOG --rerun --closed-loop       closed loop: the recorded inputs drive
+                                                   today's cycle in lockstep with the
+                                                   simulated arm (its measured pose)
+
+Open loop is the exact check: the recorded poses are facts, so with the same software and
+settings every rate is bit for bit the recorded one (differences ≤ 1e-12 count as equal,
+`--tolerance`). A difference answers "what would this change have done in that very
+situation", cycle by cycle. Closed loop answers "where would the arm have gone": from the
+first difference on the poses part ways, so its differences grow and are not a test of
+equality (except for a log that was itself recorded on the lockstep simulated arm, such as
+a preflight run, which it reproduces).
+
+Sending moves an arm: the target must be at the recorded start pose (within 1° or 1 mm),
+unless --from-here. `--speed X` scales time and rates together, so the path stays the
+recorded one; X > 1 is refused where the faster rates would break the arm's limits.
+Exit status: 0 done (re-run: no difference beyond the tolerance), 1 re-run differences,
+2 bad input (unreadable log, arm mismatch, …).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+import time
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from ..arm_process import ArmProcess
+from ..errors import ConfigError, LogError, TransportError
+from ..lockstep import LockstepSim, arm_file_for, run_closed_loop
+from ..model import Arm, load_arm
+from ..progress import Progress
+from ..protocol import FLAG_REDUCED_SPEED, Rates, hello_for
+from ..recorder import CycleRecord, Session, read_session
+from ..rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of, \
+    rerun_open_loop
+from ..transport import ArmClient, check_endpoint, load_client_keys
+
+DEFAULT_TOLERANCE = 1e-12
+START_TOLERANCE = {"revolute": math.radians(1.0), "prismatic": 1e-3}   # rad, m
+STATE_TIMEOUT_S = 0.5       # no state from the target this long: stop sending
+SPIN_S = 3e-4               # sleep until this long before a send, then spin (loop.py)
+ZERO_REPEATS = 5            # zero-rate messages sent at the end (one could be lost)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("log", metavar="LOG", help="a session log (.jwlog)")
+    parser.add_argument("--rerun", action="store_true",
+                        help="feed the recorded inputs through today's control cycle instead "
+                             "of sending; report per joint the largest rate difference")
+    parser.add_argument("--closed-loop", action="store_true",
+                        help="with --rerun: in lockstep with the simulated arm (its measured "
+                             "pose) instead of on the recorded poses")
+    parser.add_argument("--arm", metavar="ARM",
+                        help="use this arm model instead of the recorded one (same joint "
+                             "count): what would another config have done")
+    parser.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE, metavar="R",
+                        help=f"re-run: differences up to R count as none (default "
+                             f"{DEFAULT_TOLERANCE:g})")
+    parser.add_argument("--target", metavar="ENDPOINT",
+                        help="send to this arm side (tcp://HOST:PORT) instead of starting "
+                             "the simulated arm")
+    parser.add_argument("--keys", metavar="DIR", help="CURVE keys for a --target off this host")
+    parser.add_argument("--speed", type=float, default=1.0, metavar="X",
+                        help="playback speed: time and rates scaled together (default 1)")
+    parser.add_argument("--from-here", action="store_true",
+                        help="send even if the target is not at the recorded start pose")
+    parser.add_argument("--step-hz", type=float, default=1000.0, metavar="HZ",
+                        help="physics step rate of the simulated arm (default 1000)")
+    parser.add_argument("--json", action="store_true", help="print the result as JSON")
+
+
+def run(args: argparse.Namespace) -> int:
+    _check_options(args)
+    session = read_session(args.log)
+    records, damage = continuous_records(session)
+    for p in session.problems:
+        _warn(f"{args.log}: {p}")
+    if damage:
+        _warn(damage)
+    if not records:
+        raise LogError(f"{args.log}: no cycle records to replay")
+    arm = _arm(session, args.arm)
+    if args.rerun:
+        return _rerun(args, session, records, arm)
+    return _send(args, session, records, arm)
+
+
+def _check_options(args: argparse.Namespace) -> None:
+    if args.closed_loop and not args.rerun:
+        raise ConfigError("--closed-loop goes with --rerun", field="--closed-loop")
+    if args.rerun and (args.target or args.speed != 1.0 or args.from_here):
+        raise ConfigError("--target, --speed and --from-here are for sending; a re-run "
+                          "moves no arm", field="--rerun")
+    if not (math.isfinite(args.speed) and 0.01 <= args.speed <= 100.0):
+        raise ConfigError(f"--speed must be within 0.01…100, got {args.speed:g}",
+                          field="--speed")
+    if not (math.isfinite(args.tolerance) and args.tolerance >= 0.0):
+        raise ConfigError("--tolerance must be a number ≥ 0", field="--tolerance")
+
+
+def _arm(session: Session, override: str | None) -> Arm:
+    recorded = session.header.arm
+    if override is None:
+        return recorded
+    arm = load_arm(override)
+    if arm.n != recorded.n:
+        raise ConfigError(f"{override} has {arm.n} joints; the session was recorded with "
+                          f"{recorded.n} ({recorded.name})", field="--arm")
+    return arm
+
+
+def _warn(text: str) -> None:
+    print(f"jogwire replay: warning: {text}", file=sys.stderr)
+
+
+# ----------------------------------------------------------------------------------------
+# Re-run
+# ----------------------------------------------------------------------------------------
+
+def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRecord],
+           arm: Arm) -> int:
+    where = str(args.log)
+    settings = cycle_settings(session.header.settings, where=where)
+    frames = inputs_of(records, where)
+    if args.closed_loop:
+        result = _rerun_closed(args, settings, records, frames, arm)
+    else:
+        cycle = settings.control_cycle(arm)
+        diff = rerun_open_loop(cycle, records, frames)
+        result = {"mode": "open loop", **diff.as_dict()}
+    result.update({"log": where, "arm": arm.name, "recorded_arm": session.header.arm.name,
+                   "tolerance": args.tolerance})
+    same = result["largest_difference"] <= args.tolerance
+    result["identical"] = same
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        print(_format_rerun(result, arm))
+    return 0 if same else 1
+
+
+def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRecord],
+                  frames, arm: Arm) -> dict[str, Any]:
+    cycle = settings.control_cycle(arm)
+    inputs = RecordedInputs(records, frames, cycle.dt_s)
+    n_cycles = len(records)
+    recorded = np.array([r.rates for r in records])
+    recorded_q = np.array([r.q for r in records])
+    rates = np.zeros_like(recorded)
+    q_dev = np.zeros(arm.n)
+    spec = args.arm or arm_file_for(arm)
+    bar = Progress(f"re-run {Path(args.log).name}", n_cycles * cycle.dt_s)
+    start_q = recorded_q[0] if records[0].q else None
+    with LockstepSim(spec, arm, rate_hz=settings.rate_hz, step_hz=args.step_hz,
+                     start_q=start_q) as sim:
+        for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles):
+            rates[c.k] = c.out.rates
+            q_dev = np.maximum(q_dev, np.abs(c.q_used - recorded_q[c.k]))
+            bar.update((c.k + 1) * cycle.dt_s)
+        bar.close()
+    diff = np.abs(rates - recorded)
+    worst = diff.argmax(axis=0)
+    differs = np.flatnonzero(diff.max(axis=1) > 0.0)
+    return {"mode": "closed loop (lockstep simulated arm)", "cycles": n_cycles,
+            "largest_difference": float(diff.max()),
+            "differing_cycles": int(differs.size),
+            "first_difference_t_s": float(records[differs[0]].t_s) if differs.size else None,
+            "joints": [{"name": name, "max_abs_difference": float(diff[i, j]),
+                        "at_t_s": float(records[i].t_s) if diff[i, j] > 0 else None,
+                        "max_pose_deviation": float(q_dev[j])}
+                       for j, (name, i) in enumerate(zip(arm.joint_names, worst.tolist()))]}
+
+
+def _format_rerun(r: dict[str, Any], arm: Arm) -> str:
+    from .inspect import format_table
+    verdict = ("identical" if r["largest_difference"] == 0.0 else
+               f"identical within {r['tolerance']:g}") if r["identical"] else "DIFFERENT"
+    lines = [f"re-run ({r['mode']}) of {r['log']} with arm {r['arm']}: {r['cycles']} cycles, "
+             f"rates {verdict}"]
+    if r["differing_cycles"]:
+        lines.append(f"  {r['differing_cycles']} cycles differ, the first at "
+                     f"t = {r['first_difference_t_s']:.3f} s")
+    if r.get("safety_state_mismatches"):
+        lines.append(f"  the safety gate decided differently in "
+                     f"{r['safety_state_mismatches']} cycles")
+    rows = []
+    for j, item in zip(arm.joints, r["joints"]):
+        unit = "rad/s" if j.is_revolute else "m/s"
+        row = [j.name, f"{item['max_abs_difference']:.3e} {unit}",
+               "—" if item["at_t_s"] is None else f"{item['at_t_s']:.3f}"]
+        if "max_pose_deviation" in item:
+            row.append(f"{item['max_pose_deviation']:.3e} {'rad' if j.is_revolute else 'm'}")
+        rows.append(row)
+    head = ["joint", "largest |Δ rate|", "at t (s)"]
+    if rows and len(rows[0]) == 4:
+        head.append("largest |Δ pose|")
+    lines += [""] + format_table(head, rows)
+    return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------------------
+# Send
+# ----------------------------------------------------------------------------------------
+
+def _send(args: argparse.Namespace, session: Session, records: Sequence[CycleRecord],
+          arm: Arm) -> int:
+    rates = np.array([r.rates for r in records]) * args.speed
+    times = (np.array([r.t_s for r in records]) - records[0].t_s) / args.speed
+    _check_speed(arm, records, args.speed)
+    start_q = np.array(records[0].q) if records[0].q else None
+    child = None
+    keys = None
+    if args.target:
+        check_endpoint(args.target, None if args.keys else None, action="connect to") \
+            if args.keys else check_endpoint(args.target, None, action="connect to")
+        keys = load_client_keys(args.keys) if args.keys else None
+        endpoint, target = args.target, f"arm side at {args.target}"
+    else:
+        options = ["--endpoint", "tcp://127.0.0.1:*", "--step-hz", repr(float(args.step_hz))]
+        if start_q is not None:
+            options.append("--q=" + ",".join(repr(float(v)) for v in start_q))
+        child = ArmProcess("sim", args.arm or arm_file_for(arm), options,
+                           stderr=subprocess_pipe(), new_session=True)
+        endpoint, target = child.endpoint, "the simulated arm"
+    client = None
+    try:
+        client = ArmClient(endpoint, hello=hello_for(arm, "runtime", stale_after_s=0.1),
+                           keys=keys)
+        _, first = client.handshake(timeout_s=5.0)
+        _check_start(arm, np.array(first.q), start_q, args.from_here)
+        result = _paced_send(client, records, rates, times, args, target)
+    finally:
+        if client is not None:
+            for _ in range(ZERO_REPEATS):
+                client.send(Rates(seq=_next_seq(client), t_ns=time.monotonic_ns(),
+                                  qd=np.zeros(arm.n)))
+            client.close()
+        if child is not None:
+            child.stop()
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        print(_format_send(result, arm))
+    return 0
+
+
+def subprocess_pipe() -> int:
+    import subprocess
+    return subprocess.PIPE
+
+
+_seq: dict[int, int] = {}
+
+
+def _next_seq(client: ArmClient) -> int:
+    _seq[id(client)] = _seq.get(id(client), 0) + 1
+    return _seq[id(client)]
+
+
+def _check_speed(arm: Arm, records: Sequence[CycleRecord], speed: float) -> None:
+    """Refuse a playback speed whose scaled rates would break the arm's limits.
+
+    Rates scale with X and accelerations with X², so only X ≤ 1 is always safe."""
+    if speed <= 1.0:
+        return
+    rates = np.array([r.rates for r in records])
+    t = np.array([r.t_s for r in records])
+    peak_speed = np.abs(rates).max(axis=0)
+    dt = np.diff(t)
+    ok = dt > 0
+    peak_accel = (np.abs(np.diff(rates, axis=0))[ok] / dt[ok, None]).max(axis=0) \
+        if ok.any() else np.zeros(arm.n)
+    with np.errstate(divide="ignore"):
+        fastest = min(float(np.min(arm.max_speed / peak_speed)),
+                      float(np.sqrt(np.min(arm.max_accel / peak_accel))))
+    if speed > fastest:
+        raise ConfigError(f"at --speed {speed:g} the replay would command rates or "
+                          f"accelerations above {arm.name}'s limits (rates scale with the "
+                          f"speed, accelerations with its square); the fastest allowed is "
+                          f"--speed {math.floor(fastest * 100) / 100:g}", field="--speed")
+
+
+def _check_start(arm: Arm, q: np.ndarray, start_q: np.ndarray | None, from_here: bool) -> None:
+    if start_q is None or from_here:
+        return
+    tol = np.array([START_TOLERANCE[j.kind] for j in arm.joints])
+    off = np.abs(q - start_q)
+    if np.any(off > tol):
+        i = int(np.argmax(off / tol))
+        j = arm.joints[i]
+        k = math.degrees(1.0) if j.is_revolute else 1.0
+        unit = "deg" if j.is_revolute else "m"
+        raise ConfigError(
+            f"the target is not at the recorded start pose: {j.name} is at "
+            f"{q[i] * k:.3f} {unit}, the recording starts at {start_q[i] * k:.3f} {unit}; move "
+            f"the arm there first, or pass --from-here to replay the rates from where it is",
+            field="--from-here")
+
+
+def _paced_send(client: ArmClient, records: Sequence[CycleRecord], rates: np.ndarray,
+                times: np.ndarray, args: argparse.Namespace, target: str) -> dict[str, Any]:
+    n = len(records)
+    recorded_q = np.array([r.q for r in records]) if records[0].q else None
+    deviation = np.zeros(rates.shape[1])
+    bar = Progress(f"replay {Path(args.log).name}", float(times[-1]) if n else 0.0)
+    clock = time.perf_counter
+    start = clock() + 0.02
+    last_state = clock()
+    latest_q = None
+    for k in range(n):
+        _wait_until(start + times[k], clock)
+        client.send(Rates(seq=_next_seq(client), t_ns=time.monotonic_ns(), qd=rates[k],
+                          flags=FLAG_REDUCED_SPEED if records[k].reduced else 0))
+        inbox = client.receive()
+        now = clock()
+        if inbox.state is not None:
+            latest_q, last_state = np.array(inbox.state.q), now
+        elif now - last_state > STATE_TIMEOUT_S:
+            raise TransportError(f"no state from {target} for {STATE_TIMEOUT_S:g} s; replay "
+                                 f"stopped at t = {records[k].t_s:.3f} s")
+        if inbox.refuse is not None and inbox.refuse.code != "no_hello":
+            raise TransportError(f"{target} refused the replay ({inbox.refuse.code}): "
+                                 f"{inbox.refuse.reason}")
+        if latest_q is not None and recorded_q is not None:
+            deviation = np.maximum(deviation, np.abs(latest_q - recorded_q[k]))
+        bar.update(float(times[k]))
+    bar.close()
+    wall = clock() - start
+    return {"log": str(args.log), "target": target, "cycles": n,
+            "recorded_s": float(records[-1].t_s - records[0].t_s), "speed": args.speed,
+            "wall_s": wall, "dropped_sends": client.send_dropped,
+            "joints": [{"name": name, "max_pose_deviation": float(d)}
+                       for name, d in zip(client.hello.joints, deviation)]}
+
+
+def _wait_until(deadline: float, clock) -> None:
+    remaining = deadline - clock()
+    if remaining > SPIN_S:
+        time.sleep(remaining - SPIN_S)
+    while clock() < deadline:
+        pass
+
+
+def _format_send(r: dict[str, Any], arm: Arm) -> str:
+    lines = [f"replayed {r['cycles']} cycles ({r['recorded_s']:.2f} s recorded) to "
+             f"{r['target']} at speed {r['speed']:g} in {r['wall_s']:.2f} s"]
+    if r["dropped_sends"]:
+        lines.append(f"  {r['dropped_sends']} rates messages could not be sent")
+    lines.append("  largest deviation of the target's pose from the recorded pose "
+                 "(measured while sending; includes one cycle of latency):")
+    for j, item in zip(arm.joints, r["joints"]):
+        v = item["max_pose_deviation"]
+        lines.append(f"    {j.name:<14} " + (f"{math.degrees(v):.3f} deg" if j.is_revolute
+                                             else f"{v * 1e3:.3f} mm"))
+    return "\n".join(lines)

@@ -1,0 +1,222 @@
+"""The simulated arm stepped in lockstep with the control cycle, faster than real time.
+
+    runtime (this process)                      sim child (`python -m sim.arm … --lockstep`)
+    ControlCycle.step(q_k) ─► rates_k ──wire──► N physics steps with rates_k
+              ▲                                        │
+              └──────────── state (q, q̇) after them ◄──┘
+
+`runtime` never imports the simulator: the arm runs in a child process and every cycle is
+one round trip over a loopback socket (docs/PROTOCOL.md, "Lockstep mode"). One rates
+message advances `substeps` physics steps, so a 500 Hz cycle on a 1 ms physics step is two
+steps per message. The run is deterministic: the next rates go out only after the state
+whose `applied_seq` is the last rates' `seq` has come back, and each cycle's time is the
+simulated time k·dt, not the wall clock.
+
+`run_closed_loop` is the loop that preflight and `replay --rerun --closed-loop` share: an
+input frame per cycle in, the cycle's output and the arm's state after it out.
+"""
+
+from __future__ import annotations
+
+import math
+import subprocess
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterator, Sequence
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .arm_process import ArmProcess
+from .errors import ConfigError, TransportError
+from .mapping import InputFrame
+from .model import Arm, configs_dir, limits_digest, load_arm
+from .pipeline import ControlCycle, CycleOutput
+from .protocol import FLAG_REDUCED_SPEED, Rates, State, geometry_digest, hello_for
+from .transport import ArmClient
+
+Vector = NDArray[np.float64]
+
+# In lockstep nothing is late: the runtime waits for every state. The arm side's lateness
+# filter would still drop a message delayed by a stall of this machine longer than its
+# stale_after, and the run would hang waiting for a state that never comes; so the child
+# gets a stale_after far beyond any stall.
+LOCKSTEP_STALE_AFTER_S = 3600.0
+ANSWER_TIMEOUT_S = 10.0     # no state this long after a rates message: the child is gone
+
+
+def substeps_for(rate_hz: float, step_hz: float) -> int:
+    """Physics steps per control cycle; the control period must be a whole number of them."""
+    if not (math.isfinite(rate_hz) and rate_hz > 0):
+        raise ConfigError(f"the control rate must be a positive number, got {rate_hz:g}",
+                          field="rate")
+    if not (math.isfinite(step_hz) and 1.0 <= step_hz <= 20000.0):
+        raise ConfigError(f"the physics step rate must be within 1…20000 Hz, got {step_hz:g}",
+                          field="step-hz")
+    ratio = step_hz / rate_hz
+    n = round(ratio)
+    if n < 1 or abs(ratio - n) > 1e-9 * ratio:
+        raise ConfigError(f"the physics step rate ({step_hz:g} Hz) must be a whole multiple "
+                          f"of the control rate ({rate_hz:g} Hz)", field="step-hz")
+    return n
+
+
+def same_arm(a: Arm, b: Arm) -> bool:
+    """The two models agree on everything the wire compares (limits and geometry)."""
+    return (a.joint_names == b.joint_names and limits_digest(a) == limits_digest(b)
+            and geometry_digest(a) == geometry_digest(b))
+
+
+def arm_file_for(arm: Arm, extra: Sequence[str | Path] = ()) -> str:
+    """A name or path the child can load that gives the very same arm: the file the model
+    came from, a shipped arm of that name, or one of `extra`. The child cannot be handed
+    a model in memory, only a file, and the hello exchange checks it is the same arm."""
+    candidates = [*extra, arm.source, arm.name]
+    for candidate in candidates:
+        if not candidate:
+            continue
+        path = Path(candidate)
+        if not path.exists() and not (configs_dir() / "arms" / f"{candidate}.toml").exists():
+            continue
+        try:
+            if same_arm(load_arm(candidate), arm):
+                return str(candidate)
+        except ConfigError:
+            continue
+    raise ConfigError(
+        f"the arm {arm.name!r} of this session (from {arm.source or 'an unknown file'}) is "
+        f"not available as a file with the same limits and geometry; pass --arm with the "
+        f"arm file to use", field="arm")
+
+
+@dataclass(frozen=True, eq=False)
+class SimStep:
+    """The arm after one lockstep cycle: q (rad or m), q̇ (rad/s or m/s) and whether the
+    arm side had to reduce the rates at its own limits."""
+
+    q: Vector
+    qd: Vector
+    limited: bool
+
+
+class LockstepSim:
+    """A `sim.arm` child in lockstep mode on a free loopback port, and the link to it.
+
+    arm_spec: what the child loads (a shipped name or a file); `arm` is our model of it,
+    and the hello exchange refuses a child whose arm differs (ModelMismatch).
+    start_q: the pose the arm starts in (rad or m); None = the arm's home pose.
+    """
+
+    def __init__(self, arm_spec: str, arm: Arm, *, rate_hz: float, step_hz: float,
+                 start_q: Sequence[float] | None = None,
+                 ready_timeout_s: float = 30.0) -> None:
+        self.arm = arm
+        self.substeps = substeps_for(rate_hz, step_hz)
+        self.step_s = 1.0 / step_hz
+        options = ["--lockstep", "--endpoint", "tcp://127.0.0.1:*", "--step-hz",
+                   repr(float(step_hz)), "--substeps", str(self.substeps), "--stale-after",
+                   repr(LOCKSTEP_STALE_AFTER_S)]
+        if start_q is not None:
+            q0 = np.asarray(start_q, dtype=float)
+            if q0.shape != (arm.n,) or not np.all(np.isfinite(q0)):
+                raise ConfigError(f"the start pose needs {arm.n} finite values", field="q")
+            if np.any(q0 < arm.lower) or np.any(q0 > arm.upper):
+                raise ConfigError("the start pose is outside the joint limits", field="q")
+            options.append("--q=" + ",".join(repr(float(v)) for v in q0))
+        self.seq = 0
+        self.child = ArmProcess("sim", arm_spec, options, ready_timeout_s=ready_timeout_s,
+                                stderr=subprocess.PIPE)
+        self.client: ArmClient | None = None
+        try:
+            self.client = ArmClient(self.child.endpoint,
+                                    hello=hello_for(arm, "runtime",
+                                                    stale_after_s=LOCKSTEP_STALE_AFTER_S))
+            _, first = self.client.handshake(timeout_s=ready_timeout_s)
+        except BaseException:
+            self.close()
+            raise
+        self.first = SimStep(np.array(first.q), np.array(first.qd), bool(first.limited))
+
+    def step(self, rates: Vector, *, reduced: bool = False) -> SimStep:
+        """Send one cycle's rates; return the arm's state after its `substeps` steps."""
+        assert self.client is not None
+        self.seq += 1
+        sent = self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=rates,
+                                      flags=FLAG_REDUCED_SPEED if reduced else 0))
+        if not sent:
+            raise TransportError(self._gone("the link to the simulated arm is down"))
+        state = self._wait_for(self.seq)
+        return SimStep(np.array(state.q), np.array(state.qd), bool(state.limited))
+
+    def _wait_for(self, seq: int) -> State:
+        assert self.client is not None
+        deadline = time.monotonic() + ANSWER_TIMEOUT_S
+        while True:
+            inbox = self.client.receive(timeout_s=0.5)
+            if inbox.refuse is not None:
+                raise TransportError(self._gone(f"the simulated arm refused us "
+                                                f"({inbox.refuse.code}): {inbox.refuse.reason}"))
+            state = inbox.state
+            if state is not None and state.applied_seq == seq:
+                return state
+            if time.monotonic() > deadline or self.child.proc.poll() is not None:
+                raise TransportError(self._gone(f"no answer from the simulated arm to rates "
+                                                f"#{seq} within {ANSWER_TIMEOUT_S:g} s"))
+
+    def _gone(self, what: str) -> str:
+        status = self.child.proc.poll()
+        if status is None:
+            return what
+        self.child.stop()
+        tail = self.child.errors.strip().splitlines()[-3:]
+        return f"{what}; the simulated arm exited with status {status}" + \
+            (": " + " / ".join(tail) if tail else "")
+
+    def close(self) -> None:
+        if self.client is not None:
+            self.client.close()
+            self.client = None
+        self.child.stop()
+
+    def __enter__(self) -> "LockstepSim":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+@dataclass(frozen=True, eq=False)
+class ClosedLoopCycle:
+    """One cycle of a closed-loop run: what went in, what the cycle decided, where the arm
+    was when it decided (q_used) and where it was after the step (after)."""
+
+    k: int
+    t_s: float
+    frame: InputFrame
+    out: CycleOutput
+    q_used: Vector
+    after: SimStep
+    compute_s: float       # wall time of the control cycle alone
+
+
+def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
+                    frame_at: Callable[[int, float], InputFrame], n_cycles: int,
+                    *, clock: Callable[[], float] = time.perf_counter
+                    ) -> Iterator[ClosedLoopCycle]:
+    """Cycles 0…n_cycles−1 at simulated times t = k·dt, each on the arm's measured pose.
+
+    The state is always fresh (age 0 on the simulated clock) and the loop never overruns:
+    the run proves the motion, not the timing of the machine it runs on.
+    """
+    q = sim.first.q
+    dt = cycle.dt_s
+    for k in range(n_cycles):
+        t = k * dt
+        frame = frame_at(k, t)
+        started = clock()
+        out = cycle.step(frame, t, q, t)
+        compute = clock() - started
+        after = sim.step(out.rates, reduced=out.intent.reduced)
+        yield ClosedLoopCycle(k, t, frame, out, q, after, compute)
+        q = after.q
