@@ -23,7 +23,7 @@ import subprocess
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Iterator, Sequence
+from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
@@ -68,12 +68,11 @@ def same_arm(a: Arm, b: Arm) -> bool:
             and geometry_digest(a) == geometry_digest(b))
 
 
-def arm_file_for(arm: Arm, extra: Sequence[str | Path] = ()) -> str:
+def arm_file_for(arm: Arm) -> str:
     """A name or path the child can load that gives the very same arm: the file the model
-    came from, a shipped arm of that name, or one of `extra`. The child cannot be handed
-    a model in memory, only a file, and the hello exchange checks it is the same arm."""
-    candidates = [*extra, arm.source, arm.name]
-    for candidate in candidates:
+    came from, or a shipped arm of that name. The child cannot be handed a model in
+    memory, only a file, and the hello exchange checks it is the same arm."""
+    for candidate in (arm.source, arm.name):
         if not candidate:
             continue
         path = Path(candidate)
@@ -125,8 +124,9 @@ class LockstepSim:
                 raise ConfigError("the start pose is outside the joint limits", field="q")
             options.append("--q=" + ",".join(repr(float(v)) for v in q0))
         self.seq = 0
+        # Its own session: a Ctrl-C reaches only us, and we end the child in order.
         self.child = ArmProcess("sim", arm_spec, options, ready_timeout_s=ready_timeout_s,
-                                stderr=subprocess.PIPE)
+                                stderr=subprocess.PIPE, new_session=True)
         self.client: ArmClient | None = None
         try:
             self.client = ArmClient(self.child.endpoint,
@@ -140,12 +140,20 @@ class LockstepSim:
 
     def step(self, rates: Vector, *, reduced: bool = False) -> SimStep:
         """Send one cycle's rates; return the arm's state after its `substeps` steps."""
+        self.send(rates, reduced=reduced)
+        return self.wait()
+
+    def send(self, rates: Vector, *, reduced: bool = False) -> None:
+        """Send one cycle's rates without waiting (`wait` collects the answer)."""
         assert self.client is not None
         self.seq += 1
         sent = self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=rates,
                                       flags=FLAG_REDUCED_SPEED if reduced else 0))
         if not sent:
             raise TransportError(self._gone("the link to the simulated arm is down"))
+
+    def wait(self) -> SimStep:
+        """The arm's state after the rates last sent."""
         state = self._wait_for(self.seq)
         return SimStep(np.array(state.q), np.array(state.qd), bool(state.limited))
 
@@ -189,7 +197,8 @@ class LockstepSim:
 @dataclass(frozen=True, eq=False)
 class ClosedLoopCycle:
     """One cycle of a closed-loop run: what went in, what the cycle decided, where the arm
-    was when it decided (q_used) and where it was after the step (after)."""
+    was when it decided (q_used), where it was after the step (after), and what the
+    caller's `prepare` made of the cycle while the arm was stepping."""
 
     k: int
     t_s: float
@@ -198,16 +207,23 @@ class ClosedLoopCycle:
     q_used: Vector
     after: SimStep
     compute_s: float       # wall time of the control cycle alone
+    prepared: Any = None
+
+
+Prepare = Callable[[int, float, InputFrame, CycleOutput, Vector, float], Any]
 
 
 def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
                     frame_at: Callable[[int, float], InputFrame], n_cycles: int,
-                    *, clock: Callable[[], float] = time.perf_counter
+                    *, prepare: Prepare | None = None,
+                    clock: Callable[[], float] = time.perf_counter
                     ) -> Iterator[ClosedLoopCycle]:
     """Cycles 0…n_cycles−1 at simulated times t = k·dt, each on the arm's measured pose.
 
-    The state is always fresh (age 0 on the simulated clock) and the loop never overruns:
-    the run proves the motion, not the timing of the machine it runs on.
+    `prepare(k, t, frame, out, q_used, compute_s)` runs while the simulated arm steps (the
+    two processes work side by side); its result comes back in `prepared`. The state is
+    always fresh (age 0 on the simulated clock) and the loop never overruns: the run proves
+    the motion, not the timing of the machine it runs on.
     """
     q = sim.first.q
     dt = cycle.dt_s
@@ -217,6 +233,8 @@ def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
         started = clock()
         out = cycle.step(frame, t, q, t)
         compute = clock() - started
-        after = sim.step(out.rates, reduced=out.intent.reduced)
-        yield ClosedLoopCycle(k, t, frame, out, q, after, compute)
+        sim.send(out.rates, reduced=out.intent.reduced)
+        prepared = None if prepare is None else prepare(k, t, frame, out, q, compute)
+        after = sim.wait()
+        yield ClosedLoopCycle(k, t, frame, out, q, after, compute, prepared)
         q = after.q

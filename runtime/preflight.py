@@ -133,18 +133,21 @@ class TraceBuilder:
             joint_mode: bool = False) -> None:
         """One cycle: its `CycleRecord`, the arm's state after the step, and (if known) the
         commanded twist in base axes; else it is rotated from the record's frame."""
+        self.add_cycle(rec, commanded_twist=commanded_twist, joint_mode=joint_mode)
+        self.add_state(q_after, qd_after, limited)
+
+    def add_cycle(self, rec: Any, *, commanded_twist: Sequence[float] | None = None,
+                  joint_mode: bool = False) -> None:
+        """The record of the next cycle (its state after the step follows in `add_state`)."""
         k = self._n
         if k == len(self._arrays["t"]):
             self._alloc(2 * k)
         a = self._arrays
         a["t"][k] = rec.t_s
         a["q_used"][k] = rec.q
-        a["q"][k] = q_after
-        a["qd"][k] = qd_after
         a["rates"][k] = rec.rates
         a["allowed"][k] = rec.enabled
         a["reduced"][k] = rec.reduced
-        a["limited"][k] = limited
         a["twist_rates"][k] = rec.achieved_twist
         a["sigma_min"][k] = rec.sigma_min
         a["damping"][k] = rec.damping
@@ -160,6 +163,15 @@ class TraceBuilder:
             a["binding"][k] = self._names.setdefault(rec.binding_limit, len(self._names))
         self._reasons.append(rec.enable_reason)
         self._n += 1
+
+    def add_state(self, q_after: Sequence[float], qd_after: Sequence[float],
+                  limited: bool = False) -> None:
+        """The arm's state after the step of the cycle added last."""
+        k = self._n - 1
+        a = self._arrays
+        a["q"][k] = q_after
+        a["qd"][k] = qd_after
+        a["limited"][k] = limited
 
     def build(self) -> Trace:
         n = self._n
@@ -509,9 +521,9 @@ def _joint_findings(arm: Arm, joints: tuple[JointReport, ...], speed_meas, accel
         if rep.min_limit_distance < reach:
             out.append(Finding("position_limit", j.name, rep.min_limit_distance,
                                rep.limit_margin, rep.min_limit_distance_t_s, "measured",
-                               f"{j.name}: came within {fmt(rep.min_limit_distance, j.kind)} "
-                               f"of its {rep.limit_side} limit at "
-                               f"t = {rep.min_limit_distance_t_s:.2f} s (margin "
+                               f"{j.name}: ran into its {rep.limit_side} position limit "
+                               f"at t = {rep.min_limit_distance_t_s:.2f} s (closest approach "
+                               f"{fmt(rep.min_limit_distance, j.kind)}, margin "
                                f"{fmt(rep.limit_margin, j.kind)}): the motion needs more "
                                f"travel than the joint has"))
     return out

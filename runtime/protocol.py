@@ -58,6 +58,8 @@ FloatVector = tuple[float, ...]
 
 
 def _floats(values: Any) -> FloatVector:
+    if type(values) is tuple and all(type(x) is float for x in values):
+        return values  # already what we keep (decode builds these)
     if isinstance(values, np.ndarray):
         return tuple(values.astype(np.float64).ravel().tolist())
     return tuple(map(float, values))
@@ -217,7 +219,7 @@ def _positive_float(value: Any, n: int | None, field: str) -> float:
 
 def _float_array(length: Callable[[int | None], int | None]) -> Check:
     def check(value: Any, n: int | None, field: str) -> FloatVector:
-        if type(value) is not list:
+        if type(value) is not list and type(value) is not tuple:  # tuple: when encoding
             raise _bad("type", field, f"expected an array, got {type(value).__name__}")
         want = length(n)
         if want is not None and len(value) != want:
@@ -254,7 +256,7 @@ def _one_of(choices: tuple[str, ...]) -> Check:
 
 
 def _names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
-    if type(value) is not list:
+    if type(value) is not list and type(value) is not tuple:  # tuple: when encoding
         raise _bad("type", field, f"expected an array, got {type(value).__name__}")
     if not 1 <= len(value) <= MAX_JOINTS:
         raise _bad("length", field, f"expected 1…{MAX_JOINTS} names, got {len(value)}")
@@ -286,7 +288,8 @@ FIELDS: dict[str, tuple[tuple[str, Check], ...]] = {
 assert all([f.name for f in fields(KINDS[k])] == [key for key, _ in FIELDS[k]] for k in KINDS)
 
 
-def _validated(kind: str, data: dict, n_joints: int | None) -> Message:
+def _checked(kind: str, data: dict, n_joints: int | None) -> dict[str, Any]:
+    """The field values of a `kind` map, each checked; raises ProtocolError."""
     spec = FIELDS[kind]
     expected = {"v", "kind", *(key for key, _ in spec)}
     if data.keys() != expected:
@@ -297,7 +300,7 @@ def _validated(kind: str, data: dict, n_joints: int | None) -> Message:
     values = {key: check(data[key], n_joints, key) for key, check in spec}
     if kind == "state" and len(values["q"]) != len(values["qd"]):
         raise _bad("length", "qd", f"{len(values['qd'])} values for {len(values['q'])} joints")
-    return KINDS[kind](**values)
+    return values
 
 
 # ----------------------------------------------------------------------------------------
@@ -311,15 +314,14 @@ def to_map(msg: Message) -> dict[str, Any]:
         raise ProtocolError(f"cannot encode a {type(msg).__name__}", reason="kind")
     out: dict[str, Any] = {"v": PROTOCOL_VERSION, "kind": kind}
     for key, _ in FIELDS[kind]:
-        value = getattr(msg, key)
-        out[key] = list(value) if isinstance(value, tuple) else value
+        out[key] = getattr(msg, key)   # tuples pack as msgpack arrays
     return out
 
 
 def encode(msg: Message) -> bytes:
     """One wire frame for `msg`. Raises ProtocolError if `msg` breaks the schema (never sent)."""
     data = to_map(msg)
-    _validated(data["kind"], data, None)
+    _checked(data["kind"], data, None)
     return msgpack.packb(data, use_bin_type=True)
 
 
@@ -361,7 +363,7 @@ def decode(data: Any, *, n_joints: int | None = None) -> Message:
         raise ProtocolError("no string 'kind'", reason="schema" if kind is None else "type")
     if kind not in FIELDS:
         raise ProtocolError(f"unknown kind {kind[:40]!r}", reason="kind")
-    return _validated(kind, obj, n_joints)
+    return KINDS[kind](**_checked(kind, obj, n_joints))
 
 
 # ----------------------------------------------------------------------------------------

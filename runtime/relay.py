@@ -29,6 +29,9 @@ reordered or accompanied by garbage (they still see delay, jitter and stalls), s
 ends still agree on the arm and the runtime's hello retries are not what is being tested.
 Frames are forwarded byte for byte.
 
+The faults other than stalls may wait (`from_s`): until then messages pass untouched, so a
+run can start on a clean link and degrade at a chosen moment (or when asked: `Link.start`).
+
 Options on the command line (`parse_*` below): durations as `40ms`, `1.5s`, `200us` (a bare
 number is seconds), probabilities as `5%` or `0.05`, each optionally for one direction
 (`rates=20%`), stalls as `[DIR=]LENGTH[@AT[/EVERY]]` (without `@AT`: on demand).
@@ -87,7 +90,11 @@ class Stall:
 
 @dataclass(frozen=True)
 class LinkFaults:
-    """What one direction of the link does to messages. Times in s, probabilities 0…1."""
+    """What one direction of the link does to messages (see the module docstring).
+
+    Times in s, probabilities 0…1. garbage_kinds: which of GARBAGE_KINDS a burst draws from.
+    from_s: the faults other than stalls start this long after the relay (inf: when asked).
+    """
 
     delay_s: float = 0.0
     jitter_s: float = 0.0
@@ -97,31 +104,38 @@ class LinkFaults:
     reorder_hold_s: float = 0.006
     garbage: float = 0.0
     garbage_burst: int = 3
+    garbage_kinds: tuple[str, ...] = GARBAGE_KINDS
     stalls: tuple[Stall, ...] = ()
     hold_in_stall: bool = False
+    from_s: float = 0.0
 
     def __post_init__(self) -> None:
+        # Errors name the command-line option (delay_s → delay, from_s → faults-from).
+        if not (self.from_s >= 0 and not math.isnan(self.from_s)):
+            raise ConfigError(f"must be a time ≥ 0, got {self.from_s}", field="faults-from")
         for name in ("delay_s", "jitter_s", "reorder_hold_s"):
             value = getattr(self, name)
             if not (math.isfinite(value) and value >= 0):
-                raise ConfigError(f"must be a duration ≥ 0, got {value}", field=name)
+                raise ConfigError(f"must be a duration ≥ 0, got {value}",
+                                  field=name.removesuffix("_s").replace("_", "-"))
         for name in ("loss", "duplicate", "reorder", "garbage"):
             value = getattr(self, name)
             if not 0.0 <= value <= 1.0:
                 raise ConfigError(f"must be a probability between 0 and 1, got {value}",
                                   field=name)
+        unknown = set(self.garbage_kinds) - set(GARBAGE_KINDS)
+        if unknown or not self.garbage_kinds:
+            raise ConfigError(f"garbage kinds must be some of {', '.join(GARBAGE_KINDS)}"
+                              + (f"; unknown: {', '.join(sorted(unknown))}" if unknown else ""),
+                              field="garbage-kinds")
         if not 1 <= self.garbage_burst <= 1000:
             raise ConfigError(f"must be 1…1000 frames, got {self.garbage_burst}",
-                              field="garbage_burst")
+                              field="garbage-burst")
         for stall in self.stalls:
             if not stall.length_s > 0 or (stall.every_s is not None and
                                           not stall.every_s > stall.length_s):
                 raise ConfigError(f"stall {stall}: the length must be positive and shorter "
                                   "than the period", field="stall")
-
-    @property
-    def is_clean(self) -> bool:
-        return self == LinkFaults()
 
     def describe(self) -> str:
         parts = []
@@ -134,9 +148,14 @@ class LinkFaults:
             parts.append(f"reorder hold {self.reorder_hold_s * 1e3:g} ms")
         if self.garbage:
             parts.append(f"garbage bursts of {self.garbage_burst}")
+            if self.garbage_kinds != GARBAGE_KINDS:
+                parts.append(f"garbage kinds {','.join(self.garbage_kinds)}")
         parts += [f"stall {s}" for s in self.stalls]
         if self.stalls and self.hold_in_stall:
             parts.append("held through stalls")
+        if parts and self.from_s:
+            parts.append("from " + ("a signal" if math.isinf(self.from_s) else
+                                    f"{self.from_s:g} s") + " on (stalls keep their times)")
         return ", ".join(parts) or "clean"
 
 
@@ -211,6 +230,7 @@ class Link:
         self._stall_until_s = -math.inf   # end of an on-demand stall
         self._was_stalled = False
         self._held_up_to_s = -math.inf    # deliveries due by then waited for a stall to end
+        self._from_s = faults.from_s      # before then, messages pass untouched
 
     # -- in ------------------------------------------------------------------------------
 
@@ -220,6 +240,10 @@ class Link:
         c.received += 1
         kind = message_kind(frames)
         c.kinds[kind] += 1
+        if now_s < self._from_s:                 # not yet: in order, at once
+            self._fifo_s = max(now_s, self._fifo_s)
+            self._push(Delivery(self._fifo_s, frames, route, "message"))
+            return
         control = kind in CONTROL_KINDS
         if not control and f.loss and rng.random() < f.loss:
             c.lost += 1
@@ -235,7 +259,7 @@ class Link:
             self._fifo_s = at
         if not control and f.garbage and rng.random() < f.garbage:
             for _ in range(f.garbage_burst):
-                kind_g = rng.choice(GARBAGE_KINDS)
+                kind_g = rng.choice(f.garbage_kinds)
                 self._push(Delivery(at, make_garbage(frames, kind_g, rng), route,
                                     f"garbage:{kind_g}"))
         self._push(Delivery(at, frames, route, "message"))
@@ -249,6 +273,16 @@ class Link:
             return
         self._order += 1
         heapq.heappush(self._heap, (d.at_s, self._order, d))
+
+    def start(self, now_s: float) -> bool:
+        """Start the faults now if they wait for it; True if they were waiting."""
+        if now_s < self._from_s:
+            self._from_s = now_s
+            return True
+        return False
+
+    def is_active(self, now_s: float) -> bool:
+        return now_s >= self._from_s
 
     # -- stalls --------------------------------------------------------------------------
 
@@ -450,11 +484,15 @@ def faults_from_options(options: dict[str, list[str]], *, hold_in_stall: bool = 
     values: dict[str, dict[str, Any]] = {d: {"hold_in_stall": hold_in_stall, "stalls": []}
                                          for d in DIRECTIONS}
     for name, texts in options.items():
-        option = name.removesuffix("_s").replace("_", "-")
+        option = "faults-from" if name == "from_s" else name.removesuffix("_s").replace("_", "-")
         for text in texts:
             directions, value = split_direction(text, option)
             if name == "stall":
                 parsed: Any = parse_stall(value, option)
+            elif name == "from_s":
+                parsed = math.inf if value.strip() == "signal" else parse_duration_s(value, option)
+            elif name == "garbage_kinds":
+                parsed = tuple(k.strip() for k in value.split(",") if k.strip())
             elif name == "garbage_burst":
                 try:
                     parsed = int(value)

@@ -11,7 +11,7 @@ axis (s from the start of the run):
     tcp           TCP linear speed, commanded and measured, against the cap in force
     sigma         σ_min of the task Jacobian, the damping threshold and the damping λ
     tracking      commanded vs measured twist: linear (mm/s) and angular (deg/s) error
-    timeline      which limit bound when; when motion was allowed; stops
+    timeline      when motion was allowed, when damped, which limit bound; stops
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ import io
 import math
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -60,27 +60,20 @@ class ReportContext:
 # ----------------------------------------------------------------------------------------
 
 def reduce_series(t: NDArray[np.float64], y: NDArray[np.float64], points: int = PLOT_POINTS,
-                  how: Callable[..., Any] = np.nanmax) -> tuple[NDArray[np.float64], Any]:
-    """At most `points` samples: consecutive bins reduced with `how` (max keeps peaks,
-    min keeps closest approaches). y may be (N,) or (N, k); NaN-only bins stay NaN."""
+                  how: np.ufunc = np.fmax) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """At most `points` samples: consecutive bins reduced with `how` (np.fmax keeps peaks,
+    np.fmin closest approaches; both skip NaN). y may be (N,) or (N, k)."""
     n = len(t)
     if n <= points:
         return t, y
-    edges = np.linspace(0, n, points + 1).astype(int)
-    tb = t[edges[:-1]]
-    out = np.full((points,) + y.shape[1:], np.nan)
-    for b in range(points):
-        chunk = y[edges[b]:edges[b + 1]]
-        if np.any(np.isfinite(chunk)):
-            out[b] = how(chunk, axis=0)
-    return tb, out
+    starts = np.linspace(0, n, points + 1).astype(int)[:-1]
+    return t[starts], how.reduceat(y, starts, axis=0)
 
 
 def render_plots(result: PreflightResult, arm: Arm) -> dict[str, bytes]:
-    """Every plot as PNG bytes, by name (PLOT_NAMES)."""
-    import matplotlib
-    matplotlib.use("Agg", force=True)
-    import matplotlib.pyplot as plt
+    """Every plot as PNG bytes, by name (PLOT_NAMES). matplotlib's object interface with
+    its Agg canvas: no pyplot, no global backend, nothing left open."""
+    from matplotlib.figure import Figure
 
     s = result.series
     makers = {"speeds": _plot_speeds, "accelerations": _plot_accels, "limits": _plot_limits,
@@ -88,17 +81,18 @@ def render_plots(result: PreflightResult, arm: Arm) -> dict[str, bytes]:
               "timeline": _plot_timeline}
     out = {}
     for name in PLOT_NAMES:
-        fig, ax = plt.subplots(figsize=FIG_SIZE_IN, dpi=DPI, layout="constrained")
-        try:
-            makers[name](ax, s, result, arm)
-            ax.set_xlim(0.0, max(result.duration_s, 1e-3))
-            ax.set_xlabel("time (s)")
-            ax.grid(True, linewidth=0.4, alpha=0.5)
-            buf = io.BytesIO()
-            fig.savefig(buf, format="png")
-            out[name] = buf.getvalue()
-        finally:
-            plt.close(fig)
+        fig = Figure(figsize=FIG_SIZE_IN, dpi=DPI)
+        ax = fig.subplots()
+        # Fixed margins: an automatic layout draws every figure twice.
+        fig.subplots_adjust(left=0.15 if name == "timeline" else 0.08, right=0.92, top=0.88,
+                            bottom=0.16)
+        makers[name](ax, s, result, arm)
+        ax.set_xlim(0.0, max(result.duration_s, 1e-3))
+        ax.set_xlabel("time (s)")
+        ax.grid(True, linewidth=0.4, alpha=0.5)
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png")
+        out[name] = buf.getvalue()
     return out
 
 
@@ -145,7 +139,7 @@ def _plot_limits(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     """Revolute joints in degrees, prismatic in millimetres, on a log axis: close
     approaches are what matters."""
     scale = np.where(arm.is_revolute, 180.0 / math.pi, 1000.0)
-    t1, d = reduce_series(s.t, s.limit_distance * scale, how=np.nanmin)
+    t1, d = reduce_series(s.t, s.limit_distance * scale, how=np.fmin)
     floor = 1e-2
     for i, (name, color) in enumerate(zip(arm.joint_names, _joint_colors(arm.n))):
         ax.plot(t1, np.maximum(d[:, i], floor), color=color, label=name, **_CMD_STYLE)
@@ -165,11 +159,11 @@ def _plot_limits(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
 def _plot_tcp(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     t1, c = reduce_series(s.t, s.tcp_cmd)
     _, m = reduce_series(s.t, s.tcp_meas)
-    _, cap = reduce_series(s.t, s.tcp_cap, how=np.nanmin)
+    _, cap = reduce_series(s.t, s.tcp_cap, how=np.fmin)
     ax.plot(t1, c, color="#1f5fa8", label="commanded", **_CMD_STYLE)
     ax.plot(t1, m, color="#e08a00", label="measured", **_MEAS_STYLE)
     ax.step(t1, cap, where="post", label="cap", **_LIMIT_STYLE)
-    top = max(_peak(c, m, cap[cap < 10 * max(r.tcp_peak_speed, 1e-3)]), 1e-3) * 1.12
+    top = max(_peak(c, m, cap), 1e-3) * 1.12      # the cap always in view: "against" it
     ax.set_ylim(0.0, top)
     ax.set_ylabel("TCP linear speed (m/s)")
     ax.set_title("TCP linear speed against the cap in force", fontsize=10, loc="left")
@@ -177,7 +171,7 @@ def _plot_tcp(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
 
 
 def _plot_sigma(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
-    t1, sig = reduce_series(s.t, s.sigma_min, how=np.nanmin)
+    t1, sig = reduce_series(s.t, s.sigma_min, how=np.fmin)
     _, lam = reduce_series(s.t, s.damping)
     ax.plot(t1, sig, color="#5b3fa0", label="σ_min", **_CMD_STYLE)
     ax.axhline(r.damping_threshold, color="#5b3fa0", linewidth=0.8, linestyle=":",
@@ -201,11 +195,14 @@ def _plot_tracking(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     _, ang = reduce_series(s.t, np.degrees(s.tracking_angular))
     ax.plot(t1, lin, color="#1f5fa8", label="linear (mm/s)", **_CMD_STYLE)
     ax.set_ylabel("linear error (mm/s)")
-    ax.set_ylim(bottom=0.0, top=max(_peak(lin), 1e-3) * 1.12)
+    # Axes reach at least 1 % of the arm's caps, so the simulator's tiny velocity error
+    # does not fill the plot.
+    ax.set_ylim(bottom=0.0, top=max(_peak(lin), 10.0 * arm.tcp_max_linear_m_s) * 1.12)
     twin = ax.twinx()
     twin.plot(t1, ang, color="#c2185b", linewidth=0.9, label="angular (deg/s)")
     twin.set_ylabel("angular error (deg/s)")
-    twin.set_ylim(bottom=0.0, top=max(_peak(ang), 1e-3) * 1.12)
+    twin.set_ylim(bottom=0.0,
+                  top=max(_peak(ang), 0.01 * math.degrees(arm.tcp_max_angular_rad_s)) * 1.12)
     lines = ax.get_legend_handles_labels()
     more = twin.get_legend_handles_labels()
     ax.legend(lines[0] + more[0], lines[1] + more[1], fontsize=7, loc="upper right")
@@ -214,20 +211,19 @@ def _plot_tracking(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
 
 
 def _plot_timeline(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
-    rows = ["motion allowed"] + list(s.binding_names)
+    rows = [("motion allowed", s.allowed, "#9e9e9e"),
+            ("damping active", s.damping > 0.0, "#5b3fa0")]
+    colors = _joint_colors(len(s.binding_names) + 1)
+    rows += [(name, s.binding == k, colors[k + 1]) for k, name in enumerate(s.binding_names)]
     dt = 1.0 / r.rate_hz
-    colors = _joint_colors(len(rows) + 1)
-    for y, label in enumerate(rows):
-        mask = s.allowed if y == 0 else s.binding == (y - 1)
-        spans = _spans(s.t, mask, dt)
-        ax.broken_barh(spans, (y - 0.35, 0.7), color="#9e9e9e" if y == 0 else colors[y],
-                       linewidth=0)
+    for y, (_, mask, color) in enumerate(rows):
+        ax.broken_barh(_spans(s.t, mask, dt), (y - 0.35, 0.7), color=color, linewidth=0)
     for stop in r.stops:
         ax.axvline(stop.t_s, color=_FAIL, linewidth=0.8, linestyle=":")
-    ax.set_yticks(range(len(rows)), rows, fontsize=8)
+    ax.set_yticks(range(len(rows)), [label for label, _, _ in rows], fontsize=8)
     ax.set_ylim(-0.6, len(rows) - 0.4)
     ax.invert_yaxis()
-    ax.set_title("When motion was allowed and which limit bound (dotted: stops)",
+    ax.set_title("When motion was allowed, damped, and which limit bound (dotted: stops)",
                  fontsize=10, loc="left")
 
 

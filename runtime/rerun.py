@@ -1,4 +1,5 @@
-"""Feeding a recorded session back through today's control cycle (pure: no I/O, no clock).
+"""Feeding a recorded session back through today's control cycle (no clock, no sockets;
+the only file it reads is the pad mapping a session names).
 
 Open loop (`jogwire replay --rerun`): each recorded cycle is stepped again with exactly
 what it saw then: the input frame, the time, the measured pose and its age, the loop's

@@ -7,11 +7,14 @@ The arm link (docs/PROTOCOL.md, "Sockets"):
 
 The ROUTER knows which peer sent what, so the arm side answers the runtime that spoke
 (hello replies, refusals) and takes commands from one controller only. Both ends drain
-their socket to the newest message every cycle; queues are capped at a few messages
-(`QUEUE_MESSAGES`), so a slow reader never builds a backlog and an old command is never
-followed after a newer one. The TCP buffers are kept small too (`KERNEL_BUFFER_BYTES`): with
-the kernel's defaults a stalled reader would find thousands of messages waiting. The DEALER only queues to a completed connection
-(ZMQ_IMMEDIATE), so nothing sent while the arm side is away is delivered later.
+their socket every cycle and act on the newest message; ZeroMQ's queues are capped at a few
+messages (`QUEUE_MESSAGES`), so a reader that keeps up never builds a backlog and an old
+command is never followed after a newer one. The DEALER only queues to a completed
+connection (ZMQ_IMMEDIATE), so nothing sent while the arm side is away is delivered later.
+The kernel's TCP buffers are left at their defaults: a reader that stalls for seconds finds
+up to a few thousand messages, reads through them (`DRAIN_LIMIT` per call) and the timing
+rules in `protocol` drop them as late. Buffers of 4 KiB bounded that to ~175 messages but
+made round trips 3–4 times slower here.
 
 For an input program (network twist source) there is `LatestSubscriber` (SUB with
 ZMQ_CONFLATE: one slot, the newest message) and `Publisher` (PUB).
@@ -20,9 +23,9 @@ Every socket: LINGER 0 (closing never blocks on unsent messages), MAXMSGSIZE = t
 protocol's byte cap (a peer that sends more is disconnected by ZeroMQ itself). Receive
 calls decode, count malformed messages by reason in `dropped`, and never raise for them.
 
-Security: an endpoint that is not loopback (tcp://127.x.x.x, tcp://[::1], tcp://localhost)
-or ipc:// needs CURVE keys (`jogwire keys DIR`); the check runs before any socket exists.
-The side holding `ServerKeys` authenticates clients against a folder of allowed public keys
+Security: an endpoint that is neither loopback (tcp://127.x.x.x, tcp://[::1],
+tcp://localhost) nor ipc:// needs CURVE keys (`jogwire keys DIR`); the check runs before any
+socket exists. The side holding `ServerKeys` authenticates clients against a folder of allowed public keys
 through a ZAP handler (pyzmq's ThreadAuthenticator) on its own ZeroMQ context.
 """
 
@@ -50,8 +53,7 @@ from .protocol import MAX_MESSAGE_BYTES, Hello, Message, Refuse, State, check_he
 DEFAULT_ARM_ENDPOINT = "tcp://127.0.0.1:47810"     # arm side binds, runtime connects
 DEFAULT_TWIST_ENDPOINT = "tcp://127.0.0.1:47811"   # runtime binds, input programs connect
 QUEUE_MESSAGES = 16      # send/receive high-water marks (messages per peer)
-KERNEL_BUFFER_BYTES = 4096  # TCP socket buffers: small, or thousands of messages could queue
-DRAIN_LIMIT = 4096       # most messages one drain reads (the queues hold far fewer)
+DRAIN_LIMIT = 1024       # most messages one drain reads: bounds the work of one cycle
 HEARTBEAT_MS = 1000      # ZMTP heartbeats: a silent TCP peer is dropped after 3 intervals
 SERVER_KEY_NAME = "arm"
 CLIENT_KEY_NAME = "runtime"
@@ -202,7 +204,6 @@ class _Socket:
             s.linger = 0
             s.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
             s.sndhwm = s.rcvhwm = QUEUE_MESSAGES
-            s.sndbuf = s.rcvbuf = KERNEL_BUFFER_BYTES
             s.setsockopt(zmq.HEARTBEAT_IVL, HEARTBEAT_MS)
             s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 3 * HEARTBEAT_MS)
             if "[" in endpoint:
@@ -236,6 +237,9 @@ class _Socket:
         return bool(self.socket.poll(max(0, int(timeout_s * 1000)), zmq.POLLIN))
 
     def _recv_frames(self) -> list[bytes] | None:
+        # Asking ZMQ_EVENTS first is cheaper than the zmq.Again that ends every drain.
+        if not self.socket.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+            return None
         try:
             return self.socket.recv_multipart(zmq.NOBLOCK, copy=True)
         except zmq.Again:

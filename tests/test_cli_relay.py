@@ -6,12 +6,17 @@ from __future__ import annotations
 
 import json
 import random
+import re
+import signal
+import subprocess
+import sys
 import threading
 import time
 
 import numpy as np
 import pytest
 
+from runtime.arm_process import child_env
 from runtime.cli import main
 from runtime.commands.relay import Relay
 from runtime.model import load_arm
@@ -147,3 +152,41 @@ def test_the_command_runs_prints_its_counters_and_writes_a_report(capsys, tmp_pa
 def test_bad_options_are_refused_cleanly(argv, words, capsys) -> None:
     assert main(["relay", "--listen", "tcp://127.0.0.1:*", "--duration", "0.1", *argv]) == 2
     assert words in capsys.readouterr().err
+
+
+def test_signals_start_a_stall_and_the_waiting_faults(tmp_path) -> None:
+    """SIGUSR1 starts the on-demand stalls, SIGUSR2 the faults that wait for a signal; each
+    is announced with its time on the monotonic clock (the fault suite keys on these lines)."""
+    out = tmp_path / "relay.out"
+    with out.open("w") as log:
+        proc = subprocess.Popen([sys.executable, "-m", "runtime.cli", "relay", "--listen",
+                                 "tcp://127.0.0.1:*", "--target", "tcp://127.0.0.1:9",
+                                 "--stall", "state=100ms", "--loss", "rates=50%",
+                                 "--faults-from", "signal", "--duration", "20"],
+                                stdout=log, stderr=subprocess.STDOUT, env=child_env())
+    try:
+        def wait_for(pattern: str) -> re.Match:
+            deadline = time.monotonic() + 15.0
+            while time.monotonic() < deadline:
+                m = re.search(pattern, out.read_text())
+                if m:
+                    return m
+                time.sleep(0.01)
+            pytest.fail(f"no {pattern!r} in:\n{out.read_text()}")
+
+        def event_ns(text: str) -> int:
+            return int(wait_for(re.escape(text) + r" t_ns=(\d+)").group(1))
+        wait_for("jogwire relay ready")
+        assert "rates direction: loss 50 %, from a signal on" in out.read_text()
+        sent = time.monotonic_ns()
+        proc.send_signal(signal.SIGUSR1)
+        stalled = event_ns("state direction stalled")
+        flowing = event_ns("state direction flowing again")
+        assert sent <= stalled and 0.09e9 <= flowing - stalled <= 0.2e9
+        proc.send_signal(signal.SIGUSR2)
+        assert event_ns("rates direction faults on") >= flowing
+    finally:
+        proc.terminate()
+        proc.wait(10)
+    assert proc.returncode == 0
+    assert "jogwire relay: 0 peers connected, 0 gone" in out.read_text()

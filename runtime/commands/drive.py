@@ -72,7 +72,13 @@ REFUSAL_HOLD_S = 0.5              # motion held this long after the arm side ref
 HANDSHAKE_TIMEOUT_S = 10.0
 STATS_REFRESH_S = 0.25            # how often the main thread recomputes timing percentiles
 SNAPSHOT_HZ = 60.0                # status snapshots per second published by the loop
+# The window redraws at up to WINDOW_MAX_HZ, fewer where a frame is slow to draw and show
+# (a software X server takes ~11 ms per frame here), so that it takes about WINDOW_CPU_SHARE
+# of a core: on two cores the control loop and the simulated arm need the rest.
+WINDOW_MAX_HZ, WINDOW_MIN_HZ, WINDOW_CPU_SHARE = 30.0, 5.0, 0.15
 RATE_RANGE_HZ = (1.0, 2000.0)
+REALTIME_PRIORITY = 50            # SCHED_FIFO level for --realtime: above ordinary work and
+                                  # below the kernel's own threads (common practice)
 
 
 # ----------------------------------------------------------------------------------------
@@ -109,6 +115,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="where session logs go (default ./sessions)")
     parser.add_argument("--gui", action="store_true",
                         help="open PyBullet's own window for the simulated arm")
+    parser.add_argument("--lockstep", action="store_true",
+                        help="step the simulated arm once per control cycle (1/rate of "
+                             "simulated time each) instead of in real time: its time then "
+                             "follows the loop exactly, even on a loaded machine (no arm-side "
+                             "watchdog in this mode)")
+    parser.add_argument("--realtime", action="store_true",
+                        help="run the control loop and this process's other threads at "
+                             f"real-time priority (SCHED_FIFO {REALTIME_PRIORITY}, Linux; needs "
+                             "CAP_SYS_NICE or `ulimit -r`): other programs then cannot delay "
+                             "the loop; refused → normal priority, with a note")
     parser.add_argument("--stale-after", type=float, default=0.1, metavar="S",
                         help="arm state older than S stops motion here, and the simulated arm "
                              "ramps to zero when our rates are older than S (default 0.1)")
@@ -185,9 +201,10 @@ def _check_options(args: argparse.Namespace) -> None:
         raise ConfigError("--duration must be positive", field="duration")
     if not (0.005 <= args.stale_after <= 5.0):
         raise ConfigError("--stale-after must be between 0.005 and 5 s", field="stale-after")
-    if args.target is not None and args.gui:
-        raise ConfigError("--gui opens the simulated arm's window; with --target there is no "
-                          "simulated arm to open", field="gui")
+    for flag in ("gui", "lockstep"):
+        if args.target is not None and getattr(args, flag):
+            raise ConfigError(f"--{flag} is for the simulated arm; with --target there is none",
+                              field=flag)
     if args.keys is not None and args.target is None:
         raise ConfigError("--keys is for a --target off this host", field="keys")
 
@@ -222,10 +239,11 @@ class LogHistogram:
             self.max = x
 
     def percentile(self, p: float) -> float | None:
-        """The p-th percentile (0–100): the geometric centre of its bin, at most the max."""
+        """The p-th percentile (0–100), nearest rank: the geometric centre of the bin that
+        holds the ceil(p·n/100)-th smallest value, at most the max."""
         if self.n == 0:
             return None
-        rank = max(1, math.ceil(p / 100.0 * self.n))
+        rank = max(1, math.ceil(p / 100.0 * self.n - 1e-9))   # 99.9 % of 20000 is 19980
         seen = 0
         for i, c in enumerate(self.counts):
             seen += c
@@ -295,7 +313,7 @@ class DriveSession:
     def __init__(self, *, arm: Arm, cycle: ControlCycle, source: Any, client: ArmClient,
                  recorder: SessionRecorder | None, clock: Callable[[], float],
                  stale_after_s: float, duration_s: float | None, same_clock: bool,
-                 target: str, rate_hz: float) -> None:
+                 target: str, rate_hz: float, lockstep: bool = False) -> None:
         self.arm = arm
         self.cycle = cycle
         self.source = source
@@ -306,6 +324,7 @@ class DriveSession:
         self.duration_s = duration_s
         self.same_clock = same_clock
         self.target = target
+        self.lockstep = lockstep
         self.stats = RunStats(arm)
         self.freshness = StateFreshness(stale_after_s)
         self.publish_every = max(1, round(rate_hz / SNAPSHOT_HZ))
@@ -319,7 +338,6 @@ class DriveSession:
         self.seq = 0
         self.cycles = 0
         self.latest = None                           # StatusSnapshot, replaced whole
-        self.last_output: CycleOutput | None = None
         self.end_reason: str | None = None
         self.stop_outcome = ""
         self._end_request: str | None = None
@@ -364,13 +382,19 @@ class DriveSession:
                 self.rtt_s = now - state.echo_ns * 1e-9
                 self.stats.round_trip.add(self.rtt_s)
 
-    def _receive(self, now: float) -> None:
-        inbox = self.client.receive()
+    def _receive(self, now: float, timeout_s: float = 0.0) -> None:
+        inbox = self.client.receive(timeout_s)
         if inbox.refuse is not None and inbox.refuse.code != "no_hello":
             self._refused = (f"the arm side refused us ({inbox.refuse.code}): "
                              f"{inbox.refuse.reason}", now)
         if inbox.state is not None:
-            self.offer_state(inbox.state, now)
+            self.offer_state(inbox.state, now if timeout_s == 0.0 else self.clock())
+
+    def _await_applied(self, seq: int, until: float) -> None:
+        """Lockstep (docs/PROTOCOL.md §6): wait for the state of the step that applied
+        rates `seq`, so the arm side steps exactly once per cycle and none is superseded."""
+        while self._applied_seen < seq and (remaining := until - self.clock()) > 0:
+            self._receive(self.clock(), remaining)
 
     # -- one cycle -----------------------------------------------------------------------
 
@@ -387,6 +411,8 @@ class DriveSession:
         sent = self.clock()
         self.client.send(Rates(seq=self.seq, t_ns=int(sent * 1e9), qd=out.rates,
                                flags=FLAG_REDUCED_SPEED if out.intent.reduced else 0))
+        if self.lockstep:
+            self._await_applied(self.seq, sent + self.stale_after_s)
         if self.ending and not self._ending_first_seq:
             self._ending_first_seq = self.seq
         self.stats.read_to_send.add(sent - now)
@@ -395,7 +421,6 @@ class DriveSession:
         age = None if self.state_stamp_s is None else max(now - self.state_stamp_s, 0.0)
         if age is not None:
             self.stats.state_age.add(age)
-        self.last_output = out
         if self.recorder is not None and self.q is not None:
             period = tick.period_s if self._prev_start is None else now - self._prev_start
             end = self.clock()
@@ -484,13 +509,29 @@ class DriveSession:
             rtt_s=self.rtt_s, elapsed_s=now - self.t0, note=self._note(now))
 
     def _note(self, now: float) -> str:
+        notes = []
         if self.ending:
-            return "ending"
+            notes.append("ending")
+        if self.arm_status == "stale":     # the arm side's watchdog is ramping it to zero
+            notes.append("arm side: no fresh rates")
         script = getattr(self.source, "script", None)
         if script is not None:
-            return f"script {script.name} {self.source.elapsed_s(now):.1f} / " \
-                   f"{script.duration_s:.1f} s"
-        return ""
+            notes.append(f"script {script.name} {self.source.elapsed_s(now):.1f} / "
+                         f"{script.duration_s:.1f} s")
+        return " · ".join(notes)
+
+
+def enter_realtime(priority: int) -> str:
+    """Put the calling thread under SCHED_FIFO at `priority` (Linux; needs CAP_SYS_NICE or
+    an rtprio limit, `ulimit -r`); threads it starts later inherit it. Returns what it got,
+    in words."""
+    try:
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(priority))  # 0: this thread
+    except (AttributeError, OSError) as exc:
+        why = "not available on this system" if isinstance(exc, AttributeError) else \
+            f"{exc.strerror or exc}; needs CAP_SYS_NICE or an rtprio limit (ulimit -r)"
+        return f"normal (real-time refused: {why})"
+    return f"real-time SCHED_FIFO {priority}"
 
 
 def warm_up(arm: Arm, pad: Any, q: np.ndarray, rate_hz: float) -> None:
@@ -538,7 +579,7 @@ def status_line(snap: Any, timing: TimingStats | None) -> str:
     return " | ".join(parts)
 
 
-def build_summary(drive: DriveSession, timing: TimingStats, *, input_name: str,
+def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, input_name: str,
                   target: str, recorder_stats: Any, session_path: Path | None,
                   arm_side_log: str, started_s: float, ended_s: float) -> dict[str, Any]:
     arm, s = drive.arm, drive.stats
@@ -552,6 +593,7 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, input_name: str,
         "arm": arm.name, "input": input_name, "target": target,
         "duration_s": ended_s - started_s, "cycles": drive.cycles, "rate_hz": timing.rate_hz,
         "end_reason": drive.end_reason, "stop": drive.stop_outcome,
+        "thread_priority": priority,
         "gate_time_s": {k: v * period_s for k, v in sorted(drive.stats.gate_cycles.items())},
         "loop": {"window_cycles": timing.window,
                  "period_p50_s": timing.period_p50_s, "period_p99_s": timing.period_p99_s,
@@ -593,7 +635,8 @@ def format_summary(m: dict[str, Any]) -> str:
     out = [f"jogwire drive: {m['end_reason'] or 'ended'} after {m['duration_s']:.1f} s",
            f"  input     {m['input']}",
            f"  target    {m['target']}",
-           f"  cycles    {m['cycles']} at {m['rate_hz']:g} Hz; gate: {gate}",
+           f"  cycles    {m['cycles']} at {m['rate_hz']:g} Hz ({m['thread_priority']} "
+           f"priority); gate: {gate}",
            f"  loop      period p50 {_ms(loop['period_p50_s'], 3)} / p99 "
            f"{_ms(loop['period_p99_s'], 3)} / max {_ms(loop['period_max_s'], 3)} ms, compute "
            f"p50 {_ms(loop['compute_p50_s'], 3)} / p99 {_ms(loop['compute_p99_s'], 3)} ms; "
@@ -666,6 +709,7 @@ class _MainThread:
         self.screenshot = screenshot
         self.thread: threading.Thread | None = None
         self.window = None
+        self.frame_hz = WINDOW_MAX_HZ
         self.child_exit: int | None = None
         self._shot: Any = None            # a pygame Surface or a StatusSnapshot
         self._timing: TimingStats | None = None
@@ -720,14 +764,24 @@ class _MainThread:
         except pygame.error as exc:
             raise TransportError(f"the status window could not open ({exc}); "
                                  "use --headless") from None
-        window.draw(StatusSnapshot(arm=self.drive.arm, q=q0, gate_state="blocked",
-                                   gate_reason="starting", target=self.drive.target))
+        first = StatusSnapshot(arm=self.drive.arm, q=q0, gate_state="blocked",
+                               gate_reason="starting", target=self.drive.target)
+        window.draw(first)                       # fonts, background
+        t0 = time.perf_counter()
+        for _ in range(3):
+            window.draw(first)
+        frame_s = (time.perf_counter() - t0) / 3
+        self.frame_hz = min(WINDOW_MAX_HZ, max(WINDOW_MIN_HZ, WINDOW_CPU_SHARE / frame_s))
         self.window = window
+        if self.frame_hz < WINDOW_MAX_HZ:
+            print(f"jogwire drive: this display takes {frame_s * 1e3:.0f} ms per frame: the "
+                  f"status window redraws at {self.frame_hz:.0f} Hz to leave the CPU to the "
+                  "control loop", flush=True)
 
     def run_window(self, source: Any) -> None:
         handle = getattr(source, "handle_event", None)
         try:
-            result = self.window.run(self.snapshot, on_event=handle,
+            result = self.window.run(self.snapshot, on_event=handle, frame_hz=self.frame_hz,
                                      should_stop=lambda: not self.watch())
             if result == "closed":
                 self.drive.request_end("the window was closed")
@@ -770,16 +824,29 @@ def _terminal_width() -> int:
         return 120
 
 
-@contextlib.contextmanager
-def _stop_signals(drive: DriveSession):
-    """SIGINT and SIGTERM ask the loop to end (twice: at once); previous handlers restored."""
-    def handler(signum: int, _frame: Any) -> None:
-        drive.request_end("stopped by " + signal.Signals(signum).name)
-    previous = {s: signal.signal(s, handler) for s in (signal.SIGINT, signal.SIGTERM)}
-    try:
-        yield
-    finally:
-        for s, h in previous.items():
+class _StopSignals:
+    """SIGINT and SIGTERM: while the loop runs they ask it to end (twice: at once); before,
+    they unwind the start-up like Ctrl-C does, so the simulated arm is stopped either way
+    (it runs in its own session and would not see a terminal's Ctrl-C)."""
+
+    SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+    def __init__(self) -> None:
+        self.drive: DriveSession | None = None
+        self._previous: dict = {}
+
+    def _handle(self, signum: int, _frame: Any) -> None:
+        why = "stopped by " + signal.Signals(signum).name
+        if self.drive is None:
+            raise KeyboardInterrupt(why)
+        self.drive.request_end(why)
+
+    def __enter__(self) -> "_StopSignals":
+        self._previous = {s: signal.signal(s, self._handle) for s in self.SIGNALS}
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        for s, h in self._previous.items():
             signal.signal(s, h)
 
 
@@ -819,6 +886,7 @@ def run(args: argparse.Namespace) -> int:
 
     clock = time.perf_counter
     with contextlib.ExitStack() as stack:
+        stops = stack.enter_context(_StopSignals())
         source = open_source(plan.spec, arm=arm, stale_after_s=args.stale_after)
         stack.callback(source.close)
         child = None
@@ -831,15 +899,19 @@ def run(args: argparse.Namespace) -> int:
             options = ["--endpoint", "tcp://127.0.0.1:*", "--stale-after", f"{args.stale_after:g}"]
             if args.gui:
                 options.append("--gui")
+            if args.lockstep:
+                options += ["--lockstep", "--step-hz", f"{args.rate:g}"]
             if args.duration is not None:  # a bound even if we are killed
                 options += ["--duration", f"{args.duration + 60:g}"]
             child = ArmProcess("sim", args.arm, options, stderr=sim_log, new_session=True)
             stack.callback(child.stop)
             endpoint = child.endpoint
             target = f"simulated {arm.name} (child pid {child.pid}) on {endpoint}"
+            link_label = f"sim {endpoint.removeprefix('tcp://')} (pid {child.pid})"
         else:
             endpoint = args.target
             target = f"arm side at {endpoint}" + (" (CURVE)" if keys else "")
+            link_label = endpoint.removeprefix("tcp://") + (" CURVE" if keys else "")
         client = ArmClient(endpoint, hello=hello_for(arm, "runtime",
                                                       stale_after_s=args.stale_after),
                            keys=keys, clock=clock)
@@ -852,8 +924,18 @@ def run(args: argparse.Namespace) -> int:
                     "pad_source": pad.source, "rate_hz": args.rate,
                     "reduced_locked": args.reduced, "stale_after_s": args.stale_after,
                     "overrun_limit": SafetySettings().overrun_limit, "target": endpoint,
-                    "target_kind": "sim child" if child is not None else theirs.role,
+                    "target_kind": theirs.role if child is None else
+                    "sim child, lockstep" if args.lockstep else "sim child, paced",
                     "target_arm": theirs.arm, "duration_s": args.duration}
+        # Real-time priority from here on: the recorder's writer, the control loop and the
+        # window are created after this and inherit it; the simulated arm, started before,
+        # does not. All of our threads have it, so none can be preempted by other programs
+        # while it holds the GIL the control loop is waiting for.
+        priority = "normal"
+        if args.realtime:
+            priority = enter_realtime(REALTIME_PRIORITY)
+            if priority.startswith("normal"):
+                print(f"jogwire drive: priority {priority}", file=out, flush=True)
         recorder = session_path = None
         started = clock()
         if not args.no_record:
@@ -866,8 +948,8 @@ def run(args: argparse.Namespace) -> int:
                              safety=SafetySettings(stale_after_s=args.stale_after))
         drive = DriveSession(arm=arm, cycle=cycle, source=source, client=client,
                              recorder=recorder, clock=clock, stale_after_s=args.stale_after,
-                             duration_s=args.duration, same_clock=same_clock, target=target,
-                             rate_hz=args.rate)
+                             duration_s=args.duration, same_clock=same_clock,
+                             target=link_label, rate_hz=args.rate, lockstep=args.lockstep)
         warm_up(arm, pad, np.asarray(first_state.q), args.rate)
         drive.offer_state(first_state, clock())
         window_s = min(max(args.duration or 10.0, 10.0) + 1.0, 60.0)
@@ -877,7 +959,7 @@ def run(args: argparse.Namespace) -> int:
               + (f"; recording to {session_path}" if session_path else "")
               + ("; Ctrl-C stops" if not plan.window else ""), file=out, flush=True)
 
-        stack.enter_context(_stop_signals(drive))
+        stops.drive = drive
         previous_switch = sys.getswitchinterval()
         sys.setswitchinterval(2e-4)    # the loop thread gets the GIL back within ~0.2 ms
         stack.callback(sys.setswitchinterval, previous_switch)
@@ -905,7 +987,8 @@ def run(args: argparse.Namespace) -> int:
         shot = main.save_screenshot()
     # Unwound in order: recorder closed, socket closed, simulated arm stopped, input closed.
 
-    summary = build_summary(drive, timing, input_name=source.name, target=target,
+    summary = build_summary(drive, timing, priority=priority, input_name=source.name,
+                            target=target,
                             recorder_stats=None if recorder is None else recorder.stats(),
                             session_path=session_path, arm_side_log="".join(arm_log),
                             started_s=started, ended_s=ended)

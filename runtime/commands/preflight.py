@@ -18,9 +18,8 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import sys
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable
@@ -29,7 +28,8 @@ import numpy as np
 
 from ..errors import ConfigError, LogError
 from ..inputs.script import ScriptSource, load_script
-from ..lockstep import LockstepSim, run_closed_loop
+from ..limits import REDUCED_SPEED_M_S
+from ..lockstep import LockstepSim, run_closed_loop, substeps_for
 from ..mapping import InputFrame, load_pad
 from ..model import Arm, load_arm
 from ..pipeline import ControlCycle
@@ -114,6 +114,7 @@ def _session_profile(path: Path, arm: Arm, rate_hz: float) -> Profile:
 
 
 def run(args: argparse.Namespace) -> int:
+    substeps_for(args.rate, args.step_hz)        # a bad rate is an error before anything starts
     arm = load_arm(args.arm)
     profile = load_profile(args.profile, arm, args.rate)
     out_dir = Path(args.out)
@@ -135,8 +136,12 @@ def run(args: argparse.Namespace) -> int:
             step_hz=args.step_hz, started_at=run_info.started_at, wall_s=run_info.wall_s,
             session_log=str(run_info.log_path))))
     summary = _summary(result, arm, profile, args, run_info, paths)
-    Path(paths["summary"]).write_text(json.dumps(_json_safe(summary), indent=2) + "\n",
-                                      encoding="utf-8")
+    try:
+        Path(paths["summary"]).write_text(json.dumps(_json_safe(summary), indent=2) + "\n",
+                                          encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(f"cannot write {paths['summary']}: {exc.strerror or exc}",
+                          field="--out") from None
     if args.json:
         print(json.dumps(_json_safe(summary), indent=2))
     else:
@@ -180,21 +185,29 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
             SessionRecorder.start(log_path, arm, cycle_settings_, started_at=started_at,
                                   queue_size=RECORDER_QUEUE) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)
-        for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles):
-            rec = cycle_record(c.k, c.t_s, c.frame, c.out, c.q_used, state_age_s=0.0,
-                               overrun_streak=0, period_s=dt, compute_s=c.compute_s,
-                               overrun=False)
+
+        def prepare(k: int, t: float, frame: InputFrame, out: Any, q: np.ndarray,
+                    compute_s: float) -> None:
+            """Record the cycle while the simulated arm steps."""
+            rec = cycle_record(k, t, frame, out, q, state_age_s=0.0, overrun_streak=0,
+                               period_s=dt, compute_s=compute_s, overrun=False)
             recorder.record(rec)
-            sol = c.out.solution
-            joint_mode = c.out.intent.mode == "joint"
-            trace.add(rec, c.after.q, c.after.qd, c.after.limited,
-                      commanded_twist=np.zeros(6) if sol is None else sol.commanded_twist,
-                      joint_mode=joint_mode)
-            computes[c.k] = c.compute_s
+            sol = out.solution
+            trace.add_cycle(rec, joint_mode=out.intent.mode == "joint",
+                            commanded_twist=np.zeros(6) if sol is None else sol.commanded_twist)
+            computes[k] = compute_s
+
+        for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles, prepare=prepare):
+            trace.add_state(c.after.q, c.after.qd, c.after.limited)
             bar.update((c.k + 1) * dt)
         bar.close()
     wall = time.perf_counter() - wall0
     result = evaluate(arm, trace.build(), rate_hz=rate_hz, reduced=reduced)
+    logged = recorder.stats()
+    if logged.failed or logged.dropped or logged.lost:
+        result = replace(result, notes=result.notes + (
+            f"the session log is incomplete: {logged.written} of {n_cycles} cycles written"
+            + (f" ({logged.failed})" if logged.failed else ""),))
     if profile.damage is not None:
         result = _add_finding(result, Finding(
             "damaged_profile", None, None, None, None, "",
@@ -204,7 +217,6 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
 
 
 def _add_finding(result: PreflightResult, finding: Finding) -> PreflightResult:
-    from dataclasses import replace
     return replace(result, verdict="fail", findings=result.findings + (finding,))
 
 
@@ -269,6 +281,9 @@ def format_text(r: PreflightResult, arm: Arm, profile: str, run_info: PreflightR
     lines += ["", f"TCP       peak {r.tcp_peak_speed:.3f} m/s commanded, "
                   f"{r.tcp_peak_speed_measured:.3f} m/s measured; cap {r.tcp_cap:.3f} m/s"
                   f"{cap_kind}"]
+    if r.tcp_peak_speed_reduced is not None and not r.reduced:
+        lines.append(f"          in reduced-speed segments peak {r.tcp_peak_speed_reduced:.3f} "
+                     f"m/s commanded (cap {min(REDUCED_SPEED_M_S, r.tcp_cap_normal):.3f} m/s)")
     if r.findings:
         lines += ["", "reasons"] + [f"  - {f.message}" for f in r.findings]
     if r.notes:

@@ -8,7 +8,8 @@
 Every fault option takes a value for both directions or, prefixed, for one: `rates=` is the
 runtime → arm side direction (hello, rates), `state=` the arm side → runtime direction
 (hello, state, refuse); e.g. `--loss rates=20% --delay state=100ms`. What each fault does is
-in `runtime/relay.py`; stalls without a time start on SIGUSR1. Counters are printed at exit
+in `runtime/relay.py`; stalls without a time start on SIGUSR1, `--faults-from signal` waits
+for SIGUSR2 (e.g. `kill -USR2 PID` mid-motion). Counters are printed at exit
 (Ctrl-C, SIGTERM or --duration) and, with --report, written as JSON.
 
 The relay binds a ROUTER like an arm side and, for each peer that talks to it, connects one
@@ -34,7 +35,8 @@ from typing import Callable, TextIO
 import zmq
 
 from ..errors import ConfigError
-from ..relay import DIRECTIONS, Delivery, Link, LinkFaults, faults_from_options, message_kind
+from ..relay import (DIRECTIONS, GARBAGE_KINDS, Delivery, Link, LinkFaults, faults_from_options,
+                     message_kind)
 from ..transport import (DEFAULT_ARM_ENDPOINT, DRAIN_LIMIT, ArmServer, ClientKeys, ServerKeys,
                          _Socket, check_endpoint, load_client_keys,
                          load_server_keys)
@@ -56,8 +58,13 @@ FAULT_OPTIONS = (  # (option, Link field, metavar, help)
     ("--garbage", "garbage", "[DIR=]P", "before a message, with probability P, a burst of "
                                         "malformed frames derived from it"),
     ("--garbage-burst", "garbage_burst", "[DIR=]N", "malformed frames per burst (default 3)"),
+    ("--garbage-kinds", "garbage_kinds", "[DIR=]K,K…", "which malformations (default all): "
+                                                     + ", ".join(GARBAGE_KINDS)),
     ("--stall", "stall", "[DIR=]LEN[@AT[/EVERY]]",
      "nothing goes out for LEN: at AT s after start (every EVERY s), or on SIGUSR1 without @AT"),
+    ("--faults-from", "from_s", "[DIR=]TIME|signal",
+     "a clean link until TIME after start (or until SIGUSR2), then the faults above; "
+     "stalls keep their own times"),
 )
 
 
@@ -100,7 +107,6 @@ class _Upstream(_Socket):
     def __init__(self, endpoint: str, identity: bytes, keys: ClientKeys | None) -> None:
         self.identity = identity
         self.answered = False       # the target has sent this peer something
-        self.opened_s = 0.0
         super().__init__(zmq.DEALER, endpoint, bind=False, keys=keys)
 
     def _configure(self, s: zmq.Socket) -> None:
@@ -131,6 +137,8 @@ class Relay:
         self.peers_gone = 0
         self._retry: list[tuple[float, Delivery]] = []
         self._stall_requests = 0
+        self._start_requests = 0
+        self._active = {name: link.is_active(0.0) for name, link in links.items()}
         # The listening side acts as an arm side: ROUTER with ROUTER_MANDATORY (a send to a
         # vanished peer fails, which is how the relay notices it) and ROUTER_HANDOVER.
         # Its frames are forwarded as bytes, never decoded here.
@@ -145,6 +153,10 @@ class Relay:
     def request_stall(self) -> None:
         """Start the on-demand stalls (safe from a signal handler: applied in the loop)."""
         self._stall_requests += 1
+
+    def request_start(self) -> None:
+        """Start the faults that wait for a signal (signal-safe, applied in the loop)."""
+        self._start_requests += 1
 
     # -- the loop ------------------------------------------------------------------------
 
@@ -165,8 +177,7 @@ class Relay:
         # zmq counts whole ms: round up (a delivery is at most 1 ms late) rather than spin.
         ready = dict(self.poller.poll(math.ceil(wait * 1e3)))
         now = self.now_s()
-        if self._stall_requests:
-            self._start_stalls(now)
+        self._apply_requests(now)
         if self.front.socket in ready:
             self._take_front(now)
         for identity, up in list(self.upstreams.items()):
@@ -199,7 +210,6 @@ class Relay:
 
     def _open_upstream(self, identity: bytes, now: float) -> None:
         up = _Upstream(self.target, identity, self.client_keys)
-        up.opened_s = now
         self.upstreams[identity] = up
         self.poller.register(up.socket, zmq.POLLIN)
         self.peers_seen += 1
@@ -262,22 +272,31 @@ class Relay:
 
     # -- stalls and events ---------------------------------------------------------------
 
-    def _start_stalls(self, now: float) -> None:
-        self._stall_requests = 0
-        started = []
-        for name, link in self.links.items():
-            for stall in link.faults.stalls:
-                if stall.at_s is None:
-                    link.stall_now(now, stall.length_s)
-                    started.append(f"{name} {stall.length_s * 1e3:g} ms")
-        if not started:
-            self._event("stall requested, but no on-demand stall is set (--stall LEN)")
+    def _apply_requests(self, now: float) -> None:
+        """Start what the signals asked for since the last cycle."""
+        if self._stall_requests:
+            self._stall_requests = 0
+            on_demand = [(link, stall) for link in self.links.values()
+                         for stall in link.faults.stalls if stall.at_s is None]
+            for link, stall in on_demand:
+                link.stall_now(now, stall.length_s)
+            if not on_demand:
+                self._event("stall requested, but no on-demand stall is set (--stall LEN)")
+        if self._start_requests:
+            self._start_requests = 0
+            if not any([link.start(now) for link in self.links.values()]):
+                self._event("faults requested, but none waits for a signal "
+                            "(--faults-from signal)")
 
     def _note_stalls(self, now: float) -> None:
         for name, link in self.links.items():
             change = link.stall_changed(now)
             if change is not None:
                 self._event(f"{name} direction {'stalled' if change else 'flowing again'}")
+            active = link.is_active(now)
+            if active != self._active.get(name, True):
+                self._event(f"{name} direction faults on")
+            self._active[name] = active
 
     def _event(self, text: str) -> None:
         self.emit(f"jogwire relay: {text} t_ns={self.clock_ns()}")
@@ -301,7 +320,8 @@ class Relay:
 # ----------------------------------------------------------------------------------------
 
 class _Signals:
-    """SIGINT/SIGTERM stop the relay; SIGUSR1 starts the on-demand stalls."""
+    """SIGINT/SIGTERM stop the relay; SIGUSR1 starts the on-demand stalls, SIGUSR2 the faults
+    that wait for a signal."""
 
     def __init__(self, relay: Relay, duration_s: float | None) -> None:
         self.stopped = False
@@ -318,9 +338,13 @@ class _Signals:
 
         def stall(*_: object) -> None:
             self.relay.request_stall()
+
+        def start(*_: object) -> None:
+            self.relay.request_start()
         self._previous = {signal.SIGINT: signal.signal(signal.SIGINT, stop),
                           signal.SIGTERM: signal.signal(signal.SIGTERM, stop),
-                          signal.SIGUSR1: signal.signal(signal.SIGUSR1, stall)}
+                          signal.SIGUSR1: signal.signal(signal.SIGUSR1, stall),
+                          signal.SIGUSR2: signal.signal(signal.SIGUSR2, start)}
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -33,6 +33,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import subprocess
 import sys
 import time
 from pathlib import Path
@@ -42,14 +43,14 @@ import numpy as np
 
 from ..arm_process import ArmProcess
 from ..errors import ConfigError, LogError, TransportError
-from ..lockstep import LockstepSim, arm_file_for, run_closed_loop
+from ..lockstep import LockstepSim, arm_file_for, run_closed_loop, substeps_for
 from ..model import Arm, load_arm
 from ..progress import Progress
 from ..protocol import FLAG_REDUCED_SPEED, Rates, hello_for
 from ..recorder import CycleRecord, Session, read_session
 from ..rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of, \
     rerun_open_loop
-from ..transport import ArmClient, check_endpoint, load_client_keys
+from ..transport import ArmClient, load_client_keys
 
 DEFAULT_TOLERANCE = 1e-12
 START_TOLERANCE = {"revolute": math.radians(1.0), "prismatic": 1e-3}   # rad, m
@@ -110,6 +111,7 @@ def _check_options(args: argparse.Namespace) -> None:
     if not (math.isfinite(args.speed) and 0.01 <= args.speed <= 100.0):
         raise ConfigError(f"--speed must be within 0.01…100, got {args.speed:g}",
                           field="--speed")
+    substeps_for(1.0, args.step_hz)              # a physics step rate within range
     if not (math.isfinite(args.tolerance) and args.tolerance >= 0.0):
         raise ConfigError("--tolerance must be a number ≥ 0", field="--tolerance")
 
@@ -218,39 +220,46 @@ def _format_rerun(r: dict[str, Any], arm: Arm) -> str:
 # Send
 # ----------------------------------------------------------------------------------------
 
+class _Link:
+    """The runtime's end of the arm link while sending: the client and its sequence."""
+
+    def __init__(self, client: ArmClient) -> None:
+        self.client = client
+        self.seq = 0
+
+    def send(self, qd: np.ndarray, reduced: bool = False) -> bool:
+        self.seq += 1
+        return self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=qd,
+                                      flags=FLAG_REDUCED_SPEED if reduced else 0))
+
+
 def _send(args: argparse.Namespace, session: Session, records: Sequence[CycleRecord],
           arm: Arm) -> int:
-    rates = np.array([r.rates for r in records]) * args.speed
-    times = (np.array([r.t_s for r in records]) - records[0].t_s) / args.speed
     _check_speed(arm, records, args.speed)
     start_q = np.array(records[0].q) if records[0].q else None
     child = None
-    keys = None
     if args.target:
-        check_endpoint(args.target, None if args.keys else None, action="connect to") \
-            if args.keys else check_endpoint(args.target, None, action="connect to")
-        keys = load_client_keys(args.keys) if args.keys else None
         endpoint, target = args.target, f"arm side at {args.target}"
     else:
         options = ["--endpoint", "tcp://127.0.0.1:*", "--step-hz", repr(float(args.step_hz))]
         if start_q is not None:
             options.append("--q=" + ",".join(repr(float(v)) for v in start_q))
         child = ArmProcess("sim", args.arm or arm_file_for(arm), options,
-                           stderr=subprocess_pipe(), new_session=True)
+                           stderr=subprocess.PIPE, new_session=True)
         endpoint, target = child.endpoint, "the simulated arm"
-    client = None
+    link = None
     try:
-        client = ArmClient(endpoint, hello=hello_for(arm, "runtime", stale_after_s=0.1),
-                           keys=keys)
-        _, first = client.handshake(timeout_s=5.0)
+        keys = load_client_keys(args.keys) if args.keys else None
+        link = _Link(ArmClient(endpoint, hello=hello_for(arm, "runtime", stale_after_s=0.1),
+                               keys=keys))
+        _, first = link.client.handshake(timeout_s=5.0)
         _check_start(arm, np.array(first.q), start_q, args.from_here)
-        result = _paced_send(client, records, rates, times, args, target)
+        result = _paced_send(link, records, args, target)
     finally:
-        if client is not None:
-            for _ in range(ZERO_REPEATS):
-                client.send(Rates(seq=_next_seq(client), t_ns=time.monotonic_ns(),
-                                  qd=np.zeros(arm.n)))
-            client.close()
+        if link is not None:
+            for _ in range(ZERO_REPEATS):     # stop the arm, whatever ended the replay
+                link.send(np.zeros(arm.n))
+            link.client.close()
         if child is not None:
             child.stop()
     if args.json:
@@ -258,19 +267,6 @@ def _send(args: argparse.Namespace, session: Session, records: Sequence[CycleRec
     else:
         print(_format_send(result, arm))
     return 0
-
-
-def subprocess_pipe() -> int:
-    import subprocess
-    return subprocess.PIPE
-
-
-_seq: dict[int, int] = {}
-
-
-def _next_seq(client: ArmClient) -> int:
-    _seq[id(client)] = _seq.get(id(client), 0) + 1
-    return _seq[id(client)]
 
 
 def _check_speed(arm: Arm, records: Sequence[CycleRecord], speed: float) -> None:
@@ -289,6 +285,7 @@ def _check_speed(arm: Arm, records: Sequence[CycleRecord], speed: float) -> None
     with np.errstate(divide="ignore"):
         fastest = min(float(np.min(arm.max_speed / peak_speed)),
                       float(np.sqrt(np.min(arm.max_accel / peak_accel))))
+    fastest *= 1.0 + 1e-9          # a rate scaled onto a limit lands on it ± rounding
     if speed > fastest:
         raise ConfigError(f"at --speed {speed:g} the replay would command rates or "
                           f"accelerations above {arm.name}'s limits (rates scale with the "
@@ -313,8 +310,12 @@ def _check_start(arm: Arm, q: np.ndarray, start_q: np.ndarray | None, from_here:
             field="--from-here")
 
 
-def _paced_send(client: ArmClient, records: Sequence[CycleRecord], rates: np.ndarray,
-                times: np.ndarray, args: argparse.Namespace, target: str) -> dict[str, Any]:
+def _paced_send(link: _Link, records: Sequence[CycleRecord], args: argparse.Namespace,
+                target: str) -> dict[str, Any]:
+    """Each record's rates (× speed) at its recorded time (÷ speed) after the start."""
+    client = link.client
+    rates = np.array([r.rates for r in records]) * args.speed
+    times = (np.array([r.t_s for r in records]) - records[0].t_s) / args.speed
     n = len(records)
     recorded_q = np.array([r.q for r in records]) if records[0].q else None
     deviation = np.zeros(rates.shape[1])
@@ -325,8 +326,7 @@ def _paced_send(client: ArmClient, records: Sequence[CycleRecord], rates: np.nda
     latest_q = None
     for k in range(n):
         _wait_until(start + times[k], clock)
-        client.send(Rates(seq=_next_seq(client), t_ns=time.monotonic_ns(), qd=rates[k],
-                          flags=FLAG_REDUCED_SPEED if records[k].reduced else 0))
+        link.send(rates[k], records[k].reduced)
         inbox = client.receive()
         now = clock()
         if inbox.state is not None:

@@ -19,9 +19,11 @@ options (passed to the simulated arm; `jogwire sim ARM --help` explains each):
   --gui               open the PyBullet window
   --step-hz HZ        physics steps per second (default 1000)
   --lockstep          one step per received rates message, no pacing
+  --substeps N        with --lockstep: physics steps per rates message (default 1)
+  --q V…              the start pose (rad and m; degrees with --deg)
   --stale-after S     no fresh rates for S seconds → ramp to zero (default 0.1)
   --duration S        stop after S seconds
-  --snapshot FILE.png render the arm to a PNG and exit (with --q V…, --deg, --size WxH)
+  --snapshot FILE.png render the arm (home pose or --q) to a PNG and exit; --size WxH
 """
 
 

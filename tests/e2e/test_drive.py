@@ -61,77 +61,92 @@ def is_running(pid: int) -> bool:
     return subprocess.run(["ps", "-p", str(pid)], capture_output=True).returncode == 0
 
 
-@pytest.fixture(scope="module")
-def scripted_run(tmp_path_factory):
-    """One headless scripted drive against the simulated elbow6, with a screenshot."""
-    tmp = tmp_path_factory.mktemp("drive")
+def run_script(tmp: Path, *extra: str):
+    """A headless scripted drive against the simulated elbow6; (process, summary, session)."""
     (tmp / "line_x.toml").write_text(SCRIPT, encoding="utf-8")
     done = subprocess.run(
         drive_argv("--headless", "--input", f"script:{tmp / 'line_x.toml'}", "--rate",
                    f"{RATE_HZ:g}", "--sessions", str(tmp / "sessions"), "--summary-json",
-                   str(tmp / "summary.json"), "--screenshot", str(tmp / "status.png"),
-                   "--screenshot-after", "1.2"),
+                   str(tmp / "summary.json"), *extra),
         cwd=tmp, env=headless_env(), capture_output=True, text=True, timeout=90)
     assert done.returncode == 0, done.stdout + done.stderr
     summary = json.loads((tmp / "summary.json").read_text(encoding="utf-8"))
-    session = read_session(summary["session"]["path"])
-    return done, summary, session, tmp
+    return done, summary, read_session(summary["session"]["path"])
 
 
-def test_scripted_run_ends_by_itself_and_cleans_up(scripted_run):
-    done, summary, session, _ = scripted_run
+@pytest.fixture(scope="module")
+def paced_run(tmp_path_factory):
+    """The simulated arm in real time (the default), with a screenshot at 1.2 s."""
+    tmp = tmp_path_factory.mktemp("paced")
+    return (*run_script(tmp, "--screenshot", str(tmp / "status.png"),
+                        "--screenshot-after", "1.2"), tmp)
+
+
+@pytest.fixture(scope="module")
+def lockstep_run(tmp_path_factory):
+    """The simulated arm stepped once per cycle: its time is exactly the loop's cycles."""
+    return run_script(tmp_path_factory.mktemp("lockstep"), "--lockstep")
+
+
+@pytest.mark.parametrize("run", ["paced_run", "lockstep_run"])
+def test_scripted_run_ends_by_itself_and_cleans_up(request, run):
+    done, summary, session = request.getfixturevalue(run)[:3]
     assert summary["end_reason"] == "the script finished"
-    assert "at rest" in summary["stop"], summary["stop"]
+    assert "zero rates applied; arm measured at rest" in summary["stop"], summary["stop"]
     assert session.closed_cleanly and not session.problems
     assert len(session.records) == summary["cycles"]
     assert "Traceback" not in done.stdout + done.stderr
     assert not is_running(child_pid(done.stdout))
 
 
-def test_measured_tcp_displacement_matches_twist_times_time(scripted_run):
+def test_measured_tcp_displacement_matches_twist_times_time(lockstep_run):
     """Resolved-motion rate control (Whitney 1969): the TCP moves by ∫ twist dt. The arm is
-    the PyBullet simulation in another process; positions come from the measured q it sent
-    back (as recorded), through forward kinematics."""
-    _, _, session, _ = scripted_run
+    the PyBullet simulation in another process, stepped 1/rate per cycle; positions come
+    from the measured q it sent back (as recorded), through forward kinematics."""
+    _, _, session = lockstep_run
     arm = session.header.arm
     recs = session.records
     t = np.array([r.t_s for r in recs])
     p = np.array([tcp_pose(arm, np.array(r.q))[:3, 3] for r in recs])
-    enabled = np.array([r.enabled for r in recs])[:-1]
-    # Cycle k's rates are followed until cycle k+1's arrive, but never longer than the arm
-    # side's watchdog allows (stale_after): a stalled loop does not move the arm further.
-    held_s = np.minimum(np.diff(t), session.header.settings["stale_after_s"])
-    in_move = (t[:-1] >= LEAD_IN_S - 0.05) & (t[:-1] < LEAD_IN_S + MOVE_S + 0.05)
-    # The gate allows motion only while enable is held and the loop and link are healthy;
-    # on a heavily loaded machine it may stop the motion early (an overrun streak), so the
-    # commanded travel is v × the time motion was allowed.
-    t_enabled = float(held_s[in_move & enabled].sum())
-    assert t_enabled >= 0.5 * MOVE_S, "the gate allowed motion for too little of the segment"
-    assert t_enabled <= MOVE_S + 2 / RATE_HZ                       # never more than scripted
+    moving = np.array([r.enabled for r in recs])
+    # Each cycle's rates move the arm for one step of 1/rate. The gate allows motion only
+    # while enable is held and the loop is healthy: a heavily loaded machine may stop the
+    # motion early (an overrun streak), so the travel is v × the time motion was allowed.
+    t_enabled = moving.sum() / RATE_HZ
+    assert t_enabled >= 0.3 * MOVE_S, "the gate allowed motion for too little of the segment"
+    assert t_enabled <= MOVE_S + 1 / RATE_HZ                       # never more than scripted
     before = p[np.searchsorted(t, LEAD_IN_S - 0.1)]
-    after = p[np.searchsorted(t, LEAD_IN_S + MOVE_S + 0.4)]
-    expected = np.array([V_X_M_S * t_enabled, 0.0, 0.0])
-    # Tolerance 2 mm (2.7 % of 75 mm): the acceleration-limited start costs about 0.5 mm,
-    # the wire delay at start and stop cancels to within a cycle (0.2 mm at 5 cm/s).
-    np.testing.assert_allclose(after - before, expected, atol=2e-3)
+    after = p[-1]
+    # Tolerance 2 mm (2.7 % of 75 mm): the acceleration-limited start costs about 0.5 mm
+    # (our estimate from the limits), and a command the arm side drops because a newer one
+    # came before its step (counted as "superseded") skips one step, 0.2 mm.
+    np.testing.assert_allclose(after - before, [V_X_M_S * t_enabled, 0.0, 0.0], atol=2e-3)
 
 
-def test_arm_stops_when_the_script_releases_enable(scripted_run):
-    _, _, session, _ = scripted_run
+@pytest.mark.parametrize("run", ["paced_run", "lockstep_run"])
+def test_arm_stops_when_the_script_releases_enable(request, run):
+    session = request.getfixturevalue(run)[2]
     recs = [r for r in session.records if r.t_s > LEAD_IN_S + MOVE_S + 0.1]
     assert recs and not any(r.enabled for r in recs)
     assert all(max(map(abs, r.rates)) == 0.0 for r in recs)      # hold-to-move: zero at once
-    t = np.array([r.t_s for r in recs])
-    q = np.array([r.q for r in recs])
-    qd = np.diff(q, axis=0) / np.diff(t)[:, None]                  # measured joint speeds
-    assert np.max(np.abs(qd)) < 1e-3                               # rad/s: at rest
+    # Measured speeds over 50 ms steps (finite differences of the measured q): the joints
+    # hold still to within the velocity motors' creep under gravity (about 1e-3 rad/s), and
+    # the TCP to within 1 mm/s, against 50 mm/s before the release.
+    arm = session.header.arm
+    step = max(1, round(0.05 * RATE_HZ))
+    t = np.array([r.t_s for r in recs])[::step]
+    q = np.array([r.q for r in recs])[::step]
+    p = np.array([tcp_pose(arm, qi)[:3, 3] for qi in q])
+    dt = np.diff(t)[:, None]
+    assert np.max(np.abs(np.diff(q, axis=0)) / dt) < 5e-3          # rad/s
+    assert np.max(np.linalg.norm(np.diff(p, axis=0), axis=1) / dt[:, 0]) < 1e-3   # m/s
 
 
-def test_status_window_renders_a_real_drive_snapshot(scripted_run):
-    """The PNG taken mid-motion is drawn by the status window code from the live snapshot."""
+def test_status_window_renders_a_real_drive_snapshot(paced_run):
+    """The PNG of the status window, drawn from the live snapshot taken at 1.2 s."""
     from runtime.inputs.pygame_init import pygame
     from runtime.status_window import GROUND, SIZE, STATE_COLOURS
-    done, summary, _, tmp = scripted_run
+    _, summary, _, tmp = paced_run
     assert summary["screenshot"] == str(tmp / "status.png")
     img = pygame.surfarray.array3d(pygame.image.load(str(tmp / "status.png")))
     assert img.shape[:2] == SIZE

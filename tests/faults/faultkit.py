@@ -53,13 +53,16 @@ from runtime.inputs.script import load_script  # noqa: E402
 from runtime.model import load_arm  # noqa: E402
 from runtime.protocol import REASONS, State, Twist, decode, hello_for  # noqa: E402
 from runtime.recorder import read_session  # noqa: E402
+from runtime.relay import GARBAGE_KINDS  # noqa: E402
 from runtime.transport import ArmClient, Publisher  # noqa: E402
 
 ARM = "elbow6"
 STALE_AFTER_S = 0.1         # both sides' watchdog (drive --stale-after, sim --stale-after)
-CYCLE_S = 0.002             # the runtime's control cycle (500 Hz)
+RATE_HZ = float(os.environ.get("JOGWIRE_FAULT_RATE_HZ", "250"))  # the runtime's loop rate
+CYCLE_S = 1.0 / RATE_HZ     # one control cycle
 REST = 1e-3                 # |q̇| at or below this (rad/s) counts as standing still
 MOVING = 0.02               # |q̇| above this (rad/s) counts as moving
+STILL_S = 0.05              # a standstill lasts at least this long (s)
 MOTION = Path(__file__).with_name("fault_motion.toml")
 FAULT_AFTER_S = 0.6         # into the motion, when a fault is injected
 STALL_S = 0.5               # length of the link stalls
@@ -70,6 +73,11 @@ FLUSH_S = 0.2               # the recorder's flush interval (SessionRecorder def
 # ----------------------------------------------------------------------------------------
 # Child processes
 # ----------------------------------------------------------------------------------------
+
+class Disturbed(RuntimeError):
+    """The run could not exercise its fault (the arm never moved: e.g. the runtime's overrun
+    guard kept stopping it on a busy machine)."""
+
 
 def free_port() -> int:
     with socket.socket() as s:
@@ -215,7 +223,8 @@ class Rig:
             self.drive = self._start("drive", [
                 py, "-m", "runtime.cli", "drive", "--headless", "--arm", ARM, "--target",
                 self.relay_endpoint, "--input", drive_input or f"script:{MOTION}",
-                "--stale-after", f"{STALE_AFTER_S:g}", "--sessions", str(self.sessions),
+                "--stale-after", f"{STALE_AFTER_S:g}", "--rate", f"{RATE_HZ:g}",
+                "--sessions", str(self.sessions),
                 "--summary-json", str(self.summary_path), *drive_options],
                 preexec_fn=drive_preexec)
             self.sim.wait_for(r"jogwire sim ready")
@@ -235,7 +244,8 @@ class Rig:
         """Monotonic ns of the first state in which the arm moves."""
         s = self.observer.wait_until(lambda s: max(map(abs, s.qd)) > MOVING, timeout_s)
         if s is None:
-            raise RuntimeError("the arm never started moving:\n" + self.drive.text()[-2000:])
+            raise Disturbed("the arm never started moving: " + " | ".join(
+                ln.strip() for ln in self.drive.text().splitlines()[-3:]))
         return s.t_ns
 
     def wait_drive(self, timeout_s: float = 30.0) -> int | None:
@@ -325,7 +335,19 @@ class FaultResult:
 
 
 def standstill_after(states: list[State], t_ns: int) -> State | None:
-    return next((s for s in states if s.t_ns >= t_ns and max(map(abs, s.qd)) <= REST), None)
+    """The first state from t_ns on that starts a standstill of at least STILL_S (a reversal
+    of direction passes through zero speed for a step or two; that is not a stop)."""
+    start = None
+    for s in states:
+        if s.t_ns < t_ns:
+            continue
+        if max(map(abs, s.qd)) > REST:
+            start = None
+        elif start is None:
+            start = s
+        elif s.t_ns - start.t_ns >= STILL_S * 1e9:
+            return start
+    return start            # still at rest when the record ends
 
 
 def braking_time_s(states: list[State], t_ns: int, arm) -> float:
@@ -377,8 +399,19 @@ def malformed(counts: dict[str, int]) -> int:
     return sum(v for k, v in counts.items() if k in MALFORMED)
 
 
+def overran_between(c: Collected, t_from_ns: int, t_to_ns: int) -> bool:
+    """The runtime's gate stopped motion for loop overruns in this window: the machine was
+    too busy, and the run says nothing about the fault under test."""
+    zero = runtime_clock_zero_ns(c.session, c.states)
+    if zero is None:
+        return False
+    return any("overran" in rec.enable_reason and not rec.enabled
+               for rec in c.session.records if t_from_ns <= zero + rec.t_s * 1e9 <= t_to_ns)
+
+
 def result_for(name: str, c: Collected, t_event_ns: int | None, measured_from: str,
-               *, restart_until_ns: int | None = None) -> FaultResult:
+               *, restart_until_ns: int | None = None,
+               busy_window: tuple[int, int] | None = None) -> FaultResult:
     arm = load_arm(ARM)
     states = c.states
     stop = standstill_after(states, t_event_ns) if t_event_ns is not None else None
@@ -397,8 +430,12 @@ def result_for(name: str, c: Collected, t_event_ns: int | None, measured_from: s
         runtime_dropped = dict(c.summary["link"]["states_dropped"])
         runtime_dropped["refused (old or late)"] = c.summary["link"]["states_refused"]
     exercised = t_event_ns is not None and speed_before(states, t_event_ns) > MOVING
+    notes = []
+    if busy_window is not None and overran_between(c, *busy_window):
+        exercised = False
+        notes.append("disturbed: the runtime's loop overran (machine busy)")
     return FaultResult(
-        fault=name, measured_from=measured_from, exercised=exercised,
+        fault=name, measured_from=measured_from, exercised=exercised, notes=notes,
         stop_s=None if stop is None else (stop.t_ns - t_event_ns) * 1e-9,
         bound_s=STALE_AFTER_S + braking + CYCLE_S, braking_s=braking, restarted=restarted,
         applied_backwards=applied_backwards(states), garbage_acted_on=acted,
@@ -438,18 +475,48 @@ def _script_run(name: str, folder: Path, *, relay: list[str] = (),
     return c, t_motion, t_release, t_fault
 
 
-def link_fault(name: str, relay: list[str]) -> Callable[[Path, int], FaultResult]:
-    """A link that misbehaves from the start: the motion must run as scripted, nothing bad
-    may be acted on, and letting go of enable must still stop the arm in bounded time."""
+def link_fault(name: str, relay: list[str], *, from_start: bool = False
+               ) -> Callable[[Path, int], FaultResult]:
+    """A link that starts to misbehave mid-motion (the relay's faults wait for SIGUSR2), or,
+    with from_start, misbehaves from the first message on.
+
+    Either the system rides through it (the motion goes on; the stop time is then measured
+    from the moment the script lets go of enable) or it stops (measured from the onset); in
+    both cases nothing bad may be acted on and the arm must not restart with enable held."""
     def run(folder: Path, seed: int = 1) -> FaultResult:
-        c, t_motion, t_release, _ = _script_run(name, folder, relay=relay, seed=seed)
-        r = result_for(name, c, t_release, "release")
-        moved = moved_between(c.states, t_motion, t_release or t_motion)
-        if not moved:
-            r.notes.append("the arm did not move before the release")
-        r.notes.append(f"motion before release: {'yes' if moved else 'no'}")
+        def start(rig: Rig, _: int) -> int:
+            os.kill(rig.relay.pid, signal.SIGUSR2)
+            return rig.relay_event_ns("direction faults on")
+        options = list(relay) if from_start else [*relay, "--faults-from", "signal"]
+        c, t_motion, t_release, t_onset = _script_run(
+            name, folder, relay=options, seed=seed, inject=None if from_start else start)
+        stop = None
+        if t_onset is not None and t_release is not None:
+            stop = standstill_after(c.states, t_onset)
+            if stop is not None and stop.t_ns >= t_release:
+                stop = None                   # rode through: still moving at the release
+        if stop is not None:
+            r = result_for(name, c, t_onset, "fault", restart_until_ns=t_release,
+                           busy_window=(t_motion, t_onset + int(0.2e9)))
+        else:
+            r = result_for(name, c, t_release, "release",
+                           busy_window=(t_motion, t_release or t_motion))
+            if t_onset is not None:
+                r.notes.append("rode through: still moving when enable was let go")
+        if t_onset is None:
+            r.exercised = r.exercised and moved_between(c.states, t_motion, t_release)
+        else:
+            r.exercised = speed_before(c.states, t_onset) > MOVING
         if c.session is not None:
             r.records_lost_before_fault = session_gaps(c.session)
+            if r.measured_from == "fault":
+                zero = runtime_clock_zero_ns(c.session, c.states)
+                reasons = []
+                for rec in c.session.records:
+                    if zero is not None and zero + rec.t_s * 1e9 >= t_onset and \
+                            not rec.enabled and rec.enable_reason not in reasons:
+                        reasons.append(rec.enable_reason)
+                r.notes.append("runtime's reasons: " + "; ".join(reasons[:2]))
         return r
     return run
 
@@ -460,9 +527,10 @@ def runtime_killed(folder: Path, seed: int = 1) -> FaultResult:
         os.kill(rig.drive.pid, signal.SIGKILL)
         time.sleep(1.0)                    # watch the arm stop and stay stopped
         return t
-    c, _, _, t_fault = _script_run("runtime killed (-9)", folder, inject=kill, seed=seed)
+    c, t_motion, _, t_fault = _script_run("runtime killed (-9)", folder, inject=kill,
+                                          seed=seed)
     r = result_for("runtime killed (-9)", c, t_fault, "fault",
-                   restart_until_ns=t_fault + int(1e9))
+                   restart_until_ns=t_fault + int(1e9), busy_window=(t_motion, t_fault))
     if c.session is not None and c.session.records:
         zero = runtime_clock_zero_ns(c.session, c.states)
         last = c.session.records[-1]
@@ -481,9 +549,10 @@ def sim_killed(folder: Path, seed: int = 1) -> FaultResult:
         t = time.monotonic_ns()
         os.kill(rig.sim.pid, signal.SIGKILL)
         return t
-    c, _, _, t_fault = _script_run("sim killed", folder, inject=kill, seed=seed)
+    c, t_motion, _, t_fault = _script_run("sim killed", folder, inject=kill, seed=seed)
     r = result_for("sim killed (-9)", c, None, "fault")
-    r.exercised = speed_before(c.states, t_fault) > MOVING
+    r.exercised = speed_before(c.states, t_fault) > MOVING and \
+        not overran_between(c, t_motion, t_fault)
     r.braking_s = 0.0
     r.bound_s = STALE_AFTER_S + CYCLE_S
     zero = runtime_clock_zero_ns(c.session, c.states)
@@ -510,10 +579,11 @@ def stalled(direction: str) -> Callable[[Path, int], FaultResult]:
         def stall(rig: Rig, _: int) -> int:
             os.kill(rig.relay.pid, signal.SIGUSR1)
             return rig.relay_event_ns(f"{direction} direction stalled")
-        c, _, t_release, t_fault = _script_run(
+        c, t_motion, t_release, t_fault = _script_run(
             name, folder, seed=seed, inject=stall,
             relay=["--stall", f"{direction}={STALL_S * 1e3:g}ms", "--stall-hold"])
-        r = result_for(name, c, t_fault, "fault", restart_until_ns=t_release)
+        r = result_for(name, c, t_fault, "fault", restart_until_ns=t_release,
+                       busy_window=(t_motion, t_fault + int(0.2e9)))
         if c.session is not None:
             r.records_lost_before_fault = session_gaps(c.session)
         return r
@@ -535,8 +605,9 @@ def loop_starved(folder: Path, seed: int = 1) -> FaultResult:
             time.sleep(run_ms * 1e-3)
         return t0
     name = "loop starved of CPU"
-    c, _, t_release, t_fault = _script_run(name, folder, inject=starve, seed=seed)
-    r = result_for(name, c, t_fault, "fault", restart_until_ns=t_release)
+    c, t_motion, t_release, t_fault = _script_run(name, folder, inject=starve, seed=seed)
+    r = result_for(name, c, t_fault, "fault", restart_until_ns=t_release,
+                   busy_window=(t_motion, t_fault))
     zero = runtime_clock_zero_ns(c.session, c.states)
     if c.session is not None and zero is not None:
         after = [rec for rec in c.session.records if zero + rec.t_s * 1e9 >= t_fault]
@@ -557,7 +628,7 @@ def disk_full(folder: Path, seed: int = 1) -> FaultResult:
     name = "disk full while recording"
     c, t_motion, t_release, _ = _script_run(name, folder, seed=seed,
                                             drive_preexec=limit_file_size(limit))
-    r = result_for(name, c, t_release, "release")
+    r = result_for(name, c, t_release, "release", busy_window=(t_motion, t_release))
     zero = runtime_clock_zero_ns(c.session, c.states)
     if c.session is None or zero is None or not c.session.records:
         r.notes.append("no session log")
@@ -568,6 +639,11 @@ def disk_full(folder: Path, seed: int = 1) -> FaultResult:
     r.notes.append(f"log full after {len(c.session.records)} records "
                    f"({(t_full - t_motion) * 1e-9:.2f} s into the motion); "
                    f"readable {len(c.session.records)}, writer says written {written}")
+    lines = c.drive_output.splitlines()
+    ends = [i for i, ln in enumerate(lines) if ln.startswith("jogwire drive: ")]
+    live = "\n".join(lines[ends[0] + 1:ends[-1]]) if len(ends) > 1 else ""  # status lines
+    r.notes.append("said while driving: " + ("yes" if re.search(r"record", live, re.I)
+                                             else "no (only in the end summary)"))
     if c.summary is not None:
         failed = c.summary["session"]["failed"]
         r.notes.append(f"summary: recording stopped: {failed}")
@@ -615,7 +691,8 @@ def pad_unplugged(folder: Path, seed: int = 1) -> FaultResult:
         c = collect(rig)
     name = "pad unplugged while moving"
     t_fault = marks["last_before_silence"]
-    r = result_for(name, c, t_fault, "fault", restart_until_ns=marks["2.3"])
+    r = result_for(name, c, t_fault, "fault", restart_until_ns=marks["2.3"],
+                   busy_window=(marks["0.4"], t_fault + int(0.2e9)))
     fresh = marks["2.5"]
     r.notes.append("moves again after a fresh enable: "
                    + ("yes" if moved_between(c.states, fresh, fresh + int(0.6e9)) else "no"))
@@ -630,11 +707,18 @@ FAULTS: dict[str, Callable[[Path, int], FaultResult]] = {
     "state_stalled": stalled("state"),
     "rates_stalled": stalled("rates"),
     "loss_20": link_fault("20 % loss, both directions", ["--loss", "20%"]),
-    "latency_200ms": link_fault("200 ms latency, both directions", ["--delay", "200ms"]),
-    "dup_reorder": link_fault("duplicated and reordered messages, both directions",
+    "latency_200ms": link_fault("latency jumps by 200 ms, both directions",
+                                ["--delay", "200ms"]),
+    "latency_200ms_steady": link_fault("200 ms latency from the start, both directions",
+                                       ["--delay", "200ms"], from_start=True),
+    "dup_reorder": link_fault("20 % duplicated and 20 % reordered, both directions",
                               ["--duplicate", "20%", "--reorder", "20%"]),
-    "garbage": link_fault("garbage frames among good ones, both directions",
-                          ["--garbage", "20%", "--garbage-burst", "3"]),
+    "garbage": link_fault("garbage among good messages, both directions (no foreign "
+                          "version toward the arm)",
+                          ["--garbage", "20%", "--garbage-kinds",
+                           "rates=" + ",".join(k for k in GARBAGE_KINDS if k != "version")]),
+    "garbage_version": link_fault("garbage of every kind, incl. a foreign protocol version",
+                                  ["--garbage", "20%"]),
     "pad_unplugged": pad_unplugged,
     "disk_full": disk_full,
     "loop_starved": loop_starved,

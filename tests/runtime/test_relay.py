@@ -175,6 +175,20 @@ def test_periodic_and_on_demand_stalls() -> None:
     assert link.stall_changed(5.3) is None
 
 
+def test_faults_can_wait_for_a_time_or_a_request() -> None:
+    link = Link(LinkFaults(loss=1.0, from_s=1.0), random.Random(13))
+    out = play(link, 1000, step_s=PERIOD_S)            # 2 s of messages
+    assert [seq_of(d.frames) for d in out] == list(range(1, 501))  # before 1 s, untouched
+    assert link.counters.lost == 500
+    waiting = Link(LinkFaults(delay_s=0.2, from_s=math.inf), random.Random(14))
+    waiting.offer(rates(1), "peer", 0.0)
+    assert not waiting.is_active(5.0) and waiting.start(5.0) and not waiting.start(6.0)
+    waiting.offer(rates(2), "peer", 5.0)
+    assert [d.at_s for d in waiting.release(10.0)] == [0.0, 5.2]
+    faults = faults_from_options({"from_s": ["rates=signal", "state=2s"]})
+    assert math.isinf(faults["rates"].from_s) and faults["state"].from_s == 2.0
+
+
 def test_the_queue_is_bounded() -> None:
     link = Link(LinkFaults(delay_s=10.0), random.Random(10), max_queued=50)
     for k in range(1, 101):
@@ -297,6 +311,17 @@ def test_faults_per_direction() -> None:
     with pytest.raises(ConfigError, match=r"\[stall\]"):
         faults_from_options({"stall": ["2s@0s/1s"]})            # longer than its period
     assert "loss 20 %" in r.describe() and LinkFaults().describe() == "clean"
+    kinds = faults_from_options({"garbage_kinds": ["truncated, nonfinite"]})
+    assert kinds["rates"].garbage_kinds == ("truncated", "nonfinite")
+    with pytest.raises(ConfigError, match="unknown: sideways"):
+        faults_from_options({"garbage_kinds": ["truncated,sideways"]})
+
+
+def test_only_the_chosen_garbage_kinds_are_made() -> None:
+    link = Link(LinkFaults(garbage=1.0, garbage_kinds=("nonfinite", "framing")),
+                random.Random(12))
+    out = play(link, 100, step_s=PERIOD_S)
+    assert {d.what for d in out} == {"message", "garbage:nonfinite", "garbage:framing"}
 
 
 def test_the_schedule_module_is_pure() -> None:

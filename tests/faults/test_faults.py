@@ -1,0 +1,148 @@
+"""The fault suite: each fault once, injected mid-motion into a real session — the simulated arm,
+`jogwire relay` and `jogwire drive` in separate processes on 127.0.0.1 — and what the system
+did, measured at the arm (docs/FAULTS.md; `benchmarks/fault_campaign.py` repeats each 20 times).
+
+Checked for every fault: the arm stops when it must, within stale_after + braking time + one
+cycle (T = max |q̇|/a_rated just before; plus a scheduling allowance); it does not move again
+while enable stays held; no applied sequence number goes backwards at the arm; every garbage
+frame that reached the arm side was counted there as malformed; no record is missing from the
+session log before the fault.
+
+A run in which the runtime's own overrun guard stopped the motion before the fault (the
+machine was too busy) proves nothing about the fault: it is repeated, up to ATTEMPTS times.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from faultkit import FAULTS, FLUSH_S, Disturbed, FaultResult
+
+pytestmark = [pytest.mark.faults, pytest.mark.e2e, pytest.mark.timeout(180)]
+
+ATTEMPTS = 3
+# The arm side's 1 kHz steps and the processes' wake-ups can start late on a busy 2-core
+# machine (common practice: allow a few steps); the campaign reports the raw figures.
+ALLOWANCE_S = 0.010
+
+
+def run(name: str, tmp_path) -> FaultResult:
+    tried = []
+    for attempt in range(1, ATTEMPTS + 1):
+        try:
+            r = FAULTS[name](tmp_path / f"run{attempt}", attempt)
+        except Disturbed as exc:
+            tried.append(str(exc))
+            continue
+        print(f"\n{r.fault}: stop {r.stop_s} s (from the {r.measured_from}), bound "
+              f"{r.bound_s:.4f} s, restarted {r.restarted}, notes {r.notes}\n"
+              f"  arm dropped {r.arm_dropped}\n  runtime dropped {r.runtime_dropped}\n"
+              f"  relay {r.relay}")
+        if r.exercised:
+            return r
+        tried.append("; ".join(r.notes) or "the arm was not moving at the fault")
+    pytest.fail(f"{name}: no run exercised the fault in {ATTEMPTS} attempts: {tried}")
+
+
+def nothing_bad_acted_on(r: FaultResult) -> None:
+    assert r.applied_backwards == 0, "an older rates message was applied after a newer one"
+    assert r.garbage_acted_on == 0, "garbage reached the arm side without being counted"
+    assert r.records_lost_before_fault == 0, "records missing from the log before the fault"
+
+
+def stops_in_bound(r: FaultResult) -> None:
+    assert r.stop_s is not None, "the arm never came to a standstill"
+    assert r.stop_s <= r.bound_s + ALLOWANCE_S, \
+        f"stopped {r.stop_s * 1e3:.1f} ms after the {r.measured_from}, bound " \
+        f"{r.bound_s * 1e3:.1f} ms"
+
+
+def test_runtime_killed(tmp_path) -> None:
+    r = run("runtime_killed", tmp_path)
+    nothing_bad_acted_on(r)
+    stops_in_bound(r)
+    assert not r.restarted
+    # The unflushed tail of the log: at most one flush interval and one write (bounded).
+    assert r.tail_lost_s is not None and r.tail_lost_s <= FLUSH_S + 0.1
+
+
+def test_sim_killed_the_runtime_shows_it_and_commands_zero(tmp_path) -> None:
+    r = run("sim_killed", tmp_path)
+    nothing_bad_acted_on(r)
+    stops_in_bound(r)            # here: fault → the first cycle that sends zero
+    assert not r.restarted       # no non-zero rates after that
+    assert "runtime shows it: yes" in r.notes
+
+
+@pytest.mark.parametrize("direction", ["state", "rates"])
+def test_a_stalled_stream(direction, tmp_path) -> None:
+    r = run(f"{direction}_stalled", tmp_path)
+    nothing_bad_acted_on(r)
+    stops_in_bound(r)
+    assert not r.restarted, "moved again after the stall with enable still held"
+
+
+@pytest.mark.parametrize("name", ["loss_20", "dup_reorder", "garbage"])
+def test_a_bad_link_is_ridden_through_and_nothing_bad_is_acted_on(name, tmp_path) -> None:
+    r = run(name, tmp_path)
+    nothing_bad_acted_on(r)
+    assert r.measured_from == "release", f"the arm stopped at the fault: {r.notes}"
+    stops_in_bound(r)
+    if name == "dup_reorder":
+        assert r.arm_dropped.get("old_seq", 0) >= r.relay["rates"]["duplicated"]
+        assert r.runtime_dropped["refused (old or late)"] > 0
+    if name == "garbage":
+        assert sum(r.runtime_dropped.values()) > 0
+
+
+def test_garbage_in_a_foreign_protocol_version_stops_motion(tmp_path) -> None:
+    r = run("garbage_version", tmp_path)
+    nothing_bad_acted_on(r)
+    assert r.measured_from == "fault"
+    stops_in_bound(r)
+    assert not r.restarted
+
+
+def test_a_latency_jump_stops_the_arm(tmp_path) -> None:
+    r = run("latency_200ms", tmp_path)
+    nothing_bad_acted_on(r)
+    assert r.measured_from == "fault"
+    stops_in_bound(r)
+    assert not r.restarted
+
+
+def test_steady_latency_above_stale_after(tmp_path) -> None:
+    """A constant one-way delay is invisible to both lateness filters (they measure delay
+    against the quickest message seen): the arm follows 200 ms late, so letting go of enable
+    stops it 200 ms later — beyond stale_after + braking. Recorded as a known gap (see
+    docs/FAULTS.md); this test checks the figure stays what the document says."""
+    r = run("latency_200ms_steady", tmp_path)
+    nothing_bad_acted_on(r)
+    assert r.measured_from == "release" and r.stop_s is not None
+    assert 0.2 <= r.stop_s <= 0.2 + r.bound_s + ALLOWANCE_S
+
+
+def test_pad_unplugged_while_moving(tmp_path) -> None:
+    r = run("pad_unplugged", tmp_path)
+    nothing_bad_acted_on(r)
+    stops_in_bound(r)
+    assert not r.restarted, "moved again when the pad came back with enable held"
+    assert "moves again after a fresh enable: yes" in r.notes
+
+
+def test_disk_full_while_recording(tmp_path) -> None:
+    r = run("disk_full", tmp_path)
+    nothing_bad_acted_on(r)
+    stops_in_bound(r)
+    assert any(n.startswith("summary: recording stopped: writing") for n in r.notes), r.notes
+    # The loop kept its pace after the disk filled (as seen at the arm: rates applied / s).
+    before, after = r.relay["applied_per_s_before"], r.relay["applied_per_s_after"]
+    assert after >= 0.8 * before, (before, after)
+
+
+def test_loop_starved_of_cpu(tmp_path) -> None:
+    r = run("loop_starved", tmp_path)
+    nothing_bad_acted_on(r)
+    stops_in_bound(r)
+    assert not r.restarted
+    assert any("overran" in n for n in r.notes), r.notes
