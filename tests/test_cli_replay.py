@@ -77,13 +77,11 @@ def damaged(tmp_path: Path, good: Path, how: str) -> Path:
 @pytest.mark.parametrize("how, says", [("garbage", "not a jogwire session log"),
                                        ("truncated_header", "truncated"),
                                        ("newer_version", "newer than this")])
-@pytest.mark.parametrize("command", [["replay", "--rerun"], ["replay"],
-                                     ["preflight", "elbow6"]])
+@pytest.mark.parametrize("command", ["replay {log} --rerun", "replay {log}",
+                                     "preflight elbow6 {log} --out {out}"])
 def test_an_unusable_log_is_a_clear_error(tmp_path, good_log, capsys, how, says, command):
     bad = damaged(tmp_path, good_log, how)
-    argv = command[:1] + ([command[1], str(bad)] if command[0] == "preflight"
-                          else [str(bad)] + command[1:])
-    assert main(argv + ["--out", str(tmp_path)] if command[0] == "preflight" else argv) == 2
+    assert main(command.format(log=bad, out=tmp_path).split()) == 2
     err = capsys.readouterr().err
     assert says in err and str(bad) in err
     assert "Traceback" not in err
@@ -154,9 +152,11 @@ def test_sending_needs_the_target_at_the_recorded_start():
 @pytest.mark.e2e
 @pytest.mark.sim
 def test_replay_sends_the_recorded_rates_to_the_simulated_arm(good_log, capsys):
-    """The default target: the simulated arm, started at the recorded pose and paced in real
-    time; at half speed the 1.2 s log takes 2.4 s."""
+    """The default target: the simulated arm, started at the recorded pose and paced by the
+    recorded times; at half speed the 1.2 s log takes at least 2.4 s (no upper bound here:
+    a loaded machine may be slower; timing is measured in benchmarks, not tests)."""
     assert main(["replay", str(good_log), "--speed", "0.5", "--json"]) == 0
     result = json.loads(capsys.readouterr().out)
     assert result["cycles"] == N and result["target"] == "the simulated arm"
-    assert result["wall_s"] == pytest.approx(2 * (N - 1) * DT, abs=0.1)
+    assert result["speed"] == 0.5 and result["wall_s"] >= 2 * (N - 1) * DT - 1e-3
+    assert result["sent"] + result["skipped_late"] == N and result["sent"] > 0

@@ -345,6 +345,8 @@ class DriveSession:
         self._ending_since: float | None = None
         self._ending_first_seq = 0
         self._applied_seen = 0
+        self._applied_seen_at_s: float | None = None  # when applied_seq last advanced
+        self._last_sent_s: float | None = None      # when this loop last sent rates
         self._refused: tuple[str, float] | None = None
         self._prev_start: float | None = None
         self._script_done_at: float | None = None
@@ -377,7 +379,7 @@ class DriveSession:
         self.arm_status = state.status
         self.stats.add_state(state, self.qd)
         if state.applied_seq > self._applied_seen:
-            self._applied_seen = state.applied_seq
+            self._applied_seen, self._applied_seen_at_s = state.applied_seq, now
             if state.echo_ns:
                 self.rtt_s = now - state.echo_ns * 1e-9
                 self.stats.round_trip.add(self.rtt_s)
@@ -408,7 +410,7 @@ class DriveSession:
         out = self.cycle.step(frame, now, self.q, self.state_stamp_s,
                               overrun_streak=tick.overrun_streak, hold=hold)
         self.seq += 1
-        sent = self.clock()
+        sent = self._last_sent_s = self.clock()
         self.client.send(Rates(seq=self.seq, t_ns=int(sent * 1e9), qd=out.rates,
                                flags=FLAG_REDUCED_SPEED if out.intent.reduced else 0))
         if self.lockstep:
@@ -444,6 +446,22 @@ class DriveSession:
             return "session ending: holding zero until the arm is at rest"
         if self._refused is not None and now - self._refused[1] < REFUSAL_HOLD_S:
             return self._refused[0]
+        return self._rates_not_followed(now)
+
+    def _rates_not_followed(self, now: float) -> str | None:
+        """A fault of the command path: this loop paused, the arm side says it is not
+        following our rates, or it has applied none of ours for stale_after. Holding makes
+        the gate forget the press, so motion does not resume when the rates get through
+        again. (A steady delay is not caught here: the rates keep being applied, late.)"""
+        if self._last_sent_s is not None and \
+                (paused := now - self._last_sent_s) > self.stale_after_s:
+            return (f"this control loop paused for {paused * 1e3:.0f} ms (the arm side's "
+                    "watchdog stops the arm)")
+        if self.arm_status == "stale":
+            return "the arm side is not getting our rates (its watchdog is stopping it)"
+        if self._applied_seen_at_s is not None and \
+                (quiet := now - self._applied_seen_at_s) > self.stale_after_s:
+            return f"the arm side has applied none of our rates for {quiet * 1e3:.0f} ms"
         return None
 
     def _due_end(self, now: float) -> str | None:
@@ -514,6 +532,8 @@ class DriveSession:
             notes.append("ending")
         if self.arm_status == "stale":     # the arm side's watchdog is ramping it to zero
             notes.append("arm side: no fresh rates")
+        if self.recorder is not None and self.recorder.failed:
+            notes.append("RECORDING STOPPED")
         script = getattr(self.source, "script", None)
         if script is not None:
             notes.append(f"script {script.name} {self.source.elapsed_s(now):.1f} / "
@@ -711,6 +731,7 @@ class _MainThread:
         self.window = None
         self.frame_hz = WINDOW_MAX_HZ
         self.child_exit: int | None = None
+        self._told_recording = False
         self._shot: Any = None            # a pygame Surface or a StatusSnapshot
         self._timing: TimingStats | None = None
         self._timing_at = -math.inf
@@ -727,6 +748,11 @@ class _MainThread:
 
     def watch(self) -> bool:
         """Checks shared by both modes; True while the loop runs."""
+        recorder = self.drive.recorder
+        if recorder is not None and recorder.failed and not self._told_recording:
+            self._told_recording = True
+            print(f"\njogwire drive: RECORDING STOPPED: {recorder.failed}; driving goes on "
+                  "without a log", file=sys.stderr, flush=True)
         if self.child is not None and self.child_exit is None and \
                 (status := self.child.proc.poll()) is not None:
             self.child_exit = status

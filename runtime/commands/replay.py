@@ -312,7 +312,11 @@ def _check_start(arm: Arm, q: np.ndarray, start_q: np.ndarray | None, from_here:
 
 def _paced_send(link: _Link, records: Sequence[CycleRecord], args: argparse.Namespace,
                 target: str) -> dict[str, Any]:
-    """Each record's rates (× speed) at its recorded time (÷ speed) after the start."""
+    """Each record's rates (× speed) at its recorded time (÷ speed) after the start.
+
+    A record whose successor is already due when it comes up is skipped, never sent late
+    (the wire's rule: a late command is dropped, not queued), so the replay keeps the
+    recorded timing on a busy machine and the arm follows the newest rates."""
     client = link.client
     rates = np.array([r.rates for r in records]) * args.speed
     times = (np.array([r.t_s for r in records]) - records[0].t_s) / args.speed
@@ -324,9 +328,14 @@ def _paced_send(link: _Link, records: Sequence[CycleRecord], args: argparse.Name
     start = clock() + 0.02
     last_state = clock()
     latest_q = None
+    sent = skipped = 0
     for k in range(n):
+        if k + 1 < n and clock() >= start + times[k + 1]:
+            skipped += 1
+            continue
         _wait_until(start + times[k], clock)
         link.send(rates[k], records[k].reduced)
+        sent += 1
         inbox = client.receive()
         now = clock()
         if inbox.state is not None:
@@ -342,9 +351,9 @@ def _paced_send(link: _Link, records: Sequence[CycleRecord], args: argparse.Name
         bar.update(float(times[k]))
     bar.close()
     wall = clock() - start
-    return {"log": str(args.log), "target": target, "cycles": n,
-            "recorded_s": float(records[-1].t_s - records[0].t_s), "speed": args.speed,
-            "wall_s": wall, "dropped_sends": client.send_dropped,
+    return {"log": str(args.log), "target": target, "cycles": n, "sent": sent,
+            "skipped_late": skipped, "recorded_s": float(records[-1].t_s - records[0].t_s),
+            "speed": args.speed, "wall_s": wall, "dropped_sends": client.send_dropped,
             "joints": [{"name": name, "max_pose_deviation": float(d)}
                        for name, d in zip(client.hello.joints, deviation)]}
 
@@ -360,6 +369,9 @@ def _wait_until(deadline: float, clock) -> None:
 def _format_send(r: dict[str, Any], arm: Arm) -> str:
     lines = [f"replayed {r['cycles']} cycles ({r['recorded_s']:.2f} s recorded) to "
              f"{r['target']} at speed {r['speed']:g} in {r['wall_s']:.2f} s"]
+    if r["skipped_late"]:
+        lines.append(f"  {r['skipped_late']} records skipped: this machine fell behind the "
+                     f"recorded timing and the next one was already due")
     if r["dropped_sends"]:
         lines.append(f"  {r['dropped_sends']} rates messages could not be sent")
     lines.append("  largest deviation of the target's pose from the recorded pose "
