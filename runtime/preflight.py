@@ -24,11 +24,13 @@ Fails (each gives a reason naming the joint, the value, the limit and the time):
 Reported, not failed: lowest σ_min, time under damping, tracking error, binding-limit
 episodes, stops, steps the arm side had to limit, software limits above ratings.
 
-Commanded values are checked exactly (a relative 1e-9 for rounding); measured values get a
-tolerance (MEASURED_TOLERANCE) for the simulated motors' velocity error: PyBullet's
-velocity motors follow a command to about 0.2 % (measured here), so a measured value
-within 2 % above a limit is counted as at it. Software limits are operational limits,
-not safety functions (docs/SAFETY.md).
+Commanded values are checked exactly (a relative 1e-9 for rounding). Measured values get an
+allowance for the simulated motors' velocity error: PyBullet's velocity motors follow a
+command to within about 6e-4 rad/s, 0.2 % at speed (measured here on the shipped arms),
+so a measured speed counts against a limit beyond 2 % of it plus VELOCITY_ERROR, and a
+measured acceleration, the difference of two measured speeds one cycle apart, beyond 2 %
+plus 2·VELOCITY_ERROR/dt. Software limits are operational limits, not safety functions
+(docs/SAFETY.md).
 """
 
 from __future__ import annotations
@@ -49,6 +51,10 @@ Vector = NDArray[np.float64]
 MEASURED_TOLERANCE = 0.02
 """Relative allowance on measured peaks: the simulated motors' velocity error (≈0.2 %)
 with a margin."""
+
+VELOCITY_ERROR = 1e-3
+"""Absolute allowance on a measured joint speed (rad/s or m/s): the simulated motors'
+velocity error, below 6e-4 measured here, with a margin."""
 
 ROUNDING = 1e-9
 """Relative allowance on commanded values: a rate scaled onto a cap lands on it ± rounding."""
@@ -376,7 +382,7 @@ def evaluate(arm: Arm, trace: Trace, *, rate_hz: float, reduced: bool = False,
 
     joints = tuple(_joint_report(arm, i, t, speed_cmd, speed_meas, accel_cmd, accel_meas,
                                  distance, side) for i in range(arm.n))
-    findings = _joint_findings(arm, joints, speed_meas, accel_meas, t, measured_tolerance)
+    findings = _joint_findings(arm, joints, speed_meas, accel_meas, t, measured_tolerance, dt)
     findings += _tcp_findings(t, tcp_cmd, tcp_meas, cap, reduced_cap, measured_tolerance)
     findings += _motion_findings(trace)
     sigma = np.where(np.isfinite(trace.sigma_min), trace.sigma_min, np.inf)
@@ -490,14 +496,14 @@ def _joint_report(arm: Arm, i: int, t: Vector, speed_cmd, speed_meas, accel_cmd,
 
 
 def _joint_findings(arm: Arm, joints: tuple[JointReport, ...], speed_meas, accel_meas,
-                    t: Vector, tol: float) -> list[Finding]:
+                    t: Vector, tol: float, dt: float) -> list[Finding]:
     out: list[Finding] = []
     for i, (j, rep) in enumerate(zip(arm.joints, joints)):
-        for what, cmd, cmd_t, meas, rated, soft in (
+        for what, cmd, cmd_t, meas, rated, soft, noise in (
                 ("speed", rep.peak_speed, rep.peak_speed_t_s, speed_meas[:, i],
-                 j.rated_speed, j.max_speed),
+                 j.rated_speed, j.max_speed, VELOCITY_ERROR),
                 ("accel", rep.peak_accel, rep.peak_accel_t_s, accel_meas[:, i],
-                 j.rated_accel, j.max_accel)):
+                 j.rated_accel, j.max_accel, 2.0 * VELOCITY_ERROR / dt)):
             code = f"rated_{what}"
             noun = "speed" if what == "speed" else "acceleration"
             per = "/s" if what == "speed" else "/s²"
@@ -510,13 +516,14 @@ def _joint_findings(arm: Arm, joints: tuple[JointReport, ...], speed_meas, accel
                                    f"t = {cmd_t:.2f} s{why}"))
                 continue
             k = _argmax(meas)
-            if k is not None and meas[k] > rated * (1.0 + tol):
+            allowance = rated * tol + noise
+            if k is not None and meas[k] > rated + allowance:
                 out.append(Finding(code, j.name, float(meas[k]), rated, float(t[k]),
                                    "measured",
                                    f"{j.name}: measured {noun} {fmt(meas[k], j.kind, per)} "
-                                   f"exceeds its rated {fmt(rated, j.kind, per)} (by more "
-                                   f"than the {100 * tol:g} % tracking tolerance) at "
-                                   f"t = {t[k]:.2f} s"))
+                                   f"exceeds its rated {fmt(rated, j.kind, per)} by more "
+                                   f"than the simulator's tracking allowance "
+                                   f"({fmt(allowance, j.kind, per)}) at t = {t[k]:.2f} s"))
         reach = rep.limit_margin * (1.0 + LIMIT_CONTACT_FRACTION)
         if rep.min_limit_distance < reach:
             out.append(Finding("position_limit", j.name, rep.min_limit_distance,

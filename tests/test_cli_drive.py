@@ -76,9 +76,12 @@ class IdealArm:
         self.seq = 0
         self.dropped, self.send_dropped = {}, 0
 
+    deaf = (math.inf, math.inf)     # (from, to) clock readings: rates sent then are lost
+
     def send(self, msg) -> bool:
         self.sent.append(msg)
-        self.applied = msg
+        if not self.deaf[0] <= msg.t_ns * 1e-9 < self.deaf[1]:
+            self.applied = msg
         return True
 
     def receive(self, timeout_s: float = 0.0) -> Inbox:
@@ -169,3 +172,25 @@ def test_summary_reads_as_a_report():
     assert "--duration 1.5 s reached after 1.5 s" in text
     assert "base_yaw" in text and "not recorded" in text
     assert m["tcp_peak_m_s"] == pytest.approx(0.05, rel=1e-6)   # the square's 5 cm/s
+
+
+def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again():
+    """The arm side keeps sending states but applies none of our rates for longer than
+    stale_after: motion is held, and stays held when rates get through again, because
+    enable was held throughout (the square script never lets go until its end)."""
+    drive, loop, arm_side, _ = make_session()
+    t0 = 50.0
+    arm_side.deaf = (t0 + 1.0, t0 + 1.3)
+    reasons = {}
+
+    def body(tick):
+        keep = drive.body(tick)
+        reasons.setdefault(round(tick.start_s - t0, 1), drive.latest.gate_reason
+                           if drive.latest else "")
+        return keep
+
+    loop.run(body, duration_s=4.0)
+    moving = [m for m in arm_side.sent if any(m.qd)]
+    assert moving and max(m.t_ns for m in moving) * 1e-9 < t0 + 1.3   # nothing after
+    assert any("applied none of our rates" in r for r in reasons.values())
+    assert any("release enable and press again" in r for r in reasons.values())

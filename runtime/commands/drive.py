@@ -22,6 +22,12 @@ ending"), so zero rates go out and are recorded, until a state shows the arm sid
 them and measures the arm at rest (or `SETTLE_TIMEOUT_S` passes). Then the recorder closes
 and the simulated arm is stopped. A second Ctrl-C ends the loop at once.
 
+Faults. Besides what the safety gate watches itself (input device, state age, overrun
+streak), the loop holds motion when the command path fails: this loop paused longer than
+stale_after, the arm side reports that its watchdog took over, it has applied none of our
+rates for stale_after, it refused us, or it came back as another arm. A hold makes the gate
+forget the enable press, so motion never resumes by itself when the fault clears.
+
 Link health. State age is how old the measured q is when a cycle uses it: with the arm side
 on this host and the same monotonic clock (our own child) it is now − the state's stamp,
 otherwise now − when it arrived. Round trip is the time from sending rates number k to the
@@ -58,7 +64,8 @@ from ..loop import FixedRateLoop, Tick, TimingStats
 from ..mapping import load_pad
 from ..model import Arm, load_arm
 from ..pipeline import ControlCycle, CycleOutput
-from ..protocol import FLAG_REDUCED_SPEED, Rates, State, StateFreshness, encode, hello_for
+from ..protocol import FLAG_REDUCED_SPEED, Hello, Rates, State, StateFreshness, encode, \
+    hello_differences, hello_for
 from ..recorder import SessionRecorder, cycle_record, new_session_path
 from ..safety import SafetySettings
 from ..transport import ArmClient, check_endpoint, load_client_keys
@@ -348,6 +355,7 @@ class DriveSession:
         self._applied_seen_at_s: float | None = None  # when applied_seq last advanced
         self._last_sent_s: float | None = None      # when this loop last sent rates
         self._refused: tuple[str, float] | None = None
+        self._mismatch: str | None = None
         self._prev_start: float | None = None
         self._script_done_at: float | None = None
         from ..status_window import StatusSnapshot   # pygame: imported only when driving
@@ -389,8 +397,21 @@ class DriveSession:
         if inbox.refuse is not None and inbox.refuse.code != "no_hello":
             self._refused = (f"the arm side refused us ({inbox.refuse.code}): "
                              f"{inbox.refuse.reason}", now)
+        if inbox.hello is not None:
+            self._on_hello(inbox.hello, now)
         if inbox.state is not None:
             self.offer_state(inbox.state, now if timeout_s == 0.0 else self.clock())
+
+    def _on_hello(self, theirs: Hello, now: float) -> None:
+        """The arm side answered a hello again (it restarted, or lost us): its state and
+        applied sequences start afresh. Another arm on the same endpoint is refused."""
+        diffs = hello_differences(self.client.hello, theirs)
+        if diffs:
+            self._mismatch = "the arm side is now another arm: " + "; ".join(diffs)
+            return
+        self._mismatch = None
+        self.freshness.reset()
+        self._applied_seen, self._applied_seen_at_s = 0, None
 
     def _await_applied(self, seq: int, until: float) -> None:
         """Lockstep (docs/PROTOCOL.md §6): wait for the state of the step that applied
@@ -444,6 +465,8 @@ class DriveSession:
                 self._ending_since = now
         if self._ending_since is not None:
             return "session ending: holding zero until the arm is at rest"
+        if self._mismatch is not None:
+            return self._mismatch
         if self._refused is not None and now - self._refused[1] < REFUSAL_HOLD_S:
             return self._refused[0]
         return self._rates_not_followed(now)

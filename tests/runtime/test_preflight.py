@@ -95,7 +95,8 @@ def test_a_rated_speed_below_the_software_limit_fails_naming_the_joint(arm):
 
 @pytest.mark.parametrize("over, fails", [(0.5 * MEASURED_TOLERANCE, False),
                                          (2.0 * MEASURED_TOLERANCE, True)])
-def test_measured_speed_counts_beyond_the_tracking_tolerance(arm, over, fails):
+def test_measured_speed_counts_beyond_the_tracking_allowance(arm, over, fails):
+    """Allowance = 2 % of the rating + VELOCITY_ERROR (1e-3 rad/s, 0.14 % of 40 deg/s)."""
     arm = with_j1(arm, rated_speed=math.radians(40.0))
     v = arm.joints[0].rated_speed                        # commanded exactly at the rating
     result = evaluate(arm, run_joint1(arm, trapezoid(v, math.radians(300.0), 0.2),

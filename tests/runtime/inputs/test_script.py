@@ -98,6 +98,9 @@ def test_a_script_drives_the_gate_like_an_operator(arm):
     assert states[round(src.script.duration_s + 0.1, 2)][0] == READY
 
 
+PUSHING_PROFILES = {"elbow_stretch", "wrist_limit"}
+
+
 def test_every_shipped_profile_loads_and_closes_on_released_enable(arm):
     names = profile_names()
     assert {"square", "wrist_turn", "reduced_line"} <= set(names)
@@ -105,6 +108,8 @@ def test_every_shipped_profile_loads_and_closes_on_released_enable(arm):
         s = load_script(name, arm)
         assert s.lead_in_s > 0                                # the first press is fresh
         assert not s.segments[-1].command.enable              # ends with enable released
+        if name in PUSHING_PROFILES:
+            continue  # these drive into a singularity or a limit on purpose (preflight demos)
         # each profile comes back near where it started, once reduced speed has capped the
         # TCP at 0.25 m/s (ISO 10218-1, REFERENCES §4) as the limits stage will
         disp = np.zeros(3)
