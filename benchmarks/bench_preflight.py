@@ -150,11 +150,17 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
     rates = np.array([r.rates for r in records])
     times = []
     with LockstepSim(ARM, arm, rate_hz=RATE_HZ, step_hz=STEP_HZ) as sim:
+        child_cpu0, own_cpu0 = cpu_seconds(sim.child.pid), time.process_time()
         for k in range(len(records)):
             t = time.perf_counter_ns()
             sim.step(rates[k])
             times.append(time.perf_counter_ns() - t)
+        child_cpu = cpu_seconds(sim.child.pid) - child_cpu0
+        own_cpu = time.process_time() - own_cpu0
     out["lockstep cycle (round trip + child)"] = statistics.median(times) / 1e3
+    # CPU time per cycle does not grow with the machine's other load as wall time does.
+    out["  CPU in the child per cycle (mean)"] = 1e6 * child_cpu / len(records)
+    out["  CPU here per exchange (mean)"] = 1e6 * own_cpu / len(records)
 
     from sim.arm import SimulatedArm   # the benchmark may; the runtime never does
     times = []
@@ -170,6 +176,12 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
 
     out["socket round trip"] = echo_round_trip(len(records))
     return out
+
+
+def cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a process so far (Linux /proc; clock ticks)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
 def echo_round_trip(n: int) -> float:
@@ -225,6 +237,10 @@ def main() -> int:
     child = parts["lockstep cycle (round trip + child)"] - parts["socket round trip"] \
         - parts["physics (2 steps, in process)"]
     print(f"  {'child message handling (derived)':<40} {child:8.1f}")
+    cpu = parts["  CPU in the child per cycle (mean)"] + parts["  CPU here per exchange (mean)"] \
+        + parts["control cycle"] + parts["bookkeeping"]
+    print(f"  CPU per preflight cycle, both processes: about {cpu:.0f} µs "
+          f"→ {1e6 / RATE_HZ / cpu:.1f}x real time if nothing ever waited")
     total = parts["control cycle"] + parts["lockstep cycle (round trip + child)"]
     print(f"  sequential sum: control cycle + lockstep cycle = {total:.0f} µs "
           f"→ at most {1e6 / RATE_HZ / total:.2f}x real time at {RATE_HZ:g} Hz")

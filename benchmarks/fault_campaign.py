@@ -21,6 +21,7 @@ import argparse
 import json
 import os
 import platform
+import signal
 import statistics
 import sys
 import tempfile
@@ -137,27 +138,44 @@ def main() -> int:
     p.add_argument("--json", metavar="FILE", help="write every run's figures as JSON")
     p.add_argument("--update-doc", action="store_true",
                    help=f"rewrite the table in {DOC.relative_to(ROOT)}")
+    p.add_argument("--table-from", nargs="+", metavar="FILE",
+                   help="no runs: make the table from --json files of earlier campaigns (a "
+                        "later file's runs of a fault replace an earlier file's)")
     args = p.parse_args()
-    names = args.only or list(faultkit.FAULTS)
+    # SIGTERM unwinds like Ctrl-C, so the running set of processes is stopped too.
+    signal.signal(signal.SIGTERM, lambda *_: sys.exit(143))
     started = time.monotonic()
-    def save(results: dict) -> None:
-        if args.json:
-            Path(args.json).write_text(json.dumps({"runs": results}, indent=1, default=str))
-    results = run_campaign(names, args.repeats, args.max_attempts or 2 * args.repeats,
-                           lambda line: print(line, flush=True), save)
+    if args.table_from:
+        results = {}
+        for path in args.table_from:
+            results.update(json.loads(Path(path).read_text())["runs"])
+        names = [n for n in (args.only or faultkit.FAULTS) if n in results]
+    else:
+        names = args.only or list(faultkit.FAULTS)
+
+        def save(results: dict) -> None:
+            if args.json:
+                Path(args.json).write_text(json.dumps({"runs": results}, indent=1,
+                                                      default=str))
+        results = run_campaign(names, args.repeats, args.max_attempts or 2 * args.repeats,
+                               lambda line: print(line, flush=True), save)
     summaries = [summarize(n, results[n]) for n in names]
     text = table(summaries)
     load = os.getloadavg()
-    header = (f"Measured {datetime.now():%Y-%m-%d %H:%M} with `python benchmarks/fault_campaign.py "
+    header = (f"Measured {datetime.now():%Y-%m-%d} with `python benchmarks/fault_campaign.py "
               f"--repeats {args.repeats}` on {os.cpu_count()} cores ({platform.machine()}, "
               f"Python {platform.python_version()}), runtime loop {faultkit.RATE_HZ:g} Hz, "
-              f"stale_after {faultkit.STALE_AFTER_S * 1e3:g} ms, load average at the end "
-              f"{load[0]:.1f}; {time.monotonic() - started:.0f} s in all.")
+              f"stale_after {faultkit.STALE_AFTER_S * 1e3:g} ms")
+    if args.table_from:
+        header += " (table made from the saved runs with --table-from)."
+    else:
+        header += (f"; load average at the end {load[0]:.1f}, "
+                   f"{time.monotonic() - started:.0f} s in all.")
     print()
     print(header)
     print()
     print(text)
-    if args.json:
+    if args.json and not args.table_from:
         Path(args.json).write_text(json.dumps({"header": header, "summaries": summaries,
                                                "runs": results}, indent=1, default=str))
     if args.update_doc:

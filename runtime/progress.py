@@ -33,22 +33,25 @@ class Progress:
         self.clock = clock
         self.min_interval_s = min_interval_s
         self.enabled = _is_terminal(self.stream) if enabled is None else enabled
-        self.started = clock()
+        self._first: tuple[float, float] | None = None   # (wall, done) at the first update
         self._last = -float("inf")
         self._width = 0
 
     def update(self, done_s: float, *, force: bool = False) -> None:
-        """`done_s` of `total_s` done; redraw if enough wall time has passed."""
+        """`done_s` of `total_s` done; redraw if enough wall time has passed. The speed is
+        measured from the first update (start-up before it does not count)."""
         if not self.enabled:
             return
         now = self.clock()
+        if self._first is None:
+            self._first = (now, done_s)
         if not force and now - self._last < self.min_interval_s:
             return
         self._last = now
-        wall = now - self.started
+        wall, done = now - self._first[0], done_s - self._first[1]
         detail = f"{done_s:.1f}/{self.total_s:.1f} s"
-        if wall > 0.2 and done_s > 0:
-            speed = done_s / wall
+        if wall > 0.2 and done > 0:
+            speed = done / wall
             eta = (self.total_s - done_s) / speed
             detail += f"  {speed:.1f}x real time  {eta:.0f} s left"
         self._draw(format_bar(self.label, done_s / self.total_s if self.total_s else 1.0,

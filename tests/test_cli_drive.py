@@ -9,8 +9,8 @@ import math
 import numpy as np
 import pytest
 
-from runtime.commands.drive import DriveSession, LogHistogram, format_summary, \
-    build_summary, plan_input
+from runtime.commands.drive import SETTLE_TIMEOUT_S, DriveSession, LogHistogram, \
+    build_summary, format_summary, plan_input
 from runtime.errors import ConfigError
 from runtime.inputs.script import ScriptSource, load_script
 from runtime.kinematics import tcp_pose
@@ -154,12 +154,13 @@ def test_the_script_end_and_the_duration_end_the_session():
     assert drive.end_reason == "--duration 2 s reached"
 
 
-def test_without_arm_state_the_session_ends_without_waiting():
+def test_without_arm_state_the_session_ends_after_the_settling_time():
     drive, loop, arm_side, _ = make_session(alive=False)
     drive.request_end("stopped by SIGTERM")
     stats = loop.run(drive.body, duration_s=5.0)
-    assert stats.cycles == 1 and not any(arm_side.sent[-1].qd)
-    assert "no fresh arm state" in drive.stop_outcome
+    assert stats.cycles == pytest.approx(SETTLE_TIMEOUT_S * RATE_HZ, abs=2)
+    assert all(not any(m.qd) for m in arm_side.sent)              # zero all along
+    assert "no fresh arm state within 1 s" in drive.stop_outcome
 
 
 def test_summary_reads_as_a_report():
@@ -194,3 +195,18 @@ def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again():
     assert moving and max(m.t_ns for m in moving) * 1e-9 < t0 + 1.3   # nothing after
     assert any("applied none of our rates" in r for r in reasons.values())
     assert any("release enable and press again" in r for r in reasons.values())
+
+
+def test_realtime_refused_falls_back_to_normal_priority(monkeypatch):
+    import errno
+    import os
+
+    from runtime.commands.drive import enter_realtime
+
+    def refuse(*_):
+        raise PermissionError(errno.EPERM, "Operation not permitted")
+
+    monkeypatch.setattr(os, "sched_setscheduler", refuse, raising=False)
+    got = enter_realtime(50)
+    assert got.startswith("normal (real-time refused: Operation not permitted")
+    assert "CAP_SYS_NICE" in got

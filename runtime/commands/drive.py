@@ -61,7 +61,7 @@ from ..errors import ConfigError, TransportError
 from ..inputs import open_source, parse_input_spec
 from ..kinematics import analyse_pose, tcp_pose
 from ..loop import FixedRateLoop, Tick, TimingStats
-from ..mapping import load_pad
+from ..mapping import DirectCommand, InputFrame, load_pad
 from ..model import Arm, load_arm
 from ..pipeline import ControlCycle, CycleOutput
 from ..protocol import FLAG_REDUCED_SPEED, Hello, Rates, State, StateFreshness, encode, \
@@ -514,16 +514,17 @@ class DriveSession:
                                      f"{waited * 1e3:.0f} ms after the stop "
                                      f"(max |q̇| {top:.1e})")
                 return False
+        if waited < SETTLE_TIMEOUT_S:        # (a late state may still come: keep waiting)
+            return True
         if not fresh:
-            self.stop_outcome = ("zero rates sent; no fresh arm state to confirm the stop "
-                                 "(the arm side's watchdog ramps to zero)")
-            return False
-        if waited >= SETTLE_TIMEOUT_S:
+            self.stop_outcome = (f"zero rates sent; no fresh arm state within "
+                                 f"{SETTLE_TIMEOUT_S:g} s to confirm the stop (the arm side's "
+                                 "watchdog ramps to zero)")
+        else:
             top = float(np.max(np.abs(self.qd))) if self.qd is not None else math.nan
             self.stop_outcome = (f"zero rates sent; arm not measured at rest within "
                                  f"{SETTLE_TIMEOUT_S:g} s (max |q̇| {top:.3g})")
-            return False
-        return True
+        return False
 
     # -- the status snapshot ---------------------------------------------------------------
 
@@ -580,7 +581,6 @@ def enter_realtime(priority: int) -> str:
 def warm_up(arm: Arm, pad: Any, q: np.ndarray, rate_hz: float) -> None:
     """Run every piece of a cycle a few times on a throwaway ControlCycle, so the first real
     cycles do not pay for first calls (imports, caches, numpy's first dispatch)."""
-    from ..mapping import DirectCommand, InputFrame
     from ..status_window import StatusSnapshot
     cycle = ControlCycle(arm, pad, rate_hz=rate_hz)
     frames = [InputFrame("warm-up", True, command=DirectCommand(enable=False))] + \
@@ -600,15 +600,19 @@ def warm_up(arm: Arm, pad: Any, q: np.ndarray, rate_hz: float) -> None:
 # ----------------------------------------------------------------------------------------
 
 def status_line(snap: Any, timing: TimingStats | None) -> str:
-    """One line for the terminal from a status snapshot."""
+    """One line for the terminal from a status snapshot, most important first (a narrow
+    terminal cuts the end): time, gate state and why not / commanded speed, TCP, link, loop."""
     parts = [f"{snap.elapsed_s:6.1f} s", f"{snap.gate_state.upper():7s}"]
+    if not snap.allowed:
+        parts.append(snap.gate_reason)
+    elif snap.twist is not None:
+        parts.append(f"v {np.linalg.norm(snap.twist[:3]) * 1e3:3.0f} mm/s")
     if snap.q is not None:
         p = tcp_pose(snap.arm, np.asarray(snap.q))[:3, 3]
         parts.append(f"TCP {p[0]:+.3f} {p[1]:+.3f} {p[2]:+.3f} m")
-    if snap.twist is not None and snap.allowed:
-        parts.append(f"v {np.linalg.norm(snap.twist[:3]) * 1e3:3.0f} mm/s")
-    link = "link ok" if snap.connected and snap.state_age_s is not None and \
-        snap.state_age_s <= snap.stale_after_s else "link STALE"
+    fresh = snap.connected and snap.state_age_s is not None and \
+        snap.state_age_s <= snap.stale_after_s
+    link = "link ok" if fresh else "link STALE"
     if snap.state_age_s is not None:
         link += f" age {snap.state_age_s * 1e3:.1f} ms"
     if snap.rtt_s is not None:
@@ -617,8 +621,6 @@ def status_line(snap: Any, timing: TimingStats | None) -> str:
     if timing is not None and timing.cycles:
         parts.append(f"loop p99 {timing.period_p99_s * 1e3:.2f} ms, "
                      f"{timing.overruns} overruns")
-    if not snap.allowed and snap.gate_reason:
-        parts.append(snap.gate_reason)
     return " | ".join(parts)
 
 
@@ -823,9 +825,9 @@ class _MainThread:
         self.frame_hz = min(WINDOW_MAX_HZ, max(WINDOW_MIN_HZ, WINDOW_CPU_SHARE / frame_s))
         self.window = window
         if self.frame_hz < WINDOW_MAX_HZ:
-            print(f"jogwire drive: this display takes {frame_s * 1e3:.0f} ms per frame: the "
-                  f"status window redraws at {self.frame_hz:.0f} Hz to leave the CPU to the "
-                  "control loop", flush=True)
+            say(sys.stdout, f"jogwire drive: this display takes {frame_s * 1e3:.0f} ms per "
+                f"frame: the status window redraws at {self.frame_hz:.0f} Hz to leave the CPU "
+                "to the control loop")
 
     def run_window(self, source: Any) -> None:
         handle = getattr(source, "handle_event", None)
@@ -854,16 +856,24 @@ class _MainThread:
                                                           snap.gate_state != last_state)):
                 line = status_line(snap, self.timing())
                 if tty:
-                    out.write("\r" + line[:_terminal_width() - 1] + "\x1b[K")
+                    say(out, "\r" + line[:_terminal_width() - 1] + "\x1b[K", end="")
                 else:
-                    out.write(line + "\n")
-                out.flush()
+                    say(out, line)
                 last_state = snap.gate_state
                 next_line = now + every_s
             time.sleep(0.004 if pump is not None else 0.05)
         if tty:
-            out.write("\r\x1b[K")
-            out.flush()
+            say(out, "\r\x1b[K", end="")
+
+
+def say(out: Any, text: str, end: str = "\n") -> None:
+    """Write to the terminal. A closed pipe (`jogwire drive | head`) is not the drive's
+    problem: stdout then goes to /dev/null (so the exit flush does not fail either)."""
+    try:
+        out.write(text + end)
+        out.flush()
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())
 
 
 def _terminal_width() -> int:
@@ -931,7 +941,7 @@ def run(args: argparse.Namespace) -> int:
         screenshot = (Path(args.screenshot), after)
     out = sys.stdout
     if plan.note:
-        print(f"jogwire drive: {plan.note}", file=out, flush=True)
+        say(out, f"jogwire drive: {plan.note}")
 
     clock = time.perf_counter
     with contextlib.ExitStack() as stack:
@@ -984,7 +994,7 @@ def run(args: argparse.Namespace) -> int:
         if args.realtime:
             priority = enter_realtime(REALTIME_PRIORITY)
             if priority.startswith("normal"):
-                print(f"jogwire drive: priority {priority}", file=out, flush=True)
+                say(out, f"jogwire drive: priority {priority}")
         recorder = session_path = None
         started = clock()
         if not args.no_record:
@@ -1003,10 +1013,10 @@ def run(args: argparse.Namespace) -> int:
         drive.offer_state(first_state, clock())
         window_s = min(max(args.duration or 10.0, 10.0) + 1.0, 60.0)
         loop = FixedRateLoop(args.rate, clock=clock, window_s=window_s)
-        print(f"jogwire drive: {arm.name} via {target}; input {source.name}; "
-              f"{args.rate:g} Hz" + (", reduced speed" if args.reduced else "")
-              + (f"; recording to {session_path}" if session_path else "")
-              + ("; Ctrl-C stops" if not plan.window else ""), file=out, flush=True)
+        say(out, f"jogwire drive: {arm.name} via {target}; input {source.name}; "
+            f"{args.rate:g} Hz" + (", reduced speed" if args.reduced else "")
+            + (f"; recording to {session_path}" if session_path else "")
+            + ("; Ctrl-C stops" if not plan.window else ""))
 
         stops.drive = drive
         previous_switch = sys.getswitchinterval()
@@ -1040,12 +1050,13 @@ def run(args: argparse.Namespace) -> int:
                             target=target,
                             recorder_stats=None if recorder is None else recorder.stats(),
                             session_path=session_path, arm_side_log="".join(arm_log),
-                            started_s=started, ended_s=ended)
+                            started_s=drive.t0 if drive.t0 is not None else started,
+                            ended_s=ended)
     if shot is not None:
         summary["screenshot"] = str(shot)
-    print(format_summary(summary), file=out, flush=True)
+    say(out, format_summary(summary))
     if shot is not None:
-        print(f"  screenshot {shot}", file=out, flush=True)
+        say(out, f"  screenshot {shot}")
     if args.summary_json:
         Path(args.summary_json).write_text(json.dumps(_json_safe(summary), indent=2) + "\n",
                                            encoding="utf-8")

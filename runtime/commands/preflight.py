@@ -45,6 +45,8 @@ RECORDER_QUEUE = 1 << 16
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = ("exit status: 0 pass, 1 fail, 2 bad input. What is checked and how: "
+                     "docs/PREFLIGHT.md")
     parser.add_argument("arm", metavar="ARM",
                         help="a shipped arm name (e.g. reach7), an arm .toml or a .urdf file")
     parser.add_argument("profile", metavar="PROFILE",

@@ -43,7 +43,7 @@ import numpy as np
 
 from ..arm_process import ArmProcess
 from ..errors import ConfigError, LogError, TransportError
-from ..lockstep import LockstepSim, arm_file_for, run_closed_loop, substeps_for
+from ..lockstep import LockstepSim, arm_file_for, run_closed_loop
 from ..model import Arm, load_arm
 from ..progress import Progress
 from ..protocol import FLAG_REDUCED_SPEED, Rates, hello_for
@@ -60,6 +60,8 @@ ZERO_REPEATS = 5            # zero-rate messages sent at the end (one could be l
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.epilog = ("exit status: 0 done (a re-run: no difference beyond --tolerance), 1 a "
+                     "re-run differs, 2 bad input. Modes: docs/SESSION_FORMAT.md")
     parser.add_argument("log", metavar="LOG", help="a session log (.jwlog)")
     parser.add_argument("--rerun", action="store_true",
                         help="feed the recorded inputs through today's control cycle instead "
@@ -111,7 +113,9 @@ def _check_options(args: argparse.Namespace) -> None:
     if not (math.isfinite(args.speed) and 0.01 <= args.speed <= 100.0):
         raise ConfigError(f"--speed must be within 0.01…100, got {args.speed:g}",
                           field="--speed")
-    substeps_for(1.0, args.step_hz)              # a physics step rate within range
+    if not (math.isfinite(args.step_hz) and 1.0 <= args.step_hz <= 20000.0):
+        raise ConfigError(f"--step-hz must be within 1…20000, got {args.step_hz:g}",
+                          field="--step-hz")
     if not (math.isfinite(args.tolerance) and args.tolerance >= 0.0):
         raise ConfigError("--tolerance must be a number ≥ 0", field="--tolerance")
 
