@@ -148,9 +148,11 @@ def test_constant_rate_for_one_second_moves_the_joint_by_its_integral(sim, obser
     assert pub.wait(10) == 0
     # ∫q̇dt = rate × (time between the first moving and the first zero message). Tolerance:
     # start and end are each known to one publisher period (2 ms) plus one arm step (1 ms),
-    # plus the velocity motors' tracking error (≤ 1e-3 rad over 1 s, tests/sim/test_arm.py).
+    # plus the velocity motors' tracking error (≤ 1e-3 rad over 1 s, tests/sim/test_arm.py),
+    # plus 2 % for scheduler stalls on a loaded machine: the paced arm drops simulated time
+    # after a stall longer than CATCH_UP_S (sim/endpoint.py) instead of catching up in a burst.
     duration_s = (zero["t_ns"] - moving["t_ns"]) * 1e-9
-    tolerance = np.abs(rates) * 2 * (0.002 + STEP_S) + 1e-3
+    tolerance = np.abs(rates) * (2 * (0.002 + STEP_S) + 0.02 * duration_s) + 1e-3
     before = [s for s in observer.states if s.t_ns < moving["t_ns"]][-1]
     after = observer.states[-1]
     moved = np.array(after.q) - np.array(before.q)
