@@ -85,6 +85,8 @@ def summarize(name: str, data: dict) -> dict:
         "bound_max_s": max(bounds) if bounds else None,
         "within_bound": sum(r["within_bound"] for r in runs),
         "restarted": sum(r["restarted"] for r in runs),
+        "overrun_stops": None if all(r.get("overrun_stop") is None for r in runs)
+        else sum(bool(r.get("overrun_stop")) for r in runs),
         "applied_backwards": sum(r["applied_backwards"] for r in runs),
         "garbage_acted_on": sum(r["garbage_acted_on"] for r in runs),
         "records_lost": sum(r["records_lost_before_fault"] for r in runs),
@@ -105,8 +107,9 @@ def _sum_counts(dicts) -> dict[str, int]:
 
 def table(summaries: list[dict]) -> str:
     rows = ["| fault | from | n | stopped | stop median / worst (ms) | bound (ms) | within "
-            "bound | restarts | bad acted on | dropped at the arm / runtime (all runs) |",
-            "|---|---|---|---|---|---|---|---|---|---|"]
+            "bound | overrun stops | restarts | bad acted on | dropped at the arm / runtime "
+            "(all runs) |",
+            "|---|---|---|---|---|---|---|---|---|---|---|"]
     for s in summaries:
         bad = s["applied_backwards"] + s["garbage_acted_on"]
         arm = ", ".join(f"{k} {v}" for k, v in s["arm_dropped"].items()) or "—"
@@ -115,7 +118,9 @@ def table(summaries: list[dict]) -> str:
         rows.append(
             f"| {s['fault']} | {'/'.join(s['measured_from'])} | {n} | "
             f"{s['stopped']}/{s['n']} | {_ms(s['stop_median_s'])} / {_ms(s['stop_worst_s'])} | "
-            f"{_ms(s['bound_max_s'])} | {s['within_bound']}/{s['n']} | {s['restarted']} | "
+            f"{_ms(s['bound_max_s'])} | {s['within_bound']}/{s['n']} | "
+            f"{'—' if s['overrun_stops'] is None else s['overrun_stops']} | "
+            f"{s['restarted']} | "
             f"{bad} | {arm} / {rt} |")
     return "\n".join(rows)
 

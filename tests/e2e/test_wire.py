@@ -247,8 +247,10 @@ def test_the_arm_keeps_serving_good_messages_among_garbage(sim, observer, publis
                           and np.allclose(np.delete(s.qd, 2), 0.0, atol=2e-3) for s in during)
     before = [s for s in observer.states if s.t_ns < moving["t_ns"]][-1]
     moved = observer.states[-1].q[2] - before.q[2]
-    expected = 0.4 * (zero["t_ns"] - moving["t_ns"]) * 1e-9
-    assert abs(moved - expected) <= 0.4 * 2 * (0.002 + STEP_S) + 1e-3
+    duration_s = (zero["t_ns"] - moving["t_ns"]) * 1e-9
+    # The tolerance of the constant-rate test above (periods, tracking, scheduler stalls).
+    assert abs(moved - 0.4 * duration_s) <= 0.4 * (2 * (0.002 + STEP_S) + 0.02 * duration_s) \
+        + 1e-3
     sim.stop()
     summary = [line for line in sim.log_path.read_text().splitlines() if "stopped:" in line][0]
     print("\n" + summary)

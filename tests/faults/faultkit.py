@@ -324,6 +324,8 @@ class FaultResult:
     records_lost_before_fault: int = 0  # cycle records missing before the fault
     tail_lost_s: float | None = None    # kill -9: unflushed end of the log, in seconds
     exercised: bool = True              # the arm was moving when the fault (release) came
+    overrun_stop: bool | None = None    # link faults: the loop's overrun guard stopped it after
+                                        # the onset (None: not measured for this fault)
     notes: list[str] = field(default_factory=list)
 
     @property
@@ -499,17 +501,19 @@ def link_fault(name: str, relay: list[str], *, from_start: bool = False
             stop = standstill_after(c.states, t_onset)
             if stop is not None and stop.t_ns >= t_release:
                 stop = None                   # rode through: still moving at the release
+        # Overrun stops before the onset are the machine's (the run is repeated); after it
+        # they are counted as the system's answer to the fault (more frames to decode).
+        before = (t_motion, t_onset if t_onset is not None else (t_release or t_motion))
         if stop is not None:
-            # The loop's own overrun guard must not have stopped it first (a busy machine).
             r = result_for(name, c, t_onset, "fault", restart_until_ns=t_release,
-                           busy_window=(t_motion, stop.t_ns))
+                           busy_window=before)
         else:
-            r = result_for(name, c, t_release, "release",
-                           busy_window=(t_motion, t_release or t_motion))
+            r = result_for(name, c, t_release, "release", busy_window=before)
             if t_onset is not None:
                 r.notes.append("rode through: still moving when enable was let go")
         if t_onset is not None:
             r.exercised = r.exercised and speed_before(c.states, t_onset) > MOVING
+            r.overrun_stop = overran_between(c, t_onset, t_release or t_onset)
         if c.session is not None:
             r.records_lost_before_fault = session_gaps(c.session)
             if r.measured_from == "fault":
