@@ -46,12 +46,13 @@ class ArmProcess:
 
     def __init__(self, kind: str, arm: str, options: list[str] = (), *,
                  ready_timeout_s: float = 30.0, stderr: int | IO[Any] | None = None,
-                 new_session: bool = False) -> None:
+                 new_session: bool = False, pass_fds: tuple[int, ...] = ()) -> None:
         # new_session: the child leaves our process group, so a Ctrl-C at the terminal
         # reaches only us and we stop it in order (zero rates first, then the child).
+        # pass_fds: file descriptors the child inherits (the ends of a pipe link).
         self.proc = subprocess.Popen(child_argv(kind, arm, list(options)), env=child_env(),
                                      stdout=subprocess.PIPE, stderr=stderr, text=True,
-                                     start_new_session=new_session)
+                                     start_new_session=new_session, pass_fds=pass_fds)
         self.output = self.errors = ""
         try:
             self.ready_line = self._read_ready(ready_timeout_s)

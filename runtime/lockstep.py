@@ -6,7 +6,8 @@
               └──────────── state (q, q̇) after them ◄──┘
 
 `runtime` never imports the simulator: the arm runs in a child process and every cycle is
-one round trip over a loopback socket (docs/PROTOCOL.md, "Lockstep mode"). One rates
+one round trip over a pair of pipes (`runtime.pipe_link`: the wire's messages, a
+tenth of a loopback socket's round trip; docs/PROTOCOL.md, "Lockstep mode"). One rates
 message advances `substeps` physics steps, so a 500 Hz cycle on a 1 ms physics step is two
 steps per message. The run is deterministic: the next rates go out only after the state
 whose `applied_seq` is the last rates' `seq` has come back, and each cycle's time is the
@@ -19,8 +20,10 @@ input frame per cycle in, the cycle's output and the arm's state after it out.
 from __future__ import annotations
 
 import math
+import os
 import subprocess
 import time
+from collections import deque
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterator, Sequence
@@ -33,8 +36,8 @@ from .errors import ConfigError, TransportError
 from .mapping import InputFrame
 from .model import Arm, configs_dir, limits_digest, load_arm
 from .pipeline import ControlCycle, CycleOutput
-from .protocol import FLAG_REDUCED_SPEED, Rates, State, geometry_digest, hello_for
-from .transport import ArmClient
+from .protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
+from .pipe_link import PipeClient, link_spec
 
 Vector = NDArray[np.float64]
 
@@ -113,7 +116,10 @@ class LockstepSim:
         self.arm = arm
         self.substeps = substeps_for(rate_hz, step_hz)
         self.step_s = 1.0 / step_hz
-        options = ["--lockstep", "--endpoint", "tcp://127.0.0.1:*", "--step-hz",
+        # Two pipes: ours to write rates into and the child's to write states into.
+        to_child, from_child = os.pipe(), os.pipe()
+        child_ends = (to_child[0], from_child[1])
+        options = ["--lockstep", "--link", link_spec(*child_ends), "--step-hz",
                    repr(float(step_hz)), "--substeps", str(self.substeps), "--stale-after",
                    repr(LOCKSTEP_STALE_AFTER_S)]
         if start_q is not None:
@@ -124,14 +130,22 @@ class LockstepSim:
                 raise ConfigError("the start pose is outside the joint limits", field="q")
             options.append("--q=" + ",".join(repr(float(v)) for v in q0))
         self.seq = 0
-        # Its own session: a Ctrl-C reaches only us, and we end the child in order.
-        self.child = ArmProcess("sim", arm_spec, options, ready_timeout_s=ready_timeout_s,
-                                stderr=subprocess.PIPE, new_session=True)
-        self.client: ArmClient | None = None
+        self.states: deque[State] = deque()    # arrived, not yet waited for
+        self.client: PipeClient | None = PipeClient(
+            from_child[0], to_child[1], endpoint="the simulated arm's pipe",
+            hello=hello_for(arm, "runtime", stale_after_s=LOCKSTEP_STALE_AFTER_S))
         try:
-            self.client = ArmClient(self.child.endpoint,
-                                    hello=hello_for(arm, "runtime",
-                                                    stale_after_s=LOCKSTEP_STALE_AFTER_S))
+            # Its own session: a Ctrl-C reaches only us, and we end the child in order.
+            self.child = ArmProcess("sim", arm_spec, options, ready_timeout_s=ready_timeout_s,
+                                    stderr=subprocess.PIPE, new_session=True,
+                                    pass_fds=child_ends)
+        except BaseException:
+            self.client.close()
+            raise
+        finally:
+            for fd in child_ends:   # the child holds them now: its exit ends our reads
+                os.close(fd)
+        try:
             _, first = self.client.handshake(timeout_s=ready_timeout_s)
         except BaseException:
             self.close()
@@ -140,35 +154,43 @@ class LockstepSim:
 
     def step(self, rates: Vector, *, reduced: bool = False) -> SimStep:
         """Send one cycle's rates; return the arm's state after its `substeps` steps."""
-        self.send(rates, reduced=reduced)
-        return self.wait()
+        return self.wait(self.send(rates, reduced=reduced))
 
-    def send(self, rates: Vector, *, reduced: bool = False) -> None:
-        """Send one cycle's rates without waiting (`wait` collects the answer)."""
+    def send(self, rates: Vector, *, reduced: bool = False) -> int:
+        """Send one cycle's rates without waiting; returns their sequence number, which
+        `wait` takes to collect the state after them."""
         assert self.client is not None
         self.seq += 1
         sent = self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=rates,
                                       flags=FLAG_REDUCED_SPEED if reduced else 0))
         if not sent:
             raise TransportError(self._gone("the link to the simulated arm is down"))
+        return self.seq
 
-    def wait(self) -> SimStep:
-        """The arm's state after the rates last sent."""
-        state = self._wait_for(self.seq)
+    def wait(self, seq: int) -> SimStep:
+        """The arm's state after the rates numbered `seq` (sent, and not yet waited for)."""
+        state = self._wait_for(seq)
         return SimStep(np.array(state.q), np.array(state.qd), bool(state.limited))
 
     def _wait_for(self, seq: int) -> State:
+        """States come in the order of the rates they follow; a later one may already be
+        here (the arm side stepped the next rates meanwhile): it waits its turn."""
         assert self.client is not None
         deadline = time.monotonic() + ANSWER_TIMEOUT_S
         while True:
-            inbox = self.client.receive(timeout_s=0.5)
-            if inbox.refuse is not None:
-                raise TransportError(self._gone(f"the simulated arm refused us "
-                                                f"({inbox.refuse.code}): {inbox.refuse.reason}"))
-            state = inbox.state
-            if state is not None and state.applied_seq == seq:
-                return state
-            if time.monotonic() > deadline or self.child.proc.poll() is not None:
+            while self.states and self.states[0].applied_seq < seq:
+                self.states.popleft()          # the state after a hello or an older step
+            if self.states and self.states[0].applied_seq == seq:
+                return self.states.popleft()
+            messages = self.client.messages(timeout_s=0.5)
+            for msg in messages:
+                if isinstance(msg, State):
+                    self.states.append(msg)
+                elif isinstance(msg, Refuse):
+                    raise TransportError(self._gone(f"the simulated arm refused us "
+                                                    f"({msg.code}): {msg.reason}"))
+            if not messages and (self.client.ended or time.monotonic() > deadline or
+                                 self.child.proc.poll() is not None):
                 raise TransportError(self._gone(f"no answer from the simulated arm to rates "
                                                 f"#{seq} within {ANSWER_TIMEOUT_S:g} s"))
 
@@ -197,8 +219,8 @@ class LockstepSim:
 @dataclass(frozen=True, eq=False)
 class ClosedLoopCycle:
     """One cycle of a closed-loop run: what went in, what the cycle decided, where the arm
-    was when it decided (q_used), where it was after the step (after), and what the
-    caller's `prepare` made of the cycle while the arm was stepping."""
+    was when it decided (q_used, state_age_s old), where it was after the step (after),
+    and what the caller's `prepare` made of the cycle while the arm was stepping."""
 
     k: int
     t_s: float
@@ -208,33 +230,75 @@ class ClosedLoopCycle:
     after: SimStep
     compute_s: float       # wall time of the control cycle alone
     prepared: Any = None
+    state_age_s: float = 0.0
 
 
-Prepare = Callable[[int, float, InputFrame, CycleOutput, Vector, float], Any]
+@dataclass(frozen=True, eq=False)
+class _InFlight:
+    """A cycle whose rates are sent, before the arm's state after them has come back."""
+
+    seq: int
+    k: int
+    t_s: float
+    frame: InputFrame
+    out: CycleOutput
+    q_used: Vector
+    state_age_s: float
+    compute_s: float
+    prepared: Any
+
+
+Prepare = Callable[[int, float, InputFrame, CycleOutput, Vector, float, float], Any]
+STATE_LAGS = (0, 1)
 
 
 def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
                     frame_at: Callable[[int, float], InputFrame], n_cycles: int,
-                    *, prepare: Prepare | None = None,
+                    *, state_lag: int = 1, prepare: Prepare | None = None,
                     clock: Callable[[], float] = time.perf_counter
                     ) -> Iterator[ClosedLoopCycle]:
     """Cycles 0…n_cycles−1 at simulated times t = k·dt, each on the arm's measured pose.
 
-    `prepare(k, t, frame, out, q_used, compute_s)` runs while the simulated arm steps (the
-    two processes work side by side); its result comes back in `prepared`. The state is
-    always fresh (age 0 on the simulated clock) and the loop never overruns: the run proves
-    the motion, not the timing of the machine it runs on.
+    state_lag: how many cycles the pose a cycle works on lags behind the arm.
+      0  each cycle waits for the arm's state after the previous cycle's rates (a link
+         without delay);
+      1  each cycle works on the state the arm sent a cycle earlier, as `jogwire drive`
+         does over a real link: the rates it sent last cycle have not yet acted on the state
+         it reads (the position brake in `limits` allows one cycle of it). This process
+         then computes cycle k while the simulated arm steps cycle k−1 (two cores busy).
+    Either way the run is deterministic: the arm steps every cycle's rates once, in order,
+    and at most one message waits at the arm side, so none is superseded.
+
+    `prepare(k, t, frame, out, q_used, compute_s, state_age_s)` runs while the simulated
+    arm steps; its result comes back in `prepared`. Cycles come out in order, each once
+    the arm's state after its rates is known. The clock is simulated (cycle k is at k·dt,
+    a state one cycle old is dt old) and the loop never overruns: the run proves the
+    motion, not the timing of the machine it runs on.
     """
+    if state_lag not in STATE_LAGS:
+        raise ConfigError(f"the state lag must be one of {STATE_LAGS} cycles, got "
+                          f"{state_lag!r}", field="state-lag")
     q = sim.first.q
     dt = cycle.dt_s
+    in_flight: deque[_InFlight] = deque()
     for k in range(n_cycles):
         t = k * dt
+        age = min(k, state_lag) * dt
         frame = frame_at(k, t)
         started = clock()
-        out = cycle.step(frame, t, q, t)
+        out = cycle.step(frame, t, q, t - age)
         compute = clock() - started
-        sim.send(out.rates, reduced=out.intent.reduced)
-        prepared = None if prepare is None else prepare(k, t, frame, out, q, compute)
-        after = sim.wait()
-        yield ClosedLoopCycle(k, t, frame, out, q, after, compute, prepared)
-        q = after.q
+        seq = sim.send(out.rates, reduced=out.intent.reduced)
+        prepared = None if prepare is None else prepare(k, t, frame, out, q, compute, age)
+        in_flight.append(_InFlight(seq, k, t, frame, out, q, age, compute, prepared))
+        if len(in_flight) > state_lag:
+            done = _landed(sim, in_flight.popleft())
+            q = done.after.q
+            yield done
+    while in_flight:
+        yield _landed(sim, in_flight.popleft())
+
+
+def _landed(sim: LockstepSim, c: _InFlight) -> ClosedLoopCycle:
+    return ClosedLoopCycle(c.k, c.t_s, c.frame, c.out, c.q_used, sim.wait(c.seq),
+                           c.compute_s, c.prepared, c.state_age_s)

@@ -171,9 +171,12 @@ class TraceBuilder:
         self._n += 1
 
     def add_state(self, q_after: Sequence[float], qd_after: Sequence[float],
-                  limited: bool = False) -> None:
-        """The arm's state after the step of the cycle added last."""
-        k = self._n - 1
+                  limited: bool = False, *, cycle: int | None = None) -> None:
+        """The arm's state after the step of cycle number `cycle` (already added; default:
+        the cycle added last). A run whose states lag its cycles adds them later."""
+        k = self._n - 1 if cycle is None else cycle
+        if not 0 <= k < self._n:
+            raise IndexError(f"no cycle {k} to add a state to ({self._n} added)")
         a = self._arrays
         a["q"][k] = q_after
         a["qd"][k] = qd_after

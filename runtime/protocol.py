@@ -186,7 +186,7 @@ def _integer(lo: int, hi: int) -> Check:
 
 
 def _flags(value: Any, n: int | None, field: str) -> int:
-    value = _integer(0, 2**32 - 1)(value, n, field)
+    value = _FLAG_WORD(value, n, field)
     if value & ~KNOWN_FLAGS:
         raise _bad("range", field, f"unknown flag bits {value & ~KNOWN_FLAGS:#x}")
     return value
@@ -266,6 +266,7 @@ def _names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
     return names
 
 
+_FLAG_WORD = _integer(0, 2**32 - 1)
 _SEQ = _integer(0, MAX_SEQ)
 _TIME = _integer(INT64_MIN, INT64_MAX)
 _JOINT_FLOATS = _float_array(lambda n: n)
@@ -286,12 +287,13 @@ FIELDS: dict[str, tuple[tuple[str, Check], ...]] = {
               ("frame", _one_of(FRAMES)), ("enable", _bool)),
 }
 assert all([f.name for f in fields(KINDS[k])] == [key for key, _ in FIELDS[k]] for k in KINDS)
+_KEYS = {kind: frozenset(("v", "kind", *(key for key, _ in spec)))
+         for kind, spec in FIELDS.items()}
 
 
 def _checked(kind: str, data: dict, n_joints: int | None) -> dict[str, Any]:
     """The field values of a `kind` map, each checked; raises ProtocolError."""
-    spec = FIELDS[kind]
-    expected = {"v", "kind", *(key for key, _ in spec)}
+    spec, expected = FIELDS[kind], _KEYS[kind]
     if data.keys() != expected:
         missing = sorted(expected - data.keys())
         extra = sorted(repr(k)[:40] for k in data.keys() - expected)

@@ -521,6 +521,11 @@ class SessionRecorder:
     and returns at once. The writer thread wakes every `flush_interval_s`, encodes and
     writes all queued records and, with `fsync=True`, asks the OS to put them on the disk.
 
+    With `encode_in_caller=True`, `record()` encodes the record itself (~20 µs) and the
+    thread only writes bytes. For a caller with time to spare between cycles (a lockstep
+    run encodes while the simulated arm steps) that is cheaper than the thread's encoding,
+    which holds the interpreter lock in bursts the caller then waits out.
+
     fsync is off by default: the worst cases it guards against are power loss and a kernel
     crash, since after a process crash or kill -9 everything written is already in the OS's
     cache and reaches the disk anyway. Turn it on where the host may lose power; it costs
@@ -528,13 +533,15 @@ class SessionRecorder:
     """
 
     def __init__(self, file: BinaryIO, path: Path, *, flush_interval_s: float,
-                 queue_size: int, fsync: bool, bytes_written: int) -> None:
+                 queue_size: int, fsync: bool, bytes_written: int,
+                 encode_in_caller: bool = False) -> None:
         self.path = path
         self.flush_interval_s = flush_interval_s
         self._file = file
         self._fsync = fsync
         self._capacity = queue_size
-        self._queue: collections.deque[CycleRecord] = collections.deque()
+        self._encode_in_caller = encode_in_caller
+        self._queue: collections.deque[CycleRecord | bytes] = collections.deque()
         self._stop = threading.Event()
         self._closed = False
         self._failed: str | None = None
@@ -542,6 +549,7 @@ class SessionRecorder:
         self._handed = 0
         self._dropped = 0
         self._refused = 0
+        self._unencodable_here = 0
         # Writer side:
         self._written = 0
         self._lost_in_writer = 0
@@ -554,7 +562,8 @@ class SessionRecorder:
     def start(cls, path: str | Path, arm: Arm, settings: Mapping[str, Any], *,
               flush_interval_s: float = 0.2, queue_size: int = 4096, fsync: bool = False,
               opener: Opener = open_new_file, started_at: datetime | None = None,
-              started_monotonic_ns: int | None = None) -> "SessionRecorder":
+              started_monotonic_ns: int | None = None,
+              encode_in_caller: bool = False) -> "SessionRecorder":
         """Create the file, write the preamble and header (synchronously, before any cycle)
         and start the writer thread. A file that cannot be created raises LogError."""
         if not flush_interval_s > 0:
@@ -577,7 +586,7 @@ class SessionRecorder:
                 _close_quietly(file)
             raise LogError(f"cannot write session log {path}: {exc.strerror or exc}") from None
         recorder = cls(file, path, flush_interval_s=flush_interval_s, queue_size=queue_size,
-                       fsync=fsync, bytes_written=len(data))
+                       fsync=fsync, bytes_written=len(data), encode_in_caller=encode_in_caller)
         recorder._thread.start()
         return recorder
 
@@ -592,7 +601,15 @@ class SessionRecorder:
         if len(self._queue) >= self._capacity:
             self._dropped += 1
             return False
-        self._queue.append(rec)
+        if self._encode_in_caller:
+            try:
+                item: CycleRecord | bytes = encode_frame(rec.to_wire())
+            except Exception:  # noqa: BLE001 - one bad record must not stop the session
+                self._unencodable_here += 1
+                return False
+        else:
+            item = rec
+        self._queue.append(item)
         self._handed += 1
         return True
 
@@ -604,7 +621,8 @@ class SessionRecorder:
     def stats(self) -> RecorderStats:
         return RecorderStats(handed=self._handed, written=self._written,
                              dropped=self._dropped, lost=self._refused + self._lost_in_writer,
-                             unencodable=self._unencodable, bytes_written=self._bytes,
+                             unencodable=self._unencodable + self._unencodable_here,
+                             bytes_written=self._bytes,
                              queue_peak=self._queue_peak, failed=self._failed)
 
     def close(self, timeout_s: float = 5.0) -> RecorderStats:
@@ -652,9 +670,12 @@ class SessionRecorder:
         while queue and self._failed is None:
             frames = []
             for _ in range(min(len(queue), _CHUNK_RECORDS)):
-                rec = queue.popleft()
+                item = queue.popleft()
+                if isinstance(item, bytes):       # encoded by the caller
+                    frames.append(item)
+                    continue
                 try:
-                    frames.append(encode_frame(rec.to_wire()))
+                    frames.append(encode_frame(item.to_wire()))
                 except Exception:  # noqa: BLE001 - one bad record must not stop the session
                     self._unencodable += 1
             data = b"".join(frames)
@@ -678,7 +699,7 @@ class SessionRecorder:
     def _write_end(self) -> None:
         end = SessionEnd(ended_at=datetime.now().astimezone().isoformat(timespec="microseconds"),
                          handed=self._handed, written=self._written, dropped=self._dropped,
-                         unencodable=self._unencodable)
+                         unencodable=self._unencodable + self._unencodable_here)
         data = encode_frame(end.to_wire())
         try:
             _write_all(self._file, data)

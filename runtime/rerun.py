@@ -11,7 +11,8 @@ situation. Closed loop (in lockstep with the simulated arm) lives in `runtime.lo
 `RecordedInputs` serves both.
 
 The settings a re-run reads from the session header (docs/SESSION_FORMAT.md):
-rate_hz (required), pad / pad_source, reduced_locked, locked, stale_after_s, overrun_limit.
+rate_hz (required), pad / pad_source, reduced_locked, locked, stale_after_s, overrun_limit,
+state_lag_cycles (closed loop; default 1).
 """
 
 from __future__ import annotations
@@ -51,6 +52,7 @@ class CycleSettings:
     reduced_locked: bool = False
     locked: tuple[str, ...] = ()
     safety: SafetySettings = SafetySettings()
+    state_lag_cycles: int = 1      # closed loop: cycles the pose lags (runtime.lockstep)
 
     def control_cycle(self, arm: Arm) -> ControlCycle:
         return ControlCycle(arm, self.pad, rate_hz=self.rate_hz, safety=self.safety,
@@ -77,10 +79,14 @@ def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> Cy
         reduced = settings.get("reduced_locked", False)
         if not isinstance(reduced, bool):
             raise TypeError(f"reduced_locked is {reduced!r}")
+        # A drive session over a real link sees its state at least a cycle late.
+        lag = settings.get("state_lag_cycles", 1)
+        if lag not in (0, 1) or isinstance(lag, bool):
+            raise ValueError(f"state_lag_cycles is {lag!r}, not 0 or 1")
     except (TypeError, ValueError) as exc:
         raise LogError(f"{where}: the header settings are malformed ({exc})") from None
     return CycleSettings(rate_hz=float(rate), pad=_pad(settings), reduced_locked=reduced,
-                         locked=locked, safety=safety)
+                         locked=locked, safety=safety, state_lag_cycles=lag)
 
 
 def _pad(settings: Mapping[str, Any]) -> PadMapping:

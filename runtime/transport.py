@@ -192,6 +192,8 @@ def check_endpoint(endpoint: str, keys: Keys | None, *, action: str) -> None:
 class _Socket:
     """One ZeroMQ socket on its own context, with the options every wire socket shares."""
 
+    ended = False   # a socket outlives its peers (they reconnect); a pipe link can end
+
     def __init__(self, kind: int, endpoint: str, *, bind: bool, keys: Keys | None) -> None:
         check_endpoint(endpoint, keys, action="bind" if bind else "connect to")
         self.context = zmq.Context()
@@ -322,6 +324,35 @@ class Inbox:
     refuse: Refuse | None = None
     count: int = 0
 
+    def add(self, msg: Message | ProtocolError, dropped: Counter[str]) -> None:
+        """Sort one decoded message in (malformed ones were counted when decoded); a
+        message the runtime never expects is counted in `dropped` as "unexpected"."""
+        if isinstance(msg, State):
+            if self.state is None or msg.seq > self.state.seq:
+                self.state = msg
+        elif isinstance(msg, Hello):
+            self.hello = msg
+        elif isinstance(msg, Refuse):
+            self.refuse = msg
+        elif not isinstance(msg, ProtocolError):
+            dropped["unexpected"] += 1
+
+
+def check_answer(inbox: Inbox, mine: Hello, endpoint: str) -> Hello | None:
+    """The arm side's hello in `inbox` (None if none came), checked against ours.
+
+    Raises ModelMismatch if the arms differ (either side's verdict), TransportError on a
+    refusal for another reason than "no_hello" (which only asks for our hello again).
+    """
+    if inbox.hello is not None:
+        check_hello(mine, inbox.hello)
+    if inbox.refuse is not None and inbox.refuse.code != "no_hello":
+        if inbox.refuse.code == "mismatch":
+            raise ModelMismatch(f"the arm side refused us: {inbox.refuse.reason}")
+        raise TransportError(f"the arm side at {endpoint} refused us "
+                             f"({inbox.refuse.code}): {inbox.refuse.reason}")
+    return inbox.hello
+
 
 class ArmClient(_Socket):
     """The runtime's socket to the arm side (DEALER, connects). Say `handshake` first.
@@ -377,16 +408,7 @@ class ArmClient(_Socket):
                 self.received += 1
                 self.dropped["framing"] += 1
                 continue
-            msg = self._decode(frames[0], self.n_joints)
-            if isinstance(msg, State):
-                if inbox.state is None or msg.seq > inbox.state.seq:
-                    inbox.state = msg
-            elif isinstance(msg, Hello):
-                inbox.hello = msg
-            elif isinstance(msg, Refuse):
-                inbox.refuse = msg
-            elif not isinstance(msg, ProtocolError):
-                self.dropped["unexpected"] += 1
+            inbox.add(self._decode(frames[0], self.n_joints), self.dropped)
         if inbox.refuse is not None and inbox.refuse.code == "no_hello" and \
                 self.clock() - self._last_hello >= self.rehello_s:
             self.say_hello()
@@ -406,14 +428,7 @@ class ArmClient(_Socket):
             if self.clock() - self._last_hello >= (0.1 if self._hello_sent else 0.005):
                 self.say_hello()
             inbox = self.receive(min(remaining, 0.005 if not self._hello_sent else 0.05))
-            if inbox.hello is not None:
-                theirs = inbox.hello
-                check_hello(self.hello, theirs)
-            if inbox.refuse is not None and inbox.refuse.code != "no_hello":
-                if inbox.refuse.code == "mismatch":
-                    raise ModelMismatch(f"the arm side refused us: {inbox.refuse.reason}")
-                raise TransportError(f"the arm side at {self.endpoint} refused us "
-                                     f"({inbox.refuse.code}): {inbox.refuse.reason}")
+            theirs = check_answer(inbox, self.hello, self.endpoint) or theirs
             if theirs is not None and inbox.state is not None:
                 return theirs, inbox.state
         raise TransportError(f"no answer from an arm side at {self.endpoint} within "

@@ -14,7 +14,7 @@ from docs/PROTOCOL.md; this module is the reference.
 from __future__ import annotations
 
 import math
-from collections import Counter
+from collections import Counter, deque
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -27,6 +27,10 @@ from runtime.protocol import Hello, LatenessFilter, Message, Rates, Refuse, Sequ
     hello_differences
 
 Vector = NDArray[np.float64]
+
+# Lockstep: rates waiting their turn at most (a runtime runs at most one cycle ahead; a
+# peer that never waits for states must not grow the queue without bound).
+MAX_IN_ORDER = 64
 
 
 @dataclass(frozen=True, eq=False)
@@ -122,7 +126,7 @@ class ArmSession:
     """
 
     def __init__(self, hello: Hello, *, stale_after_s: float, max_observers: int = 8,
-                 refuse_every_s: float = 0.1) -> None:
+                 refuse_every_s: float = 0.1, in_order: bool = False) -> None:
         self.hello = hello
         self.stale_after_ns = int(stale_after_s * 1e9)
         self.max_observers = max_observers
@@ -132,8 +136,11 @@ class ArmSession:
         self.observers: set[bytes] = set()
         self.gate = SequenceGate()
         self.lateness = LatenessFilter(stale_after_s)
-        self.pending: Rates | None = None      # newest accepted, not yet followed
-        self.pending_ns = 0
+        # Accepted, not yet followed, with arrival times. Paced: only the newest waits (an
+        # older one is superseded). Lockstep (in_order): each is followed once, in order,
+        # so a runtime may send the next rates before the state after the last came back.
+        self.in_order = in_order
+        self.waiting: deque[tuple[Rates, int]] = deque()
         self.applied: Rates | None = None      # the rates being followed
         self.applied_ns = 0                    # when they arrived
         self.greet: set[bytes] = set()         # peers accepted since the last state
@@ -187,7 +194,8 @@ class ArmSession:
             self.observers.discard(peer)
             self.gate.reset()
             self.lateness.reset()
-            self.pending = self.applied = None
+            self.waiting.clear()
+            self.applied = None
         self.controller_heard_ns = now_ns
         self.greet.add(peer)
         return reply
@@ -204,9 +212,10 @@ class ArmSession:
         elif not self.lateness.accept(rates.t_ns, now_ns):
             self.dropped["late"] += 1
         else:
-            if self.pending is not None:
+            if self.waiting and (not self.in_order or len(self.waiting) >= MAX_IN_ORDER):
+                self.waiting.popleft()
                 self.dropped["superseded"] += 1
-            self.pending, self.pending_ns = rates, now_ns
+            self.waiting.append((rates, now_ns))
         return []
 
     def _refuse(self, peer: bytes, code: str, text: str, now_ns: int, *, force: bool = False
@@ -227,17 +236,17 @@ class ArmSession:
         self.greet.discard(peer)
         if peer == self.controller:
             self.controller = None
-            self.pending = None
+            self.waiting.clear()
 
     # -- per step ------------------------------------------------------------------------
 
     def take_pending(self, now_ns: int) -> Rates | None:
-        """The newest accepted rates not yet followed (lockstep: step once with them)."""
-        rates, self.pending = self.pending, None
-        if rates is not None:
-            self.applied, self.applied_ns = rates, self.pending_ns
-            self.status = "tracking"
-        return rates
+        """The next accepted rates not yet followed (lockstep: step once with them)."""
+        if not self.waiting:
+            return None
+        self.applied, self.applied_ns = self.waiting.popleft()
+        self.status = "tracking"
+        return self.applied
 
     def decide(self, now_ns: int, step_ns: int = 0) -> Decision:
         """Paced mode: follow the newest rates while they are fresh and their sender is

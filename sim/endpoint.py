@@ -26,6 +26,7 @@ from typing import Callable, Protocol
 import numpy as np
 
 from runtime.model import Arm
+from runtime.pipe_link import PipeServer
 from runtime.transport import ArmServer
 
 from .arm_side import ArmSession, Reading, ramp_to_zero
@@ -47,9 +48,9 @@ class Target(Protocol):
 
 
 class ArmEndpoint:
-    """Serves one target on one ArmServer socket."""
+    """Serves one target on one link: an ArmServer socket, or a PipeServer in lockstep."""
 
-    def __init__(self, server: ArmServer, target: Target, session: ArmSession, *,
+    def __init__(self, server: ArmServer | PipeServer, target: Target, session: ArmSession, *,
                  clock_ns: Callable[[], int] = time.monotonic_ns,
                  sleep: Callable[[float], None] = time.sleep, substeps: int = 1) -> None:
         if substeps < 1:
@@ -102,9 +103,9 @@ class ArmEndpoint:
         self.publish(self.clock_ns())
 
     def cycle_lockstep(self, timeout_s: float) -> bool:
-        """Wait up to timeout_s for messages; if new rates came, step `substeps` times with
-        them and publish the state. True if stepped."""
-        if not self.server.poll(timeout_s):
+        """Wait up to timeout_s for messages (unless rates already wait); step `substeps`
+        times with the next rates and publish the state. True if stepped."""
+        if not self.session.waiting and not self.server.poll(timeout_s):
             return False
         now = self.clock_ns()
         self.receive(now)
@@ -149,7 +150,8 @@ class ArmEndpoint:
             pass
 
     def serve_lockstep(self, should_stop: Callable[[], bool], *, poll_s: float = 0.05) -> None:
-        while not should_stop():
+        """Until told to stop, or until the link ends (a pipe whose runtime is gone)."""
+        while not should_stop() and not self.server.ended:
             self.cycle_lockstep(poll_s)
 
     def summary(self) -> str:

@@ -29,7 +29,7 @@ import numpy as np
 from ..errors import ConfigError, LogError
 from ..inputs.script import ScriptSource, load_script
 from ..limits import REDUCED_SPEED_M_S
-from ..lockstep import LockstepSim, run_closed_loop, substeps_for
+from ..lockstep import STATE_LAGS, LockstepSim, run_closed_loop, substeps_for
 from ..mapping import InputFrame, load_pad
 from ..model import Arm, load_arm
 from ..pipeline import ControlCycle
@@ -57,6 +57,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--step-hz", type=float, default=1000.0, metavar="HZ",
                         help="physics steps per second, a whole multiple of --rate "
                              "(default 1000)")
+    parser.add_argument("--state-lag", type=int, choices=STATE_LAGS, default=1,
+                        metavar="CYCLES",
+                        help="how many cycles the measured pose each cycle works on lags "
+                             "behind the arm: 1 (default) as over a real link, 0 for a link "
+                             "without delay")
     parser.add_argument("--reduced", action="store_true",
                         help="reduced speed locked on: TCP ≤ 0.25 m/s (ISO 10218-1)")
     parser.add_argument("--out", metavar="DIR", default=DEFAULT_OUT,
@@ -128,7 +133,8 @@ def run(args: argparse.Namespace) -> int:
     stem = _free_stem(out_dir, f"{arm.name}-{profile.name}")
     reduced = bool(args.reduced or profile.reduced_locked)
     run_info = run_preflight(args.arm, arm, profile, rate_hz=args.rate, step_hz=args.step_hz,
-                             reduced=reduced, log_path=out_dir / f"{stem}{SESSION_SUFFIX}")
+                             reduced=reduced, log_path=out_dir / f"{stem}{SESSION_SUFFIX}",
+                             state_lag=args.state_lag)
     result = run_info.result
     paths = {"session_log": str(run_info.log_path), "summary": str(out_dir / f"{stem}.json")}
     if not args.no_report:
@@ -162,9 +168,11 @@ class PreflightRun:
 
 
 def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
-                  step_hz: float, reduced: bool, log_path: Path,
+                  step_hz: float, reduced: bool, log_path: Path, state_lag: int = 1,
                   progress: Progress | None = None) -> PreflightRun:
-    """Run `profile` on the simulated arm in lockstep, record it, evaluate it."""
+    """Run `profile` on the simulated arm in lockstep, record it, evaluate it.
+
+    state_lag: cycles the measured pose lags behind the arm (`lockstep.run_closed_loop`)."""
     safety = SafetySettings()
     pad = load_pad(profile.pad_source) if Path(profile.pad_source).exists() \
         else load_pad(profile.pad_name)
@@ -173,7 +181,8 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                        "rate_hz": rate_hz, "step_hz": step_hz, "reduced_locked": reduced,
                        "stale_after_s": safety.stale_after_s,
                        "overrun_limit": safety.overrun_limit, "target": "sim child, lockstep",
-                       "target_kind": "sim child", "clock": "simulated (t = cycle / rate)"}
+                       "target_kind": "sim child", "clock": "simulated (t = cycle / rate)",
+                       "state_lag_cycles": state_lag}
     cycle = ControlCycle(arm, pad, rate_hz=rate_hz, safety=safety, reduced_locked=reduced)
     dt = cycle.dt_s
     n_cycles = int(math.ceil((profile.duration_s + TAIL_S) * rate_hz - 1e-9))
@@ -185,13 +194,13 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
     with LockstepSim(arm_spec, arm, rate_hz=rate_hz, step_hz=step_hz,
                      start_q=profile.start_q) as sim, \
             SessionRecorder.start(log_path, arm, cycle_settings_, started_at=started_at,
-                                  queue_size=RECORDER_QUEUE) as recorder:
+                                  queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)
 
         def prepare(k: int, t: float, frame: InputFrame, out: Any, q: np.ndarray,
-                    compute_s: float) -> None:
+                    compute_s: float, state_age_s: float) -> None:
             """Record the cycle while the simulated arm steps."""
-            rec = cycle_record(k, t, frame, out, q, state_age_s=0.0, overrun_streak=0,
+            rec = cycle_record(k, t, frame, out, q, state_age_s=state_age_s, overrun_streak=0,
                                period_s=dt, compute_s=compute_s, overrun=False)
             recorder.record(rec)
             sol = out.solution
@@ -199,8 +208,9 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                             commanded_twist=np.zeros(6) if sol is None else sol.commanded_twist)
             computes[k] = compute_s
 
-        for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles, prepare=prepare):
-            trace.add_state(c.after.q, c.after.qd, c.after.limited)
+        for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles,
+                                 state_lag=state_lag, prepare=prepare):
+            trace.add_state(c.after.q, c.after.qd, c.after.limited, cycle=c.k)
             bar.update((c.k + 1) * dt)
         bar.close()
     wall = time.perf_counter() - wall0

@@ -175,7 +175,8 @@ def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRec
     start_q = recorded_q[0] if records[0].q else None
     with LockstepSim(spec, arm, rate_hz=settings.rate_hz, step_hz=args.step_hz,
                      start_q=start_q) as sim:
-        for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles):
+        for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
+                                 state_lag=settings.state_lag_cycles):
             rates[c.k] = c.out.rates
             q_dev = np.maximum(q_dev, np.abs(c.q_used - recorded_q[c.k]))
             bar.update((c.k + 1) * cycle.dt_s)

@@ -20,6 +20,7 @@ options (passed to the simulated arm; `jogwire sim ARM --help` explains each):
   --step-hz HZ        physics steps per second (default 1000)
   --lockstep          one step per received rates message, no pacing
   --substeps N        with --lockstep: physics steps per rates message (default 1)
+  --link fd:R,W       with --lockstep: serve on inherited pipe ends (a parent's own child)
   --q V…              the start pose (rad and m; degrees with --deg)
   --stale-after S     no fresh rates for S seconds → ramp to zero (default 0.1)
   --duration S        stop after S seconds

@@ -1,5 +1,5 @@
 """`jogwire preflight` end to end: the control cycle in lockstep with the simulated arm in a
-child process (PyBullet DIRECT, loopback socket), the verdict, the JSON, the HTML report
+child process (PyBullet DIRECT, over a pair of pipes), the verdict, the JSON, the HTML report
 and the session log of the run. Profiles are a few seconds long.
 """
 

@@ -134,7 +134,8 @@ def test_cycle_record_wire_map_holds_every_field() -> None:
     assert set(wire) - {"kind"} == {f.name for f in dataclasses.fields(CycleRecord)}
 
 
-def test_every_field_round_trips(tmp_path: Path, arm) -> None:
+@pytest.mark.parametrize("encode_in_caller", [False, True])
+def test_every_field_round_trips(tmp_path: Path, arm, encode_in_caller: bool) -> None:
     path = tmp_path / "s.jwlog"
     records = [sample_record(i) for i in range(40)]
     # ndarray inputs (what a solver hands over) come back as the same floats
@@ -144,7 +145,8 @@ def test_every_field_round_trips(tmp_path: Path, arm) -> None:
                 "presets": (0.1, 0.5), "target": None}
     start = datetime(2030, 1, 2, 3, 4, 5, 678_000, tzinfo=timezone(timedelta(hours=2)))
     rec = SessionRecorder.start(path, arm, settings, flush_interval_s=0.05, started_at=start,
-                                started_monotonic_ns=123_456_789)
+                                started_monotonic_ns=123_456_789,
+                                encode_in_caller=encode_in_caller)
     for r in records[:7] + [as_arrays] + records[8:]:
         assert rec.record(r)
     stats = rec.close()
@@ -481,11 +483,15 @@ def test_records_dropped_on_a_full_queue_are_reported_by_the_reader(tmp_path: Pa
     assert kinds(s.problems) == [DROPPED]
 
 
-def test_an_unencodable_record_is_skipped_and_counted(tmp_path: Path, arm) -> None:
+@pytest.mark.parametrize("encode_in_caller", [False, True])
+def test_an_unencodable_record_is_skipped_and_counted(tmp_path: Path, arm,
+                                                      encode_in_caller: bool) -> None:
     path = tmp_path / "s.jwlog"
-    rec = SessionRecorder.start(path, arm, {})
+    rec = SessionRecorder.start(path, arm, {}, encode_in_caller=encode_in_caller)
     rec.record(sample_record(0))
-    rec.record(dataclasses.replace(sample_record(1), q=("not", "numbers")))
+    # caller-side encoding refuses it at once; the writer thread skips it later
+    assert rec.record(dataclasses.replace(sample_record(1), q=("not", "numbers"))) \
+        is not encode_in_caller
     rec.record(sample_record(2))
     stats = rec.close()
     assert (stats.written, stats.unencodable, stats.failed) == (2, 1, None)

@@ -11,7 +11,7 @@ import pytest
 from runtime.errors import ProtocolError
 from runtime.model import load_arm
 from runtime.protocol import Hello, Rates, Refuse, Twist, hello_for
-from sim.arm_side import ArmSession, Reading, guard_rates, ramp_to_zero, stop_time_s
+from sim.arm_side import MAX_IN_ORDER, ArmSession, Reading, guard_rates, ramp_to_zero, stop_time_s
 
 MS = 1_000_000  # ns
 
@@ -176,6 +176,32 @@ def test_newest_fresh_rates_are_followed_old_and_late_ones_dropped(session, arm)
     assert session.dropped["late"] == 1
     assert session.decide(155 * MS).status == "stale"     # 0.3 arrived at 3 ms: too old
     assert session.applied.seq == 3
+
+
+def test_in_order_session_follows_every_rates_message_once_in_order(arm) -> None:
+    """Lockstep: the runtime may send the next rates before the state after the last came
+    back; each accepted message is stepped once, in order, and none is superseded."""
+    session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
+                         in_order=True)
+    session.on_message(RUNTIME, runtime_hello(arm), 0)
+    for seq in (1, 2, 3):
+        session.on_message(RUNTIME, rates(seq, seq * MS, v=0.1 * seq), seq * MS)
+    session.on_message(RUNTIME, rates(2, 2 * MS), 4 * MS)          # a repeat: still dropped
+    taken = [session.take_pending(5 * MS) for _ in range(4)]
+    assert [r.seq for r in taken[:3]] == [1, 2, 3] and taken[3] is None
+    assert session.applied.seq == 3 and session.dropped == {"old_seq": 1}
+
+
+def test_in_order_queue_is_bounded(arm) -> None:
+    session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
+                         in_order=True)
+    session.on_message(RUNTIME, runtime_hello(arm), 0)
+    n = MAX_IN_ORDER + 5
+    for seq in range(1, n + 1):
+        session.on_message(RUNTIME, rates(seq, seq), seq)
+    assert len(session.waiting) == MAX_IN_ORDER
+    assert session.dropped["superseded"] == 5
+    assert session.take_pending(n + 1).seq == 6             # the oldest ones went first
 
 
 def test_stale_then_fresh_again(session, arm) -> None:
