@@ -54,10 +54,13 @@ STEP_HZ = 1000.0
 ARM = "reach7"
 
 ECHO_CHILD = r"""
-import os, sys, zmq
+import os, sys, time, zmq
 if sys.argv[1] == "pipe":
-    r, w = int(sys.argv[2]), int(sys.argv[3])
+    r, w, work_s = int(sys.argv[2]), int(sys.argv[3]), float(sys.argv[4])
     while (data := os.read(r, 4096)) != b"stop":
+        t = time.perf_counter()
+        while time.perf_counter() - t < work_s:
+            pass
         os.write(w, data)
     sys.exit(0)
 ctx = zmq.Context()
@@ -179,17 +182,20 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
     out["physics (2 steps, in process)"] = statistics.median(times) / 1e3
 
     out["pipe round trip (bare)"] = pipe_round_trip(len(records))
+    out["pipe round trip, 300 µs of work each side"] = pipe_round_trip(len(records) // 2, 3e-4)
     out["socket round trip (bare ZeroMQ)"] = echo_round_trip(len(records))
     return out
 
 
-def pipe_round_trip(n: int) -> float:
+def pipe_round_trip(n: int, work_s: float = 0.0) -> float:
     """Median µs of a 120-byte message to a child and back over two pipes, both ends
-    blocking in read (the cost a sleeping reader's wake-up adds is in here)."""
+    blocking in read. With work_s, each side works that long between messages (busy, as
+    the control cycle and the physics do), so each message finds its reader asleep; the
+    result is the round trip less the two work periods: what waking a reader costs."""
     to_child, from_child = os.pipe(), os.pipe()
     child = subprocess.Popen([sys.executable, "-c", ECHO_CHILD, "pipe", str(to_child[0]),
-                              str(from_child[1])], pass_fds=(to_child[0], from_child[1]),
-                             env=child_env())
+                              str(from_child[1]), repr(work_s)],
+                             pass_fds=(to_child[0], from_child[1]), env=child_env())
     os.close(to_child[0])
     os.close(from_child[1])
     payload = b"x" * 120
@@ -199,7 +205,10 @@ def pipe_round_trip(n: int) -> float:
             t = time.perf_counter_ns()
             os.write(to_child[1], payload)
             os.read(from_child[0], 4096)
-            times.append(time.perf_counter_ns() - t)
+            times.append(time.perf_counter_ns() - t - int(work_s * 1e9))
+            busy = time.perf_counter()
+            while time.perf_counter() - busy < work_s:
+                pass
         os.write(to_child[1], b"stop")
     finally:
         child.wait(timeout=10)
