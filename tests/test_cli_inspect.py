@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import json
+import dataclasses
 import math
 import subprocess
 import sys
@@ -48,7 +49,8 @@ def synthetic_record(i: int) -> CycleRecord:
         cycle=i, t_s=t, axes=(0.1, -0.1, 0.0), buttons=(True, False), enabled=i < 900,
         enable_reason="held" if i < 900 else "released", twist=linear + angular,
         frame="base", q=q, rates=rates, damping=0.01 if 630 <= i < 650 else 0.0,
-        sigma_min=0.004 if i == 640 else 0.2, manipulability=0.02,
+        # a cycle without motion allowed has no solve: NaN, as cycle_record writes it
+        sigma_min=math.nan if i >= 900 else 0.004 if i == 640 else 0.2, manipulability=0.02,
         achieved_twist=linear + angular, tracking_error=0.0,
         scales={"speed": 0.8 if binding(i) == "speed" else 1.0, "tcp": 1.0},
         binding_limit=binding(i), period_s=0.005 if overrun else DT,
@@ -217,3 +219,20 @@ def test_not_a_session_log_is_a_clean_error(tmp_path: Path) -> None:
     assert done.stderr.startswith("jogwire inspect:") and "not a jogwire session log" in \
         done.stderr
     assert "Traceback" not in done.stderr and done.stdout == ""
+
+
+def test_an_acceleration_at_exactly_the_max_is_not_flagged(tmp_path: Path, capsys) -> None:
+    """A ramp of max_accel·dt per cycle (what the acceleration limit commands) reads back a
+    few ulp off max_accel; that is at the limit, not above it."""
+    arm = load_arm("elbow6")
+    a = float(arm.max_accel[0])
+    path = tmp_path / "ramp.jwlog"
+    rec = SessionRecorder.start(path, arm, {"rate_hz": 500})
+    for i in range(40):
+        r = dataclasses.replace(synthetic_record(i), rates=(a * DT * min(i, 20),) + (0.0,) * 5,
+                                achieved_twist=(0.0,) * 6)
+        rec.record(r)
+    rec.close()
+    j = run_json(capsys, str(path))["joints"][0]
+    assert j["peak_accel"] == pytest.approx(a, rel=1e-9)
+    assert not j["over_max_accel"] and not j["over_rated_accel"]

@@ -149,9 +149,11 @@ class SessionStats:
         if reduced.any():
             self.tcp_peak_reduced = _peak(self.tcp_peak_reduced or (-math.inf, math.nan),
                                           linear[reduced], t[reduced])
-        i = int(np.argmin(sigma))
-        if sigma[i] < self.min_sigma[0]:
-            self.min_sigma = (float(sigma[i]), float(t[i]))
+        solved = np.flatnonzero(np.isfinite(sigma))   # NaN: no solve (motion not allowed)
+        if solved.size:
+            i = int(solved[np.argmin(sigma[solved])])
+            if sigma[i] < self.min_sigma[0]:
+                self.min_sigma = (float(sigma[i]), float(t[i]))
 
         for r in records:
             name = r.binding_limit
@@ -272,7 +274,9 @@ def _peak(current: tuple[float, float], values: np.ndarray, t: np.ndarray
 
 
 def _over(peak: float | None, limit: float) -> bool:
-    return peak is not None and peak > limit
+    """Above the limit beyond rounding: a rate stepped by exactly max_accel·dt comes back
+    as an acceleration a few ulp off max_accel (the same 1e-9 as runtime.preflight)."""
+    return peak is not None and peak > limit * (1.0 + 1e-9)
 
 
 def _value(x: float) -> float | None:
