@@ -266,8 +266,8 @@ def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
          does over a real link: the rates it sent last cycle have not yet acted on the state
          it reads (the position brake in `limits` allows one cycle of it). This process
          then computes cycle k while the simulated arm steps cycle k−1 (two cores busy).
-    Either way the run is deterministic: the arm steps every cycle's rates once, in order,
-    and at most one message waits at the arm side, so none is superseded.
+    Either way the run is deterministic: the arm side follows lockstep rates once each, in
+    order (`ArmSession(in_order=True)`), and each state is paired with its rates by seq.
 
     `prepare(k, t, frame, out, q_used, compute_s, state_age_s)` runs while the simulated
     arm steps; its result comes back in `prepared`. Cycles come out in order, each once

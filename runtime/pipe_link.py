@@ -64,13 +64,13 @@ class PipeEnd:
         self.received = 0
 
     def send_frame(self, payload: bytes) -> bool:
-        """Write one frame, whole (a pipe write blocks until the reader takes it, which a
-        lockstep peer always does); False if the other end is gone."""
+        """Write one frame, whole; False if the other end is gone. (A write waits only when
+        the pipe's buffer, 64 KiB on Linux, is full: a lockstep peer reads every message.)"""
         data = memoryview(_LENGTH.pack(len(payload)) + payload)
         try:
             while data:
                 data = data[os.write(self.write_fd, data):]
-        except (BrokenPipeError, OSError):
+        except OSError:                     # BrokenPipeError: the reader closed its end
             self.ended = True
             return False
         return True
