@@ -191,10 +191,13 @@ def main() -> int:
     # SIGTERM unwinds like Ctrl-C, so the running set of processes is stopped too.
     signal.signal(signal.SIGTERM, lambda *_: sys.exit(143))
     started = time.monotonic()
+    parts: list[dict] = []          # --table-from: what each earlier campaign said of itself
     if args.table_from:
         results = {}
         for path in args.table_from:
-            results.update(json.loads(Path(path).read_text())["runs"])
+            saved = json.loads(Path(path).read_text())
+            results.update(saved["runs"])
+            parts.append(saved)
         names = [n for n in (args.only or faultkit.FAULTS) if n in results]
     else:
         names = args.only or list(faultkit.FAULTS)
@@ -215,7 +218,11 @@ def main() -> int:
               + ("`drive --realtime` and the simulated arm at SCHED_FIFO "
                  f"{faultkit.ARM_PRIORITY}" if faultkit.REALTIME else "normal priorities"))
     if args.table_from:
-        header += " (table made from the saved runs with --table-from)."
+        loads = ", ".join(f"{q['load_end']:.1f}" for q in parts if "load_end" in q)
+        took = sum(q.get("elapsed_s", 0.0) for q in parts)
+        header += (f", in {len(parts)} parts (`--only`, the table made from their runs with "
+                   f"`--table-from`); load average at the end of each part {loads or '—'}, "
+                   f"{took:.0f} s in all.")
     else:
         header += (f"; load average at the end {load[0]:.1f}, "
                    f"{time.monotonic() - started:.0f} s in all.")
@@ -224,8 +231,10 @@ def main() -> int:
     print()
     print(text)
     if args.json and not args.table_from:
-        Path(args.json).write_text(json.dumps({"header": header, "summaries": summaries,
-                                               "runs": results}, indent=1, default=str))
+        Path(args.json).write_text(json.dumps({"header": header, "load_end": load[0],
+                                               "elapsed_s": time.monotonic() - started,
+                                               "summaries": summaries, "runs": results},
+                                              indent=1, default=str))
     if args.update_doc:
         update_doc(text, header)
     return 0
