@@ -142,6 +142,9 @@ def _also(s: dict) -> str:
                      f"{f['applied_per_s_after'][0]:.0f}–{f['applied_per_s_after'][1]:.0f} "
                      f"(before {f['applied_per_s_before'][0]:.0f}–"
                      f"{f['applied_per_s_before'][1]:.0f})")
+    if "observer_missed" in f:
+        parts.append(f"observer missed ≤ {f['observer_missed'][1]:.0f} states in a run "
+                     "(unknown-q check partial there)")
     if "longest_streak" in f:
         parts.append(f"overrun streak up to {f['longest_streak'][1]:.0f}")
     return "; ".join(parts) or "—"

@@ -22,11 +22,12 @@ ending"), so zero rates go out and are recorded, until a state shows the arm sid
 them and measures the arm at rest (or `SETTLE_TIMEOUT_S` passes). Then the recorder closes
 and the simulated arm is stopped. A second Ctrl-C ends the loop at once.
 
-Faults. Besides what the safety gate watches itself (input device, state age, overrun
-streak, the link's round trip), the loop holds motion when the command path fails: this loop paused longer than
-stale_after, the arm side reports that its watchdog took over, it has applied none of our
-rates for stale_after, it refused us, or it came back as another arm. A hold makes the gate
-forget the enable press, so motion never resumes by itself when the fault clears.
+Faults. Besides what the safety gate watches itself (input device, state age, overruns,
+the link's round trip), the loop holds motion when the command path fails: this loop paused
+longer than stale_after, the arm side reports that its watchdog took over, it has applied
+none of our rates for stale_after, it refused us, or it came back as another arm. A hold
+makes the gate forget the enable press, so motion never resumes by itself when the fault
+clears.
 
 Link health. State age is how old the measured q is when a cycle uses it: with the arm side
 on this host and the same monotonic clock (our own child) it is now − the state's stamp,
@@ -312,11 +313,10 @@ class RunStats:
                                       math.sqrt(a[3]**2 + a[4]**2 + a[5]**2))
 
     def add_round_trip(self, level_s: float | None, limit_s: float) -> None:
-        if level_s is not None and level_s > limit_s:
-            self.round_trip_over += 1
-        if level_s is not None and (self.round_trip_worst_s is None or
-                                    level_s > self.round_trip_worst_s):
-            self.round_trip_worst_s = level_s
+        """One cycle's round-trip median (s, None before the first) against the limit."""
+        if level_s is not None:
+            self.round_trip_over += level_s > limit_s
+            self.round_trip_worst_s = max(level_s, self.round_trip_worst_s or 0.0)
 
     def add_state(self, state: State, qd: np.ndarray) -> None:
         self.states += 1

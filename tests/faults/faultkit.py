@@ -35,6 +35,7 @@ from __future__ import annotations
 import bisect
 import json
 import os
+import random
 import re
 import resource
 import signal
@@ -403,25 +404,31 @@ def applied_backwards(states: list[State]) -> int:
     return sum(1 for a, b in zip(states, states[1:]) if b.applied_seq < a.applied_seq)
 
 
+def observer_missed(states: list[State]) -> int:
+    """States the observer did not get (the arm side numbers every state it sends)."""
+    return sum(b.seq - a.seq - 1 for a, b in zip(states, states[1:]) if b.seq > a.seq + 1)
+
+
 def runtime_state_use(session, states: list[State]) -> tuple[int, int]:
     """What the runtime acted on, from its session log: (cycles that used an older state than
     an earlier cycle had used, cycles whose q is in no state the arm sent).
 
-    Each cycle's q is matched to the states the arm sent (the observer sees them all; at
-    rest many states share one q, hence a greedy match: the oldest candidate not older than
-    the previous cycle's). Cycles before the first match used states sent before the
-    observer connected and are skipped."""
+    Each cycle's q is matched to the states the arm sent, as the observer saw them (at rest
+    many states share one q, hence a greedy match: the oldest candidate not older than the
+    previous cycle's). Cycles before the first match used states sent before the observer
+    connected and are skipped. An observer that missed states (`observer_missed`: a busy
+    machine) cannot vouch for a q it did not see: then no q counts as unknown."""
     if session is None:
         return 0, 0
     seqs: dict[tuple[float, ...], list[int]] = {}
     for s in states:                                   # states arrive in seq order
         seqs.setdefault(tuple(s.q), []).append(s.seq)
     older = unknown = floor = 0
-    matched = False
+    matched, missed = False, observer_missed(states)
     for rec in session.records:
         candidates = seqs.get(tuple(rec.q)) if rec.q else None
         if candidates is None:
-            unknown += matched and bool(rec.q)
+            unknown += matched and bool(rec.q) and not missed
             continue
         matched = True
         i = bisect.bisect_left(candidates, floor)
@@ -494,6 +501,11 @@ def result_for(name: str, c: Collected, t_event_ns: int | None, measured_from: s
     exercised = t_event_ns is not None and speed_before(states, t_event_ns) > MOVING
     older, unknown = runtime_state_use(c.session, states)
     notes = []
+    figures = {}
+    if (missed := observer_missed(states)):
+        figures["observer_missed"] = missed
+        notes.append(f"the observer missed {missed} states: a q it did not see is not "
+                     "counted as unknown")
     if busy_window is not None and busy_window[1] is None:    # until the stop
         busy_window = (busy_window[0], stop.t_ns if stop is not None else t_event_ns)
     if busy_window is not None and overran_between(c, *busy_window):
@@ -501,6 +513,7 @@ def result_for(name: str, c: Collected, t_event_ns: int | None, measured_from: s
         notes.append("disturbed: the runtime's loop overran (machine busy)")
     return FaultResult(
         fault=name, measured_from=measured_from, exercised=exercised, notes=notes,
+        figures=figures,
         stop_s=None if stop is None else (stop.t_ns - t_event_ns) * 1e-9,
         bound_s=STALE_AFTER_S + braking + CYCLE_S, braking_s=braking, restarted=restarted,
         applied_backwards=applied_backwards(states), garbage_acted_on=acted,
@@ -625,8 +638,11 @@ def runtime_killed(folder: Path, seed: int = 1) -> FaultResult:
         os.kill(rig.drive.pid, signal.SIGKILL)
         time.sleep(1.0)                    # watch the arm stop and stay stopped
         return t
+    # The kill lands anywhere in the recorder's flush cycle (a seeded draw), so that the
+    # repeats sample the whole range of unflushed tails, not one phase of it.
+    after_s = FAULT_AFTER_S + random.Random(seed).uniform(0.0, FLUSH_S)
     c, t_motion, _, t_fault = _script_run("runtime killed (-9)", folder, inject=kill,
-                                          seed=seed)
+                                          seed=seed, after_s=after_s)
     r = result_for("runtime killed (-9)", c, t_fault, "fault",
                    restart_until_ns=t_fault + int(1e9), busy_window=(t_motion, t_fault))
     if c.session is not None and c.session.records:
