@@ -847,8 +847,13 @@ FAULTS: dict[str, Callable[[Path, int], FaultResult]] = {
                           "version toward the arm)",
                           ["--garbage", "20%", "--garbage-kinds",
                            "rates=" + ",".join(k for k in GARBAGE_KINDS if k != "version")]),
-    "garbage_version": link_fault("garbage of every kind, incl. a foreign protocol version",
-                                  ["--garbage", "20%"]),
+    # Every rates message comes after a frame of another protocol version, so the stop is
+    # measured from the first one (at 20 % of all kinds it would come at a random time).
+    "garbage_version": link_fault("a foreign protocol version toward the arm, garbage toward "
+                                  "the runtime",
+                                  ["--garbage", "rates=100%", "--garbage-burst", "rates=1",
+                                   "--garbage-kinds", "rates=version", "--garbage",
+                                   "state=20%"]),
     "pad_unplugged": pad_unplugged,
     "disk_full": disk_full,
     "loop_starved": loop_starved,
