@@ -125,7 +125,7 @@ def _also(s: dict) -> str:
     """What only this fault has, over all runs, in words."""
     f, parts = s["figures"], []
     if s["peak_speed_worst"] is not None:
-        parts.append(f"arm never moved: peak |q̇| {s['peak_speed_worst']:.0e} rad/s")
+        parts.append(f"arm never moved: peak joint speed {s['peak_speed_worst']:.0e} rad/s")
     if "round_trip_shown_s" in f:
         lo, hi = f["round_trip_shown_s"]
         parts.append(f"runtime showed round trip {lo * 1e3:.0f}–{hi * 1e3:.0f} ms")
