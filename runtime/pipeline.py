@@ -6,7 +6,8 @@
 `ControlCycle` is what `jogwire drive` runs at its loop rate, what `jogwire preflight` runs in
 lockstep with the simulated arm and what `jogwire replay --rerun` feeds recorded inputs
 through. Everything that varies between those — time, the measured pose and its age, the
-loop's overrun streak — is an argument, so the same inputs always give the same rates.
+loop's overrun streak, the link's round trip — is an argument, so the same inputs always give
+the same rates.
 
 The cycle length `dt_s` is the nominal period (1 / rate), not a measured one: the limits
 then hold for the commanded profile whatever the scheduler did, and a re-run reproduces the
@@ -56,17 +57,19 @@ class ControlCycle:
 
     def step(self, frame: InputFrame, now_s: float, q: Vector | None,
              state_stamp_s: float | None, *, overrun_streak: int = 0,
-             hold: str | None = None) -> CycleOutput:
+             round_trip_s: float | None = 0.0, hold: str | None = None) -> CycleOutput:
         """One cycle at time now_s (s, loop clock) with the newest measured pose q.
 
         state_stamp_s: when q was received (same clock), None before the first state.
+        round_trip_s: the link's measured round trip (s), None before one was measured; the
+            default 0.0 is a link without delay (preflight's lockstep, re-runs).
         hold: a reason from the caller that forbids motion (target not ready, …).
         """
         intent = self.mapper.update(frame)
         verdict = self.gate.update(now_s, enable=intent.enable, stop=intent.stop,
                                    reset=intent.reset, present=intent.present,
                                    state_stamp_s=state_stamp_s, overrun_streak=overrun_streak,
-                                   hold=hold)
+                                   round_trip_s=round_trip_s, hold=hold)
         if not verdict.allowed or q is None:
             # Hold-to-move: zero at once. The arm side brakes at its rated deceleration.
             self.prev_rates = np.zeros(self.arm.n)

@@ -15,15 +15,18 @@ this version raises `ProtocolError(reason=…)` with `reason` one of `REASONS`; 
 count and drop it. `encode` runs the same checks, so we never send what a peer must refuse.
 
 Times on the wire are integer nanoseconds of the *sender's* monotonic clock; the helpers at
-the end (`SequenceGate`, `LatenessFilter`, `StateFreshness`) turn them into the timing rules
-(newest wins, a late message is dropped, no fresh state → command zero). They take the
-receive time as an argument: this module reads no clock.
+the end (`SequenceGate`, `LatenessFilter`, `StateFreshness`, `RoundTripMeter`) turn them into
+the timing rules (newest wins, a late message is dropped, no fresh state → command zero, a
+slow link is measured). They take the receive time as an argument: this module reads no
+clock.
 """
 
 from __future__ import annotations
 
+import bisect
 import hashlib
 import math
+from collections import deque
 from dataclasses import dataclass, fields
 from typing import Any, Callable, Union
 
@@ -521,3 +524,38 @@ class StateFreshness:
         self.gate.reset()
         self.lateness.reset()
         self.latest = self.received_ns = None
+
+
+class RoundTripMeter:
+    """The link's round trip as the runtime sees it, on its own clock alone: a state that
+    shows rates applied for the first time echoes their send time (`echo_ns`), so
+    receive time − echo is one round trip (`add` each such sample).
+
+    `level_s` is the median of the samples received in the last `window_s` (at most
+    `max_samples` of them; the newest always counts), None before the first: one late state
+    barely moves it (the lateness filters deal with a single late message), a link that stays
+    slow for half a window moves it all the way. The upper median of an even count is taken.
+    """
+
+    def __init__(self, window_s: float = 0.5, max_samples: int = 256) -> None:
+        if not (window_s > 0 and max_samples >= 1):
+            raise ValueError("window_s must be positive and max_samples ≥ 1")
+        self.window_s = window_s
+        self.max_samples = max_samples
+        self._recent: deque[tuple[float, float]] = deque()   # (received s, round trip s)
+        self._sorted: list[float] = []
+        self.level_s: float | None = None
+
+    def add(self, round_trip_s: float, now_s: float) -> None:
+        self._recent.append((now_s, round_trip_s))
+        bisect.insort(self._sorted, round_trip_s)
+        while len(self._recent) > self.max_samples or \
+                self._recent[0][0] < now_s - self.window_s:
+            _, old = self._recent.popleft()
+            del self._sorted[bisect.bisect_left(self._sorted, old)]
+        self.level_s = self._sorted[len(self._sorted) // 2]
+
+    def reset(self) -> None:
+        self._recent.clear()
+        self._sorted.clear()
+        self.level_s = None

@@ -12,7 +12,9 @@ situation. Closed loop (in lockstep with the simulated arm) lives in `runtime.lo
 
 The settings a re-run reads from the session header (docs/SESSION_FORMAT.md):
 rate_hz (required), pad / pad_source, reduced_locked, locked, stale_after_s, overrun_limit,
-state_lag_cycles (closed loop; default 1).
+max_round_trip_s, state_lag_cycles (closed loop; default 1). A cycle the session blocked
+for its link's round trip is re-run blocked for the recorded reason (a re-run has no link:
+its round trip is 0).
 """
 
 from __future__ import annotations
@@ -72,9 +74,11 @@ def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> Cy
                        f"a re-run needs the loop rate")
     try:
         defaults = SafetySettings()
+        rtt = settings.get("max_round_trip_s")
         safety = SafetySettings(
             stale_after_s=float(settings.get("stale_after_s", defaults.stale_after_s)),
-            overrun_limit=int(settings.get("overrun_limit", defaults.overrun_limit)))
+            overrun_limit=int(settings.get("overrun_limit", defaults.overrun_limit)),
+            max_round_trip_s=None if rtt is None else float(rtt))
         locked = tuple(str(a) for a in settings.get("locked", ()) or ())
         reduced = settings.get("reduced_locked", False)
         if not isinstance(reduced, bool):

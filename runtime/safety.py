@@ -8,7 +8,8 @@ The gate has five states (names are ours):
     rearm    enable held but not freshly pressed (held at start, held when the device
              appeared, held through a fault or a stop): release it, then press again
     blocked  something forbids motion whatever the operator does: no input device, no or
-             stale arm state, a streak of loop overruns, or a hold reason from the caller
+             stale arm state, a loop that keeps overrunning, a link whose round trip is too
+             long for a stop to arrive in time, or a hold reason from the caller
     stopped  stop was pressed; latched until reset is pressed with enable (and stop) released
 
 Every `update` returns a `Verdict(allowed, state, reason)`. Releasing enable zeroes motion in
@@ -17,12 +18,22 @@ operator must release and press enable again — the same rule as a three-positi
 device, where going back to the centre position must not restart motion (IEC 60204-1 10.9,
 ISO 10218-1:2011 5.8.3, from memory; REFERENCES §4).
 
+Round trip. Letting go of enable stops the arm only when the zero rates reach it, one
+one-way delay later. Neither end can tell a steady delay from a quick link (the lateness
+filters measure delay against the quickest message seen), but the runtime can measure the
+round trip on its own clock, and the way to the arm is part of it. So motion is refused
+while the link's round trip is above `max_round_trip_s` (default: stale_after_s, so a
+release reaches the arm within the time its own watchdog allows), and before one has been
+measured at all.
+
 This is an operational interlock in software. It is not a safety function: a real arm needs
 a safety-rated enabling device and stop (docs/SAFETY.md).
 """
 
 from __future__ import annotations
 
+import math
+from collections import deque
 from dataclasses import dataclass
 from typing import NamedTuple
 
@@ -37,16 +48,27 @@ STATES = (READY, MOVING, REARM, BLOCKED, STOPPED)
 @dataclass(frozen=True)
 class SafetySettings:
     """stale_after_s: arm state older than this (s) forbids motion.
-    overrun_limit: this many overrunning loop cycles in a row forbid motion."""
+    overrun_limit: this many overrunning loop cycles in a row, or among the last
+    2 × overrun_limit cycles, forbid motion.
+    max_round_trip_s: a link round trip above this (s) forbids motion; None: stale_after_s
+    (`round_trip_limit_s` is the value in force)."""
 
     stale_after_s: float = 0.05
     overrun_limit: int = 5
+    max_round_trip_s: float | None = None
 
     def __post_init__(self) -> None:
-        if not self.stale_after_s > 0:
+        if not (math.isfinite(self.stale_after_s) and self.stale_after_s > 0):
             raise ValueError(f"stale_after_s must be positive, got {self.stale_after_s}")
         if self.overrun_limit < 1:
             raise ValueError(f"overrun_limit must be ≥ 1, got {self.overrun_limit}")
+        rtt = self.max_round_trip_s
+        if rtt is not None and not (math.isfinite(rtt) and rtt > 0):
+            raise ValueError(f"max_round_trip_s must be positive, got {rtt}")
+
+    @property
+    def round_trip_limit_s(self) -> float:
+        return self.stale_after_s if self.max_round_trip_s is None else self.max_round_trip_s
 
 
 class Verdict(NamedTuple):
@@ -65,6 +87,7 @@ class SafetyGate:
         self._stopped = False
         self._prev_reset: bool | None = None  # None: no baseline yet (reset held ≠ pressed)
         self._seen_device = False
+        self._overran: deque[bool] = deque(maxlen=2 * settings.overrun_limit)  # last cycles
         self._state: str | None = None
         self.since_s = 0.0                  # when the current state was entered
 
@@ -74,16 +97,22 @@ class SafetyGate:
 
     def update(self, now_s: float, *, enable: bool, stop: bool = False, reset: bool = False,
                present: bool = True, state_stamp_s: float | None = None,
-               overrun_streak: int = 0, hold: str | None = None) -> Verdict:
+               overrun_streak: int = 0, round_trip_s: float | None = 0.0,
+               hold: str | None = None) -> Verdict:
         """One cycle.
 
         enable / stop / reset: held levels from the operator's device.
         present: the input device is there (readings from an absent device are ignored).
         state_stamp_s: when the newest arm state was received (same clock as now_s), or None.
-        overrun_streak: consecutive overrunning loop cycles up to now.
+        overrun_streak: consecutive overrunning loop cycles up to now (call once per cycle:
+            the gate also counts the overruns among the recent cycles).
+        round_trip_s: the link's round trip (s) as measured now, None before one has been
+            measured; the default 0.0 is a link without delay (preflight, re-runs).
         hold: a reason from the caller that forbids motion (e.g. target not ready), or None.
         """
-        block = self._block_reason(now_s, present, state_stamp_s, overrun_streak, hold)
+        self._overran.append(overrun_streak > 0)     # the cycle before this one overran
+        block = self._block_reason(now_s, present, state_stamp_s, overrun_streak,
+                                   round_trip_s, hold)
         self._latch_stop(present, enable, stop, reset)
         if block is not None or self._stopped:
             if not present:
@@ -99,7 +128,8 @@ class SafetyGate:
         return verdict
 
     def _block_reason(self, now_s: float, present: bool, stamp_s: float | None,
-                      overrun_streak: int, hold: str | None) -> str | None:
+                      overrun_streak: int, round_trip_s: float | None,
+                      hold: str | None) -> str | None:
         s = self.settings
         if not present:
             return "input device lost" if self._seen_device else "no input device"
@@ -112,6 +142,15 @@ class SafetyGate:
                     f"(limit {s.stale_after_s * 1e3:.0f} ms)")
         if overrun_streak >= s.overrun_limit:
             return f"control loop overran {overrun_streak} cycles in a row"
+        # A starved loop can alternate late and on-time cycles, which resets the streak.
+        if (late := sum(self._overran)) >= s.overrun_limit:
+            return (f"control loop overran {late} of its last {len(self._overran)} cycles")
+        if round_trip_s is None:
+            return "link round trip not measured yet (no state has echoed our rates)"
+        if not round_trip_s <= s.round_trip_limit_s:      # (NaN counts as over)
+            return (f"link round trip {round_trip_s * 1e3:.0f} ms, over the "
+                    f"{s.round_trip_limit_s * 1e3:.0f} ms limit: a stop would reach the arm "
+                    "too late")
         return hold
 
     def _latch_stop(self, present: bool, enable: bool, stop: bool, reset: bool) -> None:

@@ -15,7 +15,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 PURE = ["model", "kinematics", "solver", "limits", "mapping", "protocol", "safety", "transforms",
         "tomlsource", "urdf_loader",
-        "errors", "preflight"]
+        "errors", "preflight", "relay"]
 FORBIDDEN_IN_PURE = {"zmq", "pygame", "pybullet", "matplotlib", "time", "threading", "socket",
                      "subprocess", "sim"}
 

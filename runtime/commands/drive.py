@@ -22,17 +22,19 @@ ending"), so zero rates go out and are recorded, until a state shows the arm sid
 them and measures the arm at rest (or `SETTLE_TIMEOUT_S` passes). Then the recorder closes
 and the simulated arm is stopped. A second Ctrl-C ends the loop at once.
 
-Faults. Besides what the safety gate watches itself (input device, state age, overrun
-streak), the loop holds motion when the command path fails: this loop paused longer than
-stale_after, the arm side reports that its watchdog took over, it has applied none of our
-rates for stale_after, it refused us, or it came back as another arm. A hold makes the gate
-forget the enable press, so motion never resumes by itself when the fault clears.
+Faults. Besides what the safety gate watches itself (input device, state age, overruns,
+the link's round trip), the loop holds motion when the command path fails: this loop paused
+longer than stale_after, the arm side reports that its watchdog took over, it has applied
+none of our rates for stale_after, it refused us, or it came back as another arm. A hold
+makes the gate forget the enable press, so motion never resumes by itself when the fault
+clears.
 
 Link health. State age is how old the measured q is when a cycle uses it: with the arm side
 on this host and the same monotonic clock (our own child) it is now − the state's stamp,
 otherwise now − when it arrived. Round trip is the time from sending rates number k to the
 first state whose `applied_seq` is k, as the loop sees it (so it includes up to one period
-of waiting for the next cycle).
+of waiting for the next cycle). Its median over the last half second (`RoundTripMeter`) is
+what the gate compares with the round-trip limit and what the status shows.
 """
 
 from __future__ import annotations
@@ -64,8 +66,8 @@ from ..loop import FixedRateLoop, Tick, TimingStats
 from ..mapping import DirectCommand, InputFrame, load_pad
 from ..model import Arm, load_arm
 from ..pipeline import ControlCycle, CycleOutput
-from ..protocol import FLAG_REDUCED_SPEED, Hello, Rates, State, StateFreshness, encode, \
-    hello_differences, hello_for
+from ..protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \
+    StateFreshness, encode, hello_differences, hello_for
 from ..recorder import SessionRecorder, cycle_record, new_session_path
 from ..safety import SafetySettings
 from ..transport import ArmClient, check_endpoint, load_client_keys
@@ -135,6 +137,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--stale-after", type=float, default=0.1, metavar="S",
                         help="arm state older than S stops motion here, and the simulated arm "
                              "ramps to zero when our rates are older than S (default 0.1)")
+    parser.add_argument("--max-round-trip", type=float, metavar="S",
+                        help="refuse motion while the link's round trip (rates sent → state "
+                             "showing them applied, median of the last 0.5 s) is above S "
+                             "(default: --stale-after; above it a release can take longer "
+                             "than stale_after to reach the arm)")
     parser.add_argument("--screenshot", metavar="FILE.png",
                         help="save the status window to a PNG once, after --screenshot-after")
     parser.add_argument("--screenshot-after", type=float, metavar="S",
@@ -208,6 +215,9 @@ def _check_options(args: argparse.Namespace) -> None:
         raise ConfigError("--duration must be positive", field="duration")
     if not (0.005 <= args.stale_after <= 5.0):
         raise ConfigError("--stale-after must be between 0.005 and 5 s", field="stale-after")
+    if args.max_round_trip is not None and not (0.001 <= args.max_round_trip <= 5.0):
+        raise ConfigError("--max-round-trip must be between 0.001 and 5 s",
+                          field="max-round-trip")
     for flag in ("gui", "lockstep"):
         if args.target is not None and getattr(args, flag):
             raise ConfigError(f"--{flag} is for the simulated arm; with --target there is none",
@@ -279,6 +289,8 @@ class RunStats:
         self.tcp_peak_rad_s = 0.0
         self.read_to_send = LogHistogram()             # input read → rates on the wire
         self.round_trip = LogHistogram()               # rates sent → first state applying them
+        self.round_trip_over = 0                       # cycles with the median over the limit
+        self.round_trip_worst_s: float | None = None   # highest median a cycle saw
         self.state_age = LogHistogram()                # age of q when a cycle uses it
         self.arm_limited = 0                           # states in which the arm side limited
         self.states = 0
@@ -299,6 +311,12 @@ class RunStats:
             self.tcp_peak_m_s = max(self.tcp_peak_m_s, math.sqrt(a[0]**2 + a[1]**2 + a[2]**2))
             self.tcp_peak_rad_s = max(self.tcp_peak_rad_s,
                                       math.sqrt(a[3]**2 + a[4]**2 + a[5]**2))
+
+    def add_round_trip(self, level_s: float | None, limit_s: float) -> None:
+        """One cycle's round-trip median (s, None before the first) against the limit."""
+        if level_s is not None:
+            self.round_trip_over += level_s > limit_s
+            self.round_trip_worst_s = max(level_s, self.round_trip_worst_s or 0.0)
 
     def add_state(self, state: State, qd: np.ndarray) -> None:
         self.states += 1
@@ -334,6 +352,7 @@ class DriveSession:
         self.lockstep = lockstep
         self.stats = RunStats(arm)
         self.freshness = StateFreshness(stale_after_s)
+        self.round_trip = RoundTripMeter()
         self.publish_every = max(1, round(rate_hz / SNAPSHOT_HZ))
         self.t0: float | None = None
         self.q: np.ndarray | None = None
@@ -341,7 +360,6 @@ class DriveSession:
         self.state_stamp_s: float | None = None      # when q was measured/received
         self.state_received_s: float | None = None
         self.arm_status = ""
-        self.rtt_s: float | None = None
         self.seq = 0
         self.cycles = 0
         self.latest = None                           # StatusSnapshot, replaced whole
@@ -388,9 +406,10 @@ class DriveSession:
         self.stats.add_state(state, self.qd)
         if state.applied_seq > self._applied_seen:
             self._applied_seen, self._applied_seen_at_s = state.applied_seq, now
-            if state.echo_ns:
-                self.rtt_s = now - state.echo_ns * 1e-9
-                self.stats.round_trip.add(self.rtt_s)
+            rtt = now - state.echo_ns * 1e-9
+            if state.echo_ns and rtt >= 0.0:    # (an echo from the future is no measurement)
+                self.round_trip.add(rtt, now)
+                self.stats.round_trip.add(rtt)
 
     def _receive(self, now: float, timeout_s: float = 0.0) -> None:
         inbox = self.client.receive(timeout_s)
@@ -428,8 +447,10 @@ class DriveSession:
         frame = self.source.read(now)
         self._receive(now)
         hold = self._hold(now)
+        rtt = self.round_trip.level_s
         out = self.cycle.step(frame, now, self.q, self.state_stamp_s,
-                              overrun_streak=tick.overrun_streak, hold=hold)
+                              overrun_streak=tick.overrun_streak, round_trip_s=rtt, hold=hold)
+        self.stats.add_round_trip(rtt, self.cycle.gate.settings.round_trip_limit_s)
         self.seq += 1
         sent = self._last_sent_s = self.clock()
         self.client.send(Rates(seq=self.seq, t_ns=int(sent * 1e9), qd=out.rates,
@@ -548,7 +569,7 @@ class DriveSession:
             reduced=intent.reduced, joint=intent.joint, sigma_min=sigma,
             manipulability=manip, damping=damping, binding_limit=binding, target=self.target,
             connected=connected, state_age_s=age, stale_after_s=self.stale_after_s,
-            rtt_s=self.rtt_s, elapsed_s=now - self.t0, note=self._note(now))
+            rtt_s=self.round_trip.level_s, elapsed_s=now - self.t0, note=self._note(now))
 
     def _note(self, now: float) -> str:
         notes = []
@@ -653,6 +674,9 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
                  "rates_not_sent": drive.client.send_dropped,
                  "arm_side_limited_states": s.arm_limited,
                  "state_age": s.state_age.summary(), "round_trip": s.round_trip.summary(),
+                 "round_trip_limit_s": drive.cycle.gate.settings.round_trip_limit_s,
+                 "round_trip_over_limit_s": s.round_trip_over * period_s,
+                 "round_trip_worst_median_s": s.round_trip_worst_s,
                  "read_to_send": s.read_to_send.summary()},
         "joints": joints,
         "tcp_peak_m_s": s.tcp_peak_m_s, "tcp_cap_m_s": arm.tcp_max_linear_m_s,
@@ -691,6 +715,10 @@ def format_summary(m: dict[str, Any]) -> str:
     out.append(f"  link      state age p50 {_ms(age['p50_s'])} / p99 {_ms(age['p99_s'])} ms, "
                f"round trip p50 {_ms(rtt['p50_s'])} / p99 {_ms(rtt['p99_s'])} ms (rates sent → "
                f"state showing them applied)")
+    if link["round_trip_over_limit_s"] > 0:
+        out.append(f"            ROUND TRIP over the {_ms(link['round_trip_limit_s'], 0)} ms "
+                   f"limit for {link['round_trip_over_limit_s']:.1f} s (median up to "
+                   f"{_ms(link['round_trip_worst_median_s'], 0)} ms): motion refused then")
     dropped = sum(link["states_dropped"].values()) + link["states_refused"]
     out.append(f"            {link['states']} states, {dropped} dropped or refused, "
                f"{link['rates_not_sent']} rates not sent, arm side limited "
@@ -979,10 +1007,13 @@ def run(args: argparse.Namespace) -> int:
         same_clock = child is not None and time.get_clock_info("perf_counter").implementation \
             == time.get_clock_info("monotonic").implementation
 
+        safety = SafetySettings(stale_after_s=args.stale_after,
+                                max_round_trip_s=args.max_round_trip)
         settings = {"command": "drive", "input": plan.spec, "pad": pad.name,
                     "pad_source": pad.source, "rate_hz": args.rate,
                     "reduced_locked": args.reduced, "stale_after_s": args.stale_after,
-                    "overrun_limit": SafetySettings().overrun_limit, "target": endpoint,
+                    "overrun_limit": SafetySettings().overrun_limit,
+                    "max_round_trip_s": safety.round_trip_limit_s, "target": endpoint,
                     "target_kind": theirs.role if child is None else
                     "sim child, lockstep" if args.lockstep else "sim child, paced",
                     "target_arm": theirs.arm, "duration_s": args.duration}
@@ -1004,7 +1035,7 @@ def run(args: argparse.Namespace) -> int:
             stack.callback(recorder.close)
 
         cycle = ControlCycle(arm, pad, rate_hz=args.rate, reduced_locked=args.reduced,
-                             safety=SafetySettings(stale_after_s=args.stale_after))
+                             safety=safety)
         drive = DriveSession(arm=arm, cycle=cycle, source=source, client=client,
                              recorder=recorder, clock=clock, stale_after_s=args.stale_after,
                              duration_s=args.duration, same_clock=same_clock,

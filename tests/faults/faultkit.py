@@ -17,17 +17,25 @@ What is measured (`FaultResult`), per run:
 - the bound: stale_after + T + one control cycle, T = max_i |q̇_i| / a_rated,i just before;
 - restart: any motion at the arm after that stop while enable stays held (the script never
   presses it afresh after the fault), i.e. a restart without a fresh enable;
-- acted on: applied sequence numbers going backwards at the arm, and garbage frames the
-  relay delivered that the arm side did not count as malformed;
+- acted on, at the arm: applied sequence numbers going backwards, and garbage frames the
+  relay delivered that the arm side did not count as malformed; at the runtime (from its
+  session log: the q each cycle used is matched to the states the arm sent): a cycle that
+  used an older state than an earlier cycle did, or a q the arm never sent;
 - counted: the arm side's and the runtime's drop counters, the relay's counters;
 - lost: records missing from the session log before the fault.
+
+A run counts only if it exercised its fault: the arm was moving when it came, and the
+runtime's overrun guard did not stop the motion on its own between the start of the motion
+and the stop (a busy machine, not the fault; `Disturbed` or `exercised=False`, and the run is
+repeated). The starved loop is the exception: there the overrun guard is the answer.
 """
 
 from __future__ import annotations
 
+import bisect
 import json
-import math
 import os
+import random
 import re
 import resource
 import signal
@@ -52,7 +60,7 @@ from runtime.errors import LogError, ProtocolError  # noqa: E402
 from runtime.inputs.script import load_script  # noqa: E402
 from runtime.model import load_arm  # noqa: E402
 from runtime.protocol import REASONS, State, Twist, decode, hello_for  # noqa: E402
-from runtime.recorder import read_session  # noqa: E402
+from runtime.recorder import TORN_TAIL, read_session  # noqa: E402
 from runtime.relay import GARBAGE_KINDS  # noqa: E402
 from runtime.transport import ArmClient, Publisher  # noqa: E402
 
@@ -68,6 +76,11 @@ FAULT_AFTER_S = 0.6         # into the motion, when a fault is injected
 STALL_S = 0.5               # length of the link stalls
 MALFORMED = set(REASONS) | {"framing"}
 FLUSH_S = 0.2               # the recorder's flush interval (SessionRecorder default)
+# The runtime runs with --realtime and the simulated arm at a real-time priority just below
+# it, as each would on its own machine (other programs then cannot delay them); where the
+# system refuses, both run at normal priority (drive says so in its output).
+REALTIME = os.environ.get("JOGWIRE_FAULT_REALTIME", "1") != "0"
+ARM_PRIORITY = 40           # SCHED_FIFO level of the simulated arm (drive --realtime: 50)
 
 
 # ----------------------------------------------------------------------------------------
@@ -187,6 +200,14 @@ class Observer(threading.Thread):
 # One run
 # ----------------------------------------------------------------------------------------
 
+def arm_side_priority() -> None:
+    """preexec_fn of the simulated arm: SCHED_FIFO at ARM_PRIORITY where allowed."""
+    try:
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(ARM_PRIORITY))
+    except (AttributeError, OSError):
+        pass
+
+
 def limit_file_size(n_bytes: int) -> Callable[[], None]:
     """preexec_fn: writes past n_bytes fail with EFBIG (the disk is full, for this process).
     Python ignores SIGXFSZ, so the write fails instead of killing the process."""
@@ -215,7 +236,8 @@ class Rig:
             # All three start at once: drive's hello is repeated until the arm side answers.
             self.sim = self._start("sim", [py, "-m", "sim.arm", ARM, "--endpoint",
                                            self.sim_endpoint, "--stale-after",
-                                           f"{STALE_AFTER_S:g}", "--duration", "60"])
+                                           f"{STALE_AFTER_S:g}", "--duration", "60"],
+                                  preexec_fn=arm_side_priority if REALTIME else None)
             self.relay = self._start("relay", [py, "-m", "runtime.cli", "relay", "--listen",
                                                self.relay_endpoint, "--target",
                                                self.sim_endpoint, "--seed", str(seed),
@@ -225,7 +247,8 @@ class Rig:
                 self.relay_endpoint, "--input", drive_input or f"script:{MOTION}",
                 "--stale-after", f"{STALE_AFTER_S:g}", "--rate", f"{RATE_HZ:g}",
                 "--sessions", str(self.sessions),
-                "--summary-json", str(self.summary_path), *drive_options],
+                "--summary-json", str(self.summary_path),
+                *(["--realtime"] if REALTIME else []), *drive_options],
                 preexec_fn=drive_preexec)
             self.sim.wait_for(r"jogwire sim ready")
             self.relay.wait_for(r"jogwire relay ready")
@@ -320,17 +343,24 @@ class FaultResult:
     garbage_acted_on: int               # garbage delivered to the arm side, not counted there
     arm_dropped: dict[str, int]
     runtime_dropped: dict[str, int]
+    runtime_used_older: int = 0         # cycles that used an older state than before (0)
+    runtime_used_unknown: int = 0       # cycles whose q matches no state the arm sent (0)
     relay: dict = field(default_factory=dict)
     records_lost_before_fault: int = 0  # cycle records missing before the fault
     tail_lost_s: float | None = None    # kill -9: unflushed end of the log, in seconds
     exercised: bool = True              # the arm was moving when the fault (release) came
-    overrun_stop: bool | None = None    # link faults: the loop's overrun guard stopped it after
-                                        # the onset (None: not measured for this fault)
+    peak_speed: float | None = None     # faults that must not let the arm move: max |q̇| seen
+    figures: dict[str, float] = field(default_factory=dict)   # what only this fault has
     notes: list[str] = field(default_factory=list)
 
     @property
     def within_bound(self) -> bool:
         return self.stop_s is not None and self.stop_s <= self.bound_s
+
+    @property
+    def bad_acted_on(self) -> int:
+        return (self.applied_backwards + self.garbage_acted_on + self.runtime_used_older
+                + self.runtime_used_unknown)
 
     def as_dict(self) -> dict:
         return asdict(self) | {"within_bound": self.within_bound}
@@ -372,6 +402,41 @@ def moved_between(states: list[State], t_from: int, t_to: int) -> bool:
 
 def applied_backwards(states: list[State]) -> int:
     return sum(1 for a, b in zip(states, states[1:]) if b.applied_seq < a.applied_seq)
+
+
+def observer_missed(states: list[State]) -> int:
+    """States the observer did not get (the arm side numbers every state it sends)."""
+    return sum(b.seq - a.seq - 1 for a, b in zip(states, states[1:]) if b.seq > a.seq + 1)
+
+
+def runtime_state_use(session, states: list[State]) -> tuple[int, int]:
+    """What the runtime acted on, from its session log: (cycles that used an older state than
+    an earlier cycle had used, cycles whose q is in no state the arm sent).
+
+    Each cycle's q is matched to the states the arm sent, as the observer saw them (at rest
+    many states share one q, hence a greedy match: the oldest candidate not older than the
+    previous cycle's). Cycles before the first match used states sent before the observer
+    connected and are skipped. An observer that missed states (`observer_missed`: a busy
+    machine) cannot vouch for a q it did not see: then no q counts as unknown."""
+    if session is None:
+        return 0, 0
+    seqs: dict[tuple[float, ...], list[int]] = {}
+    for s in states:                                   # states arrive in seq order
+        seqs.setdefault(tuple(s.q), []).append(s.seq)
+    older = unknown = floor = 0
+    matched, missed = False, observer_missed(states)
+    for rec in session.records:
+        candidates = seqs.get(tuple(rec.q)) if rec.q else None
+        if candidates is None:
+            unknown += matched and bool(rec.q) and not missed
+            continue
+        matched = True
+        i = bisect.bisect_left(candidates, floor)
+        if i == len(candidates):
+            older += 1
+        else:
+            floor = candidates[i]
+    return older, unknown
 
 
 def runtime_clock_zero_ns(session, states: list[State]) -> int | None:
@@ -434,7 +499,13 @@ def result_for(name: str, c: Collected, t_event_ns: int | None, measured_from: s
         runtime_dropped = dict(c.summary["link"]["states_dropped"])
         runtime_dropped["refused (old or late)"] = c.summary["link"]["states_refused"]
     exercised = t_event_ns is not None and speed_before(states, t_event_ns) > MOVING
+    older, unknown = runtime_state_use(c.session, states)
     notes = []
+    figures = {}
+    if (missed := observer_missed(states)):
+        figures["observer_missed"] = missed
+        notes.append(f"the observer missed {missed} states: a q it did not see is not "
+                     "counted as unknown")
     if busy_window is not None and busy_window[1] is None:    # until the stop
         busy_window = (busy_window[0], stop.t_ns if stop is not None else t_event_ns)
     if busy_window is not None and overran_between(c, *busy_window):
@@ -442,9 +513,11 @@ def result_for(name: str, c: Collected, t_event_ns: int | None, measured_from: s
         notes.append("disturbed: the runtime's loop overran (machine busy)")
     return FaultResult(
         fault=name, measured_from=measured_from, exercised=exercised, notes=notes,
+        figures=figures,
         stop_s=None if stop is None else (stop.t_ns - t_event_ns) * 1e-9,
         bound_s=STALE_AFTER_S + braking + CYCLE_S, braking_s=braking, restarted=restarted,
         applied_backwards=applied_backwards(states), garbage_acted_on=acted,
+        runtime_used_older=older, runtime_used_unknown=unknown,
         arm_dropped=dict(c.sim_counts), runtime_dropped=runtime_dropped,
         relay={k: {kk: vv for kk, vv in v.items() if kk != "kinds"} if isinstance(v, dict)
                else v for k, v in relay.items() if k in ("rates", "state")})
@@ -481,10 +554,20 @@ def _script_run(name: str, folder: Path, *, relay: list[str] = (),
     return c, t_motion, t_release, t_fault
 
 
-def link_fault(name: str, relay: list[str], *, from_start: bool = False
-               ) -> Callable[[Path, int], FaultResult]:
-    """A link that starts to misbehave mid-motion (the relay's faults wait for SIGUSR2), or,
-    with from_start, misbehaves from the first message on.
+def runtime_reasons(c: Collected, t_from_ns: int, most: int = 3) -> list[str]:
+    """The first `most` different reasons the runtime gave for refusing motion from t_from_ns
+    on, from its session log."""
+    zero = runtime_clock_zero_ns(c.session, c.states)
+    reasons: list[str] = []
+    for rec in c.session.records if zero is not None else ():
+        if zero + rec.t_s * 1e9 >= t_from_ns and not rec.enabled and \
+                rec.enable_reason not in reasons:
+            reasons.append(rec.enable_reason)
+    return reasons[:most]
+
+
+def link_fault(name: str, relay: list[str]) -> Callable[[Path, int], FaultResult]:
+    """A link that starts to misbehave mid-motion (the relay's faults wait for SIGUSR2).
 
     Either the system rides through it (the motion goes on; the stop time is then measured
     from the moment the script lets go of enable) or it stops (measured from the onset); in
@@ -493,39 +576,60 @@ def link_fault(name: str, relay: list[str], *, from_start: bool = False
         def start(rig: Rig, _: int) -> int:
             os.kill(rig.relay.pid, signal.SIGUSR2)
             return rig.relay_event_ns("direction faults on")
-        options = list(relay) if from_start else [*relay, "--faults-from", "signal"]
         c, t_motion, t_release, t_onset = _script_run(
-            name, folder, relay=options, seed=seed, inject=None if from_start else start)
-        stop = None
-        if t_onset is not None and t_release is not None:
-            stop = standstill_after(c.states, t_onset)
-            if stop is not None and stop.t_ns >= t_release:
-                stop = None                   # rode through: still moving at the release
-        # Overrun stops before the onset are the machine's (the run is repeated); after it
-        # they are counted as the system's answer to the fault (more frames to decode).
-        before = (t_motion, t_onset if t_onset is not None else (t_release or t_motion))
-        if stop is not None:
+            name, folder, relay=[*relay, "--faults-from", "signal"], seed=seed, inject=start)
+        stop = standstill_after(c.states, t_onset) if t_release is not None else None
+        if stop is not None and stop.t_ns < t_release:
             r = result_for(name, c, t_onset, "fault", restart_until_ns=t_release,
-                           busy_window=before)
+                           busy_window=(t_motion, None))
         else:
-            r = result_for(name, c, t_release, "release", busy_window=before)
-            if t_onset is not None:
-                r.notes.append("rode through: still moving when enable was let go")
-        if t_onset is not None:
-            r.exercised = r.exercised and speed_before(c.states, t_onset) > MOVING
-            r.overrun_stop = overran_between(c, t_onset, t_release or t_onset)
+            r = result_for(name, c, t_release, "release", busy_window=(t_motion, None))
+            r.notes.append("rode through: still moving when enable was let go")
+        r.exercised = r.exercised and speed_before(c.states, t_onset) > MOVING
         if c.session is not None:
             r.records_lost_before_fault = session_gaps(c.session)
             if r.measured_from == "fault":
-                zero = runtime_clock_zero_ns(c.session, c.states)
-                reasons = []
-                for rec in c.session.records:
-                    if zero is not None and zero + rec.t_s * 1e9 >= t_onset and \
-                            not rec.enabled and rec.enable_reason not in reasons:
-                        reasons.append(rec.enable_reason)
-                r.notes.append("runtime's reasons: " + "; ".join(reasons[:2]))
+                r.notes.append("runtime's reasons: " + "; ".join(runtime_reasons(c, t_onset, 2)))
         return r
     return run
+
+
+def steady_latency(folder: Path, seed: int = 1) -> FaultResult:
+    """200 ms each way from the first message on: a round trip of 400 ms, four times
+    stale_after, which neither lateness filter can see (every message is equally late). The
+    runtime must refuse motion when the script presses enable, and say why.
+
+    stop_s: from the release to the standstill (0 when the arm never moved); peak_speed:
+    the largest |q̇| the arm showed after the press (must stay at rest)."""
+    name = "200 ms latency from the start, both directions"
+    rig = Rig(folder, relay=["--delay", "200ms"], seed=seed)
+    try:
+        rig.wait_drive(30.0)
+    finally:
+        c = collect(rig)
+    zero = runtime_clock_zero_ns(c.session, c.states)
+    if zero is None:
+        raise Disturbed("no session log with echoed rates: " + c.drive_output[-300:])
+    t_press = zero + int(load_script(MOTION).lead_in_s * 1e9)
+    t_release = zero + int(release_time_s() * 1e9)
+    r = result_for(name, c, t_release, "release")
+    r.exercised = c.session.records[-1].t_s * 1e9 > t_release - zero   # the script played
+    r.peak_speed = max((max(map(abs, st.qd)) for st in c.states if st.t_ns >= t_press),
+                       default=0.0)
+    r.records_lost_before_fault = session_gaps(c.session)
+    reasons = runtime_reasons(c, t_press, 2)
+    r.notes.append("runtime's reasons: " + "; ".join(reasons))
+    shown = [int(m) for m in re.findall(r"link round trip (\d+) ms", " ".join(reasons))]
+    if shown:
+        r.figures["round_trip_shown_s"] = shown[0] * 1e-3
+    said = re.search(r"BLOCKED \| (link round trip \d+ ms[^|]*)\|", c.drive_output)
+    r.notes.append("status line: " + (said.group(1).strip() if said else "(not shown)"))
+    if c.summary is not None:
+        link = c.summary["link"]
+        r.notes.append(f"summary: round trip over the limit for "
+                       f"{link['round_trip_over_limit_s']:.1f} s, median up to "
+                       f"{link['round_trip_worst_median_s'] * 1e3:.0f} ms")
+    return r
 
 
 def runtime_killed(folder: Path, seed: int = 1) -> FaultResult:
@@ -534,8 +638,11 @@ def runtime_killed(folder: Path, seed: int = 1) -> FaultResult:
         os.kill(rig.drive.pid, signal.SIGKILL)
         time.sleep(1.0)                    # watch the arm stop and stay stopped
         return t
+    # The kill lands anywhere in the recorder's flush cycle (a seeded draw), so that the
+    # repeats sample the whole range of unflushed tails, not one phase of it.
+    after_s = FAULT_AFTER_S + random.Random(seed).uniform(0.0, FLUSH_S)
     c, t_motion, _, t_fault = _script_run("runtime killed (-9)", folder, inject=kill,
-                                          seed=seed)
+                                          seed=seed, after_s=after_s)
     r = result_for("runtime killed (-9)", c, t_fault, "fault",
                    restart_until_ns=t_fault + int(1e9), busy_window=(t_motion, t_fault))
     if c.session is not None and c.session.records:
@@ -551,7 +658,12 @@ def runtime_killed(folder: Path, seed: int = 1) -> FaultResult:
 
 def sim_killed(folder: Path, seed: int = 1) -> FaultResult:
     """The arm side dies: nothing to measure at the arm; the runtime must notice (state
-    stale) and command zero. stop_s here is fault → first zero-rates cycle in the log."""
+    stale) and command zero. stop_s here is fault → first zero-rates cycle in the log.
+
+    States already on their way still arrive after the kill (through the relay), and the
+    runtime cannot tell before the last one is in: the bound is stale_after + one cycle from
+    the cycle that took in the last state (its age is in the log), i.e. + that in-flight
+    time from the kill (noted)."""
     def kill(rig: Rig, _: int) -> int:
         t = time.monotonic_ns()
         os.kill(rig.sim.pid, signal.SIGKILL)
@@ -570,6 +682,11 @@ def sim_killed(folder: Path, seed: int = 1) -> FaultResult:
     first_zero = next((rec for rec in after if not rec.enabled and not any(rec.rates)), None)
     if first_zero is not None:
         r.stop_s = (zero + first_zero.t_s * 1e9 - t_fault) * 1e-9
+        if first_zero.state_age_s is not None:
+            last_in_s = (zero - t_fault) * 1e-9 + first_zero.t_s - first_zero.state_age_s
+            r.bound_s += max(0.0, last_in_s)
+            r.figures["in_flight_s"] = last_in_s
+            r.notes.append(f"last state taken in {last_in_s * 1e3:.1f} ms after the kill")
         later = after[after.index(first_zero):]
         r.restarted = any(any(rec.rates) for rec in later)
         r.notes.append(f"runtime's reason: {first_zero.enable_reason}")
@@ -598,9 +715,11 @@ def stalled(direction: str) -> Callable[[Path, int], FaultResult]:
 
 
 def loop_starved(folder: Path, seed: int = 1) -> FaultResult:
-    """The runtime gets the CPU for RUN_MS out of every STOP_MS + RUN_MS (SIGSTOP/SIGCONT)
-    for STARVE_S: every control cycle overruns, the streak must stop motion."""
-    stop_ms, run_ms, starve_s = 4.0, 0.5, 0.4
+    """The runtime gets the CPU for run_ms out of every stop_ms + run_ms (SIGSTOP/SIGCONT)
+    for starve_s. Stopped longer than a cycle, every cycle overruns (a stop shorter than a
+    cycle lets some cycles end in time, which resets the streak); the streak must stop
+    motion."""
+    stop_ms, run_ms, starve_s = 10.0, 1.0, 0.4
 
     def starve(rig: Rig, _: int) -> int:
         t0 = time.monotonic_ns()
@@ -616,15 +735,11 @@ def loop_starved(folder: Path, seed: int = 1) -> FaultResult:
     r = result_for(name, c, t_fault, "fault", restart_until_ns=t_release,
                    busy_window=(t_motion, t_fault))
     zero = runtime_clock_zero_ns(c.session, c.states)
-    if c.session is not None and zero is not None:
+    if zero is not None:
         after = [rec for rec in c.session.records if zero + rec.t_s * 1e9 >= t_fault]
-        reasons = []
-        for rec in after:
-            if not rec.enabled and rec.enable_reason not in reasons:
-                reasons.append(rec.enable_reason)
-        r.notes.append("runtime's reasons: " + "; ".join(reasons[:3]))
-        r.notes.append(f"longest overrun streak: "
-                       f"{max((rec.overrun_streak for rec in after), default=0)}")
+        r.notes.append("runtime's reasons: " + "; ".join(runtime_reasons(c, t_fault)))
+        r.figures["longest_streak"] = max((rec.overrun_streak for rec in after), default=0)
+        r.notes.append(f"longest overrun streak: {r.figures['longest_streak']}")
         r.records_lost_before_fault = session_gaps(c.session)
     return r
 
@@ -642,14 +757,23 @@ def disk_full(folder: Path, seed: int = 1) -> FaultResult:
         return r
     t_full = zero + int(c.session.records[-1].t_s * 1e9)
     r.records_lost_before_fault = session_gaps(c.session)
+    r.figures["full_before_release"] = t_motion < t_full < t_release
+    # Everything that fit was kept: the bytes after the last readable record are less than
+    # one record (the one being written when the disk filled).
+    size = c.session.path.stat().st_size
+    torn = next((pr.offset for pr in c.session.problems if pr.kind == TORN_TAIL), size)
+    r.figures["unreadable_bytes"] = size - torn
+    r.figures["record_bytes"] = torn / len(c.session.records)
     written = c.summary["session"]["written"] if c.summary else None
     r.notes.append(f"log full after {len(c.session.records)} records "
                    f"({(t_full - t_motion) * 1e-9:.2f} s into the motion); "
-                   f"readable {len(c.session.records)}, writer says written {written}")
-    lines = c.drive_output.splitlines()
-    ends = [i for i, ln in enumerate(lines) if ln.startswith("jogwire drive: ")]
-    live = "\n".join(lines[ends[0] + 1:ends[-1]]) if len(ends) > 1 else ""  # status lines
-    r.notes.append("said while driving: " + ("yes" if re.search(r"record", live, re.I)
+                   f"readable {len(c.session.records)}, writer says written {written}; "
+                   f"{size - torn} bytes unreadable at the end of {size}")
+    # Said while driving: the line the drive prints when the writer fails, before its
+    # summary (which starts "jogwire drive: <why it ended> after …").
+    summary_at = c.drive_output.rfind("jogwire drive: ")
+    live = c.drive_output[:summary_at]
+    r.notes.append("said while driving: " + ("yes" if "RECORDING STOPPED" in live
                                              else "no (only in the end summary)"))
     if c.summary is not None:
         failed = c.summary["session"]["failed"]
@@ -663,8 +787,8 @@ def disk_full(folder: Path, seed: int = 1) -> FaultResult:
     span = int(0.5e9)
     r.notes.append(f"rates applied at the arm: {applied_rate(t_full - span, t_full):.0f}/s "
                    f"before, {applied_rate(t_full, t_full + span):.0f}/s after the disk filled")
-    r.relay["applied_per_s_before"] = applied_rate(t_full - span, t_full)
-    r.relay["applied_per_s_after"] = applied_rate(t_full, t_full + span)
+    r.figures["applied_per_s_before"] = applied_rate(t_full - span, t_full)
+    r.figures["applied_per_s_after"] = applied_rate(t_full, t_full + span)
     return r
 
 
@@ -716,16 +840,20 @@ FAULTS: dict[str, Callable[[Path, int], FaultResult]] = {
     "loss_20": link_fault("20 % loss, both directions", ["--loss", "20%"]),
     "latency_200ms": link_fault("latency jumps by 200 ms, both directions",
                                 ["--delay", "200ms"]),
-    "latency_200ms_steady": link_fault("200 ms latency from the start, both directions",
-                                       ["--delay", "200ms"], from_start=True),
+    "latency_200ms_steady": steady_latency,
     "dup_reorder": link_fault("20 % duplicated and 20 % reordered, both directions",
                               ["--duplicate", "20%", "--reorder", "20%"]),
     "garbage": link_fault("garbage among good messages, both directions (no foreign "
                           "version toward the arm)",
                           ["--garbage", "20%", "--garbage-kinds",
                            "rates=" + ",".join(k for k in GARBAGE_KINDS if k != "version")]),
-    "garbage_version": link_fault("garbage of every kind, incl. a foreign protocol version",
-                                  ["--garbage", "20%"]),
+    # Every rates message comes after a frame of another protocol version, so the stop is
+    # measured from the first one (at 20 % of all kinds it would come at a random time).
+    "garbage_version": link_fault("a foreign protocol version toward the arm, garbage toward "
+                                  "the runtime",
+                                  ["--garbage", "rates=100%", "--garbage-burst", "rates=1",
+                                   "--garbage-kinds", "rates=version", "--garbage",
+                                   "state=20%"]),
     "pad_unplugged": pad_unplugged,
     "disk_full": disk_full,
     "loop_starved": loop_starved,

@@ -3,27 +3,35 @@
 did, measured at the arm (docs/FAULTS.md; `benchmarks/fault_campaign.py` repeats each 20 times).
 
 Checked for every fault: the arm stops when it must, within stale_after + braking time + one
-cycle (T = max |q̇|/a_rated just before; plus a scheduling allowance); it does not move again
-while enable stays held; no applied sequence number goes backwards at the arm; every garbage
-frame that reached the arm side was counted there as malformed; no record is missing from the
-session log before the fault.
+cycle (T = max |q̇|/a_rated just before) plus ALLOWANCE_S; it does not move again while
+enable stays held; nothing bad is acted on (no applied sequence number goes backwards at the
+arm, every garbage frame that reached the arm side was counted there as malformed, the
+runtime never used an older state than it had used before nor a q the arm never sent); no
+record is missing from the session log before the fault.
 
-A run in which the runtime's own overrun guard stopped the motion before the fault (the
-machine was too busy) proves nothing about the fault: it is repeated, up to ATTEMPTS times.
+These run in the default suite (about a minute and a half). The correctness checks are exact;
+the stop-time check carries ALLOWANCE_S for a busy CI machine. The strict figures — worst of
+20 against the bound itself — come from the campaign and stand in docs/FAULTS.md.
+
+A run in which the runtime's own overrun guard stopped the motion (the machine was too busy,
+not the fault) proves nothing about the fault: it is repeated, up to ATTEMPTS times.
 """
 
 from __future__ import annotations
 
+import re
+
 import pytest
 
-from faultkit import FAULTS, FLUSH_S, Disturbed, FaultResult
+from faultkit import FAULTS, FLUSH_S, STALE_AFTER_S, Disturbed, FaultResult
 
 pytestmark = [pytest.mark.faults, pytest.mark.e2e, pytest.mark.timeout(180)]
 
 ATTEMPTS = 3
-# The arm side's 1 kHz steps and the processes' wake-ups can start late on a busy 2-core
-# machine (common practice: allow a few steps); the campaign reports the raw figures.
-ALLOWANCE_S = 0.010
+# Four processes share two cores here: the arm side's 1 kHz steps and every wake-up can start
+# late, by tens of ms on a busy machine (common practice: a scheduling allowance in tests that
+# run on shared machines). The campaign judges the raw figures against the bound alone.
+ALLOWANCE_S = 0.050
 
 
 def run(name: str, tmp_path) -> FaultResult:
@@ -47,6 +55,8 @@ def run(name: str, tmp_path) -> FaultResult:
 def nothing_bad_acted_on(r: FaultResult) -> None:
     assert r.applied_backwards == 0, "an older rates message was applied after a newer one"
     assert r.garbage_acted_on == 0, "garbage reached the arm side without being counted"
+    assert r.runtime_used_older == 0, "the runtime used an older state after a newer one"
+    assert r.runtime_used_unknown == 0, "the runtime used a q the arm never sent"
     assert r.records_lost_before_fault == 0, "records missing from the log before the fault"
 
 
@@ -111,15 +121,19 @@ def test_a_latency_jump_stops_the_arm(tmp_path) -> None:
     assert not r.restarted
 
 
-def test_steady_latency_above_stale_after(tmp_path) -> None:
-    """A constant one-way delay is invisible to both lateness filters (they measure delay
-    against the quickest message seen): the arm follows 200 ms late, so letting go of enable
-    stops it 200 ms later — beyond stale_after + braking. Recorded as a known gap (see
-    docs/FAULTS.md); this test checks the figure stays what the document says."""
+def test_a_link_too_slow_to_stop_in_time_never_moves_the_arm(tmp_path) -> None:
+    """200 ms each way from the start is invisible to both lateness filters (every message is
+    equally late), but a release would reach the arm 200 ms later, beyond stale_after. The
+    runtime measures the round trip (≈ 400 ms) and refuses motion, saying so."""
     r = run("latency_200ms_steady", tmp_path)
     nothing_bad_acted_on(r)
-    assert r.measured_from == "release" and r.stop_s is not None
-    assert 0.2 <= r.stop_s <= 0.2 + r.bound_s + ALLOWANCE_S
+    assert r.peak_speed is not None and r.peak_speed <= 1e-3, "the arm moved"
+    reasons = next(n for n in r.notes if n.startswith("runtime's reasons"))
+    limit = f"over the {STALE_AFTER_S * 1e3:.0f} ms limit"
+    shown = re.search(r"link round trip (\d+) ms, " + limit, reasons)
+    assert shown and 400 <= int(shown.group(1)) <= 500, reasons   # 2 × 200 ms + cycles
+    assert any(n.startswith("status line: link round trip") for n in r.notes), r.notes
+    assert any(n.startswith("summary: round trip over the limit") for n in r.notes), r.notes
 
 
 def test_pad_unplugged_while_moving(tmp_path) -> None:
@@ -133,10 +147,17 @@ def test_pad_unplugged_while_moving(tmp_path) -> None:
 def test_disk_full_while_recording(tmp_path) -> None:
     r = run("disk_full", tmp_path)
     nothing_bad_acted_on(r)
+    assert r.figures["full_before_release"], "the disk did not fill while the arm moved"
+    assert r.measured_from == "release"
     stops_in_bound(r)
+    # Everything that fit is readable: what cannot be read at the end of the file is the one
+    # record that was being written when the disk filled (records vary in length: the bound
+    # is 1.5 × their mean length).
+    assert r.figures["unreadable_bytes"] < 1.5 * r.figures["record_bytes"], r.notes
+    assert "said while driving: yes" in r.notes
     assert any(n.startswith("summary: recording stopped: writing") for n in r.notes), r.notes
     # The loop kept its pace after the disk filled (as seen at the arm: rates applied / s).
-    before, after = r.relay["applied_per_s_before"], r.relay["applied_per_s_after"]
+    before, after = r.figures["applied_per_s_before"], r.figures["applied_per_s_after"]
     assert after >= 0.8 * before, (before, after)
 
 

@@ -15,7 +15,7 @@ from runtime.kinematics import tcp_pose
 from runtime.mapping import DirectCommand, InputFrame, load_pad
 from runtime.model import load_arm
 from runtime.pipeline import ControlCycle, frame_from_wire, frame_to_wire
-from runtime.safety import MOVING
+from runtime.safety import MOVING, SafetySettings
 
 RATE_HZ = 500.0
 
@@ -65,6 +65,23 @@ def test_stale_state_commands_zero():
     out = cycle.step(go, 1.0, q, 0.002)
     assert not out.verdict.allowed and "stale" in out.verdict.reason
     assert np.all(out.rates == 0.0)
+
+
+def test_a_slow_link_commands_zero_and_the_default_is_a_link_without_delay():
+    arm = load_arm("elbow6")
+    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ,
+                         safety=SafetySettings(stale_after_s=0.1))
+    go = InputFrame(device="test", present=True,
+                    command=DirectCommand(twist=(0.05, 0, 0, 0, 0, 0)))
+    off = InputFrame(device="test", present=True, command=DirectCommand(enable=False))
+    q = arm.home()
+    cycle.step(off, 0.0, q, 0.0)
+    assert np.any(cycle.step(go, 0.002, q, 0.002).rates != 0.0)      # no round trip given
+    out = cycle.step(go, 0.004, q, 0.004, round_trip_s=0.35)
+    assert not out.verdict.allowed and "round trip 350 ms" in out.verdict.reason
+    assert np.all(out.rates == 0.0)
+    out = cycle.step(go, 0.006, q, 0.006, round_trip_s=None)
+    assert not out.verdict.allowed and "not measured" in out.verdict.reason
 
 
 def test_input_frame_round_trips_through_plain_data():

@@ -16,7 +16,8 @@ from hypothesis import strategies as st
 from runtime.errors import ModelMismatch, ProtocolError
 from runtime.model import load_arm
 from runtime.protocol import (FIELDS, KINDS, MAX_JOINTS, MAX_MESSAGE_BYTES, PROTOCOL_VERSION,
-                              REASONS, Hello, LatenessFilter, Rates, Refuse, SequenceGate, State,
+                              REASONS, Hello, LatenessFilter, Rates, Refuse, RoundTripMeter,
+                              SequenceGate, State,
                               StateFreshness, Twist, check_hello, decode, encode,
                               geometry_digest, hello_for)
 
@@ -367,3 +368,40 @@ def test_state_freshness_commands_zero_without_fresh_state() -> None:
     assert math.isclose(fresh.age_s(110_000_000), 0.1)
     assert not fresh.offer(state, 120_000_000)                  # same seq again: refused
     assert fresh.refused == 1
+
+
+def test_round_trip_meter_is_the_median_of_the_last_window() -> None:
+    meter = RoundTripMeter(window_s=0.5)
+    assert meter.level_s is None                                # nothing measured yet
+    t = 0.0
+    for k in range(100):                                        # 400 ms of a 20 ms link
+        t += 0.004
+        meter.add(0.020, t)
+    meter.add(0.900, t + 0.004)                                 # one late state: not the link
+    assert meter.level_s == 0.020
+    for k in range(60):                                         # the link stays slow
+        t += 0.004
+        meter.add(0.300, t)
+    # In the last 0.5 s: 65 quick samples, 61 slow ones: the median is still quick…
+    assert meter.level_s == 0.020
+    for k in range(5):                                          # …until most of them are slow
+        t += 0.004
+        meter.add(0.300, t)
+    assert meter.level_s == 0.300
+    meter.reset()
+    assert meter.level_s is None
+
+
+def test_round_trip_meter_keeps_the_newest_sample_after_a_silence() -> None:
+    meter = RoundTripMeter(window_s=0.5)
+    meter.add(0.010, 0.0)
+    meter.add(0.010, 0.001)
+    meter.add(0.250, 10.0)          # the first sample after 10 s: the window holds it alone
+    assert meter.level_s == 0.250
+
+
+def test_round_trip_meter_holds_at_most_max_samples() -> None:
+    meter = RoundTripMeter(window_s=10.0, max_samples=3)
+    for k, rtt in enumerate([0.5, 0.5, 0.5, 0.01, 0.01]):
+        meter.add(rtt, k * 0.001)
+    assert meter.level_s == 0.01    # (0.5, 0.01, 0.01): the oldest two are gone

@@ -15,8 +15,10 @@ from runtime.safety import (BLOCKED, MOVING, READY, REARM, STATES, STOPPED, Safe
 SETTINGS = SafetySettings(stale_after_s=0.05, overrun_limit=5)
 DT = 0.002
 
-# One cycle's inputs. Defaults: device present, fresh arm state, no overruns, nothing held.
-OK = dict(enable=False, stop=False, reset=False, present=True, age=0.0, overruns=0, hold=None)
+# One cycle's inputs. Defaults: device present, fresh arm state, no overruns, a link without
+# delay (round trip rtt 0 s; the limit is stale_after, 50 ms here), nothing held.
+OK = dict(enable=False, stop=False, reset=False, present=True, age=0.0, overruns=0, rtt=0.0,
+          hold=None)
 
 
 def inputs(**changes):
@@ -29,7 +31,7 @@ def step(gate: SafetyGate, t: float, c: dict):
     stamp = None if c["age"] is None else t - c["age"]
     return gate.update(t, enable=c["enable"], stop=c["stop"], reset=c["reset"],
                        present=c["present"], state_stamp_s=stamp,
-                       overrun_streak=c["overruns"], hold=c["hold"])
+                       overrun_streak=c["overruns"], round_trip_s=c["rtt"], hold=c["hold"])
 
 
 # How to reach each state from a fresh gate (sequences of cycle inputs).
@@ -53,6 +55,8 @@ TABLE = [
     (READY, inputs(age=None), BLOCKED, False, "no arm state"),
     (READY, inputs(overruns=5), BLOCKED, False, "overran 5 cycles"),
     (READY, inputs(hold="target not ready"), BLOCKED, False, "target not ready"),
+    (READY, inputs(rtt=0.2), BLOCKED, False, "round trip 200 ms, over the 50 ms limit"),
+    (READY, inputs(rtt=None), BLOCKED, False, "round trip not measured yet"),
     (READY, inputs(stop=True), STOPPED, False, "stop held"),
     (READY, inputs(reset=True), READY, False, "hold enable"),
     # from moving
@@ -64,6 +68,9 @@ TABLE = [
     (MOVING, inputs(enable=True, overruns=4), MOVING, True, "enable held"),
     (MOVING, inputs(enable=True, overruns=5), BLOCKED, False, "overran"),
     (MOVING, inputs(enable=True, hold="target busy"), BLOCKED, False, "target busy"),
+    (MOVING, inputs(enable=True, rtt=0.051), BLOCKED, False, "round trip 51 ms"),
+    (MOVING, inputs(enable=True, rtt=0.05), MOVING, True, "enable held"),  # at the limit
+    (MOVING, inputs(enable=True, rtt=float("nan")), BLOCKED, False, "round trip nan ms"),
     (MOVING, inputs(enable=True, stop=True), STOPPED, False, "stop held"),
     (MOVING, inputs(enable=True, reset=True), MOVING, True, "enable held"),  # reset: no effect
     # from rearm (enable held, not freshly pressed)
@@ -71,11 +78,13 @@ TABLE = [
     (REARM, inputs(), READY, False, "hold enable"),
     (REARM, inputs(enable=True, age=1.0), BLOCKED, False, "stale"),
     (REARM, inputs(enable=True, present=False), BLOCKED, False, "device lost"),
+    (REARM, inputs(enable=True, rtt=0.4), BLOCKED, False, "round trip 400 ms"),
     (REARM, inputs(enable=True, stop=True), STOPPED, False, "stop held"),
     # from blocked
     (BLOCKED, inputs(), READY, False, "hold enable"),                   # cleared, released
     (BLOCKED, HELD, REARM, False, "release enable"),                    # cleared, still held
     (BLOCKED, inputs(age=None), BLOCKED, False, "no arm state"),
+    (BLOCKED, inputs(rtt=None), BLOCKED, False, "round trip not measured yet"),
     (BLOCKED, inputs(age=None, stop=True), STOPPED, False, "stop held"),
     # from stopped (latched)
     (STOPPED, inputs(), STOPPED, False, "press reset"),                 # latch holds
@@ -186,10 +195,52 @@ def test_pad_plugged_in_after_start_with_enable_held():
 def test_overrun_streak_drops_enable_until_a_fresh_press():
     gate = SafetyGate(SETTINGS)
     cycles = [inputs(), HELD] + [inputs(enable=True, overruns=k) for k in range(1, 7)] + \
-        [HELD, HELD, inputs(), HELD]
-    states = [x.state for x in run(gate, cycles)]
-    assert states == [READY, MOVING, MOVING, MOVING, MOVING, MOVING, BLOCKED, BLOCKED, REARM,
-                      REARM, READY, MOVING]
+        [HELD] * 6 + [inputs(), HELD]
+    v = run(gate, cycles)
+    # After the streak, 5 of the last 10 cycles still overran: blocked until they age out.
+    assert [x.state for x in v] == [READY] + [MOVING] * 5 + [BLOCKED] * 7 + \
+        [REARM, READY, MOVING]
+    assert "overran 5 cycles in a row" in v[6].reason
+    assert "overran 6 of its last 10 cycles" in v[9].reason
+
+
+def test_a_loop_alternating_late_and_on_time_cycles_is_stopped_too():
+    # A starved loop skips to the next grid slot after a late cycle, so that one is on time
+    # and the streak never grows; half of the recent cycles overrunning stops it all the same.
+    gate = SafetyGate(SETTINGS)
+    late = inputs(enable=True, overruns=1)
+    v = run(gate, [inputs(), HELD] + [late, HELD] * 4 + [late])
+    assert [x.state for x in v] == [READY] + [MOVING] * 9 + [BLOCKED]
+    assert "overran 5 of its last 10 cycles" in v[-1].reason
+    # One cycle in four overrunning (a loaded machine) never does.
+    gate = SafetyGate(SETTINGS)
+    v = run(gate, [inputs()] + [late, HELD, HELD, HELD] * 20)
+    assert all(x.state == MOVING for x in v[2:])
+
+
+def test_a_slow_link_refuses_motion_until_it_is_quick_again_and_enable_is_pressed_afresh():
+    # The round trip bounds the one-way delay to the arm, so above stale_after a release
+    # could reach the arm later than its own watchdog allows; like any fault, the refusal
+    # latches until a fresh press (REFERENCES §4: no restart on return from a fault).
+    gate = SafetyGate(SETTINGS)
+    slow, quick = inputs(enable=True, rtt=0.4), inputs(enable=True, rtt=0.03)
+    v = run(gate, [inputs(rtt=None), inputs(enable=True, rtt=None),   # nothing measured yet
+                   inputs(), HELD, slow, slow, quick, quick, inputs(), HELD])
+    assert [x.state for x in v] == [BLOCKED, BLOCKED, READY, MOVING, BLOCKED, BLOCKED, REARM,
+                                    REARM, READY, MOVING]
+    assert "link round trip 400 ms, over the 50 ms limit" in v[4].reason
+    assert "enable held through: link round trip 400 ms" in v[6].reason
+
+
+def test_the_round_trip_limit_is_stale_after_unless_set():
+    assert SafetySettings(stale_after_s=0.1).round_trip_limit_s == 0.1
+    settings = SafetySettings(stale_after_s=0.1, max_round_trip_s=0.25)
+    assert settings.round_trip_limit_s == 0.25
+    gate = SafetyGate(settings)
+    v = run(gate, [inputs(rtt=0.2), inputs(enable=True, rtt=0.2),
+                   inputs(enable=True, rtt=0.26)])
+    assert [x.state for x in v] == [READY, MOVING, BLOCKED]
+    assert "round trip 260 ms, over the 250 ms limit" in v[2].reason
 
 
 def test_stop_latches_until_reset_with_enable_released():
@@ -221,3 +272,8 @@ def test_settings_are_validated():
         SafetySettings(stale_after_s=0.0)
     with pytest.raises(ValueError):
         SafetySettings(overrun_limit=0)
+    for bad in (0.0, -0.1, float("nan"), float("inf")):
+        with pytest.raises(ValueError):
+            SafetySettings(max_round_trip_s=bad)
+    with pytest.raises(ValueError):
+        SafetySettings(stale_after_s=float("nan"))
