@@ -3,9 +3,8 @@
 Measured in one run, on the same machine state:
 
   preflight      a 60 s profile on reach7 (the shipped `gentle`, repeated), 500 Hz control,
-                 1 ms physics step (2 steps per cycle): wall time, real-time factor and the
-                 CPU time of each process per cycle, with the default state lag of one
-                 cycle (this process computes a cycle while the child steps the last) and
+                 1 ms physics step (2 steps per cycle): wall time and real-time factor,
+                 with the default state lag of one cycle (this process computes a cycle while the child steps the last) and
                  with lag 0 (strictly one after the other); the HTML report's time apart
   rerun          `replay --rerun` (open loop) of that 60 s session log: wall time, factor
   components     what one preflight cycle is made of, each timed alone (medians):
@@ -13,12 +12,16 @@ Measured in one run, on the same machine state:
                    bookkeeping        the cycle's record (built and encoded), the trace
                    lockstep exchange  one rates → state exchange with the simulated arm
                                       child over its pipes (2 physics steps inside)
+                   arm side's work    the child's handling of one message, in process
+                                      (decode, rules, 2 physics steps, state encoded)
                    physics            2 × SimulatedArm.step + read_state in this process
-                   pipe round trip    a small message to a child process and back, bare
+                   pipe round trip    a small message to a child process and back, bare,
+                                      and with each side busy 300 µs between messages
+                                      (each then finds its reader asleep: the wake-up cost)
                    socket round trip  the same over ZeroMQ DEALER ↔ ROUTER on 127.0.0.1
 
 The runtime never imports the simulator (the child process is the arm); this script
-imports `sim.arm` only to time the physics alone.
+imports `sim` only to time the physics and the arm side's work alone.
 
     python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000]
 """
@@ -38,14 +41,18 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from collections import Counter  # noqa: E402
+
 from runtime.arm_process import child_env  # noqa: E402
 from runtime.commands.preflight import load_profile, run_preflight  # noqa: E402
 from runtime.lockstep import LockstepSim  # noqa: E402
 from runtime.mapping import load_pad  # noqa: E402
 from runtime.model import configs_dir, load_arm  # noqa: E402
+from runtime.pipe_link import PIPE_PEER  # noqa: E402
 from runtime.pipeline import ControlCycle, frame_from_wire  # noqa: E402
 from runtime.preflight import TraceBuilder  # noqa: E402
 from runtime.progress import Progress  # noqa: E402
+from runtime.protocol import Rates, decode, encode, hello_for  # noqa: E402
 from runtime.recorder import SessionRecorder, cycle_record, read_session  # noqa: E402
 from runtime.rerun import cycle_settings, inputs_of, rerun_open_loop  # noqa: E402
 
@@ -180,11 +187,58 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
             sim_arm.read_state()
             times.append(time.perf_counter_ns() - t)
     out["physics (2 steps, in process)"] = statistics.median(times) / 1e3
+    out["arm side's work per message, in process"] = arm_side_work(arm, rates)
 
     out["pipe round trip (bare)"] = pipe_round_trip(len(records))
     out["pipe round trip, 300 µs of work each side"] = pipe_round_trip(len(records) // 2, 3e-4)
     out["socket round trip (bare ZeroMQ)"] = echo_round_trip(len(records))
     return out
+
+
+class _InProcessLink:
+    """Stands in for the child's PipeServer: hands the endpoint one encoded rates message
+    per cycle and takes its state, so the arm side's work is timed without any I/O."""
+
+    ended = False
+
+    def __init__(self, n_joints: int) -> None:
+        self.n_joints, self.inbox, self.received = n_joints, [], 0
+        self.dropped: Counter[str] = Counter()
+
+    def poll(self, timeout_s: float) -> bool:
+        return bool(self.inbox)
+
+    def drain(self) -> list:
+        out = [(PIPE_PEER, decode(m, n_joints=self.n_joints)) for m in self.inbox]
+        self.inbox = []
+        return out
+
+    def send(self, peer: bytes, msg) -> str:
+        encode(msg)
+        return "sent"
+
+
+def arm_side_work(arm, rates: np.ndarray) -> float:
+    """Median µs of one lockstep message at the arm side, as the child does it (decode,
+    the session's rules, 2 physics steps with the guard, the state built and encoded),
+    without the pipe: the child's share of a cycle when neither process waits."""
+    from sim.arm import SimulatedArm
+    from sim.arm_side import ArmSession
+    from sim.endpoint import ArmEndpoint
+    link = _InProcessLink(arm.n)
+    times = []
+    with SimulatedArm(arm, step_s=1.0 / STEP_HZ) as sim_arm:
+        session = ArmSession(hello_for(arm, "sim", stale_after_s=3600.0),
+                             stale_after_s=3600.0, in_order=True)
+        endpoint = ArmEndpoint(link, sim_arm, session, substeps=round(STEP_HZ / RATE_HZ))
+        link.inbox.append(encode(hello_for(arm, "runtime", stale_after_s=3600.0)))
+        endpoint.cycle_lockstep(0.0)
+        for k in range(len(rates)):
+            link.inbox.append(encode(Rates(seq=k + 1, t_ns=time.monotonic_ns(), qd=rates[k])))
+            t = time.perf_counter_ns()
+            endpoint.cycle_lockstep(0.0)
+            times.append(time.perf_counter_ns() - t)
+    return statistics.median(times) / 1e3
 
 
 def pipe_round_trip(n: int, work_s: float = 0.0) -> float:
@@ -274,12 +328,13 @@ def main() -> int:
         print(f"  {name:<46} {value:8.1f}")
     period = 1e6 / RATE_HZ
     here = parts["control cycle"] + parts["bookkeeping (record built + encoded, trace)"]
-    there = parts["lockstep exchange (pipe + child)"]
-    print(f"  this process's work per cycle (control cycle + bookkeeping): {here:.0f} µs; "
-          f"an exchange with the child: {there:.0f} µs")
-    print(f"  one after the other (lag 0) they bound it at {period / (here + there):.1f}x "
-          f"real time; side by side (lag 1) the slower bounds it at "
-          f"{period / max(here, there):.1f}x")
+    there = parts["arm side's work per message, in process"]
+    exchange = parts["lockstep exchange (pipe + child)"]
+    print(f"  work per cycle: here (control cycle + bookkeeping) {here:.0f} µs, at the arm "
+          f"side {there:.0f} µs")
+    print(f"  one after the other (lag 0: this work plus an exchange with the child) bounds "
+          f"it at {period / (here + exchange):.1f}x real time; side by side (lag 1) the "
+          f"slower side's work at {period / max(here, there):.1f}x")
     print(f"load average at end: {load_average()}")
     return 0
 

@@ -7,7 +7,7 @@
 
 `runtime` never imports the simulator: the arm runs in a child process and every cycle is
 one round trip over a pair of pipes (`runtime.pipe_link`: the wire's messages, a
-tenth of a loopback socket's round trip; docs/PROTOCOL.md, "Lockstep mode"). One rates
+seventh of a loopback socket's round trip; docs/PROTOCOL.md, "Lockstep mode"). One rates
 message advances `substeps` physics steps, so a 500 Hz cycle on a 1 ms physics step is two
 steps per message. The run is deterministic: the next rates go out only after the state
 whose `applied_seq` is the last rates' `seq` has come back, and each cycle's time is the

@@ -31,6 +31,12 @@ from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, d
 from .transport import Inbox, check_answer
 
 PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)
+# A lockstep peer answers within a cycle's work (a few hundred µs), so a reader polls the
+# pipe without sleeping for the first SPIN_S of a wait, then sleeps in select. Waking a
+# sleeping reader costs ~75–370 µs here (benchmarks/RESULTS.md); strictly in turn (state
+# lag 0) both sides wait every cycle, and spinning doubles the speed. It costs a core that
+# would be idle while the other process works.
+SPIN_S = 0.002
 _LENGTH = struct.Struct("<I")
 _READ_BYTES = 1 << 16
 
@@ -55,9 +61,10 @@ def parse_link_spec(spec: str) -> tuple[int, int]:
 class PipeEnd:
     """One process's end of the link: frames out on one fd, frames in from another."""
 
-    def __init__(self, read_fd: int, write_fd: int) -> None:
+    def __init__(self, read_fd: int, write_fd: int, *, spin_s: float = SPIN_S) -> None:
         self.read_fd, self.write_fd = read_fd, write_fd
         os.set_blocking(read_fd, False)     # reads take what has arrived; `poll` waits
+        self.spin_s = spin_s
         self.buffer = bytearray()
         self.ended = False                 # the other end closed (or the pipe broke)
         self.dropped: Counter[str] = Counter()
@@ -76,15 +83,18 @@ class PipeEnd:
         return True
 
     def poll(self, timeout_s: float) -> bool:
-        """Wait up to timeout_s for a whole frame (or the end of the link); True if there."""
-        deadline = time.monotonic() + max(timeout_s, 0.0)
+        """Wait up to timeout_s for a whole frame (or the end of the link); True if there.
+        The first `spin_s` of the wait polls without sleeping (see SPIN_S)."""
+        now = time.monotonic()
+        deadline, spin_until = now + max(timeout_s, 0.0), now + min(self.spin_s, timeout_s)
         while not self._has_frame() and not self.ended:
             if self._fill():
                 continue
-            remaining = deadline - time.monotonic()
-            if remaining <= 0:
+            now = time.monotonic()
+            if now >= deadline:
                 return False
-            select.select([self.read_fd], [], [], remaining)
+            if now >= spin_until:
+                select.select([self.read_fd], [], [], deadline - now)
         return True
 
     def frames(self) -> list[bytes]:
