@@ -49,7 +49,7 @@ def check_against_pin(arm: Arm, urdf: Path, tip: str, seed: int) -> None:
                                    atol=1e-9)
 
 
-@pytest.mark.parametrize("seed, name", enumerate(DEMO_ARMS))
+@pytest.mark.parametrize("seed, name", list(enumerate(DEMO_ARMS)))
 def test_demo_arm_jacobian_matches_pin(tmp_path: Path, seed: int, name: str) -> None:
     arm = load_arm(name)
     check_against_pin(arm, write_urdf(arm, tmp_path / f"{name}.urdf"), "tcp", seed)

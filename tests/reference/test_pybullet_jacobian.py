@@ -69,7 +69,7 @@ def check_against_pybullet(client: int, arm: Arm, urdf: Path, tip: str, seed: in
         np.testing.assert_allclose(R, T[:3, :3], rtol=0, atol=1e-6)
 
 
-@pytest.mark.parametrize("seed, name", enumerate(DEMO_ARMS))
+@pytest.mark.parametrize("seed, name", list(enumerate(DEMO_ARMS)))
 def test_demo_arm_jacobian_matches_pybullet(client, tmp_path: Path, seed: int, name: str) -> None:
     arm = load_arm(name)
     check_against_pybullet(client, arm, write_urdf(arm, tmp_path / f"{name}.urdf"), "tcp", seed)
