@@ -35,7 +35,7 @@ from .arm_process import ArmProcess
 from .errors import ConfigError, TransportError
 from .mapping import InputFrame
 from .model import Arm, configs_dir, limits_digest, load_arm
-from .pipeline import ControlCycle, CycleOutput
+from .pipeline import STATE_LAGS, ControlCycle, CycleOutput
 from .protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
 from .pipe_link import PipeClient, link_spec
 
@@ -249,7 +249,6 @@ class _InFlight:
 
 
 Prepare = Callable[[int, float, InputFrame, CycleOutput, Vector, float, float], Any]
-STATE_LAGS = (0, 1)
 
 
 def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,

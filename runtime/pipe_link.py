@@ -27,8 +27,8 @@ import time
 from collections import Counter
 
 from .errors import TransportError
-from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, decode, encode
-from .transport import Inbox, check_answer
+from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, encode
+from .transport import Inbox, check_answer, decode_counted
 
 PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)
 # A lockstep peer answers within a cycle's work (a few hundred µs), so a reader polls the
@@ -134,11 +134,7 @@ class PipeEnd:
         return True
 
     def decode(self, payload: bytes, n_joints: int | None) -> Message | ProtocolError:
-        try:
-            return decode(payload, n_joints=n_joints)
-        except ProtocolError as exc:
-            self.dropped[exc.reason] += 1
-            return exc
+        return decode_counted(payload, n_joints, self.dropped)
 
     def close(self) -> None:
         for fd in (self.read_fd, self.write_fd):

@@ -31,6 +31,10 @@ from .solver import Solution, solve
 
 Vector = NDArray[np.float64]
 
+# How many cycles the measured pose a closed-loop run works on may lag behind the arm
+# (runtime.lockstep.run_closed_loop; recorded as `state_lag_cycles`, read by runtime.rerun).
+STATE_LAGS = (0, 1)
+
 
 @dataclass(frozen=True, eq=False)
 class CycleOutput:

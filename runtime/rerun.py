@@ -31,7 +31,7 @@ from numpy.typing import NDArray
 from .errors import ConfigError, LogError
 from .mapping import InputFrame, PadMapping, load_pad
 from .model import Arm
-from .pipeline import ControlCycle, frame_from_wire
+from .pipeline import STATE_LAGS, ControlCycle, frame_from_wire
 from .recorder import BAD_RECORD, CORRUPT, GAP, CycleRecord, Session
 from .safety import BLOCKED, SafetySettings
 
@@ -85,8 +85,8 @@ def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> Cy
             raise TypeError(f"reduced_locked is {reduced!r}")
         # A drive session over a real link sees its state at least a cycle late.
         lag = settings.get("state_lag_cycles", 1)
-        if lag not in (0, 1) or isinstance(lag, bool):
-            raise ValueError(f"state_lag_cycles is {lag!r}, not 0 or 1")
+        if isinstance(lag, bool) or lag not in STATE_LAGS:
+            raise ValueError(f"state_lag_cycles is {lag!r}, not one of {STATE_LAGS}")
     except (TypeError, ValueError) as exc:
         raise LogError(f"{where}: the header settings are malformed ({exc})") from None
     return CycleSettings(rate_hz=float(rate), pad=_pad(settings), reduced_locked=reduced,

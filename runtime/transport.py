@@ -185,6 +185,17 @@ def check_endpoint(endpoint: str, keys: Keys | None, *, action: str) -> None:
             "pass --keys DIR on both sides, or use tcp://127.0.0.1:PORT.")
 
 
+def decode_counted(data: bytes, n_joints: int | None,
+                   dropped: Counter[str]) -> Message | ProtocolError:
+    """`protocol.decode`, with a malformed message counted in `dropped` by its reason and
+    returned (never raised), so a receiver can answer it but never act on it."""
+    try:
+        return decode(data, n_joints=n_joints)
+    except ProtocolError as exc:
+        dropped[exc.reason] += 1
+        return exc
+
+
 # ----------------------------------------------------------------------------------------
 # Sockets
 # ----------------------------------------------------------------------------------------
@@ -249,11 +260,7 @@ class _Socket:
 
     def _decode(self, data: bytes, n_joints: int | None) -> Message | ProtocolError:
         self.received += 1
-        try:
-            return decode(data, n_joints=n_joints)
-        except ProtocolError as exc:
-            self.dropped[exc.reason] += 1
-            return exc
+        return decode_counted(data, n_joints, self.dropped)
 
     def close(self) -> None:
         """Close the socket (LINGER 0), stop the authenticator, end the context."""

@@ -136,6 +136,14 @@ def test_settings_without_a_rate_cannot_be_rerun():
     assert cycle_settings({"rate_hz": 250, "pad": "no-such-pad"}).pad.name == "keyboard"
 
 
+def test_the_state_lag_is_read_with_a_default_of_one_cycle():
+    assert cycle_settings({"rate_hz": 500}).state_lag_cycles == 1   # a drive session
+    assert cycle_settings({"rate_hz": 500, "state_lag_cycles": 0}).state_lag_cycles == 0
+    for bad in (2, True, "1"):
+        with pytest.raises(LogError, match="state_lag_cycles"):
+            cycle_settings({"rate_hz": 500, "state_lag_cycles": bad})
+
+
 def test_records_without_input_frames_cannot_be_rerun(pad_session):
     session = read_session(pad_session)
     stripped = [r.__class__(**{**vars(r), "input": None}) for r in session.records[:3]]
