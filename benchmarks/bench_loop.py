@@ -52,10 +52,10 @@ import zmq
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from runtime.arm_process import ArmProcess, child_env  # noqa: E402
-from runtime.model import load_arm  # noqa: E402
-from runtime.protocol import State, decode, hello_for  # noqa: E402
-from runtime.transport import ArmClient  # noqa: E402
+from runtime.link.arm_process import ArmProcess, child_env  # noqa: E402
+from runtime.arm.model import load_arm  # noqa: E402
+from runtime.link.protocol import State, decode, hello_for  # noqa: E402
+from runtime.link.transport import ArmClient  # noqa: E402
 
 ARM = "elbow6"
 RATES_HZ = (250.0, 500.0, 1000.0)
@@ -87,7 +87,7 @@ twist = [0, -0.05, 0, 0, 0, 0]
 REFERENCE = """
 import json, sys
 sys.path.insert(0, {root!r})
-from runtime.loop import FixedRateLoop
+from runtime.control.loop import FixedRateLoop
 stats = FixedRateLoop({rate}, window_s={seconds} + 1).run(lambda tick: None, duration_s={seconds})
 print(json.dumps({{"period_p50_s": stats.period_p50_s, "period_p99_s": stats.period_p99_s,
                   "period_max_s": stats.period_max_s, "late_p99_s": stats.late_p99_s,

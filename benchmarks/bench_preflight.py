@@ -43,18 +43,18 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from collections import Counter  # noqa: E402
 
-from runtime.arm_process import child_env  # noqa: E402
+from runtime.link.arm_process import child_env  # noqa: E402
 from runtime.commands.preflight import load_profile, run_preflight  # noqa: E402
-from runtime.lockstep import LockstepSim  # noqa: E402
-from runtime.mapping import load_pad  # noqa: E402
-from runtime.model import configs_dir, load_arm  # noqa: E402
-from runtime.pipe_link import PIPE_PEER  # noqa: E402
-from runtime.pipeline import ControlCycle, frame_from_wire  # noqa: E402
-from runtime.preflight import TraceBuilder  # noqa: E402
-from runtime.progress import Progress  # noqa: E402
-from runtime.protocol import Rates, decode, encode, hello_for  # noqa: E402
-from runtime.recorder import SessionRecorder, cycle_record, read_session  # noqa: E402
-from runtime.rerun import cycle_settings, inputs_of, rerun_open_loop  # noqa: E402
+from runtime.sessions.lockstep import LockstepSim  # noqa: E402
+from runtime.control.mapping import load_pad  # noqa: E402
+from runtime.arm.model import configs_dir, load_arm  # noqa: E402
+from runtime.link.pipes import PIPE_PEER  # noqa: E402
+from runtime.control.cycle import ControlCycle, frame_from_wire  # noqa: E402
+from runtime.sessions.preflight import TraceBuilder  # noqa: E402
+from runtime.operator.progress import Progress  # noqa: E402
+from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
+from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session  # noqa: E402
+from runtime.sessions.rerun import cycle_settings, inputs_of, rerun_open_loop  # noqa: E402
 
 RATE_HZ = 500.0
 STEP_HZ = 1000.0
@@ -110,7 +110,7 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int,
     report_s = None
     if with_report:
         t = time.perf_counter()
-        from runtime.report import ReportContext, write_report
+        from runtime.sessions.report import ReportContext, write_report
         write_report(folder / "run.html", run.result, ReportContext(
             arm=arm, profile=profile.name, profile_source=profile.source, rate_hz=RATE_HZ,
             step_hz=STEP_HZ, started_at=run.started_at, wall_s=run.wall_s,

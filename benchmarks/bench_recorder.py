@@ -30,8 +30,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.model import load_arm  # noqa: E402
-from runtime.recorder import (CycleRecord, SessionReader, SessionRecorder,  # noqa: E402
+from runtime.arm.model import load_arm  # noqa: E402
+from runtime.sessions.recorder import (CycleRecord, SessionReader, SessionRecorder,  # noqa: E402
                               encode_frame)
 
 RATE_HZ = 500

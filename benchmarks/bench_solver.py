@@ -1,6 +1,6 @@
 """One full solve per control cycle: jogwire against a plain reference cycle, same run.
 
-  jogwire    runtime.solver.solve(arm, q, twist, prev_rates=…, dt_s=…): FK + Jacobian,
+  jogwire    runtime.control.solver.solve(arm, q, twist, prev_rates=…, dt_s=…): FK + Jacobian,
              adaptive-damping DLS (σ_min from the eigenvalues of JJᵀ), null-space centring,
              joint-limit check, and every limit (speed, position brake, acceleration,
              TCP caps)
@@ -14,7 +14,7 @@ on the poses of a simulated jog (q += q̇·dt at 500 Hz; WORKLOADS below), so th
 load hits all alike and the jogwire path sees damping and limits as they come in use;
 medians are also given per path (clear of limits and singularities, near a position limit,
 damped). Also times the candidate ways of getting σ_min (the choice made
-in runtime/solver.py). Run from the repository root:
+in runtime/control/solver.py). Run from the repository root:
 
     python benchmarks/bench_solver.py [--cycles N] [--arm reach7]
 """
@@ -31,10 +31,10 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.kinematics import geometric_jacobian, jacobian_from_frames, joint_frames  # noqa: E402
-from runtime.limits import JointBounds, clear_of_limits  # noqa: E402
-from runtime.model import Arm, load_arm  # noqa: E402
-from runtime.solver import _eigvalsh, _solve, solve  # noqa: E402
+from runtime.arm.kinematics import geometric_jacobian, jacobian_from_frames, joint_frames  # noqa: E402
+from runtime.control.limits import JointBounds, clear_of_limits  # noqa: E402
+from runtime.arm.model import Arm, load_arm  # noqa: E402
+from runtime.control.solver import _eigvalsh, _solve, solve  # noqa: E402
 from sim.urdf import write_urdf  # noqa: E402
 
 DT_S = 0.002

@@ -35,12 +35,12 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.inputs.pygame_init import pygame  # noqa: E402
-from runtime.loop import FixedRateLoop, TimingStats  # noqa: E402
-from runtime.model import load_arm  # noqa: E402
-from runtime.solver import solve  # noqa: E402
-from runtime import status_window  # noqa: E402
-from runtime.status_window import SIZE, StatusSnapshot, StatusWindow, draw_status  # noqa: E402
+from runtime.operator.inputs.pygame_init import pygame  # noqa: E402
+from runtime.control.loop import FixedRateLoop, TimingStats  # noqa: E402
+from runtime.arm.model import load_arm  # noqa: E402
+from runtime.control.solver import solve  # noqa: E402
+from runtime.operator import status_window  # noqa: E402
+from runtime.operator.status_window import SIZE, StatusSnapshot, StatusWindow, draw_status  # noqa: E402
 
 ARMS = ("elbow6", "reach7", "scara4", "planar3")
 

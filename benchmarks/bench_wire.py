@@ -38,10 +38,10 @@ import zmq
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from runtime.arm_process import ArmProcess, child_env  # noqa: E402
-from runtime.model import load_arm  # noqa: E402
-from runtime.protocol import Hello, Rates, State, hello_for  # noqa: E402
-from runtime.transport import ArmClient, ArmServer  # noqa: E402
+from runtime.link.arm_process import ArmProcess, child_env  # noqa: E402
+from runtime.arm.model import load_arm  # noqa: E402
+from runtime.link.protocol import Hello, Rates, State, hello_for  # noqa: E402
+from runtime.link.transport import ArmClient, ArmServer  # noqa: E402
 
 ARM = "reach7"
 

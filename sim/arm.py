@@ -29,10 +29,10 @@ import numpy as np
 import pybullet as pb
 
 from runtime.errors import ConfigError, JogwireError
-from runtime.model import Arm, load_arm
-from runtime.pipe_link import PipeServer, parse_link_spec
-from runtime.protocol import hello_for
-from runtime.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
+from runtime.arm.model import Arm, load_arm
+from runtime.link.pipes import PipeServer, parse_link_spec
+from runtime.link.protocol import hello_for
+from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
 from .arm_side import ArmSession, Reading, guard_rates
 from .endpoint import ArmEndpoint, StopFlag
@@ -230,7 +230,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="one step per received rates message, no pacing (deterministic)")
     p.add_argument("--link", metavar="fd:R,W",
                    help="with --lockstep: serve on the pipe ends R (read) and W (write) the "
-                        "parent passed in, instead of --endpoint (runtime/pipe_link.py)")
+                        "parent passed in, instead of --endpoint (runtime/link/pipes.py)")
     p.add_argument("--substeps", type=int, default=1, metavar="N",
                    help="with --lockstep: physics steps per rates message (default 1; e.g. "
                         "2 for a 500 Hz control rate on a 1 ms step)")

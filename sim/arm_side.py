@@ -22,8 +22,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 from runtime.errors import ProtocolError
-from runtime.model import Arm
-from runtime.protocol import Hello, LatenessFilter, Message, Rates, Refuse, SequenceGate, State, \
+from runtime.arm.model import Arm
+from runtime.link.protocol import Hello, LatenessFilter, Message, Rates, Refuse, SequenceGate, State, \
     hello_differences
 
 Vector = NDArray[np.float64]

@@ -30,9 +30,9 @@ from typing import Callable
 import numpy as np
 
 from runtime.errors import ConfigError, JogwireError
-from runtime.model import Arm, load_arm
-from runtime.protocol import hello_for
-from runtime.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
+from runtime.arm.model import Arm, load_arm
+from runtime.link.protocol import hello_for
+from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
 from .arm_side import ArmSession, Reading, guard_rates
 from .endpoint import ArmEndpoint, StopFlag

@@ -25,9 +25,9 @@ from typing import Callable, Protocol
 
 import numpy as np
 
-from runtime.model import Arm
-from runtime.pipe_link import PipeServer
-from runtime.transport import ArmServer
+from runtime.arm.model import Arm
+from runtime.link.pipes import PipeServer
+from runtime.link.transport import ArmServer
 
 from .arm_side import ArmSession, Reading, ramp_to_zero
 

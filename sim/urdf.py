@@ -6,7 +6,7 @@ Layout of the written tree (each arrow a joint, parent → child):
     base_link → link_1 → … → link_n →(fixed "flange_joint") flange →(fixed "tcp_joint") tcp
 
 Joint i keeps the model's joint name, its origin is the model's `origin_i` and its axis is
-z, so loading the file back (`runtime.urdf_loader.load_urdf_arm`) gives the same chain.
+z, so loading the file back (`runtime.arm.urdf.load_urdf_arm`) gives the same chain.
 Floats are written with `repr` (17 significant digits) so that round trip is exact to the
 last bit of the text. Unlimited revolute joints are written as `continuous`. Fixed joints
 and links have different names, so a library that keeps joints and links in one namespace
@@ -27,8 +27,8 @@ from xml.sax.saxutils import quoteattr
 
 import numpy as np
 
-from runtime.model import Arm
-from runtime.transforms import Mat4, rotation_aligning_z
+from runtime.arm.model import Arm
+from runtime.arm.transforms import Mat4, rotation_aligning_z
 
 LINK_RADIUS_M = 0.035
 LINK_MASS_PER_M_KG = 2.5

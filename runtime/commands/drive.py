@@ -58,19 +58,19 @@ from typing import Any, Callable
 
 import numpy as np
 
-from ..arm_process import ArmProcess
+from ..link.arm_process import ArmProcess
 from ..errors import ConfigError, TransportError
-from ..inputs import open_source, parse_input_spec
-from ..kinematics import analyse_pose, tcp_pose
-from ..loop import FixedRateLoop, Tick, TimingStats
-from ..mapping import DirectCommand, InputFrame, load_pad
-from ..model import Arm, load_arm
-from ..pipeline import ControlCycle, CycleOutput
-from ..protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \
+from ..operator.inputs import open_source, parse_input_spec
+from ..arm.kinematics import analyse_pose, tcp_pose
+from ..control.loop import FixedRateLoop, Tick, TimingStats
+from ..control.mapping import DirectCommand, InputFrame, load_pad
+from ..arm.model import Arm, load_arm
+from ..control.cycle import ControlCycle, CycleOutput
+from ..link.protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \
     StateFreshness, encode, hello_differences, hello_for
-from ..recorder import SessionRecorder, cycle_record, new_session_path
-from ..safety import SafetySettings
-from ..transport import ArmClient, check_endpoint, load_client_keys
+from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
+from ..control.safety import SafetySettings
+from ..link.transport import ArmClient, check_endpoint, load_client_keys
 
 DEMO_SCRIPT = "square"            # configs/profiles/square.toml: a 10 cm square at 5 cm/s
 DEFAULT_PADS = {"gamepad": "twinstick", "keyboard": "keyboard"}
@@ -185,13 +185,13 @@ def plan_input(requested: str | None, *, headless: bool, display: bool, pads: in
 def _probe_display_and_pads(headless: bool, need_pads: bool) -> tuple[bool, int]:
     """(a window can open, pads plugged in). Without a display SDL gets its dummy video
     driver, so pygame can still read pads; a display that fails to open counts as none."""
-    from ..inputs.pygame_init import display_available
+    from ..operator.inputs.pygame_init import display_available
     display = display_available() and not headless
     if not display:
         os.environ.setdefault("SDL_VIDEODRIVER", "dummy")
     if not need_pads:
         return display, 0
-    from ..inputs.pygame_init import pads_present, pygame
+    from ..operator.inputs.pygame_init import pads_present, pygame
     try:
         return display, pads_present()
     except pygame.error:
@@ -376,7 +376,7 @@ class DriveSession:
         self._mismatch: str | None = None
         self._prev_start: float | None = None
         self._script_done_at: float | None = None
-        from ..status_window import StatusSnapshot   # pygame: imported only when driving
+        from ..operator.status_window import StatusSnapshot   # pygame: imported only when driving
         self._snapshot_type = StatusSnapshot
 
     # -- other threads -------------------------------------------------------------------
@@ -602,7 +602,7 @@ def enter_realtime(priority: int) -> str:
 def warm_up(arm: Arm, pad: Any, q: np.ndarray, rate_hz: float) -> None:
     """Run every piece of a cycle a few times on a throwaway ControlCycle, so the first real
     cycles do not pay for first calls (imports, caches, numpy's first dispatch)."""
-    from ..status_window import StatusSnapshot
+    from ..operator.status_window import StatusSnapshot
     cycle = ControlCycle(arm, pad, rate_hz=rate_hz)
     frames = [InputFrame("warm-up", True, command=DirectCommand(enable=False))] + \
         [InputFrame("warm-up", True, command=DirectCommand(twist=(0.01, 0, 0, 0, 0, 0)))] * 3
@@ -814,7 +814,7 @@ class _MainThread:
             snap = self.drive.latest
             if snap is not None and snap.elapsed_s >= self.screenshot[1]:
                 if self.window is not None and self.window.frames_drawn:
-                    from ..inputs.pygame_init import pygame
+                    from ..operator.inputs.pygame_init import pygame
                     self._shot = pygame.display.get_surface().copy()
                 elif self.window is None:
                     self._shot = self.snapshot()
@@ -823,8 +823,8 @@ class _MainThread:
     def save_screenshot(self) -> Path | None:
         if self._shot is None:
             return None
-        from ..inputs.pygame_init import pygame
-        from ..status_window import StatusSnapshot, render_png
+        from ..operator.inputs.pygame_init import pygame
+        from ..operator.status_window import StatusSnapshot, render_png
         path = self.screenshot[0]
         if isinstance(self._shot, StatusSnapshot):
             return render_png(self._shot, path)
@@ -835,8 +835,8 @@ class _MainThread:
     def open_window(self, title: str, q0: np.ndarray) -> None:
         """Open the window and draw a first frame before the loop starts: the first frame
         builds the fonts and the static background, which takes a while."""
-        from ..inputs.pygame_init import pygame
-        from ..status_window import StatusSnapshot, StatusWindow
+        from ..operator.inputs.pygame_init import pygame
+        from ..operator.status_window import StatusSnapshot, StatusWindow
         window = StatusWindow(title=title)
         try:
             window.open()
@@ -952,7 +952,7 @@ def run(args: argparse.Namespace) -> int:
     if args.target is not None:
         check_endpoint(args.target, keys, action="connect to")   # refused before anything runs
     if args.gui:
-        from ..inputs.pygame_init import display_available
+        from ..operator.inputs.pygame_init import display_available
         if not display_available():
             raise ConfigError("--gui needs a display for PyBullet's window", field="gui")
     need_pads = args.input is None or args.input == "gamepad"

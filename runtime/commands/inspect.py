@@ -26,8 +26,8 @@ from typing import Any, Iterable, Iterator, TextIO
 import numpy as np
 
 from ..errors import ConfigError
-from ..model import Arm
-from ..recorder import CycleRecord, SessionHeader, SessionReader
+from ..arm.model import Arm
+from ..sessions.recorder import CycleRecord, SessionHeader, SessionReader
 
 TWIST_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
 _CHUNK = 4096      # records turned into arrays at a time
@@ -275,7 +275,7 @@ def _peak(current: tuple[float, float], values: np.ndarray, t: np.ndarray
 
 def _over(peak: float | None, limit: float) -> bool:
     """Above the limit beyond rounding: a rate stepped by exactly max_accel·dt comes back
-    as an acceleration a few ulp off max_accel (the same 1e-9 as runtime.preflight)."""
+    as an acceleration a few ulp off max_accel (the same 1e-9 as runtime.sessions.preflight)."""
     return peak is not None and peak > limit * (1.0 + 1e-9)
 
 

@@ -16,7 +16,7 @@ from __future__ import annotations
 import argparse
 
 from ..errors import ConfigError
-from ..transport import CLIENT_KEY_NAME, SERVER_KEY_NAME, make_keys
+from ..link.transport import CLIENT_KEY_NAME, SERVER_KEY_NAME, make_keys
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:

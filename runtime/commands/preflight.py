@@ -2,11 +2,11 @@
 
 PROFILE is a script (a shipped profile name or a .toml of timed twist segments) or a
 recorded session (.jwlog, whose recorded inputs are played again). The control cycle runs
-in lockstep with the simulated arm in a child process (`runtime.lockstep`), faster than
+in lockstep with the simulated arm in a child process (`runtime.sessions.lockstep`), faster than
 real time, on the arm's measured pose every cycle. The run is evaluated by
-`runtime.preflight` and written to DIR (default ./preflight):
+`runtime.sessions.preflight` and written to DIR (default ./preflight):
 
-    <arm>-<profile>-<time>.html    the report with its plots (runtime.report)
+    <arm>-<profile>-<time>.html    the report with its plots (runtime.sessions.report)
     <arm>-<profile>-<time>.json    the summary (`--json` prints it)
     <arm>-<profile>-<time>.jwlog   the run itself as a session log (replay, inspect)
 
@@ -27,17 +27,17 @@ from typing import Any, Callable
 import numpy as np
 
 from ..errors import ConfigError, LogError
-from ..inputs.script import ScriptSource, load_script
-from ..limits import REDUCED_SPEED_M_S
-from ..lockstep import STATE_LAGS, LockstepSim, run_closed_loop, substeps_for
-from ..mapping import InputFrame, load_pad
-from ..model import Arm, load_arm
-from ..pipeline import ControlCycle
-from ..preflight import Finding, PreflightResult, TraceBuilder, evaluate
-from ..progress import Progress
-from ..recorder import SESSION_SUFFIX, SessionRecorder, cycle_record, read_session
-from ..rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
-from ..safety import SafetySettings
+from ..operator.inputs.script import ScriptSource, load_script
+from ..control.limits import REDUCED_SPEED_M_S
+from ..sessions.lockstep import STATE_LAGS, LockstepSim, run_closed_loop, substeps_for
+from ..control.mapping import InputFrame, load_pad
+from ..arm.model import Arm, load_arm
+from ..control.cycle import ControlCycle
+from ..sessions.preflight import Finding, PreflightResult, TraceBuilder, evaluate
+from ..operator.progress import Progress
+from ..sessions.recorder import SESSION_SUFFIX, SessionRecorder, cycle_record, read_session
+from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
+from ..control.safety import SafetySettings
 
 DEFAULT_OUT = "preflight"
 TAIL_S = 0.1          # cycles run after the profile ends: the arm is seen to come to rest
@@ -138,7 +138,7 @@ def run(args: argparse.Namespace) -> int:
     result = run_info.result
     paths = {"session_log": str(run_info.log_path), "summary": str(out_dir / f"{stem}.json")}
     if not args.no_report:
-        from ..report import ReportContext, write_report
+        from ..sessions.report import ReportContext, write_report
         paths["report"] = str(write_report(out_dir / f"{stem}.html", result, ReportContext(
             arm=arm, profile=profile.name, profile_source=profile.source, rate_hz=args.rate,
             step_hz=args.step_hz, started_at=run_info.started_at, wall_s=run_info.wall_s,

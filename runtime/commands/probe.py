@@ -2,7 +2,7 @@
 
 Prints the TCP pose, the geometric Jacobian (base frame, TCP reference point), its singular
 values, Yoshikawa manipulability and condition number, as a table or as one JSON object;
-with --twist also the joint rates one control cycle would send (`runtime.solver.solve`).
+with --twist also the joint rates one control cycle would send (`runtime.control.solver.solve`).
 
 The JSON keys are stable (other tools read them); `probe_report` builds that object, and
 further options add keys to it (e.g. a twist solve adds joint rates and scale factors).
@@ -18,10 +18,10 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..kinematics import KinematicsReport, analyse_pose
-from ..model import TASK_AXES, Arm, load_arm
-from ..solver import Solution, parse_axes, solve
-from ..transforms import matrix_to_rpy
+from ..arm.kinematics import KinematicsReport, analyse_pose
+from ..arm.model import TASK_AXES, Arm, load_arm
+from ..control.solver import Solution, parse_axes, solve
+from ..arm.transforms import matrix_to_rpy
 
 SINGULAR_RATIO = 1e-9  # σ_min / σ_max below this is reported as a singular pose (round-off)
 

@@ -8,7 +8,7 @@
 Every fault option takes a value for both directions or, prefixed, for one: `rates=` is the
 runtime → arm side direction (hello, rates), `state=` the arm side → runtime direction
 (hello, state, refuse); e.g. `--loss rates=20% --delay state=100ms`. What each fault does is
-in `runtime/relay.py`; stalls without a time start on SIGUSR1, `--faults-from signal` waits
+in `runtime/link/relay.py`; stalls without a time start on SIGUSR1, `--faults-from signal` waits
 for SIGUSR2 (e.g. `kill -USR2 PID` mid-motion). Counters are printed at exit
 (Ctrl-C, SIGTERM or --duration) and, with --report, written as JSON.
 
@@ -35,9 +35,9 @@ from typing import Callable, TextIO
 import zmq
 
 from ..errors import ConfigError
-from ..relay import (DIRECTIONS, GARBAGE_KINDS, Delivery, Link, LinkFaults, faults_from_options,
+from ..link.relay import (DIRECTIONS, GARBAGE_KINDS, Delivery, Link, LinkFaults, faults_from_options,
                      message_kind)
-from ..transport import (DEFAULT_ARM_ENDPOINT, DRAIN_LIMIT, ArmServer, ClientKeys, ServerKeys,
+from ..link.transport import (DEFAULT_ARM_ENDPOINT, DRAIN_LIMIT, ArmServer, ClientKeys, ServerKeys,
                          _Socket, check_endpoint, load_client_keys,
                          load_server_keys)
 

@@ -41,16 +41,16 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..arm_process import ArmProcess
+from ..link.arm_process import ArmProcess
 from ..errors import ConfigError, LogError, TransportError
-from ..lockstep import LockstepSim, arm_file_for, run_closed_loop
-from ..model import Arm, load_arm
-from ..progress import Progress
-from ..protocol import FLAG_REDUCED_SPEED, Rates, hello_for
-from ..recorder import CycleRecord, Session, read_session
-from ..rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of, \
+from ..sessions.lockstep import LockstepSim, arm_file_for, run_closed_loop
+from ..arm.model import Arm, load_arm
+from ..operator.progress import Progress
+from ..link.protocol import FLAG_REDUCED_SPEED, Rates, hello_for
+from ..sessions.recorder import CycleRecord, Session, read_session
+from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of, \
     rerun_open_loop
-from ..transport import ArmClient, load_client_keys
+from ..link.transport import ArmClient, load_client_keys
 
 DEFAULT_TOLERANCE = 1e-12
 START_TOLERANCE = {"revolute": math.radians(1.0), "prismatic": 1e-3}   # rad, m

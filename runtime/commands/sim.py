@@ -10,7 +10,7 @@ from __future__ import annotations
 import argparse
 import os
 
-from ..arm_process import child_argv, child_env
+from ..link.arm_process import child_argv, child_env
 
 OPTIONS_SUMMARY = """\
 options (passed to the simulated arm; `jogwire sim ARM --help` explains each):

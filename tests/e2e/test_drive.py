@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.arm_process import child_env
-from runtime.kinematics import tcp_pose
-from runtime.recorder import read_session
+from runtime.link.arm_process import child_env
+from runtime.arm.kinematics import tcp_pose
+from runtime.sessions.recorder import read_session
 
 pytestmark = pytest.mark.e2e
 
@@ -144,8 +144,8 @@ def test_arm_stops_when_the_script_releases_enable(request, run):
 
 def test_status_window_renders_a_real_drive_snapshot(paced_run):
     """The PNG of the status window, drawn from the live snapshot taken at 1.2 s."""
-    from runtime.inputs.pygame_init import pygame
-    from runtime.status_window import GROUND, SIZE, STATE_COLOURS
+    from runtime.operator.inputs.pygame_init import pygame
+    from runtime.operator.status_window import GROUND, SIZE, STATE_COLOURS
     _, summary, _, tmp = paced_run
     assert summary["screenshot"] == str(tmp / "status.png")
     img = pygame.surfarray.array3d(pygame.image.load(str(tmp / "status.png")))

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 from runtime.errors import TransportError
-from runtime.lockstep import LockstepSim
-from runtime.model import load_arm
+from runtime.sessions.lockstep import LockstepSim
+from runtime.arm.model import load_arm
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]
 

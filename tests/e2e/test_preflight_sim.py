@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from runtime.cli import main
-from runtime.limits import REDUCED_SPEED_M_S
+from runtime.control.limits import REDUCED_SPEED_M_S
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]
 

@@ -18,11 +18,11 @@ import numpy as np
 import pytest
 import zmq
 
-from runtime.arm_process import ArmProcess, child_env
+from runtime.link.arm_process import ArmProcess, child_env
 from runtime.errors import ProtocolError
-from runtime.model import load_arm
-from runtime.protocol import Rates, State, decode, hello_for
-from runtime.transport import ArmClient
+from runtime.arm.model import load_arm
+from runtime.link.protocol import Rates, State, decode, hello_for
+from runtime.link.transport import ArmClient
 
 pytestmark = pytest.mark.e2e
 

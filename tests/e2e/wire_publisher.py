@@ -20,9 +20,9 @@ import time
 import msgpack
 
 from runtime.errors import ModelMismatch, TransportError
-from runtime.model import load_arm
-from runtime.protocol import PROTOCOL_VERSION, Rates, encode, hello_for
-from runtime.transport import ArmClient
+from runtime.arm.model import load_arm
+from runtime.link.protocol import PROTOCOL_VERSION, Rates, encode, hello_for
+from runtime.link.transport import ArmClient
 
 
 def garbage(n: int, k: int) -> bytes:

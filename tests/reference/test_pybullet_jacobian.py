@@ -15,9 +15,9 @@ import numpy as np
 import pybullet
 import pytest
 
-from runtime.kinematics import geometric_jacobian, tcp_pose
-from runtime.model import Arm, load_arm
-from runtime.urdf_loader import load_urdf_arm
+from runtime.arm.kinematics import geometric_jacobian, tcp_pose
+from runtime.arm.model import Arm, load_arm
+from runtime.arm.urdf import load_urdf_arm
 from sim.urdf import write_urdf
 
 pytestmark = pytest.mark.reference

@@ -13,10 +13,10 @@ import numpy as np
 import pybullet as pb
 import pytest
 
-from runtime.kinematics import tcp_pose
-from runtime.model import load_arm
-from runtime.protocol import Rates, hello_for
-from runtime.transport import ArmClient, ArmServer
+from runtime.arm.kinematics import tcp_pose
+from runtime.arm.model import load_arm
+from runtime.link.protocol import Rates, hello_for
+from runtime.link.transport import ArmClient, ArmServer
 from sim.arm import SimulatedArm, main, write_png
 from sim.arm_side import ArmSession
 from sim.endpoint import ArmEndpoint

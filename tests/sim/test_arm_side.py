@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 from runtime.errors import ProtocolError
-from runtime.model import load_arm
-from runtime.protocol import Hello, Rates, Refuse, Twist, hello_for
+from runtime.arm.model import load_arm
+from runtime.link.protocol import Hello, Rates, Refuse, Twist, hello_for
 from sim.arm_side import MAX_IN_ORDER, ArmSession, Reading, guard_rates, ramp_to_zero, stop_time_s
 
 MS = 1_000_000  # ns

@@ -13,12 +13,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.arm_process import ArmProcess
+from runtime.link.arm_process import ArmProcess
 from runtime.commands import bridge as bridge_command
 from runtime.errors import ConfigError
-from runtime.model import Arm, load_arm
-from runtime.protocol import Rates, hello_for
-from runtime.transport import ArmClient
+from runtime.arm.model import Arm, load_arm
+from runtime.link.protocol import Rates, hello_for
+from runtime.link.transport import ArmClient
 from sim.bridge import BridgeTarget, Driver, JointSample, VirtualDriver, build_parser, \
     load_driver, main
 

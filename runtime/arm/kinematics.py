@@ -1,0 +1,156 @@
+"""Forward kinematics, geometric Jacobian and dexterity measures (pure numpy, no I/O).
+
+Chain convention: see `runtime.arm.model`. Every joint moves about / along its local z axis,
+so after the chain product the joint axes and origins are read straight off the frames.
+
+Geometric Jacobian in the base frame, reference point the TCP (Spong, Hutchinson &
+Vidyasagar 2006, Ch. 4; Siciliano et al. 2009, eq. 3.30):
+    revolute i:  J_i = [ z_i × (p_tcp − o_i) ; z_i ]
+    prismatic i: J_i = [ z_i ; 0 ]
+Rows are (vx, vy, vz, wx, wy, wz) in m/s and rad/s per unit joint rate.
+
+Example: planar 2R, a1 = 0.4 m, a2 = 0.3 m, q = (30°, 60°) →
+    Jv(xy) = [[−0.5, −0.3], [0.34641, 0]], det = a1·a2·sin q2 = 0.103923.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .model import Arm
+from .transforms import Mat4
+
+Jacobian = NDArray[np.float64]  # (6, n)
+
+
+def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
+    """origin_i · Motion_i(q_i) for every joint, as one (n, 4, 4) batch (base not included)."""
+    O = arm.origins
+    q = np.asarray(q, dtype=float)
+    c = np.cos(q)[:, None]
+    s = np.sin(q)[:, None]
+    L = O.copy()
+    # Right-multiplying by Rz(q) mixes columns 0 and 1; by Tz(q) shifts column 3 along column 2.
+    rev = arm.is_revolute
+    L[rev, :, 0] = (O[:, :, 0] * c + O[:, :, 1] * s)[rev]
+    L[rev, :, 1] = (O[:, :, 1] * c - O[:, :, 0] * s)[rev]
+    pri = arm.prismatic_index
+    L[pri, :, 3] += O[pri, :, 2] * q[pri, None]
+    return L
+
+
+def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
+    """All joint frames in the base frame, (n, 4, 4), after each joint's motion, and T_tcp.
+
+    Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3].
+
+    This is the hot path (every control cycle), written to keep the count of numpy calls
+    low, since each costs about a microsecond whatever the array size: all link transforms
+    come from one matrix product with `arm.motion_terms` (base folded into joint 0), and the
+    chain product is one matrix product per joint, written straight into `frames`.
+    """
+    offset, matrix = arm.motion_terms
+    dot = np.dot  # np.dot has less call overhead than the @ operator on small arrays
+    L = dot(matrix, np.concatenate((np.cos(q), np.sin(q), q)))
+    L += offset
+    L = L.reshape(-1, 4, 4)
+    frames = np.empty_like(L)
+    T = frames[0] = L[0]
+    for i in range(1, len(L)):  # the chain product is sequential by nature
+        T = dot(T, L[i], out=frames[i])
+    return frames, dot(T, arm.tip)
+
+
+def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:
+    """T_base→tcp (4×4, metres)."""
+    return joint_frames(arm, q)[1]
+
+
+# ε_kij as a (3, 9) matrix: (z × r)_k = Σ_ij ε_kij z_i r_j, so one matrix product turns the
+# batch of outer products z_i r_j into the batch of cross products (np.cross costs ~30 µs).
+_LEVI_CIVITA = np.zeros((3, 9))
+for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
+    _LEVI_CIVITA[_k, 3 * _i + _j] = 1.0
+    _LEVI_CIVITA[_k, 3 * _j + _i] = -1.0
+
+
+def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> Jacobian:
+    """Geometric Jacobian (6×n, base frame, TCP reference point) from `joint_frames`."""
+    z = frames[:, :3, 2]
+    r = T_tcp[:3, 3] - frames[:, :3, 3]
+    outer = (z[:, :, None] * r[:, None, :]).reshape(-1, 9)  # z_i r_j per joint
+    J = np.concatenate((np.dot(_LEVI_CIVITA, outer.T), z.T))
+    pri = arm.prismatic_index
+    if len(pri):
+        J[:3, pri] = z[pri].T
+        J[3:, pri] = 0.0
+    return J
+
+
+def geometric_jacobian(arm: Arm, q: NDArray[np.float64]) -> Jacobian:
+    """Geometric Jacobian at q in the base frame, reference point the TCP."""
+    frames, T = joint_frames(arm, q)
+    return jacobian_from_frames(arm, frames, T)
+
+
+def tool_frame_jacobian(J_base: Jacobian, T_tcp: Mat4) -> Jacobian:
+    """The same Jacobian with its rows expressed in the tool (TCP) axes: diag(Rᵀ, Rᵀ)·J."""
+    Rt = T_tcp[:3, :3].T
+    return np.vstack((Rt @ J_base[:3], Rt @ J_base[3:]))
+
+
+def twist_to_base(twist: NDArray[np.float64], T_tcp: Mat4) -> NDArray[np.float64]:
+    """A TCP twist given in tool axes, rotated into base axes (same reference point)."""
+    R = T_tcp[:3, :3]
+    return np.concatenate((R @ twist[:3], R @ twist[3:]))
+
+
+def task_rows(J: Jacobian, mask: NDArray[np.bool_]) -> Jacobian:
+    """Only the rows of the task directions the arm (or operator) selects."""
+    return J[mask]
+
+
+def yoshikawa_manipulability(singular_values: NDArray[np.float64]) -> float:
+    """w = √det(J Jᵀ) = Π σ_i (Yoshikawa 1985, IJRR 4(2)); 0 when J has fewer σ than rows."""
+    return float(np.prod(singular_values))
+
+
+def condition_number(singular_values: NDArray[np.float64]) -> float:
+    """κ = σ_max / σ_min (Salisbury & Craig 1982); inf at a singularity."""
+    smin = singular_values[-1]
+    return float(singular_values[0] / smin) if smin > 0 else float("inf")
+
+
+@dataclass(frozen=True, eq=False)
+class KinematicsReport:
+    """Everything `jogwire probe` prints about one pose."""
+
+    q: NDArray[np.float64]
+    tcp_pose: Mat4
+    jacobian: Jacobian
+    task_jacobian: Jacobian
+    singular_values: NDArray[np.float64]
+    manipulability: float
+    condition_number: float
+
+
+def analyse_pose(arm: Arm, q: NDArray[np.float64]) -> KinematicsReport:
+    """TCP pose, Jacobian and dexterity measures of the arm's task rows at q.
+
+    A task with more rows than joints has n singular values only; the missing ones are 0,
+    so manipulability and condition number then report the rank deficiency honestly.
+    """
+    q = np.asarray(q, dtype=float)
+    frames, T = joint_frames(arm, q)
+    J = jacobian_from_frames(arm, frames, T)
+    Jt = task_rows(J, arm.task_mask)
+    sv = np.linalg.svd(Jt, compute_uv=False)
+    m = Jt.shape[0]
+    if len(sv) < m:
+        sv = np.concatenate((sv, np.zeros(m - len(sv))))
+    return KinematicsReport(q=q, tcp_pose=T, jacobian=J, task_jacobian=Jt, singular_values=sv,
+                            manipulability=yoshikawa_manipulability(sv),
+                            condition_number=condition_number(sv))

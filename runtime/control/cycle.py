@@ -1,0 +1,133 @@
+"""One control cycle, end to end, with no I/O and no clock: input frame → joint rates.
+
+    InputFrame ─► Mapper ─► SafetyGate ─► solve (DLS + limits) ─► rates
+       (raw)      (intent)   (allowed?)    or joint jog + limits
+
+`ControlCycle` is what `jogwire drive` runs at its loop rate, what `jogwire preflight` runs in
+lockstep with the simulated arm and what `jogwire replay --rerun` feeds recorded inputs
+through. Everything that varies between those — time, the measured pose and its age, the
+loop's overrun streak, the link's round trip — is an argument, so the same inputs always give
+the same rates.
+
+The cycle length `dt_s` is the nominal period (1 / rate), not a measured one: the limits
+then hold for the commanded profile whatever the scheduler did, and a re-run reproduces the
+recorded rates exactly.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..arm.kinematics import analyse_pose
+from .limits import apply_limits, binding_limit
+from .mapping import DirectCommand, InputFrame, Intent, Mapper, PadMapping
+from ..arm.model import Arm
+from .safety import SafetyGate, SafetySettings, Verdict
+from .solver import Solution, solve
+
+Vector = NDArray[np.float64]
+
+# How many cycles the measured pose a closed-loop run works on may lag behind the arm
+# (runtime.sessions.lockstep.run_closed_loop; recorded as `state_lag_cycles`, read by runtime.sessions.rerun).
+STATE_LAGS = (0, 1)
+
+
+@dataclass(frozen=True, eq=False)
+class CycleOutput:
+    """What one cycle decided. `solution` is None when motion was not allowed."""
+
+    rates: Vector
+    intent: Intent
+    verdict: Verdict
+    solution: Solution | None
+
+
+class ControlCycle:
+    """Mapper, safety gate and solver for one arm, with the rates sent last cycle."""
+
+    def __init__(self, arm: Arm, pad: PadMapping, *, rate_hz: float,
+                 safety: SafetySettings = SafetySettings(), reduced_locked: bool = False,
+                 locked: tuple[str, ...] = ()) -> None:
+        self.arm = arm
+        self.dt_s = 1.0 / rate_hz
+        self.locked = locked
+        self.mapper = Mapper(pad, arm, reduced_locked=reduced_locked)
+        self.gate = SafetyGate(safety)
+        self.prev_rates = np.zeros(arm.n)
+
+    def step(self, frame: InputFrame, now_s: float, q: Vector | None,
+             state_stamp_s: float | None, *, overrun_streak: int = 0,
+             round_trip_s: float | None = 0.0, hold: str | None = None) -> CycleOutput:
+        """One cycle at time now_s (s, loop clock) with the newest measured pose q.
+
+        state_stamp_s: when q was received (same clock), None before the first state.
+        round_trip_s: the link's measured round trip (s), None before one was measured; the
+            default 0.0 is a link without delay (preflight's lockstep, re-runs).
+        hold: a reason from the caller that forbids motion (target not ready, …).
+        """
+        intent = self.mapper.update(frame)
+        verdict = self.gate.update(now_s, enable=intent.enable, stop=intent.stop,
+                                   reset=intent.reset, present=intent.present,
+                                   state_stamp_s=state_stamp_s, overrun_streak=overrun_streak,
+                                   round_trip_s=round_trip_s, hold=hold)
+        if not verdict.allowed or q is None:
+            # Hold-to-move: zero at once. The arm side brakes at its rated deceleration.
+            self.prev_rates = np.zeros(self.arm.n)
+            return CycleOutput(self.prev_rates, intent, verdict, None)
+        if intent.mode == "joint":
+            solution = self._jog_joint(q, intent)
+        else:
+            solution = solve(self.arm, q, intent.twist, frame=intent.frame,
+                             locked=self.locked, reduced=intent.reduced,
+                             prev_rates=self.prev_rates, dt_s=self.dt_s)
+        self.prev_rates = solution.rates
+        return CycleOutput(solution.rates, intent, verdict, solution)
+
+    def _jog_joint(self, q: Vector, intent: Intent) -> Solution:
+        """Single-joint jog: one joint's rate, through the same limits as a Cartesian move."""
+        rates = np.zeros(self.arm.n)
+        rates[intent.joint] = intent.joint_rate
+        pose = analyse_pose(self.arm, q)
+        limited = apply_limits(self.arm, q, rates, pose.jacobian, reduced=intent.reduced,
+                               prev_rates=self.prev_rates, dt_s=self.dt_s)
+        return Solution(
+            rates=limited.rates, damping=0.0, sigma_min=float(pose.singular_values[-1]),
+            manipulability=pose.manipulability, commanded_twist=pose.jacobian @ rates,
+            achieved_twist=limited.twist, tracking_error=0.0, tracking_error_linear=0.0,
+            tracking_error_angular=0.0, scales=limited.scales,
+            binding_limit=binding_limit(limited.scales), saturated_joints=())
+
+
+# ----------------------------------------------------------------------------------------
+# Input frames as plain data (for the session log and re-runs)
+# ----------------------------------------------------------------------------------------
+
+def frame_to_wire(frame: InputFrame) -> dict[str, Any]:
+    """An InputFrame as msgpack-ready values; `frame_from_wire` gives it back exactly."""
+    c = frame.command
+    return {
+        "device": frame.device,
+        "present": frame.present,
+        "axes": [float(a) for a in frame.axes],
+        "pressed": sorted(frame.pressed, key=lambda b: (isinstance(b, str), str(b))),
+        "command": None if c is None else {
+            "twist": [float(v) for v in c.twist], "frame": c.frame, "enable": c.enable,
+            "reduced": c.reduced, "joint": c.joint, "joint_rate": float(c.joint_rate),
+            "stop": c.stop, "reset": c.reset},
+    }
+
+
+def frame_from_wire(m: dict[str, Any]) -> InputFrame:
+    c = m.get("command")
+    command = None if c is None else DirectCommand(
+        twist=tuple(float(v) for v in c["twist"]), frame=str(c["frame"]),
+        enable=bool(c["enable"]), reduced=bool(c["reduced"]),
+        joint=None if c["joint"] is None else int(c["joint"]),
+        joint_rate=float(c["joint_rate"]), stop=bool(c["stop"]), reset=bool(c["reset"]))
+    return InputFrame(device=str(m["device"]), present=bool(m["present"]),
+                      axes=tuple(float(a) for a in m["axes"]),
+                      pressed=frozenset(m["pressed"]), command=command)

@@ -1,0 +1,229 @@
+"""The wire over a pair of pipes to a child process: the private link of a lockstep run.
+
+    runtime  PipeClient  ──write fd──►  PipeServer  sim child (`sim.arm --link fd:R,W`)
+                         ◄──read fd──
+
+A lockstep run (preflight, closed-loop re-runs) is one rates message out and one state back
+per control cycle, between this process and a child it started itself. Over ZeroMQ every
+exchange wakes each side's I/O thread in both directions; over a pipe it is one write and
+one read a side (bare round trip measured here: ~17 µs for a pipe, ~130 µs for a ZeroMQ
+DEALER/ROUTER pair; benchmarks/RESULTS.md). Nothing else changes: the messages are the
+wire's own (`protocol.encode`/`decode`, the hello exchange included), each framed by its
+length as a 4-byte little-endian unsigned integer (docs/PROTOCOL.md, "Lockstep over pipes").
+
+The two classes offer what `ArmClient` and `ArmServer` offer the code that uses them
+(`send`, `receive`/`drain`, `poll`, `handshake`, `dropped`), so the arm side's serving loop
+and the lockstep runner do not know which link they have. A pipe is private to the two
+processes: no address, no keys. A pipe loses and reorders nothing, so there are no retries;
+its end (EOF, the other process gone) is reported, never waited out.
+"""
+
+from __future__ import annotations
+
+import os
+import select
+import struct
+import time
+from collections import Counter
+
+from ..errors import TransportError
+from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, encode
+from .transport import Inbox, check_answer, decode_counted
+
+PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)
+# A lockstep peer answers within a cycle's work (a few hundred µs), so a reader polls the
+# pipe without sleeping for the first SPIN_S of a wait, then sleeps in select. Waking a
+# sleeping reader costs ~75–370 µs here (benchmarks/RESULTS.md); strictly in turn (state
+# lag 0) both sides wait every cycle, and spinning doubles the speed. It costs a core that
+# would be idle while the other process works.
+SPIN_S = 0.002
+_LENGTH = struct.Struct("<I")
+_READ_BYTES = 1 << 16
+
+
+def link_spec(read_fd: int, write_fd: int) -> str:
+    """How the child is told its ends: "fd:R,W" (read fd, write fd, in the child)."""
+    return f"fd:{read_fd},{write_fd}"
+
+
+def parse_link_spec(spec: str) -> tuple[int, int]:
+    """(read fd, write fd) from "fd:R,W"; TransportError otherwise."""
+    try:
+        kind, fds = spec.split(":", 1)
+        read_fd, write_fd = (int(v) for v in fds.split(","))
+    except ValueError:
+        kind, read_fd, write_fd = "", -1, -1
+    if kind != "fd" or read_fd < 0 or write_fd < 0:
+        raise TransportError(f"a pipe link is given as fd:READ,WRITE, got {spec!r}")
+    return read_fd, write_fd
+
+
+class PipeEnd:
+    """One process's end of the link: frames out on one fd, frames in from another."""
+
+    def __init__(self, read_fd: int, write_fd: int, *, spin_s: float = SPIN_S) -> None:
+        self.read_fd, self.write_fd = read_fd, write_fd
+        os.set_blocking(read_fd, False)     # reads take what has arrived; `poll` waits
+        self.spin_s = spin_s
+        self.buffer = bytearray()
+        self.ended = False                 # the other end closed (or the pipe broke)
+        self.dropped: Counter[str] = Counter()
+        self.received = 0
+
+    def send_frame(self, payload: bytes) -> bool:
+        """Write one frame, whole; False if the other end is gone. (A write waits only when
+        the pipe's buffer, 64 KiB on Linux, is full: a lockstep peer reads every message.)"""
+        data = memoryview(_LENGTH.pack(len(payload)) + payload)
+        try:
+            while data:
+                data = data[os.write(self.write_fd, data):]
+        except OSError:                     # BrokenPipeError: the reader closed its end
+            self.ended = True
+            return False
+        return True
+
+    def poll(self, timeout_s: float) -> bool:
+        """Wait up to timeout_s for a whole frame (or the end of the link); True if there.
+        The first `spin_s` of the wait polls without sleeping (see SPIN_S)."""
+        now = time.monotonic()
+        deadline, spin_until = now + max(timeout_s, 0.0), now + min(self.spin_s, timeout_s)
+        while not self._has_frame() and not self.ended:
+            if self._fill():
+                continue
+            now = time.monotonic()
+            if now >= deadline:
+                return False
+            if now >= spin_until:
+                select.select([self.read_fd], [], [], deadline - now)
+        return True
+
+    def frames(self) -> list[bytes]:
+        """Every whole frame that has arrived (without waiting); oversized ones are
+        counted in `dropped` and skipped."""
+        if not self.ended:
+            self._fill()
+        out = []
+        while self._has_frame():
+            (n,) = _LENGTH.unpack_from(self.buffer)
+            payload = bytes(self.buffer[4:4 + n])
+            del self.buffer[:4 + n]
+            self.received += 1
+            if n > MAX_MESSAGE_BYTES:
+                self.dropped["oversize"] += 1
+                continue
+            out.append(payload)
+        return out
+
+    def _has_frame(self) -> bool:
+        if len(self.buffer) < 4:
+            return False
+        return len(self.buffer) >= 4 + _LENGTH.unpack_from(self.buffer)[0]
+
+    def _fill(self) -> bool:
+        """Read what has arrived without waiting; True if anything came."""
+        try:
+            chunk = os.read(self.read_fd, _READ_BYTES)
+        except BlockingIOError:
+            return False
+        except OSError:
+            chunk = b""
+        if not chunk:
+            self.ended = True
+            return False
+        self.buffer += chunk
+        return True
+
+    def decode(self, payload: bytes, n_joints: int | None) -> Message | ProtocolError:
+        return decode_counted(payload, n_joints, self.dropped)
+
+    def close(self) -> None:
+        for fd in (self.read_fd, self.write_fd):
+            try:
+                os.close(fd)
+            except OSError:
+                pass
+        self.read_fd = self.write_fd = -1
+        self.ended = True
+
+
+class PipeServer(PipeEnd):
+    """The arm side of a pipe link: the drop-in for `ArmServer` in `sim.endpoint`."""
+
+    def __init__(self, read_fd: int, write_fd: int, *, n_joints: int) -> None:
+        super().__init__(read_fd, write_fd)
+        self.n_joints = n_joints
+        self.endpoint = link_spec(read_fd, write_fd)
+
+    def drain(self) -> list[tuple[bytes, Message | ProtocolError]]:
+        """Everything waiting, decoded, from the one peer; malformed ones counted."""
+        return [(PIPE_PEER, self.decode(p, self.n_joints)) for p in self.frames()]
+
+    def send(self, peer: bytes, msg: Message) -> str:
+        """"sent", or "gone" when the runtime's end is closed."""
+        return "sent" if self.send_frame(encode(msg)) else "gone"
+
+    def __enter__(self) -> "PipeServer":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class PipeClient(PipeEnd):
+    """The runtime's end of a pipe link to a child it started: the drop-in for `ArmClient`
+    in a lockstep run."""
+
+    def __init__(self, read_fd: int, write_fd: int, *, hello: Hello,
+                 endpoint: str = "the arm side's pipe") -> None:
+        super().__init__(read_fd, write_fd)
+        self.hello = hello
+        self.n_joints = len(hello.joints)
+        self.endpoint = endpoint
+        self.send_dropped = 0
+
+    def send(self, msg: Message) -> bool:
+        if self.send_frame(encode(msg)):
+            return True
+        self.send_dropped += 1
+        return False
+
+    def messages(self, timeout_s: float = 0.0) -> list[Message]:
+        """Every valid message waiting, in order (after up to timeout_s for the first);
+        malformed ones are counted in `dropped`. A lockstep runner needs each state, not
+        only the newest."""
+        if timeout_s > 0 and not self.poll(timeout_s):
+            return []
+        decoded = (self.decode(p, self.n_joints) for p in self.frames())
+        return [m for m in decoded if not isinstance(m, ProtocolError)]
+
+    def receive(self, timeout_s: float = 0.0) -> Inbox:
+        """Everything waiting (after up to timeout_s for the first message), sorted like
+        `ArmClient.receive`: the newest state, hello and refusal."""
+        inbox = Inbox()
+        if timeout_s > 0 and not self.poll(timeout_s):
+            return inbox
+        for payload in self.frames():
+            inbox.add(self.decode(payload, self.n_joints), self.dropped)
+        return inbox
+
+    def handshake(self, timeout_s: float = 5.0) -> tuple[Hello, State]:
+        """Say hello once (a pipe loses nothing) and wait for the arm side's hello and first
+        state; the same checks and errors as `ArmClient.handshake`."""
+        deadline = time.monotonic() + timeout_s
+        if not self.send(self.hello):
+            raise TransportError(f"{self.endpoint} is closed")
+        theirs: Hello | None = None
+        while (remaining := deadline - time.monotonic()) > 0 and not self.ended:
+            inbox = self.receive(remaining)
+            theirs = check_answer(inbox, self.hello, self.endpoint) or theirs
+            if theirs is not None and inbox.state is not None:
+                return theirs, inbox.state
+        raise TransportError(f"no answer on {self.endpoint} within {timeout_s:g} s"
+                             + (" (the other end closed)" if self.ended else ""))
+
+    def __enter__(self) -> "PipeClient":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+

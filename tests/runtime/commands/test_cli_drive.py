@@ -1,0 +1,212 @@
+"""`jogwire drive` in-process, without sockets or a window: which input it picks, its session
+statistics, and the loop body run against an ideal arm on a fake clock — how every way of
+stopping ends with zero rates the arm side has applied."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from runtime.commands.drive import SETTLE_TIMEOUT_S, DriveSession, LogHistogram, \
+    build_summary, format_summary, plan_input
+from runtime.errors import ConfigError
+from runtime.operator.inputs.script import ScriptSource, load_script
+from runtime.arm.kinematics import tcp_pose
+from runtime.control.loop import FixedRateLoop
+from runtime.control.mapping import load_pad
+from runtime.arm.model import load_arm
+from runtime.control.cycle import ControlCycle
+from runtime.link.protocol import State
+from runtime.link.transport import Inbox
+
+RATE_HZ = 500.0
+
+
+@pytest.mark.parametrize("requested, headless, display, pads, spec, window", [
+    (None, False, True, 1, "gamepad", True),          # a pad and a display: the usual desk
+    (None, False, True, 0, "keyboard", True),         # no pad: keys in the window
+    (None, False, False, 0, "script:square", False),  # a server, CI, a container
+    (None, True, True, 0, "script:square", False),    # --headless, no pad
+    (None, True, False, 2, "gamepad", False),         # a pad works without a window too
+    ("script:x.toml", False, True, 1, "script:x.toml", True),
+    ("network:tcp://127.0.0.1:5", True, False, 0, "network:tcp://127.0.0.1:5", False),
+])
+def test_plan_input_picks_the_input_and_says_why(requested, headless, display, pads, spec,
+                                                 window):
+    plan = plan_input(requested, headless=headless, display=display, pads=pads)
+    assert (plan.spec, plan.window) == (spec, window)
+    if requested is None and spec.startswith("script"):
+        assert "demo script 'square' headless" in plan.note
+
+
+@pytest.mark.parametrize("headless, display", [(True, True), (False, False)])
+def test_keyboard_without_a_window_is_refused(headless, display):
+    with pytest.raises(ConfigError, match="keyboard input needs the status window"):
+        plan_input("keyboard", headless=headless, display=display, pads=0)
+
+
+def test_log_histogram_percentiles_against_numpy():
+    """Log-binned percentiles agree with numpy's nearest-rank ones (the outside reference) to
+    half a bin: a bin spans a factor 10^(1/100), 2.3 %."""
+    rng = np.random.default_rng(7)
+    x = rng.lognormal(mean=math.log(1e-3), sigma=0.8, size=19999)   # ~1 ms, long tail
+    h = LogHistogram()
+    for v in x:
+        h.add(float(v))
+    for p in (1, 50, 90, 99, 99.9):
+        assert h.percentile(p) == pytest.approx(np.percentile(x, p, method="inverted_cdf"),
+                                                rel=0.012)
+    assert h.max == x.max() and h.n == len(x)
+    assert LogHistogram().percentile(50) is None
+
+
+class IdealArm:
+    """An in-memory arm side: follows each rates message exactly for the time until the next
+    receive (explicit Euler), answers with a state echoing the rates it applied."""
+
+    def __init__(self, arm, clock, *, alive: bool = True) -> None:
+        self.arm, self.clock, self.alive = arm, clock, alive
+        self.q = arm.home().copy()
+        self.qd = np.zeros(arm.n)
+        self.applied = None
+        self.sent = []
+        self.t = clock()
+        self.seq = 0
+        self.dropped, self.send_dropped = {}, 0
+
+    deaf = (math.inf, math.inf)     # (from, to) clock readings: rates sent then are lost
+
+    def send(self, msg) -> bool:
+        self.sent.append(msg)
+        if not self.deaf[0] <= msg.t_ns * 1e-9 < self.deaf[1]:
+            self.applied = msg
+        return True
+
+    def receive(self, timeout_s: float = 0.0) -> Inbox:
+        now = self.clock()
+        self.q = self.q + self.qd * (now - self.t)
+        self.t = now
+        self.qd = np.zeros(self.arm.n) if self.applied is None else np.array(self.applied.qd)
+        if not self.alive:
+            return Inbox()
+        self.seq += 1
+        a = self.applied
+        return Inbox(state=State(seq=self.seq, t_ns=int(now * 1e9), q=self.q, qd=self.qd,
+                                 applied_seq=a.seq if a else 0, echo_ns=a.t_ns if a else 0,
+                                 status="tracking"))
+
+
+class FakeClock:
+    def __init__(self) -> None:
+        self.now = 50.0
+
+    def __call__(self) -> float:
+        self.now += 2e-6      # each reading costs a little, so spin-waits end
+        return self.now
+
+    def sleep(self, d: float) -> None:
+        self.now += d
+
+
+def make_session(script="square", *, duration_s=None, alive=True):
+    arm = load_arm("elbow6")
+    clock = FakeClock()
+    client = IdealArm(arm, clock, alive=alive)
+    source = ScriptSource(load_script(script, arm))
+    drive = DriveSession(arm=arm, cycle=ControlCycle(arm, load_pad("keyboard"),
+                                                     rate_hz=RATE_HZ),
+                         source=source, client=client, recorder=None, clock=clock,
+                         stale_after_s=0.1, duration_s=duration_s, same_clock=True,
+                         target="ideal", rate_hz=RATE_HZ)
+    loop = FixedRateLoop(RATE_HZ, clock=clock, sleep=clock.sleep)
+    return drive, loop, client, arm
+
+
+def test_a_stop_request_mid_motion_holds_zero_until_the_arm_is_at_rest():
+    drive, loop, arm_side, arm = make_session()
+    t_stop = 1.5                                      # 1 s into the first leg (+x, 5 cm/s)
+
+    def body(tick):
+        if drive.t0 is not None and tick.start_s - drive.t0 >= t_stop and not drive.ending:
+            drive.request_end("stopped by SIGINT")    # once, like one Ctrl-C
+        return drive.body(tick)
+
+    stats = loop.run(body, duration_s=10.0)
+    assert drive.end_reason == "stopped by SIGINT"
+    assert drive.stop_outcome.startswith("zero rates applied; arm measured at rest")
+    assert stats.cycles < 1.5 * RATE_HZ + 5           # it ended within a few cycles
+    last = arm_side.sent[-1]
+    assert not any(last.qd) and last.seq == drive.seq
+    # moved ~1 s at 5 cm/s along +x before the stop (the ideal arm integrates exactly)
+    moved = tcp_pose(arm, arm_side.q)[:3, 3] - tcp_pose(arm, arm.home())[:3, 3]
+    assert moved[0] == pytest.approx(0.05 * (t_stop - 0.5), abs=2e-3)
+    assert drive.stats.round_trip.n > 0 and drive.stats.gate_cycles["moving"] > 0
+
+
+def test_the_script_end_and_the_duration_end_the_session():
+    drive, loop, _, _ = make_session("square")
+    loop.run(drive.body, duration_s=30.0)
+    assert drive.end_reason == "the script finished"
+    drive, loop, _, _ = make_session("square", duration_s=2.0)
+    loop.run(drive.body, duration_s=30.0)
+    assert drive.end_reason == "--duration 2 s reached"
+
+
+def test_without_arm_state_the_session_ends_after_the_settling_time():
+    drive, loop, arm_side, _ = make_session(alive=False)
+    drive.request_end("stopped by SIGTERM")
+    stats = loop.run(drive.body, duration_s=5.0)
+    assert stats.cycles == pytest.approx(SETTLE_TIMEOUT_S * RATE_HZ, abs=2)
+    assert all(not any(m.qd) for m in arm_side.sent)              # zero all along
+    assert "no fresh arm state within 1 s" in drive.stop_outcome
+
+
+def test_summary_reads_as_a_report():
+    drive, loop, _, _ = make_session(duration_s=1.5)
+    timing = loop.run(drive.body, duration_s=30.0)
+    m = build_summary(drive, timing, priority="normal", input_name="script square",
+                      target="ideal", recorder_stats=None, session_path=None, arm_side_log="",
+                      started_s=0.0, ended_s=1.5)
+    text = format_summary(m)
+    assert "--duration 1.5 s reached after 1.5 s" in text
+    assert "base_yaw" in text and "not recorded" in text
+    assert m["tcp_peak_m_s"] == pytest.approx(0.05, rel=1e-6)   # the square's 5 cm/s
+
+
+def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again():
+    """The arm side keeps sending states but applies none of our rates for longer than
+    stale_after: motion is held, and stays held when rates get through again, because
+    enable was held throughout (the square script never lets go until its end)."""
+    drive, loop, arm_side, _ = make_session()
+    t0 = 50.0
+    arm_side.deaf = (t0 + 1.0, t0 + 1.3)
+    reasons = {}
+
+    def body(tick):
+        keep = drive.body(tick)
+        reasons.setdefault(round(tick.start_s - t0, 1), drive.latest.gate_reason
+                           if drive.latest else "")
+        return keep
+
+    loop.run(body, duration_s=4.0)
+    moving = [m for m in arm_side.sent if any(m.qd)]
+    assert moving and max(m.t_ns for m in moving) * 1e-9 < t0 + 1.3   # nothing after
+    assert any("applied none of our rates" in r for r in reasons.values())
+    assert any("release enable and press again" in r for r in reasons.values())
+
+
+def test_realtime_refused_falls_back_to_normal_priority(monkeypatch):
+    import errno
+    import os
+
+    from runtime.commands.drive import enter_realtime
+
+    def refuse(*_):
+        raise PermissionError(errno.EPERM, "Operation not permitted")
+
+    monkeypatch.setattr(os, "sched_setscheduler", refuse, raising=False)
+    got = enter_realtime(50)
+    assert got.startswith("normal (real-time refused: Operation not permitted")
+    assert "CAP_SYS_NICE" in got
