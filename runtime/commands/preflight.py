@@ -183,7 +183,8 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                        "overrun_limit": safety.overrun_limit, "target": "sim child, lockstep",
                        "target_kind": "sim child", "clock": "simulated (t = cycle / rate)",
                        "state_lag_cycles": state_lag}
-    cycle = ControlCycle(arm, pad, rate_hz=rate_hz, safety=safety, reduced_locked=reduced)
+    cycle = ControlCycle(arm, pad, rate_hz=rate_hz, safety=safety, reduced_locked=reduced,
+                         state_lag_cycles=state_lag)
     dt = cycle.dt_s
     n_cycles = int(math.ceil((profile.duration_s + TAIL_S) * rate_hz - 1e-9))
     started_at = datetime.now().astimezone()

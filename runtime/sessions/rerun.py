@@ -58,7 +58,8 @@ class CycleSettings:
 
     def control_cycle(self, arm: Arm) -> ControlCycle:
         return ControlCycle(arm, self.pad, rate_hz=self.rate_hz, safety=self.safety,
-                            reduced_locked=self.reduced_locked, locked=self.locked)
+                            reduced_locked=self.reduced_locked, locked=self.locked,
+                            state_lag_cycles=self.state_lag_cycles)
 
 
 def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> CycleSettings:
