@@ -435,7 +435,9 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                 r = r * g
                 twist = twist * g
                 f_lin, f_ang, f_red = f_lin * g_lin, f_ang * g_ang, f_red * g_red
-            if _worst_ratio(r - prev, b.inv_accel) > dt_s * (1.0 + 1e-12):
+            # 1e-9: distances to a limit are differences of positions of a few rad, so the
+            # braking curve carries round-off of ~1e-12 relative to a·dt near the limit
+            if _worst_ratio(r - prev, b.inv_accel) > dt_s * (1.0 + 1e-9):
                 capped = start < 1.0 or g < 1.0
                 conflicts = ("tcp_cap_over_acceleration" if capped else
                              "position_over_acceleration",)
