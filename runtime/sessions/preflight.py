@@ -13,6 +13,10 @@ Fails (each gives a reason naming the joint, the value, the limit and the time):
   rated_accel     |Δq̇_i|/dt above the rated acceleration, commanded or measured; a stop
                   (enable released, safety gate) is not a commanded acceleration: jogwire
                   sends zero at once and the arm side brakes (stops are listed instead)
+  software_speed  jogwire itself commanded a joint rate above the arm's software max_speed,
+  software_accel  or a change of rate per cycle above its max_accel (stops aside): a defect
+                  of jogwire's limit layer, never of the motion, reported on its own so that
+                  it cannot hide behind a rating set higher than the software limit
   position_limit  a joint came within its margin of a position limit (the arm's
                   limit_margin, plus 5 % of it for the brake's stopping precision): the
                   motion asks for more travel than the joint has
@@ -65,8 +69,8 @@ LIMIT_CONTACT_FRACTION = 0.05
 REST_SPEED = 1e-3
 """|q̇| (rad/s or m/s) below which a joint counts as at rest (end of a stop)."""
 
-FAIL_CODES = ("rated_speed", "rated_accel", "position_limit", "tcp_speed", "no_motion",
-              "damaged_profile")
+FAIL_CODES = ("rated_speed", "rated_accel", "software_speed", "software_accel",
+              "position_limit", "tcp_speed", "no_motion", "damaged_profile")
 
 
 # ----------------------------------------------------------------------------------------
@@ -510,6 +514,11 @@ def _joint_findings(arm: Arm, joints: tuple[JointReport, ...], speed_meas, accel
             code = f"rated_{what}"
             noun = "speed" if what == "speed" else "acceleration"
             per = "/s" if what == "speed" else "/s²"
+            if cmd > soft * (1.0 + ROUNDING):
+                out.append(Finding(f"software_{what}", j.name, cmd, soft, cmd_t, "commanded",
+                                   f"{j.name}: jogwire exceeded its own limit: commanded "
+                                   f"{noun} {fmt(cmd, j.kind, per)} is above the software "
+                                   f"max {fmt(soft, j.kind, per)} at t = {cmd_t:.2f} s"))
             if cmd > rated * (1.0 + ROUNDING):
                 why = (f" (its software max {fmt(soft, j.kind, per)} is above the rating)"
                        if soft > rated else "")
