@@ -157,6 +157,19 @@ def test_rerun_of_the_preflight_log_reproduces_its_rates(gentle, capsys):
     assert result["cycles"] == summary["cycles"]
 
 
+def test_inspect_and_preflight_of_the_same_log_agree_on_every_peak(gentle, capsys):
+    """One analysis of commanded motion (runtime.sessions.stats) behind both."""
+    _, summary, _ = gentle
+    assert main(["inspect", summary["files"]["session_log"], "--json"]) == 0
+    inspected = json.loads(capsys.readouterr().out)
+    for mine, theirs in zip(summary["joints"], inspected["joints"]):
+        assert mine["name"] == theirs["name"]
+        for key in ("peak_speed", "peak_speed_t_s", "peak_accel", "peak_accel_t_s"):
+            assert mine[key] == theirs[key], (mine["name"], key)
+    assert summary["stops"] == inspected["stops"]
+    assert summary["tcp_peak_speed"] == inspected["tcp_peak_speed"]
+
+
 def test_limit_profile_fails_naming_the_joint(tmp_path, capsys):
     code, summary = preflight(capsys, "elbow6", "wrist_limit", "--out", str(tmp_path),
                               "--no-report")
