@@ -42,26 +42,51 @@ def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     return L
 
 
+def _chain(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Every frame and the TCP as 7×7 augmented matrices, transposed and stacked: rows
+    7i … 7i + 6 are frame i's Xᵀ, the last seven the TCP's (runtime/arm/chain_terms.py).
+
+    The hot path (every control cycle): about one microsecond per numpy call whatever the
+    array size, so it makes few — one sine for every joint's terms, one matrix product for
+    every pair's local products, then one product per pair along the chain.
+    """
+    c = arm.chain_terms
+    s = np.sin(c.angles.dot(q) + c.phases)
+    if c.with_q:
+        s = np.concatenate((s, q))
+    local = c.matrix.dot(s).reshape(-1, 7)
+    chain = local.copy()                      # the first group's products are already final
+    before = chain[c.first_rows - 7:c.first_rows]
+    for start, end in c.groups:               # the chain product is sequential by nature
+        before = local[start:end].dot(before, out=chain[start:end])[-7:]
+    return chain
+
+
+def _frames(chain: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
+    X = chain.reshape(-1, 7, 7)
+    return X[:-1, :4, :4].transpose(0, 2, 1), X[-1, :4, :4].T
+
+
 def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
     """All joint frames in the base frame, (n, 4, 4), after each joint's motion, and T_tcp.
 
-    Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3].
-
-    This is the hot path (every control cycle), written to keep the count of numpy calls
-    low, since each costs about a microsecond whatever the array size: all link transforms
-    come from one matrix product with `arm.motion_terms` (base folded into joint 0), and the
-    chain product is one matrix product per joint, written straight into `frames`.
+    Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3]. Both are
+    views into the one array of the chain product (not contiguous).
     """
-    offset, matrix = arm.motion_terms
-    dot = np.dot  # np.dot has less call overhead than the @ operator on small arrays
-    L = dot(matrix, np.concatenate((np.cos(q), np.sin(q), q)))
-    L += offset
-    L = L.reshape(-1, 4, 4)
-    frames = np.empty_like(L)
-    T = frames[0] = L[0]
-    for i in range(1, len(L)):  # the chain product is sequential by nature
-        T = dot(T, L[i], out=frames[i])
-    return frames, dot(T, arm.tip)
+    return _frames(_chain(arm, q))
+
+
+def frames_and_jacobian(arm: Arm, q: NDArray[np.float64]
+                        ) -> tuple[NDArray[np.float64], Mat4, Jacobian]:
+    """`joint_frames` and the geometric Jacobian at q (base frame, TCP reference point),
+    in one pass: the Jacobian is read off the moments the chain carries, J = S(p_tcp)·W,
+    where W stacks column 2 (revolute: z, 0, o × z) or column 6 (prismatic: 0, 0, z) of
+    each joint's augmented matrix and S(p) = [−p̂ 0 I; I 0 0] moves the reference point
+    to the TCP: z × (p − o) = o × z − p × z."""
+    c = arm.chain_terms
+    chain = _chain(arm, q)
+    J = _SHIFT.dot(chain[c.tcp_row, :4]).reshape(6, 7).dot(chain[c.axis_rows].T)
+    return (*_frames(chain), J)
 
 
 def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:
@@ -75,6 +100,17 @@ _LEVI_CIVITA = np.zeros((3, 9))
 for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
     _LEVI_CIVITA[_k, 3 * _i + _j] = 1.0
     _LEVI_CIVITA[_k, 3 * _j + _i] = -1.0
+
+
+# S(p) of `frames_and_jacobian` as a linear map of (p, 1): S = _SHIFT·(p, 1), (42, 4).
+_SHIFT = np.zeros((6, 7, 4))
+for _a in range(3):
+    _SHIFT[3 + _a, _a, 3] = 1.0                 # ω rows: z
+    _SHIFT[_a, 4 + _a, 3] = 1.0                 # v rows: + o × z
+for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
+    _SHIFT[_i, _j, _k] = 1.0                    # v rows: − p̂ z, −p̂[i, j] = −ε_ikj p_k
+    _SHIFT[_j, _i, _k] = -1.0
+_SHIFT = _SHIFT.reshape(42, 4)
 
 
 def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> Jacobian:
@@ -92,8 +128,7 @@ def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> 
 
 def geometric_jacobian(arm: Arm, q: NDArray[np.float64]) -> Jacobian:
     """Geometric Jacobian at q in the base frame, reference point the TCP."""
-    frames, T = joint_frames(arm, q)
-    return jacobian_from_frames(arm, frames, T)
+    return frames_and_jacobian(arm, q)[2]
 
 
 def tool_frame_jacobian(J_base: Jacobian, T_tcp: Mat4) -> Jacobian:
@@ -144,8 +179,7 @@ def analyse_pose(arm: Arm, q: NDArray[np.float64]) -> KinematicsReport:
     so manipulability and condition number then report the rank deficiency honestly.
     """
     q = np.asarray(q, dtype=float)
-    frames, T = joint_frames(arm, q)
-    J = jacobian_from_frames(arm, frames, T)
+    _, T, J = frames_and_jacobian(arm, q)
     Jt = task_rows(J, arm.task_mask)
     sv = np.linalg.svd(Jt, compute_uv=False)
     m = Jt.shape[0]
