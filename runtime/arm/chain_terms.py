@@ -51,8 +51,8 @@ class ChainTerms:
     s = sin(angles·q + phases), then q appended when `with_q` (prismatic joints);
     matrix·s, as rows of 7, is the stack of each group's local products, transposed
     (Xᵀ: the chain is multiplied from the left), in joint order, the TCP last;
-    groups: the row range of every group after the first, which the chain multiplies by
-    the last frame before it; first_rows: where the first group ends.
+    steps: for every group after the first, its rows and the rows of the frame before it,
+    which the chain multiplies its local products by (the first group's are final).
     axis_rows: the row of each joint's Jacobian column (row 2 or 6 of its Xᵀ);
     tcp_row: row 3 of the TCP's Xᵀ, (p_tcp, 1, *).
     """
@@ -61,8 +61,7 @@ class ChainTerms:
     phases: NDArray[np.float64]
     with_q: bool
     matrix: NDArray[np.float64]
-    first_rows: int
-    groups: tuple[tuple[int, int], ...]
+    steps: tuple[tuple[slice, slice], ...]
     axis_rows: slice | NDArray[np.intp]
     tcp_row: int
 
@@ -100,65 +99,78 @@ def _groups(revolute: list[bool]) -> list[list[int]]:
     return out
 
 
+def _frequencies(k: int) -> list[tuple[int, ...]]:
+    """One of each ±f for f in {−1, 0, 1}^k, f ≠ 0: the angles f·q whose cos and sin, with
+    1, span every trigonometric polynomial of degree one in each of k angles (3^k terms)."""
+    return [f for f in itertools.product((-1, 0, 1), repeat=k)
+            if any(f) and next(x for x in f if x) > 0]
+
+
 def build_chain_terms(origins: NDArray[np.float64], revolute: list[bool], base: Mat4,
-                tip: Mat4) -> ChainTerms:
+                      tip: Mat4) -> ChainTerms:
     """The terms for the chain base · Π origin_i·Motion_i(q_i) · tip."""
     n = len(revolute)
     groups = _groups(revolute)
-    angles: list[NDArray[np.float64]] = [np.zeros((1, n))]   # argument 0: sin(π/2) = 1
-    phases: list[float] = [np.pi / 2]
-    blocks: list[tuple[int | None, list[int], NDArray[np.float64]]] = []  # first sine, joints
-    args = 1
-    for g, joints in enumerate(groups):
-        def local(qg, joints=joints, g=g) -> NDArray[np.float64]:
-            """This group's local products at the joint values qg, as stacked rows of Xᵀ."""
-            T = base.copy() if g == 0 else np.eye(4)
-            out = []
-            for i, qi in zip(joints, qg):
-                T = T @ origins[i] @ _motion(revolute[i], qi)
-                out.append(augmented(T).T)
-            if g == len(groups) - 1:
-                out.append(augmented(T @ tip).T)
-            return np.concatenate(out).ravel()
 
-        if not revolute[joints[0]]:                   # affine in q: constant + q·slope
-            at0 = local([0.0])
-            blocks.append((None, joints, np.stack([at0, local([1.0]) - at0])))
+    # The sine arguments: row 0 gives 1, then cos and sin of f·q for every revolute group.
+    angles, phases = [np.zeros(n)], [np.pi / 2]
+    columns = []                                    # the entries of s each group uses
+    for joints in groups:
+        if not revolute[joints[0]]:
+            columns.append(None)                    # 1 and q_i: known once s is complete
             continue
-        k = len(joints)
-        freqs = [f for f in itertools.product((-1, 0, 1), repeat=k)
-                 if any(f) and next(x for x in f if x) > 0]        # one of each ±f
-        A = np.zeros((2 * len(freqs), n))
-        for j, f in enumerate(freqs):
-            A[2 * j: 2 * j + 2, joints] = f
-        phase = np.tile([np.pi / 2, 0.0], len(freqs))             # cos, sin of f·q
-        grid = np.array(list(itertools.product(*[[0.0, 2 * np.pi / 3, 4 * np.pi / 3]] * k)))
-        basis = np.hstack([np.ones((len(grid), 1)), np.sin(grid @ A[:, joints].T + phase)])
-        coef = np.linalg.solve(basis, np.array([local(qg) for qg in grid]))
-        blocks.append((args, joints, coef))
-        angles.append(A)
-        phases.extend(phase)
-        args += len(A)
-
-    A = np.vstack(angles)
-    k = len(A)
+        columns.append([0])
+        for f in _frequencies(len(joints)):
+            for phase in (np.pi / 2, 0.0):          # cos, sin
+                row = np.zeros(n)
+                row[joints] = f
+                columns[-1].append(len(angles))
+                angles.append(row)
+                phases.append(phase)
+    A, phi = np.array(angles), np.array(phases)
     with_q = not all(revolute)
-    rows = [len(j) + (g == len(groups) - 1) for g, j in enumerate(groups)]   # frames per group
-    matrix = np.zeros((SIZE * SIZE * (n + 1), k + (n if with_q else 0)))
-    r = 0
-    for (col, joints, coef), frames in zip(blocks, rows):
-        height = SIZE * SIZE * frames
-        matrix[r:r + height, 0] = coef[0]             # the constant term
-        if col is None:                               # prismatic: the slope times q
-            matrix[r:r + height, k + joints[0]] = coef[1]
-        else:                                         # this group's sines
-            matrix[r:r + height, col:col + len(coef) - 1] = coef[1:].T
-        r += height
+
+    # Each group's local products in the span of its entries of s, fitted on a grid where
+    # that basis is square and well conditioned: {0, 2π/3, 4π/3} per angle, {0, 1} for q.
+    rows = [len(j) + (g == len(groups) - 1) for g, j in enumerate(groups)]   # frames each
+    matrix = np.zeros((SIZE * SIZE * (n + 1), len(A) + (n if with_q else 0)))
+    top = 0
+    for g, (joints, cols) in enumerate(zip(groups, columns)):
+        if cols is None:
+            cols = [0, len(A) + joints[0]]
+            grid = np.array([[0.0], [1.0]])
+            basis = np.hstack([np.ones((2, 1)), grid])
+        else:
+            grid = np.array(list(itertools.product(
+                [0.0, 2 * np.pi / 3, 4 * np.pi / 3], repeat=len(joints))))
+            basis = np.sin(grid @ A[cols][:, joints].T + phi[cols])
+        values = [_local_products(origins, revolute, joints, qg,
+                                  base if g == 0 else None,
+                                  tip if g == len(groups) - 1 else None) for qg in grid]
+        height = SIZE * SIZE * rows[g]
+        matrix[top:top + height, cols] = np.linalg.solve(basis, np.array(values)).T
+        top += height
+
     ends = np.cumsum(rows) * SIZE
     axis = [SIZE * i + (2 if rev else 6) for i, rev in enumerate(revolute)]
     return ChainTerms(
-        angles=A, phases=np.array(phases), with_q=with_q, matrix=matrix,
-        first_rows=int(ends[0]),
-        groups=tuple((int(a), int(b)) for a, b in zip(ends[:-1], ends[1:])),
-        axis_rows=slice(2, SIZE * n, SIZE) if not with_q else np.array(axis),
+        angles=A, phases=phi, with_q=with_q, matrix=matrix,
+        steps=tuple((slice(int(a), int(b)), slice(int(a) - SIZE, int(a)))
+                    for a, b in zip(ends[:-1], ends[1:])),
+        axis_rows=np.array(axis) if with_q else slice(2, SIZE * n, SIZE),
         tcp_row=SIZE * n + 3)
+
+
+def _local_products(origins: NDArray[np.float64], revolute: list[bool], joints: list[int],
+                    q: NDArray[np.float64], base: Mat4 | None, tip: Mat4 | None
+                    ) -> NDArray[np.float64]:
+    """A group's products base·L_a, base·L_a·L_b, … (·tip after the last joint), each as
+    its augmented matrix transposed, stacked and flattened: one column of the fit."""
+    T = np.eye(4) if base is None else base
+    out = []
+    for i, qi in zip(joints, q):
+        T = T @ origins[i] @ _motion(revolute[i], qi)
+        out.append(augmented(T).T)
+    if tip is not None:
+        out.append(augmented(T @ tip).T)
+    return np.concatenate(out).ravel()

@@ -56,9 +56,8 @@ def _chain(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
         s = np.concatenate((s, q))
     local = c.matrix.dot(s).reshape(-1, 7)
     chain = local.copy()                      # the first group's products are already final
-    before = chain[c.first_rows - 7:c.first_rows]
-    for start, end in c.groups:               # the chain product is sequential by nature
-        before = local[start:end].dot(before, out=chain[start:end])[-7:]
+    for rows, before in c.steps:              # the chain product is sequential by nature
+        local[rows].dot(chain[before], out=chain[rows])
     return chain
 
 
