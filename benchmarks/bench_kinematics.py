@@ -3,7 +3,7 @@
 For each arm the same random poses go through both, call by call and interleaved, so the
 machine's load hits both alike:
 
-  jogwire  frames_and_jacobian(arm, q)  (what the solver calls)   → frames, T_tcp and J (6×n)
+  jogwire  pose_and_jacobian(arm, q)  (what the solver calls)     → T_tcp and J (6×n)
   pin      forwardKinematics + updateFramePlacement + computeFrameJacobian(LOCAL_WORLD_ALIGNED)
            on the URDF that sim.urdf writes for the same arm       → T_tcp and J (6×n)
 
@@ -31,7 +31,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm import kinematics  # noqa: E402
-from runtime.arm.kinematics import frames_and_jacobian  # noqa: E402
+from runtime.arm.kinematics import pose_and_jacobian  # noqa: E402
 from runtime.arm.model import Arm, load_arm  # noqa: E402
 from sim.urdf import write_urdf  # noqa: E402
 
@@ -47,7 +47,7 @@ COUNTED = {"CALL", "BINARY_SUBSCR", "STORE_SUBSCR", "BINARY_OP"}
 
 
 def count_operations(arm: Arm, q: np.ndarray) -> int:
-    """The numpy operations one `frames_and_jacobian` call makes: every call, subscript and
+    """The numpy operations one `pose_and_jacobian` call makes: every call, subscript and
     arithmetic operator executed in kinematics.py (all of them there work on arrays)."""
     source = kinematics.__file__
     names: dict = {}
@@ -67,7 +67,7 @@ def count_operations(arm: Arm, q: np.ndarray) -> int:
 
     sys.settrace(trace)
     try:
-        frames_and_jacobian(arm, q)
+        pose_and_jacobian(arm, q)
     finally:
         sys.settrace(None)
     return count
@@ -88,12 +88,12 @@ def time_both(arm: Arm, urdf: Path, repeat: int) -> tuple[np.ndarray, np.ndarray
     clock = time.perf_counter
     for _ in range(2):  # warm up both paths (caches, lazily built arrays)
         for q in poses[:200]:
-            frames_and_jacobian(arm, q)
+            pose_and_jacobian(arm, q)
             pin.forwardKinematics(model, data, q)
             pin.computeFrameJacobian(model, data, q, fid, frame)
     for k, q in enumerate(poses):
         t0 = clock()
-        frames, T, J = frames_and_jacobian(arm, q)
+        T, J = pose_and_jacobian(arm, q)
         t1 = clock()
         pin.forwardKinematics(model, data, q)
         pin.updateFramePlacement(model, data, fid)

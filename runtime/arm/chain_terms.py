@@ -154,7 +154,7 @@ def build_chain_terms(origins: NDArray[np.float64], revolute: list[bool], base: 
     ends = np.cumsum(rows) * SIZE
     axis = [SIZE * i + (2 if rev else 6) for i, rev in enumerate(revolute)]
     return ChainTerms(
-        angles=A, phases=phi, with_q=with_q, matrix=matrix,
+        angles=A, phases=phi, with_q=with_q, matrix=np.asfortranarray(matrix),  # quicker
         steps=tuple((slice(int(a), int(b)), slice(int(a) - SIZE, int(a)))
                     for a, b in zip(ends[:-1], ends[1:])),
         axis_rows=np.array(axis) if with_q else slice(2, SIZE * n, SIZE),

@@ -61,31 +61,28 @@ def _chain(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     return chain
 
 
-def _frames(chain: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
-    X = chain.reshape(-1, 7, 7)
-    return X[:-1, :4, :4].transpose(0, 2, 1), X[-1, :4, :4].T
-
-
 def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
     """All joint frames in the base frame, (n, 4, 4), after each joint's motion, and T_tcp.
 
     Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3]. Both are
     views into the one array of the chain product (not contiguous).
     """
-    return _frames(_chain(arm, q))
+    chain = _chain(arm, q)
+    return chain.reshape(-1, 7, 7)[:-1, :4, :4].transpose(0, 2, 1), chain[-7:-3, :4].T
 
 
-def frames_and_jacobian(arm: Arm, q: NDArray[np.float64]
-                        ) -> tuple[NDArray[np.float64], Mat4, Jacobian]:
-    """`joint_frames` and the geometric Jacobian at q (base frame, TCP reference point),
-    in one pass: the Jacobian is read off the moments the chain carries, J = S(p_tcp)·W,
-    where W stacks column 2 (revolute: z, 0, o × z) or column 6 (prismatic: 0, 0, z) of
-    each joint's augmented matrix and S(p) = [−p̂ 0 I; I 0 0] moves the reference point
-    to the TCP: z × (p − o) = o × z − p × z."""
+def pose_and_jacobian(arm: Arm, q: NDArray[np.float64]) -> tuple[Mat4, Jacobian]:
+    """T_tcp and the geometric Jacobian at q (base frame, TCP reference point), in one pass
+    for the solver: the Jacobian is read off the moments the chain carries, J = S(p)·Wᵀ.
+
+    W stacks column 2 (revolute: z, 0, o × z) or column 6 (prismatic: 0, 0, z) of each
+    joint's augmented matrix, and S(p) = [−p̂ 0 I; I 0 0] moves the reference point to the
+    TCP at p: z × (p − o) = o × z − p × z.
+    """
     c = arm.chain_terms
     chain = _chain(arm, q)
     J = _SHIFT.dot(chain[c.tcp_row, :4]).reshape(6, 7).dot(chain[c.axis_rows].T)
-    return (*_frames(chain), J)
+    return chain[-7:-3, :4].T, J
 
 
 def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:
@@ -101,7 +98,7 @@ for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
     _LEVI_CIVITA[_k, 3 * _j + _i] = -1.0
 
 
-# S(p) of `frames_and_jacobian` as a linear map of (p, 1): S = _SHIFT·(p, 1), (42, 4).
+# S(p) of `pose_and_jacobian` as a linear map of (p, 1): S = _SHIFT·(p, 1), (42, 4).
 _SHIFT = np.zeros((6, 7, 4))
 for _a in range(3):
     _SHIFT[3 + _a, _a, 3] = 1.0                 # ω rows: z
@@ -127,7 +124,7 @@ def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> 
 
 def geometric_jacobian(arm: Arm, q: NDArray[np.float64]) -> Jacobian:
     """Geometric Jacobian at q in the base frame, reference point the TCP."""
-    return frames_and_jacobian(arm, q)[2]
+    return pose_and_jacobian(arm, q)[1]
 
 
 def tool_frame_jacobian(J_base: Jacobian, T_tcp: Mat4) -> Jacobian:
@@ -178,7 +175,7 @@ def analyse_pose(arm: Arm, q: NDArray[np.float64]) -> KinematicsReport:
     so manipulability and condition number then report the rank deficiency honestly.
     """
     q = np.asarray(q, dtype=float)
-    _, T, J = frames_and_jacobian(arm, q)
+    T, J = pose_and_jacobian(arm, q)
     Jt = task_rows(J, arm.task_mask)
     sv = np.linalg.svd(Jt, compute_uv=False)
     m = Jt.shape[0]

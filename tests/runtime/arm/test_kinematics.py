@@ -11,10 +11,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.arm.kinematics import (analyse_pose, condition_number, frames_and_jacobian,
-                                    geometric_jacobian, jacobian_from_frames, joint_frames,
-                                    link_transforms, tcp_pose, tool_frame_jacobian, twist_to_base,
-                                    yoshikawa_manipulability)
+from runtime.arm.kinematics import (analyse_pose, condition_number, geometric_jacobian,
+                                    jacobian_from_frames, joint_frames, link_transforms,
+                                    pose_and_jacobian, tcp_pose, tool_frame_jacobian,
+                                    twist_to_base, yoshikawa_manipulability)
 from runtime.arm.model import Arm, DHRow, Joint, chain_from_dh, load_arm
 from runtime.arm.transforms import make_transform, trans
 
@@ -271,12 +271,13 @@ def test_paired_chain_equals_the_plain_product_on_random_chains(kinds: str) -> N
             T = T @ L
             frames.append(T)
         T = T @ arm.tip
-        got_frames, got_T, J = frames_and_jacobian(arm, q)
+        got_frames, got_T = joint_frames(arm, q)
         np.testing.assert_allclose(got_frames, frames, rtol=0, atol=1e-13)
         np.testing.assert_allclose(got_T, T, rtol=0, atol=1e-13)
+        T_again, J = pose_and_jacobian(arm, q)
+        np.testing.assert_array_equal(T_again, got_T)
         np.testing.assert_allclose(J, jacobian_from_frames(arm, np.array(frames), T), rtol=0,
                                    atol=1e-13)
-        np.testing.assert_array_equal(joint_frames(arm, q)[0], got_frames)
 
 
 def test_reach7_manipulability_is_sqrt_det_j_jt() -> None:
