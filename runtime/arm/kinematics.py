@@ -11,6 +11,11 @@ Rows are (vx, vy, vz, wx, wy, wz) in m/s and rad/s per unit joint rate.
 
 Example: planar 2R, a1 = 0.4 m, a2 = 0.3 m, q = (30°, 60°) →
     Jv(xy) = [[−0.5, −0.3], [0.34641, 0]], det = a1·a2·sin q2 = 0.103923.
+
+The hot path (`pose_and_jacobian`, every control cycle) multiplies 7×7 matrices that carry
+each frame's Plücker moment, with revolute joints in pairs (runtime/arm/chain_terms.py), so
+it makes about 25 numpy calls for seven joints; `jacobian_from_frames` computes the same
+Jacobian from any given frames with the cross products above.
 """
 
 from __future__ import annotations
@@ -20,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from .chain_terms import ChainTerms
 from .model import Arm
 from .transforms import Mat4
 
@@ -42,15 +48,14 @@ def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     return L
 
 
-def _chain(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
+def _chain(c: ChainTerms, q: NDArray[np.float64]) -> NDArray[np.float64]:
     """Every frame and the TCP as 7×7 augmented matrices, transposed and stacked: rows
     7i … 7i + 6 are frame i's Xᵀ, the last seven the TCP's (runtime/arm/chain_terms.py).
 
-    The hot path (every control cycle): about one microsecond per numpy call whatever the
-    array size, so it makes few — one sine for every joint's terms, one matrix product for
-    every pair's local products, then one product per pair along the chain.
+    About one microsecond per numpy call whatever the array size, so it makes few: one sine
+    for every joint's terms, one matrix product for every pair's local products, then one
+    product per pair along the chain.
     """
-    c = arm.chain_terms
     s = np.sin(c.angles.dot(q) + c.phases)
     if c.with_q:
         s = np.concatenate((s, q))
@@ -67,7 +72,7 @@ def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64],
     Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3]. Both are
     views into the one array of the chain product (not contiguous).
     """
-    chain = _chain(arm, q)
+    chain = _chain(arm.chain_terms, q)
     return chain.reshape(-1, 7, 7)[:-1, :4, :4].transpose(0, 2, 1), chain[-7:-3, :4].T
 
 
@@ -80,7 +85,7 @@ def pose_and_jacobian(arm: Arm, q: NDArray[np.float64]) -> tuple[Mat4, Jacobian]
     TCP at p: z × (p − o) = o × z − p × z.
     """
     c = arm.chain_terms
-    chain = _chain(arm, q)
+    chain = _chain(c, q)
     J = _SHIFT.dot(chain[c.tcp_row, :4]).reshape(6, 7).dot(chain[c.axis_rows].T)
     return chain[-7:-3, :4].T, J
 
