@@ -44,7 +44,7 @@ GRAVITY_M_S2 = 9.81
 # inertias need under gravity (so velocity tracking is stiff), our round numbers.
 DEFAULT_EFFORT = {"revolute": 500.0, "prismatic": 2000.0}   # N·m, N
 TCP_LINK = "tcp"
-# The PyBullet window's ground in jogwire's palette (a documented option of connect).
+# The PyBullet window's ground in jogwire's palette (options its GUI connect takes).
 _GUI_BACKGROUND = " ".join(f"--background_color_{c}={v:.3f}" for c, v in
                            zip(("red", "green", "blue"), palette.unit(palette.GROUND)))
 
