@@ -13,13 +13,13 @@ and links have different names, so a library that keeps joints and links in one 
 of frames (pin does) finds the `tcp` frame by its name alone.
 
 The geometry is only a sketch for the viewer and for collisions: a cylinder from each
-link's frame to the next joint's origin and a short housing around each joint axis; the tool
-(a plate on the flange, a rod to the TCP and a ball at the TCP) is drawn but has no
-collision shape. Colours are jogwire's palette (`runtime.palette`): light links, darker housings, the
-accent for the tool. Masses
-follow link length (a hollow aluminium tube of ~2.5 kg/m plus a 0.4 kg joint housing, our
-round numbers), with solid-cylinder inertias about the centre of mass. The `flange` and
-`tcp` links have a tiny inertial so PyBullet does not give them its 1 kg default.
+link's frame to the next joint's origin and a short housing around each joint axis; the
+tool (a plate on the flange, a rod to the TCP and a ball at the TCP) is drawn but has no
+collision shape. Colours are jogwire's palette (`runtime.palette`): light links, darker
+housings, the accent for the tool. Masses follow link length (a hollow aluminium tube of
+~2.5 kg/m plus a 0.4 kg joint housing, our round numbers), with solid-cylinder inertias
+about the centre of mass. The `flange` and `tcp` links have a tiny inertial so PyBullet
+does not give them its 1 kg default.
 """
 
 from __future__ import annotations
