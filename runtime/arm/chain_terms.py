@@ -8,11 +8,12 @@ carry the Plücker moment of each frame's z axis:
         [ p̂R   *   R ]      and column 6 is (0, 0, z)
 
 The top-left 4×4 is the frame itself. The lower blocks are those of the rigid-body adjoint
-Ad(T) = [R 0; p̂R R] (Murray, Li & Sastry 1994, §2.4), so the product of two such matrices
-is again one (R₁R₂, R₁p₂ + p₁, and the adjoint of the product). The entry * gathers a term
-that never reaches the other blocks and is never read. With the moments in the frames, a
-revolute joint's Jacobian column z × (p_tcp − o) = p_tcp̂ᵀz + o × z is one linear map of
-column 2 away, for all joints at once; a prismatic joint's column (z, 0) comes from column 6.
+Ad(T) = [R 0; p̂R R] in (ω, v) order (Murray, Li & Sastry 1994, ch. 2, from memory, in
+(v, ω) order), so the product of two such matrices is again one (R₁R₂, R₁p₂ + p₁, and the
+adjoint of the product). The entry * gathers a term that never reaches the other blocks
+and is never read. With the moments in the frames, a revolute joint's Jacobian column
+z × (p_tcp − o) = o × z − p_tcp × z is one linear map of column 2 away, for all joints at
+once; a prismatic joint's column (z, 0) is one of column 6.
 
 The chain product is sequential; each product costs about one interpreter round trip
 whatever its size. So consecutive revolute joints are taken in pairs: the product of two
@@ -132,7 +133,7 @@ def build_chain_terms(origins: NDArray[np.float64], revolute: list[bool], base: 
 
     # Each group's local products in the span of its entries of s, fitted on a grid where
     # that basis is square and well conditioned: {0, 2π/3, 4π/3} per angle, {0, 1} for q.
-    rows = [len(j) + (g == len(groups) - 1) for g, j in enumerate(groups)]   # frames each
+    frames = [len(j) + (g == len(groups) - 1) for g, j in enumerate(groups)]  # the TCP last
     matrix = np.zeros((SIZE * SIZE * (n + 1), len(A) + (n if with_q else 0)))
     top = 0
     for g, (joints, cols) in enumerate(zip(groups, columns)):
@@ -147,14 +148,15 @@ def build_chain_terms(origins: NDArray[np.float64], revolute: list[bool], base: 
         values = [_local_products(origins, revolute, joints, qg,
                                   base if g == 0 else None,
                                   tip if g == len(groups) - 1 else None) for qg in grid]
-        height = SIZE * SIZE * rows[g]
+        height = SIZE * SIZE * frames[g]
         matrix[top:top + height, cols] = np.linalg.solve(basis, np.array(values)).T
         top += height
 
-    ends = np.cumsum(rows) * SIZE
+    ends = np.cumsum(frames) * SIZE
     axis = [SIZE * i + (2 if rev else 6) for i, rev in enumerate(revolute)]
     return ChainTerms(
-        angles=A, phases=phi, with_q=with_q, matrix=np.asfortranarray(matrix),  # quicker
+        angles=A, phases=phi, with_q=with_q,
+        matrix=np.asfortranarray(matrix),          # column-major: a quicker product here
         steps=tuple((slice(int(a), int(b)), slice(int(a) - SIZE, int(a)))
                     for a, b in zip(ends[:-1], ends[1:])),
         axis_rows=np.array(axis) if with_q else slice(2, SIZE * n, SIZE),
