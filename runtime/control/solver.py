@@ -47,7 +47,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import ConfigError
-from ..arm.kinematics import jacobian_from_frames, joint_frames, tool_frame_jacobian, twist_to_base
+from ..arm.kinematics import pose_and_jacobian, tool_frame_jacobian, twist_to_base
 from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
                      pushing_into_limits, start_pose)
 from ..arm.model import TASK_AXES, Arm
@@ -364,8 +364,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         v *= MAX_TWIST / size
         size = MAX_TWIST
 
-    frames, T = joint_frames(arm, q)
-    J = jacobian_from_frames(arm, frames, T)
+    T, J = pose_and_jacobian(arm, q)
     v_base = twist_to_base(v, T) if frame == "tool" else v
     if consts.full_task:
         Jt, vt = (tool_frame_jacobian(J, T) if frame == "tool" else J), v
