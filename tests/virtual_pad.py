@@ -193,3 +193,39 @@ class Timeline:
                 action(self.pad)
         except BaseException as exc:   # reported by join() on the test's thread
             self.error = exc
+
+
+class Terminal:
+    """Stands in for sys.stdout of a command run in this process: keeps every line and lets
+    another thread wait for one (a virtual pad's hand that reacts to what the command says)."""
+
+    def __init__(self) -> None:
+        self.text = ""
+        self._changed = threading.Condition()
+
+    def write(self, s: str) -> int:
+        with self._changed:
+            self.text += s
+            self._changed.notify_all()
+        return len(s)
+
+    def flush(self) -> None:
+        pass
+
+    def isatty(self) -> bool:
+        return False
+
+    def fileno(self) -> int:
+        raise OSError("not a real terminal")
+
+    def wait_for(self, needle: str, timeout_s: float = 30.0, *, start: int = 0) -> int:
+        """Block until `needle` appears after offset `start`; its end offset."""
+        deadline = time.monotonic() + timeout_s
+        with self._changed:
+            while (i := self.text.find(needle, start)) < 0:
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    raise TimeoutError(f"{needle!r} not printed within {timeout_s} s; "
+                                       f"got:\n{self.text}")
+                self._changed.wait(left)
+            return i + len(needle)
