@@ -57,6 +57,7 @@ class _Pad:
     pressed: set[Button] = field(default_factory=set)
     settle_s: float = 0.0          # present this long after the first read sees it (s)
     present_from_s: float | None = None
+    buttons: int = 0               # how many buttons the device has
 
 
 class GamepadSource:
@@ -145,6 +146,12 @@ class GamepadSource:
                               pressed=frozenset(pad.pressed))
 
     @property
+    def button_count(self) -> int:
+        """Buttons of the active pad (0 without one)."""
+        with self._lock:
+            return 0 if self._active is None else self._active.buttons
+
+    @property
     def device_name(self) -> str | None:
         with self._lock:
             return None if self._active is None else self._active.name
@@ -177,7 +184,8 @@ class GamepadSource:
         for h in range(js.get_numhats()):
             pressed |= hat_buttons(h, js.get_hat(h))
         axes = [clamp_unit(js.get_axis(a)) for a in range(js.get_numaxes())]
-        self._active = _Pad(iid, js.get_name(), axes, pressed, settle_s=SETTLE_S)
+        self._active = _Pad(iid, js.get_name(), axes, pressed, settle_s=SETTLE_S,
+                            buttons=js.get_numbuttons())
         self.name = f"pad {js.get_name()!r} #{iid}"
         if self.unplugged:
             self.name += f" ({self.unplugged} unplugged before)"
