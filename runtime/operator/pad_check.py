@@ -248,7 +248,7 @@ class PadCheckWindow:
             pygame.draw.rect(s, FREE, bar, border_radius=3)
             mid = bar.centerx
             end = mid + int(round(max(-1.0, min(1.0, v)) * bar.width / 2))
-            pygame.draw.rect(s, ON if moved else USED,
+            pygame.draw.rect(s, ON if moved else (USED if a in roles.axes else MUTED),
                              (min(mid, end), bar.y, max(abs(end - mid), 2), bar.height))
             label = ", ".join(roles.axes.get(a, ())) or "unused"
             stick = roles.sticks.get(a, "")

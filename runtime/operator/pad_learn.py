@@ -27,9 +27,10 @@ stick up drives the joint forward.
 
 from __future__ import annotations
 
+import json
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Protocol
 
@@ -143,7 +144,7 @@ class PadLearner:
                 self._hint
         purpose = dict((a, p) for a, p, _ in BUTTON_STEPS)[s.name]
         skip = "" if s.required else " (or press ENABLE to leave it out)"
-        return head + f"press and release the button for {s.name.upper()} ({purpose})" + \
+        return head + f"press and release the button for {_shout(s.name)} ({purpose})" + \
             skip + self._hint
 
     # -- input ----------------------------------------------------------------------------
@@ -263,10 +264,14 @@ class PadLearner:
             self.notes.append(f"{s.name}: left out")
             self._next()
         elif owner is not None:
-            self._hint = f" — {_label(button)} is already {owner.upper()}; press another"
+            self._hint = f" — {_label(button)} is already {_shout(owner)}; press another"
         else:
             self._buttons[s.name] = button
             self._next()
+
+
+def _shout(action: str) -> str:
+    return action.replace("_", " ").upper()
 
 
 def _label(button: Button) -> str:
@@ -302,8 +307,8 @@ def pad_file_text(learned: LearnedPad, name: str) -> str:
         "#   axes at rest: " + ", ".join(f"{a} {v:+.3f}" for a, v in enumerate(learned.rest)),
         "#",
         "# Hold ENABLE to move. Base frame: x forward, y left, z up.",
-        f'name = "{name}"',
-        f'summary = "learned from {learned.device}"',
+        f"name = {json.dumps(name, ensure_ascii=False)}",
+        f"summary = {json.dumps('learned from ' + learned.device, ensure_ascii=False)}",
         'device = "gamepad"',
         f"sticks = [[{L.x}, {L.y}], [{R.x}, {R.y}]]",
         "",
@@ -321,7 +326,7 @@ def pad_file_text(learned: LearnedPad, name: str) -> str:
     ]
     for action, purpose, _ in BUTTON_STEPS:
         if action in b:
-            lines.append(f"{action} = {_toml_button(b[action]):<14}# {purpose}")
+            lines.append(f"{action} = {_toml_button(b[action])}".ljust(26) + f"# {purpose}")
     bindings = [
         (L.y, "vx", L.up_sign, "main", "left stick up → +x"),
         (L.x, "vy", -L.right_sign, "main", "left stick left → +y"),
@@ -347,6 +352,9 @@ def pad_file_text(learned: LearnedPad, name: str) -> str:
 class PadSource(Protocol):
     """What the procedure needs of the gamepad source (operator.inputs.gamepad)."""
 
+    @property
+    def device_name(self) -> str | None: ...
+
     def pump(self) -> list: ...
 
     def read(self, now_s: float) -> InputFrame: ...
@@ -366,7 +374,7 @@ def learn_pad(source: PadSource, say: Callable[[str], None], *, clock: Callable[
         frame = source.read(now)
         if frame.present:
             absent_since = None
-            learner.feed(now, frame)
+            learner.feed(now, replace(frame, device=source.device_name or frame.device))
             prompt = learner.prompt
         else:
             absent_since = now if absent_since is None else absent_since

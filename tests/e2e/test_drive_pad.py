@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 
 import numpy as np
 import pytest
@@ -194,3 +195,96 @@ def test_sdl_layout_pad_file_with_a_controller_typed_pad(tmp_path, virtual_pads)
     assert max(map(abs, gone.rates)) == 0.0
     assert np.linalg.norm(tcp_velocity(session, gone.t_s + 0.05, gone.t_s + 0.3)) < 1e-3
     assert summary["input"].startswith("no pad: 'jogwire test pad'")
+
+
+# ----------------------------------------------------------------------------------------
+# `jogwire pads --learn`, taught from a shipped file, then driven
+# ----------------------------------------------------------------------------------------
+
+REST = {0: 0.04, 4: -0.03}     # the virtual sticks rest a little off centre (drift)
+
+
+class Teacher:
+    """The user at the terminal during `jogwire pads --learn`: reads each prompt and does
+    what it asks on the virtual pad, the way the shipped pad file `taught_from` lays the pad
+    out (its bindings say which raw axis and sign 'up' and 'right' are)."""
+
+    def __init__(self, pad, term: Terminal, taught_from: str) -> None:
+        self.pad, self.term = pad, term
+        shipped = load_pad(taught_from)
+        by_drive = {(b.drive, b.layer): b for b in shipped.axes}
+        vx, vy = by_drive[("vx", "main")], by_drive[("vy", "main")]
+        vz, wz = by_drive[("vz", "main")], by_drive[("wz", "any")]
+        # up gives +vx / +vz; right gives −vy (left is +y) / −wz (clockwise from above)
+        self.sticks = {"LEFT stick fully UP": (vx.axis, vx.sign),
+                       "LEFT stick fully RIGHT": (vy.axis, -vy.sign),
+                       "RIGHT stick fully UP": (vz.axis, vz.sign),
+                       "RIGHT stick fully RIGHT": (wz.axis, -wz.sign)}
+        self.buttons = {action.replace("_", " ").upper(): getattr(shipped.buttons, action)[0]
+                        for action in ("enable", "stop", "reset", "shift", "frame", "mode",
+                                       "reduced", "faster", "slower", "joint_next",
+                                       "joint_prev")}
+
+    def rest(self) -> None:
+        for axis, value in REST.items():
+            self.pad.set_axis(axis, value)
+
+    def press(self, button, held: bool) -> None:
+        if isinstance(button, int):
+            self.pad.set_button(button, held)
+        else:
+            hat, direction = button.removeprefix("hat").split(":")
+            self.pad.set_hat(int(hat), *([direction] if held else []))
+
+    def __call__(self, _pad) -> None:
+        at = self.term.wait_for("leave the pad alone")
+        for step in range(2, 17):
+            at = self.term.wait_for(f"[{step}/16] ", start=at)
+            line = self.term.text[at:].partition("\n")[0]
+            if line.startswith("push the"):
+                axis, value = next(v for k, v in self.sticks.items() if k in line)
+                self.pad.set_axis(axis, value)
+                at = self.term.wait_for("let go of the stick", start=at)
+                self.pad.set_axis(axis, REST.get(axis, 0.0))
+            else:
+                button = next(v for k, v in self.buttons.items() if f"for {k} (" in line)
+                self.press(button, True)
+                time.sleep(0.05)
+                self.press(button, False)
+
+
+def test_a_learned_pad_file_drives_like_the_shipped_file_it_was_taught_from(tmp_path,
+                                                                          virtual_pads):
+    pad = virtual_pads(axes=6, buttons=11, hats=1)
+    teacher = Teacher(pad, Terminal(), "twinstick")
+    teacher.rest()
+    out_file = tmp_path / "learned.toml"
+    timeline = Timeline(pad, [(0.0, teacher)]).start()
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr("sys.stdout", teacher.term)
+        status = cli.main(["pads", "--learn", str(out_file), "--step-timeout", "10"])
+    timeline.join()
+    assert status == 0, teacher.term.text
+    learned, shipped = load_pad(out_file), load_pad("twinstick")
+    # the same sticks, the same twist axes with the same signs, the same buttons
+    assert set(learned.sticks) == set(shipped.sticks)
+    assert {(b.drive, b.layer, b.axis, b.sign) for b in learned.axes} == \
+        {(b.drive, b.layer, b.axis, b.sign) for b in shipped.axes}
+    assert learned.buttons == shipped.buttons
+    # dead zone from the resting noise (runtime/operator/pad_learn.py): twice the largest
+    # resting deflection (axis 0's 0.04, as SDL quantises it), rounded up to 0.01
+    assert learned.shaping.deadzone == math.ceil(2 * round(0.04 * 32767) / 32767 * 100) / 100
+    assert learned.summary == "learned from jogwire test pad"
+
+    # and `jogwire drive --pad learned.toml` moves the TCP the left stick's way: up is +x,
+    # and the stick's resting 0.04 to the right adds −y (a radial dead zone keeps direction)
+    steps = [(LEAD_IN_S, lambda p: p.set_button(4, True)),
+             (LEAD_IN_S + 0.1, lambda p: p.set_axis(1, -STICK))]
+    _, _, session, _ = run_drive(tmp_path, pad, steps, pad_file=str(out_file),
+                                 duration_s=LEAD_IN_S + 0.9)
+    assert session.header.settings["pad"] == "learned"
+    start = first(session, lambda r: r.enabled).t_s
+    v = tcp_velocity(session, start + 0.2, start + 0.6)
+    stick = np.array([STICK, -REST[0], 0.0])
+    cos = v @ stick / np.linalg.norm(v) / np.linalg.norm(stick)
+    assert np.degrees(math.acos(min(cos, 1.0))) < 1.0
