@@ -173,7 +173,7 @@ class Timeline:
         self.t0: float | None = None
         self._thread = threading.Thread(target=self._run, name="virtual-pad", daemon=True)
 
-    def start(self) -> "Timeline":
+    def start(self) -> Timeline:
         self.t0 = time.perf_counter()
         self._thread.start()
         return self
@@ -191,7 +191,7 @@ class Timeline:
                     time.sleep(delay)
                 self.times.append(time.perf_counter())
                 action(self.pad)
-        except BaseException as exc:   # reported by join() on the test's thread
+        except Exception as exc:  # noqa: BLE001  (re-raised by join() on the test's thread)
             self.error = exc
 
 

@@ -92,8 +92,8 @@ def format_pad_list(pads: list[PadInfo]) -> str:
     if not pads:
         return ("jogwire pads: no pad connected (plug one in; on Linux the device must be "
                 "readable by you, e.g. /dev/input/event*)")
-    out = [f"jogwire pads: {len(pads)} pad{'s' if len(pads) > 1 else ''} connected "
-           "(jogwire drive takes the first)"]
+    plural = "s" if len(pads) > 1 else ""
+    out = [f"jogwire pads: {len(pads)} pad{plural} connected (jogwire drive takes the first)"]
     for p in pads:
         out.append(f"  {p.index}  {p.name!r}  {p.axes} axes, {p.buttons} buttons, {p.hats} "
                    f"hat{'s' if p.hats != 1 else ''}  (instance {p.instance_id}, guid {p.guid})")
@@ -247,7 +247,7 @@ class PadCheckWindow:
             bar = pygame.Rect(100, y + 2, 200, 14)
             pygame.draw.rect(s, FREE, bar, border_radius=3)
             mid = bar.centerx
-            end = mid + int(round(max(-1.0, min(1.0, v)) * bar.width / 2))
+            end = mid + round(max(-1.0, min(1.0, v)) * bar.width / 2)
             pygame.draw.rect(s, ON if moved else (USED if a in roles.axes else MUTED),
                              (min(mid, end), bar.y, max(abs(end - mid), 2), bar.height))
             label = ", ".join(roles.axes.get(a, ())) or "unused"

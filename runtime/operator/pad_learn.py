@@ -142,7 +142,7 @@ class PadLearner:
             side, way = s.name.split()
             return head + f"push the {side.upper()} stick fully {way.upper()} and hold it" + \
                 self._hint
-        purpose = dict((a, p) for a, p, _ in BUTTON_STEPS)[s.name]
+        purpose = {a: p for a, p, _ in BUTTON_STEPS}[s.name]
         skip = "" if s.required else " (or press ENABLE to leave it out)"
         return head + f"press and release the button for {_shout(s.name)} ({purpose})" + \
             skip + self._hint
@@ -157,8 +157,8 @@ class PadLearner:
         s = self._steps[self._i]
         if s.started_s is None:
             s.started_s = now_s
-        if now_s - s.started_s > self.step_timeout_s:
-            self._time_out(s)
+        if s.kind != "rest" and now_s - s.started_s > self.step_timeout_s:
+            self._time_out(s)                  # (the rest restarts while a button is held)
             return
         if s.kind == "rest":
             self._feed_rest(now_s, s, frame)
@@ -294,16 +294,15 @@ def pad_file_text(learned: LearnedPad, name: str) -> str:
     def sign(s: float) -> str:
         return "1" if s > 0 else "-1"
 
-    def way(s: float, plus: str, minus: str) -> str:
-        return plus if s > 0 else minus
+    def reads(stick: Stick) -> str:
+        return (f"axis {stick.x} (right reads {'+' if stick.right_sign > 0 else '-'}), "
+                f"axis {stick.y} (up reads {'+' if stick.up_sign > 0 else '-'})")
 
     lines = [
         f"# {name}: learned with `jogwire pads --learn` from the pad {learned.device!r}.",
         "# Check it live with `jogwire pads --pad THIS_FILE`; learn again to change it.",
-        f"#   left stick:  axis {L.x} (right reads {way(L.right_sign, '+', '-')}), "
-        f"axis {L.y} (up reads {way(L.up_sign, '+', '-')})",
-        f"#   right stick: axis {R.x} (right reads {way(R.right_sign, '+', '-')}), "
-        f"axis {R.y} (up reads {way(R.up_sign, '+', '-')})",
+        f"#   left stick:  {reads(L)}",
+        f"#   right stick: {reads(R)}",
         "#   axes at rest: " + ", ".join(f"{a} {v:+.3f}" for a, v in enumerate(learned.rest)),
         "#",
         "# Hold ENABLE to move. Base frame: x forward, y left, z up.",
@@ -313,8 +312,8 @@ def pad_file_text(learned: LearnedPad, name: str) -> str:
         f"sticks = [[{L.x}, {L.y}], [{R.x}, {R.y}]]",
         "",
         "[shaping]",
-        f"deadzone = {learned.deadzone:.2f}             # sticks rested up to "
-        f"{learned.rest_deflection:.3f} from centre",
+        f"deadzone = {learned.deadzone:.2f}".ljust(26) +
+        f"# the sticks rested up to {learned.rest_deflection:.3f} from centre",
         'curve = "expo"',
         "expo = 0.5",
         "",

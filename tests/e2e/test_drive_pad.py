@@ -10,6 +10,7 @@ measured q the simulated arm sent, through forward kinematics.
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import time
@@ -106,7 +107,7 @@ def twinstick_run(tmp_path_factory):
 
 
 def test_pad_moves_the_tcp_in_the_mapped_direction_at_the_mapped_speed(twinstick_run):
-    out, summary, session, timeline = twinstick_run
+    out, _, session, _ = twinstick_run
     assert "taking the first gamepad" in out and "input pad 'jogwire test pad'" in out
     arm = session.header.arm
     v_expected = expected_speed("twinstick", STICK, arm.tcp_max_linear_m_s)
@@ -131,7 +132,7 @@ def test_stick_back_to_centre_brakes_at_the_acceleration_limit_then_rests(twinst
     after = [r for r in session.records if centred.t_s <= r.t_s <= centred.t_s + 0.15]
     assert all(r.enabled for r in after)                            # (released at +0.2 s)
     speeds = [max(map(abs, r.rates)) for r in after]
-    assert all(b <= a + 1e-12 for a, b in zip(speeds, speeds[1:]))    # only slowing down
+    assert all(b <= a + 1e-12 for a, b in itertools.pairwise(speeds))   # only slowing down
     assert all(s == 0.0 for r, s in zip(after, speeds) if r.t_s > centred.t_s + bound_s)
     v = tcp_velocity(session, centred.t_s + bound_s + 0.05, centred.t_s + 0.15)
     assert np.linalg.norm(v) < 1e-3                                 # m/s, measured at rest

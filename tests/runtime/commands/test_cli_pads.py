@@ -9,10 +9,10 @@ import pytest
 from virtual_pad import Terminal
 
 from runtime import cli
-from runtime.control.mapping import InputFrame, Mapper, load_pad
 from runtime.arm.model import load_arm
-from runtime.operator.pad_check import ON, PadCheckWindow, describe, pad_roles
+from runtime.control.mapping import InputFrame, Mapper, load_pad
 from runtime.operator.inputs.pygame_init import pygame
+from runtime.operator.pad_check import ON, PadCheckWindow, describe, pad_roles
 
 
 def pads(monkeypatch, *argv: str) -> tuple[int, str]:
@@ -33,7 +33,7 @@ def test_list_without_pads(monkeypatch):
 
 def test_list_names_each_pad_and_the_shipped_file_that_fits(monkeypatch, virtual_pads):
     raw = virtual_pads(axes=6, buttons=11, hats=1, name="raw pad")
-    ctl = virtual_pads(axes=6, buttons=15, hats=0, controller=True, name="controller pad")
+    virtual_pads(axes=6, buttons=15, hats=0, controller=True, name="controller pad")
     status, out = pads(monkeypatch)
     assert status == 0 and "2 pads connected" in out
     assert "'raw pad'  6 axes, 11 buttons, 1 hat  (instance " \
