@@ -16,9 +16,10 @@ instance id: pygame's device index is not unique once pads come and go (REFERENC
   how many were unplugged this session.
 
 How fast an unplug stops motion: the event reaches this source at the next event pump
-(every 4 ms: the status window and the headless loop alike), and the next control cycle
-after that reads present=False, so the gate commands zero within one pump period and one
-control period of the unplug (tests/e2e/test_drive_pad.py measures it).
+(every 4 ms headless; the status window pumps every 4 ms between frames, so a frame being
+drawn adds its drawing time), and the next control cycle after that reads present=False:
+the gate commands zero within one pump period and one control period of the unplug
+(tests/e2e/test_drive_pad.py measures it headless).
 - Axis values are clamped to [−1, 1]: pygame scales events by 1/32767, so −32768 arrives
   as −1.0000305. Hats become the buttons "hat<N>:up|down|left|right".
 
