@@ -72,11 +72,18 @@ def sdl_library() -> ctypes.CDLL:
                     ("SDL_JoystickSetVirtualAxis", [c_void_p, c_int, ctypes.c_int16], c_int),
                     ("SDL_JoystickSetVirtualButton", [c_void_p, c_int, ctypes.c_uint8], c_int),
                     ("SDL_JoystickSetVirtualHat", [c_void_p, c_int, ctypes.c_uint8], c_int),
+                    ("SDL_GameControllerAddMapping", [ctypes.c_char_p], c_int),
                     ("SDL_GetError", [], ctypes.c_char_p)):
                 fn = getattr(lib, name)
                 fn.argtypes, fn.restype = args, result
             _sdl = lib
     return _sdl
+
+
+def add_controller_mapping(mapping: str) -> None:
+    """Teach SDL a game-controller mapping ("GUID,name,a:b0,…"), as its database would."""
+    if sdl_library().SDL_GameControllerAddMapping(mapping.encode()) < 0:
+        raise RuntimeError(f"SDL_GameControllerAddMapping: {sdl_library().SDL_GetError()!r}")
 
 
 class VirtualPad:

@@ -20,8 +20,10 @@ from .inputs.pygame_init import init_events, init_fonts, pygame
 
 MOVED = 0.05      # an axis counts as moved this far from where it rested (fraction of travel)
 
-# The shipped pad files' indices as SDL game-controller names (their header comments):
-# a pad whose SDL mapping puts these names at these indices fits that file as it is.
+# The shipped pad files' indices as SDL game-controller names (their header comments): a pad
+# whose SDL mapping puts these names at these indices fits that file as it is. twinstick's
+# order is that of SDL's database entries for Xbox-360-style pads on Linux, from memory;
+# twinstick_sdl's is SDL's own order (checked in tests/runtime/operator/inputs).
 SHIPPED_LAYOUTS = {
     "twinstick": {"leftx": "a0", "lefty": "a1", "rightx": "a3", "righty": "a4",
                   "a": "b0", "b": "b1", "x": "b2", "y": "b3", "leftshoulder": "b4",

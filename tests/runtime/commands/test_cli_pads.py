@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from virtual_pad import Terminal
+from virtual_pad import Terminal, add_controller_mapping
 
 from runtime import cli
 from runtime.arm.model import load_arm
@@ -109,3 +109,21 @@ def test_window_lights_held_buttons_and_draws_the_bars(tmp_path):
     assert "intent: ENABLE vx +" in describe(frame, intent, pad_roles(pad),
                                              (0.0, 0.0, -1.0, 0.0, 0.0, -1.0))
     assert len(np.unique(img.reshape(-1, 3), axis=0)) > 20
+
+
+def test_a_pad_with_the_xpad_mapping_fits_twinstick(monkeypatch, virtual_pads):
+    """SDL's game-controller database names an Xbox-360-style pad's indices on Linux the way
+    twinstick.toml's comments list them (from memory); a mapping in that order, added for
+    this virtual pad's GUID, must make the list point to twinstick."""
+    pad = virtual_pads(axes=6, buttons=11, hats=1, name="xpad-order pad")
+    index = next(i for i in range(pygame.joystick.get_count())
+                 if pygame.joystick.Joystick(i).get_instance_id() == pad.instance_id)
+    guid = pygame.joystick.Joystick(index).get_guid()
+    add_controller_mapping(
+        f"{guid},xpad-order pad,a:b0,b:b1,x:b2,y:b3,back:b6,start:b7,guide:b8,"
+        "leftshoulder:b4,rightshoulder:b5,leftstick:b9,rightstick:b10,leftx:a0,lefty:a1,"
+        "rightx:a3,righty:a4,lefttrigger:a2,righttrigger:a5,dpup:h0.1,dpdown:h0.4,"
+        "dpleft:h0.8,dpright:h0.2,")   # (a trailing comma, as in SDL's database)
+    status, out = pads(monkeypatch)
+    assert status == 0
+    assert "fit the shipped pad file 'twinstick':" in out.split("xpad-order pad")[1]
