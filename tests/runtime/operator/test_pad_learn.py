@@ -19,13 +19,18 @@ DT = 0.01
 REST = (0.0, 0.0, -1.0, 0.0, 0.0, -1.0)
 
 
+STICKS_UP_RIGHT = ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0))   # left up, left right, right …
+
+
 class Hand:
-    """Feeds a learner the frames of a pad held in a given state for a given time."""
+    """Feeds a learner the frames of a pad held in a given state for a given time; the
+    sticks rest at `rest` when let go."""
 
-    def __init__(self, learner: PadLearner) -> None:
-        self.learner, self.t = learner, 0.0
+    def __init__(self, learner: PadLearner, rest: tuple[float, ...] = REST) -> None:
+        self.learner, self.t, self.rest = learner, 0.0, rest
 
-    def hold(self, seconds: float, axes=REST, pressed=()) -> None:
+    def hold(self, seconds: float, axes=None, pressed=()) -> None:
+        axes = self.rest if axes is None else axes
         frame = InputFrame("pad 'test' #0", True, axes=tuple(axes), pressed=frozenset(pressed))
         end = self.t + seconds
         while self.t < end:
@@ -33,21 +38,29 @@ class Hand:
             self.t += DT
 
     def stick(self, axis: int, value: float, seconds: float = 0.4) -> None:
-        axes = list(REST)
+        axes = list(self.rest)
         axes[axis] = value
         self.hold(seconds, axes)
         self.hold(0.3)                      # let go
+
+    def all_sticks(self) -> None:
+        for axis, value in STICKS_UP_RIGHT:
+            self.stick(axis, value)
 
     def press(self, button) -> None:
         self.hold(0.05, pressed=(button,))
         self.hold(0.05)
 
+    def required_buttons_only(self) -> None:
+        """Enable, stop and reset; every optional action left out (enable pressed)."""
+        for button in (4, 1, 7) + (4,) * (len(BUTTON_STEPS) - 3):
+            self.press(button)
+
 
 def learned_twinstick(learner: PadLearner, *, skip: tuple[str, ...] = ()):
     hand = Hand(learner)
     hand.hold(learner.rest_s + DT)
-    for axis, value in ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0)):
-        hand.stick(axis, value)
+    hand.all_sticks()
     buttons = {"enable": 4, "stop": 1, "reset": 7, "shift": 5, "frame": 3, "mode": 2,
                "reduced": 6, "faster": "hat0:up", "slower": "hat0:down",
                "joint_next": "hat0:right", "joint_prev": "hat0:left"}
@@ -89,8 +102,7 @@ def test_a_button_cannot_serve_two_actions():
     learner = PadLearner()
     hand = Hand(learner)
     hand.hold(learner.rest_s + DT)
-    for axis, value in ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0)):
-        hand.stick(axis, value)
+    hand.all_sticks()
     hand.press(4)                           # enable
     hand.press(4)                           # stop is required: enable does not skip it
     assert "button 4 is already ENABLE; press another" in learner.prompt
@@ -105,31 +117,20 @@ def test_a_held_button_restarts_the_rest_and_noise_sets_the_dead_zone():
     hand.hold(learner.rest_s - 0.2)         # not yet a full rest since the release
     assert "leave the pad alone" in learner.prompt
     # drift: the left stick rests at (0.03, −0.04), |·| = 0.05 → dead zone 0.10
-    drift = (0.03, -0.04, -1.0, 0.0, 0.0, -1.0)
-    hand.hold(0.3, drift)
-    for axis, value in ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0)):
-        axes = list(drift)
-        axes[axis] = value
-        hand.hold(0.4, axes)
-        hand.hold(0.3, drift)
-    for button in (4, 1, 7) + (4,) * 8:
-        hand.press(button)
+    hand.rest = (0.03, -0.04, -1.0, 0.0, 0.0, -1.0)
+    hand.hold(0.3)
+    hand.all_sticks()
+    hand.required_buttons_only()
     assert learner.result().rest_deflection == pytest.approx(0.05)
     assert learner.result().deadzone == pytest.approx(0.10)
 
 
 def test_a_badly_drifting_stick_is_capped_and_said():
     learner = PadLearner()
-    hand = Hand(learner)
-    drift = (0.2, 0.0, -1.0, 0.0, 0.0, -1.0)
-    hand.hold(learner.rest_s + DT, drift)
-    for axis, value in ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0)):
-        axes = list(drift)
-        axes[axis] = value
-        hand.hold(0.4, axes)
-        hand.hold(0.3, drift)
-    for button in (4, 1, 7) + (4,) * 8:
-        hand.press(button)
+    hand = Hand(learner, rest=(0.2, 0.0, -1.0, 0.0, 0.0, -1.0))
+    hand.hold(learner.rest_s + DT)
+    hand.all_sticks()
+    hand.required_buttons_only()
     assert learner.result().deadzone == DEADZONE_MAX
     assert any("drift a lot" in n for n in learner.notes)
 
@@ -138,8 +139,7 @@ def test_timeouts_leave_out_optional_steps_and_fail_required_ones():
     learner = PadLearner(step_timeout_s=1.0)
     hand = Hand(learner)
     hand.hold(learner.rest_s + DT)
-    for axis, value in ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0)):
-        hand.stick(axis, value)
+    hand.all_sticks()
     hand.press(4)
     hand.hold(1.2)                          # nothing for STOP
     assert learner.done and "step 'stop': nothing usable in 1 s" in learner.failed
@@ -148,8 +148,7 @@ def test_timeouts_leave_out_optional_steps_and_fail_required_ones():
     learner = PadLearner(step_timeout_s=1.0)
     hand = Hand(learner)
     hand.hold(learner.rest_s + DT)
-    for axis, value in ((1, -1.0), (0, 1.0), (4, -1.0), (3, 1.0)):
-        hand.stick(axis, value)
+    hand.all_sticks()
     for button in (4, 1, 7):
         hand.press(button)
     hand.hold(8 * 1.05)                     # every optional step times out
