@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import sys
 import time
 
 from ..arm.model import load_arm
@@ -59,13 +58,18 @@ def run(args: argparse.Namespace) -> int:
     window = args.pad is not None and not args.headless and _display()
     if not window:
         os.environ.setdefault("SDL_VIDEODRIVER", "dummy")
+    if args.learn is not None:
+        return _learn(args)
+    if args.pad is not None:
+        return _check(args, window)
+    from ..operator.pad_check import connected_pads, format_pad_list
+    _say(format_pad_list(connected_pads()))
+    return 0
+
+
+def _check(args: argparse.Namespace, window: bool) -> int:
     from ..operator import pad_check
     from ..operator.inputs.gamepad import GamepadSource
-    if args.pad is None and args.learn is None:
-        _say(pad_check.format_pad_list(pad_check.connected_pads()))
-        return 0
-    if args.learn is not None:
-        return _learn(args, GamepadSource)
     pad = load_pad(args.pad)
     if pad.device != "gamepad":
         raise ConfigError(f"{pad.source} is a {pad.device} mapping; `jogwire pads` checks "
@@ -81,8 +85,7 @@ def run(args: argparse.Namespace) -> int:
         else:
             _say("live (Ctrl-C ends):")
         pad_check.run_check(source, mapper, _say, window=view, duration_s=args.duration,
-                            clock=time.monotonic, sleep=time.sleep,
-                            tty=view is None and sys.stdout.isatty())
+                            clock=time.monotonic, sleep=time.sleep)
     finally:
         if view is not None:
             view.close()
@@ -90,12 +93,13 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _learn(args: argparse.Namespace, source_type: type) -> int:
+def _learn(args: argparse.Namespace) -> int:
+    from ..operator.inputs.gamepad import GamepadSource
     from ..operator.pad_learn import learn_pad, write_pad_file
     if os.path.exists(args.learn) and not args.force:      # before the user does the work
         raise ConfigError(f"{args.learn} exists; choose another name or add --force",
                           field="learn")
-    source = source_type()
+    source = GamepadSource()
     try:
         learned = learn_pad(source, _say, clock=time.monotonic, sleep=time.sleep,
                             step_timeout_s=args.step_timeout)

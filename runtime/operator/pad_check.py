@@ -14,6 +14,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from ..arm.model import Arm
 from ..control.mapping import ACTIONS, Button, InputFrame, Intent, Mapper, PadMapping
 from .inputs.gamepad import GamepadSource
 from .inputs.pygame_init import init_events, init_fonts, pygame
@@ -167,8 +168,8 @@ def describe_buttons(frame: InputFrame, roles: Roles) -> list[str]:
             for b in sorted(frame.pressed, key=_button_sort_key)]
 
 
-def describe_intent(intent: Intent) -> str:
-    """The intent in words and SI units (linear m/s, angular °/s)."""
+def describe_intent(intent: Intent, arm: Arm) -> str:
+    """The intent in words: linear speeds in m/s, angular ones and revolute joints in °/s."""
     if not intent.present:
         return "no pad"
     held = [name.upper() for name, on in (("enable", intent.enable), ("stop", intent.stop),
@@ -177,8 +178,10 @@ def describe_intent(intent: Intent) -> str:
     state = (f"{intent.mode}, {intent.frame} frame, preset {intent.preset + 1} "
              f"({100 * intent.speed_fraction:g} %), reduced {'on' if intent.reduced else 'off'}")
     if intent.mode == "joint":
-        motion = f"joint {intent.joint + 1} {intent.joint_rate:+.3f}" \
-            if intent.joint_rate else "no motion"
+        joint = arm.joints[intent.joint]
+        rate = f"{math.degrees(intent.joint_rate):+.1f} °/s" if joint.is_revolute else \
+            f"{intent.joint_rate:+.3f} m/s"
+        motion = f"joint {joint.name} {rate}" if intent.joint_rate else "no motion"
     else:
         parts = [f"{n} {v:+.3f} m/s" for n, v in zip(("vx", "vy", "vz"), intent.twist[:3])
                  if v] + [f"{n} {math.degrees(v):+.1f} °/s"
@@ -187,13 +190,14 @@ def describe_intent(intent: Intent) -> str:
     return " ".join(held + [motion]) + f"  [{state}]"
 
 
-def describe(frame: InputFrame, intent: Intent, roles: Roles, rest: tuple[float, ...]) -> str:
+def describe(frame: InputFrame, intent: Intent, roles: Roles, rest: tuple[float, ...],
+             arm: Arm) -> str:
     """One line: moved axes | held buttons | intent."""
     if not frame.present:
         return f"{frame.device}: waiting for a pad"
     axes = "; ".join(describe_axes(frame, roles, rest)) or "sticks at rest"
     buttons = "; ".join(describe_buttons(frame, roles)) or "nothing held"
-    return f"{axes} | {buttons} | intent: {describe_intent(intent)}"
+    return f"{axes} | {buttons} | intent: {describe_intent(intent, arm)}"
 
 
 # ----------------------------------------------------------------------------------------
@@ -232,7 +236,7 @@ class PadCheckWindow:
         self.screen.blit(font.render(text, True, colour), pos)
 
     def draw(self, frame: InputFrame, intent: Intent, roles: Roles, rest: tuple[float, ...],
-             buttons: int) -> None:
+             buttons: int, arm: Arm) -> None:
         s = self.screen
         s.fill(GROUND)
         self._text(frame.device if frame.present else f"{frame.device}: waiting for a pad",
@@ -269,7 +273,7 @@ class PadCheckWindow:
             label = ", ".join(roles.buttons.get(b, ())) or "—"
             self._text(f"{b}  {label}", (x + 30, y + 2), 19, TEXT if held else MUTED)
         self._text("INTENT", (20, 506), 18, MUTED)
-        self._text(describe_intent(intent), (20, 530), 22)
+        self._text(describe_intent(intent, arm), (20, 530), 22)
         self._text("Esc or close the window to quit", (20, 570), 18, MUTED)
         pygame.display.flip()
 
@@ -300,11 +304,10 @@ def _rest_of(axes: tuple[float, ...]) -> tuple[float, ...]:
 
 def run_check(source: GamepadSource, mapper: Mapper, say: Callable[[str], None], *,
               window: PadCheckWindow | None, duration_s: float | None,
-              clock: Callable[[], float], sleep: Callable[[float], None],
-              tty: bool = False) -> None:
+              clock: Callable[[], float], sleep: Callable[[float], None]) -> None:
     """Show the first pad's reading under the mapper's pad file until `duration_s` passes,
-    the window is closed (or Esc) or Ctrl-C. Headless: a line each time the reading changes
-    (at most 10 a second; on a terminal the line is rewritten in place)."""
+    the window is closed (or Esc) or Ctrl-C. Headless: a line each time the reading changes,
+    at most 10 a second."""
     roles = pad_roles(mapper.pad)
     end = None if duration_s is None else clock() + duration_s
     rest: tuple[float, ...] = ()
@@ -325,17 +328,14 @@ def run_check(source: GamepadSource, mapper: Mapper, say: Callable[[str], None],
                 device, rest = frame.device, _rest_of(frame.axes)
             if window is not None:
                 if now >= next_frame:
-                    window.draw(frame, intent, roles, rest, source.button_count)
+                    window.draw(frame, intent, roles, rest, source.button_count, mapper.arm)
                     next_frame = now + 1 / 30
             else:
-                line = describe(frame, intent, roles, rest)
+                line = describe(frame, intent, roles, rest, mapper.arm)
                 if line != shown and now >= next_line:
-                    say(("\r\x1b[K" + line) if tty else line)
+                    say(line)
                     shown, next_line = line, now + 0.1
             sleep(0.004)
     except KeyboardInterrupt:
         pass
-    finally:
-        if tty and window is None:
-            say("")
 

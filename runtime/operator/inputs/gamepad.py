@@ -14,21 +14,22 @@ instance id: pygame's device index is not unique once pads come and go (REFERENC
   safety gate always see the loss; a pad that comes back is a new device. While no pad is
   there the source's name says which one was unplugged; a pad that takes over later says
   how many were unplugged this session.
+- Axis values are clamped to [−1, 1]: pygame scales events by 1/32767, so −32768 arrives
+  as −1.0000305. Hats become the buttons "hat<N>:up|down|left|right".
 
 How fast an unplug stops motion: the event reaches this source at the next event pump
 (every 4 ms headless; the status window pumps every 4 ms between frames, so a frame being
 drawn adds its drawing time), and the next control cycle after that reads present=False:
 the gate commands zero within one pump period and one control period of the unplug
 (tests/e2e/test_drive_pad.py measures it headless).
-- Axis values are clamped to [−1, 1]: pygame scales events by 1/32767, so −32768 arrives
-  as −1.0000305. Hats become the buttons "hat<N>:up|down|left|right".
 
 Threads: `handle_event` runs on the thread that owns pygame's event queue (the main
 thread), `read` on the control thread; a lock keeps their view consistent.
 
 Tests and tools without a physical pad call `attach(instance_id, ...)` to adopt a device
 that pygame does not know; events posted to pygame's queue with that instance id then flow
-through the same path as a real pad's.
+through the same path as a real pad's. (tests/virtual_pad.py goes further: a pad made by
+SDL itself, which this source opens like any other.)
 """
 
 from __future__ import annotations

@@ -97,7 +97,8 @@ def test_window_lights_held_buttons_and_draws_the_bars(tmp_path):
     window = PadCheckWindow("jogwire pads · test", pad.name)
     window.open()
     try:
-        window.draw(frame, intent, pad_roles(pad), (0.0, 0.0, -1.0, 0.0, 0.0, -1.0), 11)
+        window.draw(frame, intent, pad_roles(pad), (0.0, 0.0, -1.0, 0.0, 0.0, -1.0), 11,
+                    mapper.arm)
         img = pygame.surfarray.array3d(window.screen)
         pygame.image.save(window.screen, str(tmp_path / "check.png"))
     finally:
@@ -107,7 +108,7 @@ def test_window_lights_held_buttons_and_draws_the_bars(tmp_path):
     assert tuple(img[596 + 10, 104 + 2 * 29 + 10]) == ON
     assert tuple(img[200 - 30, 104 + 32 + 8]) == ON
     assert "intent: ENABLE vx +" in describe(frame, intent, pad_roles(pad),
-                                             (0.0, 0.0, -1.0, 0.0, 0.0, -1.0))
+                                             (0.0, 0.0, -1.0, 0.0, 0.0, -1.0), mapper.arm)
     assert len(np.unique(img.reshape(-1, 3), axis=0)) > 20
 
 
@@ -127,3 +128,15 @@ def test_a_pad_with_the_xpad_mapping_fits_twinstick(monkeypatch, virtual_pads):
     status, out = pads(monkeypatch)
     assert status == 0
     assert "fit the shipped pad file 'twinstick':" in out.split("xpad-order pad")[1]
+
+
+def test_single_joint_mode_is_described_in_the_joint_s_unit():
+    pad = load_pad("twinstick")
+    mapper = Mapper(pad, load_arm("elbow6"))
+    mode = InputFrame("pad", True, axes=(0.0,) * 6, pressed=frozenset({2}))   # X: joint mode
+    mapper.update(InputFrame("pad", True, axes=(0.0,) * 6))
+    mapper.update(mode)
+    up = InputFrame("pad", True, axes=(0.0, -1.0, 0.0, 0.0, 0.0, 0.0), pressed=frozenset({4}))
+    line = describe(up, mapper.update(up), pad_roles(pad), (0.0,) * 6, mapper.arm)
+    # full stick × preset 0.15 × base_yaw's 100 °/s (configs/arms/elbow6.toml)
+    assert "intent: ENABLE joint base_yaw +15.0 °/s  [joint, base frame" in line
