@@ -111,6 +111,7 @@ class PadLearner:
         self._stick_axes: dict[str, tuple[int, float]] = {}   # "left up" → (axis, sign)
         self._buttons: dict[str, Button] = {}
         self._candidate: tuple[int, float, float] | None = None  # axis, sign, since_s
+        self._let_go_s: float | None = None          # when the stick came back near rest
         self._pressed: Button | None = None
         self._hint = ""
 
@@ -191,7 +192,7 @@ class PadLearner:
 
     def _next(self) -> None:
         self._i += 1
-        self._candidate = None
+        self._candidate = self._let_go_s = None
         self._pressed = None
         self._hint = ""
 
@@ -224,14 +225,13 @@ class PadLearner:
     def _feed_stick(self, now_s: float, s: _Step, frame: InputFrame) -> None:
         moved = self._deflections(frame.axes)
         if s.phase == "release":
-            if all(abs(d) < RELEASE_MAX for d, _ in moved):
-                if self._candidate is None:
-                    self._candidate = (-1, 0.0, now_s)
-                elif now_s - self._candidate[2] >= SETTLE_S:
-                    self._rest_samples.append(tuple(frame.axes))   # where it came back to
-                    self._next()
-            else:
-                self._candidate = None
+            if any(abs(d) >= RELEASE_MAX for d, _ in moved):
+                self._let_go_s = None
+            elif self._let_go_s is None:
+                self._let_go_s = now_s
+            elif now_s - self._let_go_s >= SETTLE_S:
+                self._rest_samples.append(tuple(frame.axes))   # where it came back to
+                self._next()
             return
         d, axis = max(moved, key=lambda m: abs(m[0]), default=(0.0, -1))
         if abs(d) < PUSH_MIN:
