@@ -91,6 +91,20 @@ def _sdl_mapping(index: int) -> dict[str, str] | None:
         pad.quit()
 
 
+def pad_file_for_first_pad(default: str) -> tuple[str, str]:
+    """The shipped pad file for the first pad SDL sees (the one `jogwire drive` takes): the
+    one its SDL game-controller mapping fits, else `default`; and a note for the user."""
+    pads = connected_pads()
+    if not pads:
+        return default, ""
+    first = pads[0]
+    if first.fits:
+        return first.fits, f"pad file {first.fits} (SDL's layout of {first.name!r} fits it)"
+    return default, (f"pad file {default} (not known to fit {first.name!r}: check with "
+                     f"`jogwire pads --pad {default}`, or teach it with `jogwire pads "
+                     "--learn`)")
+
+
 def format_pad_list(pads: list[PadInfo]) -> str:
     if not pads:
         return ("jogwire pads: no pad connected (plug one in; on Linux the device must be "

@@ -45,17 +45,18 @@ def expected_speed(pad_name: str, deflection: float, cap: float) -> float:
     return pad.presets[pad.start_preset] * cap * ((1 - e) * x + e * x ** 3)
 
 
-def run_drive(tmp_path, pad, steps, *, pad_file: str, duration_s: float):
-    """Plain `jogwire drive` (it takes the pad it finds) in this process while `steps` play
-    on `pad`; (printed text, summary, session, timeline)."""
+def run_drive(tmp_path, pad, steps, *, pad_file: str | None, duration_s: float):
+    """Plain `jogwire drive` (it takes the pad it finds; `--pad pad_file` unless None) in
+    this process while `steps` play on `pad`; (printed text, summary, session, timeline)."""
     term = Terminal()
     timeline = Timeline(pad, [(0.0, lambda p: term.wait_for("Ctrl-C stops"))] + steps)
     summary_path = tmp_path / "summary.json"
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr("sys.stdout", term)
         timeline.start()
-        status = cli.main(["drive", "--pad", pad_file, "--headless", "--lockstep", "--rate",
-                           f"{RATE_HZ:g}", "--duration", f"{duration_s:g}",
+        status = cli.main(["drive", *(["--pad", pad_file] if pad_file else []),
+                           "--headless", "--lockstep", "--rate", f"{RATE_HZ:g}",
+                           "--duration", f"{duration_s:g}",
                            "--sessions", str(tmp_path / "sessions"),
                            "--summary-json", str(summary_path)])
         timeline.join()
@@ -74,6 +75,11 @@ def tcp_velocity(session, t_from: float, t_to: float) -> np.ndarray:
 
 def first(session, predicate, after_s: float = 0.0):
     return next(r for r in session.records if r.t_s >= after_s and predicate(r))
+
+
+def pushed(session) -> float:
+    """When motion was first asked for: enable held and a stick out of its dead zone (s)."""
+    return first(session, lambda r: r.enabled and any(r.twist)).t_s
 
 
 def absent(r) -> bool:
@@ -111,9 +117,11 @@ def test_pad_moves_the_tcp_in_the_mapped_direction_at_the_mapped_speed(twinstick
     assert "taking the first gamepad" in out and "input pad 'jogwire test pad'" in out
     arm = session.header.arm
     v_expected = expected_speed("twinstick", STICK, arm.tcp_max_linear_m_s)
-    start = first(session, lambda r: r.enabled).t_s
+    start = pushed(session)
     # steady motion, after the acceleration-limited start and before the stick comes back
-    v = tcp_velocity(session, start + 0.2, start + 0.8)
+    v = tcp_velocity(session, start + 0.3, start + 0.9)
+    # lockstep: each cycle's rates move the simulated arm for one step; measured 0.2 % below
+    # the commanded speed here, 2 % allowed
     assert np.linalg.norm(v) == pytest.approx(v_expected, rel=0.02)
     assert np.degrees(math.acos(v[0] / np.linalg.norm(v))) < 1.0     # along base +x
 
@@ -178,17 +186,20 @@ def test_replug_moves_nothing_until_enable_is_pressed_afresh(twinstick_run):
 
 
 def test_sdl_layout_pad_file_with_a_controller_typed_pad(tmp_path, virtual_pads):
-    """twinstick_sdl.toml on a pad in SDL's game-controller order: the right stick up moves
-    the TCP up (+z); unplugging it stops the arm."""
+    """A pad in SDL's game-controller order and no --pad: the drive takes twinstick_sdl.toml
+    because SDL's own mapping of the pad fits it; the right stick up moves the TCP up (+z);
+    unplugging the pad stops the arm."""
     pad = virtual_pads(axes=6, buttons=15, hats=0, controller=True)
     steps = [(LEAD_IN_S, lambda p: p.set_button(9, True)),          # left shoulder: enable
              (LEAD_IN_S + 0.1, lambda p: p.set_axis(3, -STICK)),    # right stick up
              (LEAD_IN_S + 1.1, lambda p: p.unplug())]
-    _, summary, session, _ = run_drive(tmp_path, pad, steps, pad_file="twinstick_sdl",
-                                       duration_s=LEAD_IN_S + 1.6)
+    out, summary, session, _ = run_drive(tmp_path, pad, steps, pad_file=None,
+                                         duration_s=LEAD_IN_S + 1.6)
+    assert "pad file twinstick_sdl (SDL's layout of 'jogwire test pad' fits it)" in out
+    assert session.header.settings["pad"] == "twinstick_sdl"
     arm = session.header.arm
-    start = first(session, lambda r: r.enabled).t_s
-    v = tcp_velocity(session, start + 0.2, start + 0.8)
+    start = pushed(session)
+    v = tcp_velocity(session, start + 0.3, start + 0.9)
     v_expected = expected_speed("twinstick_sdl", STICK, arm.tcp_max_linear_m_s)
     assert np.linalg.norm(v) == pytest.approx(v_expected, rel=0.02)
     assert np.degrees(math.acos(v[2] / np.linalg.norm(v))) < 1.0     # along base +z
@@ -284,8 +295,8 @@ def test_a_learned_pad_file_drives_like_the_shipped_file_it_was_taught_from(tmp_
     _, _, session, _ = run_drive(tmp_path, pad, steps, pad_file=str(out_file),
                                  duration_s=LEAD_IN_S + 0.9)
     assert session.header.settings["pad"] == "learned"
-    start = first(session, lambda r: r.enabled).t_s
-    v = tcp_velocity(session, start + 0.2, start + 0.6)
+    start = pushed(session)
+    v = tcp_velocity(session, start + 0.3, start + 0.7)
     stick = np.array([STICK, -REST[0], 0.0])
     cos = v @ stick / np.linalg.norm(v) / np.linalg.norm(stick)
     assert np.degrees(math.acos(min(cos, 1.0))) < 1.0
