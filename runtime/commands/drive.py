@@ -103,7 +103,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="shipped arm name, arm .toml or .urdf (default elbow6)")
     parser.add_argument("--pad", metavar="PAD",
                         help="pad mapping: shipped name (twinstick, twinstick_sdl, keyboard) "
-                             "or a .toml (default twinstick for a pad, keyboard for keys)")
+                             "or a .toml (default for a pad: the shipped file SDL's layout "
+                             "of it fits, else twinstick; see `jogwire pads`; keyboard for "
+                             "keys)")
     parser.add_argument("--input", metavar="SPEC",
                         help="gamepad | keyboard | script:FILE | network:ENDPOINT (default: "
                              "a gamepad if one is plugged in, else the keyboard when a window "
