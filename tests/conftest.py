@@ -41,4 +41,5 @@ def virtual_pads():
     yield make
     for pad in made:
         pad.unplug()
+    init_events()              # (a window closed in the test quits SDL's video and events)
     pygame.event.clear()

@@ -140,3 +140,24 @@ def test_single_joint_mode_is_described_in_the_joint_s_unit():
     line = describe(up, mapper.update(up), pad_roles(pad), (0.0,) * 6, mapper.arm)
     # full stick × preset 0.15 × base_yaw's 100 °/s (configs/arms/elbow6.toml)
     assert "intent: ENABLE joint base_yaw +15.0 °/s  [joint, base frame" in line
+
+
+def test_the_window_check_ends_on_escape(virtual_pads):
+    import time
+
+    from runtime.operator.inputs.gamepad import GamepadSource
+    from runtime.operator.pad_check import run_check
+    virtual_pads()
+    pad = load_pad("twinstick")
+    source = GamepadSource()
+    window = PadCheckWindow("jogwire pads · test", pad.name)
+    window.open()
+    try:
+        assert pygame.event.post(pygame.event.Event(pygame.KEYDOWN, key=pygame.K_ESCAPE))
+        t0 = time.monotonic()
+        run_check(source, Mapper(pad, load_arm("elbow6")), print, window=window,
+                  duration_s=5.0, clock=time.monotonic, sleep=time.sleep)
+        assert time.monotonic() - t0 < 1.0
+    finally:
+        window.close()
+        source.close()
