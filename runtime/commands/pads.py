@@ -58,6 +58,8 @@ def run(args: argparse.Namespace) -> int:
     window = args.pad is not None and not args.headless and _display()
     if not window:
         os.environ.setdefault("SDL_VIDEODRIVER", "dummy")
+        if args.pad is not None and not args.headless:
+            _say("jogwire pads: no display for the window: text lines instead")
     if args.learn is not None:
         return _learn(args)
     if args.pad is not None:
