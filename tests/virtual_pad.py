@@ -1,6 +1,6 @@
 """A virtual gamepad inside the process under test, made by SDL itself (tests only).
 
-SDL 2.0.14+ can attach a virtual joystick (SDL_JoystickAttachVirtualEx); pygame 2.6 bundles
+SDL can attach a virtual joystick (SDL_JoystickAttachVirtualEx, SDL 2.24+); pygame 2.6 bundles
 SDL 2.28 and this module reaches that library with ctypes. To SDL and pygame the device is a
 joystick like any other: attaching it sends JOYDEVICEADDED, pygame opens it, values set here
 arrive as JOYAXISMOTION / JOYBUTTONDOWN / JOYHATMOTION at the next event pump (SDL applies

@@ -86,6 +86,10 @@ def absent(r) -> bool:
     return not r.input["present"]
 
 
+# indices into twinstick_run's timeline.times (entry 0 is the wait for the drive's start)
+MARK, UNPLUG, REPLUG, PRESS_AGAIN = 6, 7, 8, 10
+
+
 @pytest.fixture(scope="module")
 def twinstick_run(tmp_path_factory):
     """Raw joystick indices (twinstick.toml: xpad order, a hat): move, release the stick,
@@ -154,7 +158,7 @@ def test_unplug_mid_motion_stops_within_the_bound_and_says_so(twinstick_run):
     _, summary, session, timeline = twinstick_run
     marked = first(session, lambda r: 8 in r.input["pressed"])
     gone = first(session, absent, after_s=marked.t_s)
-    hand_gap = timeline.times[7] - timeline.times[6]      # unplug − mark, on the hand's clock
+    hand_gap = timeline.times[UNPLUG] - timeline.times[MARK]    # on the hand's clock
     period = 1 / RATE_HZ
     assert gone.t_s - marked.t_s <= hand_gap + PUMP_S + period + 0.02   # 20 ms: scheduling
     before = [r for r in session.records if r.t_s < gone.t_s]
@@ -181,7 +185,7 @@ def test_replug_moves_nothing_until_enable_is_pressed_afresh(twinstick_run):
     assert states[0] == "rearm" and set(states) == {"rearm", "ready"}
     # it moved only after the release and the fresh press (0.8 s after the re-plug on the
     # hand's clock), not when the pad came back
-    plug_to_press = timeline.times[10] - timeline.times[8]
+    plug_to_press = timeline.times[PRESS_AGAIN] - timeline.times[REPLUG]
     assert again.t_s - back.t_s > plug_to_press - SETTLE_S - 0.05
 
 
