@@ -169,19 +169,22 @@ class VirtualPad:
 
 
 class Timeline:
-    """Steps `(at_s, action)` played on a thread from `start()`: `action(pad)` at `at_s`
-    seconds after the start. `times` holds when each step ran (time.perf_counter, s)."""
+    """Steps `(at_s, action)` played on a thread: `action(pad)` at `at_s` seconds after the
+    start, which is when `start()` is called or, with `wait`, when `wait()` returns (for
+    example once the command under test says it runs). `times` holds when each step ran
+    (time.perf_counter, s)."""
 
-    def __init__(self, pad: VirtualPad, steps: list[tuple[float, object]]) -> None:
+    def __init__(self, pad: VirtualPad, steps: list[tuple[float, object]], *,
+                 wait=None) -> None:
         self.pad = pad
         self.steps = sorted(steps, key=lambda s: s[0])
+        self.wait = wait
         self.times: list[float] = []
         self.error: BaseException | None = None
         self.t0: float | None = None
         self._thread = threading.Thread(target=self._run, name="virtual-pad", daemon=True)
 
     def start(self) -> Timeline:
-        self.t0 = time.perf_counter()
         self._thread.start()
         return self
 
@@ -192,6 +195,9 @@ class Timeline:
 
     def _run(self) -> None:
         try:
+            if self.wait is not None:
+                self.wait()
+            self.t0 = time.perf_counter()
             for at_s, action in self.steps:
                 delay = self.t0 + at_s - time.perf_counter()
                 if delay > 0:
