@@ -230,7 +230,7 @@ def test_sdl_layout_pad_file_with_a_controller_typed_pad(tmp_path, virtual_pads)
 # `jogwire pads --learn`, taught from a shipped file, then driven
 # ----------------------------------------------------------------------------------------
 
-REST = {0: 0.04, 4: -0.03}     # the virtual sticks rest a little off centre (drift)
+DRIFT_LEFT_X, DRIFT_RIGHT_Y = 0.04, -0.03    # the virtual sticks rest a little off centre
 
 
 class Teacher:
@@ -245,6 +245,9 @@ class Teacher:
         vx, vy = by_drive[("vx", "main")], by_drive[("vy", "main")]
         vz, wz = by_drive[("vz", "main")], by_drive[("wz", "any")]
         # up gives +vx / +vz; right gives −vy (left is +y) / −wz (clockwise from above)
+        self.enable = shipped.buttons.enable[0]
+        self.left_up = (vx.axis, vx.sign)
+        self.drift = {vy.axis: DRIFT_LEFT_X, vz.axis: DRIFT_RIGHT_Y}
         self.sticks = {"LEFT stick fully UP": (vx.axis, vx.sign),
                        "LEFT stick fully RIGHT": (vy.axis, -vy.sign),
                        "RIGHT stick fully UP": (vz.axis, vz.sign),
@@ -255,7 +258,7 @@ class Teacher:
                                        "joint_prev")}
 
     def rest(self) -> None:
-        for axis, value in REST.items():
+        for axis, value in self.drift.items():
             self.pad.set_axis(axis, value)
 
     def press(self, button, held: bool) -> None:
@@ -274,7 +277,7 @@ class Teacher:
                 axis, value = next(v for k, v in self.sticks.items() if k in line)
                 self.pad.set_axis(axis, value)
                 at = self.term.wait_for("let go of the stick", start=at)
-                self.pad.set_axis(axis, REST.get(axis, 0.0))
+                self.pad.set_axis(axis, self.drift.get(axis, 0.0))
             else:
                 button = next(v for k, v in self.buttons.items() if f"for {k} (" in line)
                 self.press(button, True)
@@ -282,10 +285,14 @@ class Teacher:
                 self.press(button, False)
 
 
-def test_a_learned_pad_file_drives_like_the_shipped_file_it_was_taught_from(tmp_path,
-                                                                          virtual_pads):
-    pad = virtual_pads(axes=6, buttons=11, hats=1)
-    teacher = Teacher(pad, Terminal(), "twinstick")
+@pytest.mark.parametrize("taught_from, device", [
+    ("twinstick", {"axes": 6, "buttons": 11, "hats": 1}),      # xpad order, the d-pad a hat
+    ("twinstick_sdl", {"axes": 6, "buttons": 15, "hats": 0,    # SDL order, triggers at −1
+                       "controller": True})], ids=["twinstick", "twinstick_sdl"])
+def test_a_learned_pad_file_drives_like_the_shipped_file_it_was_taught_from(
+        tmp_path, virtual_pads, taught_from, device):
+    pad = virtual_pads(**device)
+    teacher = Teacher(pad, Terminal(), taught_from)
     teacher.rest()
     out_file = tmp_path / "learned.toml"
     timeline = Timeline(pad, [(0.0, teacher)]).start()
@@ -294,26 +301,28 @@ def test_a_learned_pad_file_drives_like_the_shipped_file_it_was_taught_from(tmp_
         status = cli.main(["pads", "--learn", str(out_file), "--step-timeout", "10"])
     timeline.join()
     assert status == 0, teacher.term.text
-    learned, shipped = load_pad(out_file), load_pad("twinstick")
+    learned, shipped = load_pad(out_file), load_pad(taught_from)
     # the same sticks, the same twist axes with the same signs, the same buttons
     assert set(learned.sticks) == set(shipped.sticks)
     assert {(b.drive, b.layer, b.axis, b.sign) for b in learned.axes} == \
         {(b.drive, b.layer, b.axis, b.sign) for b in shipped.axes}
     assert learned.buttons == shipped.buttons
     # dead zone from the resting noise (runtime/operator/pad_learn.py): twice the largest
-    # resting deflection (axis 0's 0.04, as SDL quantises it), rounded up to 0.01
-    assert learned.shaping.deadzone == math.ceil(2 * round(0.04 * 32767) / 32767 * 100) / 100
+    # resting deflection (the left stick's 0.04, as SDL quantises it), rounded up to 0.01
+    quantised = round(DRIFT_LEFT_X * 32767) / 32767
+    assert learned.shaping.deadzone == math.ceil(2 * quantised * 100) / 100
     assert learned.summary == "learned from jogwire test pad"
 
     # and `jogwire drive --pad learned.toml` moves the TCP the left stick's way: up is +x,
     # and the stick's resting 0.04 to the right adds −y (a radial dead zone keeps direction)
-    steps = [(LEAD_IN_S, lambda p: p.set_button(4, True)),
-             (LEAD_IN_S + 0.1, lambda p: p.set_axis(1, -STICK))]
+    axis, up = teacher.left_up
+    steps = [(LEAD_IN_S, lambda p: p.set_button(teacher.enable, True)),
+             (LEAD_IN_S + 0.1, lambda p: p.set_axis(axis, up * STICK))]
     _, _, session, _ = run_drive(tmp_path, pad, steps, pad_file=str(out_file),
                                  duration_s=LEAD_IN_S + 1.3)
     assert session.header.settings["pad"] == "learned"
     start = pushed(session)
     v = moving_velocity(session, start + 0.3, start + 0.7)
-    stick = np.array([STICK, -REST[0], 0.0])
+    stick = np.array([STICK, -DRIFT_LEFT_X, 0.0])
     cos = v @ stick / np.linalg.norm(v) / np.linalg.norm(stick)
     assert np.degrees(math.acos(min(cos, 1.0))) < 1.0
