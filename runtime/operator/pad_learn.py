@@ -403,6 +403,10 @@ def write_pad_file(learned: LearnedPad, path: str | Path, *, force: bool = False
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".part")
     tmp.write_text(pad_file_text(learned, path.stem), encoding="utf-8")
-    load_pad(tmp)
+    try:
+        load_pad(tmp)
+    except ConfigError:
+        tmp.unlink()
+        raise
     tmp.replace(path)
     return path
