@@ -80,6 +80,14 @@ class LearnedPad:
     rest_deflection: float                   # largest stick deflection seen at rest
     deadzone: float
 
+    @property
+    def drift_note(self) -> str | None:
+        """Said when the measured dead zone had to be capped."""
+        if 2.0 * self.rest_deflection <= DEADZONE_MAX:
+            return None
+        return (f"the sticks rest up to {self.rest_deflection:.2f} from centre: dead zone "
+                f"capped at {DEADZONE_MAX:g}; this pad's sticks drift a lot")
+
 
 @dataclass
 class _Step:
@@ -180,13 +188,9 @@ class PadLearner:
                           for sample in self._rest_samples for st in sticks.values()),
                          default=0.0)
         deadzone = max(DEADZONE_MIN, math.ceil(2.0 * deflection * 100 - 1e-9) / 100)
-        if deadzone > DEADZONE_MAX:
-            self.notes.append(f"the sticks rest up to {deflection:.2f} from centre: dead zone "
-                              f"capped at {DEADZONE_MAX:g}; this pad's sticks drift a lot")
-            deadzone = DEADZONE_MAX
         return LearnedPad(device=self._device, rest=self._rest, left=sticks["left"],
                           right=sticks["right"], buttons=dict(self._buttons),
-                          rest_deflection=deflection, deadzone=deadzone)
+                          rest_deflection=deflection, deadzone=min(deadzone, DEADZONE_MAX))
 
     # -- the steps ------------------------------------------------------------------------
 
@@ -387,8 +391,9 @@ def learn_pad(source: PadSource, say: Callable[[str], None], *, clock: Callable[
     if learner.failed is not None:
         raise DeviceError(learner.failed)
     learned = learner.result()
-    for note in learner.notes:
-        say(f"note: {note}")
+    for note in learner.notes + [learned.drift_note]:
+        if note:
+            say(f"note: {note}")
     return learned
 
 
