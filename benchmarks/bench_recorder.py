@@ -31,8 +31,9 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.model import load_arm  # noqa: E402
-from runtime.sessions.recorder import (CycleRecord, SessionReader, SessionRecorder,  # noqa: E402
-                              encode_frame)
+from runtime.sessions.log_schema import CycleRecord  # noqa: E402
+from runtime.sessions.log_reader import SessionReader  # noqa: E402
+from runtime.sessions.log_writer import SessionRecorder, encode_frame  # noqa: E402
 
 RATE_HZ = 500
 PERIOD_S = 1.0 / RATE_HZ

@@ -68,7 +68,8 @@ from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle, CycleOutput
 from ..link.protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \
     StateFreshness, encode, hello_differences, hello_for
-from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
+from ..sessions.log_writer import SessionRecorder, new_session_path
+from ..sessions.log_schema import cycle_record
 from ..control.safety import SafetySettings
 from ..link.transport import ArmClient, check_endpoint, load_client_keys
 

@@ -27,7 +27,8 @@ import numpy as np
 
 from ..errors import ConfigError
 from ..arm.model import Arm
-from ..sessions.recorder import CycleRecord, SessionHeader, SessionReader
+from ..sessions.log_schema import CycleRecord, SessionHeader
+from ..sessions.log_reader import SessionReader
 from ..sessions.stats import MotionStats
 
 TWIST_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")

@@ -35,7 +35,9 @@ from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle
 from ..sessions.preflight import Finding, PreflightResult, TraceBuilder, evaluate
 from ..operator.progress import Progress
-from ..sessions.recorder import SESSION_SUFFIX, SessionRecorder, cycle_record, read_session
+from ..sessions.log_schema import SESSION_SUFFIX, cycle_record
+from ..sessions.log_writer import SessionRecorder
+from ..sessions.log_reader import read_session
 from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
 from ..control.safety import SafetySettings
 

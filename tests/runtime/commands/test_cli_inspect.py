@@ -18,7 +18,8 @@ import pytest
 
 from runtime.cli import main
 from runtime.arm.model import load_arm
-from runtime.sessions.recorder import CycleRecord, SessionRecorder
+from runtime.sessions.log_schema import CycleRecord
+from runtime.sessions.log_writer import SessionRecorder
 
 ROOT = Path(__file__).resolve().parents[3]
 DT = 0.002

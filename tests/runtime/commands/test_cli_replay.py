@@ -26,7 +26,8 @@ from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.control.mapping import load_pad
 from runtime.arm.model import load_arm
 from runtime.control.cycle import ControlCycle
-from runtime.sessions.recorder import FRAME_MARK, MAGIC, SessionRecorder, cycle_record
+from runtime.sessions.log_schema import FRAME_MARK, MAGIC, cycle_record
+from runtime.sessions.log_writer import SessionRecorder
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

@@ -27,11 +27,11 @@ import pytest
 
 from runtime.errors import LogError
 from runtime.arm.model import load_arm
-from runtime.sessions.recorder import (BAD_RECORD, CORRUPT, DROPPED, FORMAT_VERSION, GAP, MAGIC,
-                              TORN_TAIL, UNCLOSED, UNKNOWN_KIND, CycleRecord, SessionReader,
-                              SessionRecorder, arm_from_dict, arm_to_dict, encode_frame,
-                              encode_preamble, make_header, new_session_path, read_session,
-                              software_version)
+from runtime.sessions.log_reader import (BAD_RECORD, CORRUPT, DROPPED, GAP, TORN_TAIL, UNCLOSED,
+                                        UNKNOWN_KIND, SessionReader, read_session)
+from runtime.sessions.log_schema import FORMAT_VERSION, MAGIC, CycleRecord, make_header, software_version
+from runtime.sessions.log_writer import SessionRecorder, encode_frame, encode_preamble, new_session_path
+from runtime.arm.serial import arm_from_dict, arm_to_dict
 
 ROOT = Path(__file__).resolve().parents[3]
 PREAMBLE_BYTES = 10      # magic (8) + version (2)
@@ -191,7 +191,8 @@ def test_streaming_reader_matches_read_session(tmp_path: Path, arm) -> None:
 CHILD = textwrap.dedent("""
     import sys, time
     from runtime.arm.model import load_arm
-    from runtime.sessions.recorder import CycleRecord, SessionRecorder
+    from runtime.sessions.log_schema import CycleRecord
+    from runtime.sessions.log_writer import SessionRecorder
     arm = load_arm("elbow6")
     rec = SessionRecorder.start(sys.argv[1], arm, {"rate_hz": 500}, flush_interval_s=0.1)
     t0 = time.monotonic()
