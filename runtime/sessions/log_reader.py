@@ -15,12 +15,15 @@ from pathlib import Path
 from typing import Any, BinaryIO, Iterator
 
 import msgpack
+import numpy as np
 
 from ..errors import LogError
+from .log_blocks import BLOCK_KIND, CycleBlock, decode_block
 from .log_schema import (FORMAT_VERSION, FRAME_MARK, MAGIC, MAX_PAYLOAD_BYTES, CycleRecord,
                          SessionEnd, SessionHeader)
 from .log_writer import FRAME_HEAD, PREAMBLE
 
+CHUNK_ROWS = 4096         # cycles per chunk of `blocks()`
 _SCAN_WINDOW = 1 << 16     # bytes read at a time when looking for the next good frame
 _READ_BLOCK = 1 << 18      # the reader's buffer
 
@@ -94,6 +97,7 @@ class SessionReader:
             self._file.close()
             raise
         self._iterated = False
+        self._previous: int | None = None    # the last cycle number read
 
     def close(self) -> None:
         self._file.close()
@@ -144,25 +148,62 @@ class SessionReader:
         return header, body
 
     def __iter__(self) -> Iterator[CycleRecord]:
+        """Every readable cycle record, in file order."""
+        for item in self._cycles():
+            if isinstance(item, CycleBlock):
+                yield from item.records()
+            else:
+                yield item
+
+    def blocks(self, rows: int = CHUNK_ROWS) -> Iterator[CycleBlock]:
+        """Every readable cycle, column by column, in chunks of exactly `rows` cycles (the
+        last one shorter) whatever the file's own blocks: a computation over the chunks
+        then gives the same result, to the last bit, for formats 1 and 2 of a session.
+        What `jogwire inspect` streams."""
+        pending: list[CycleBlock] = []
+        have = 0
+        for block in self._raw_blocks(rows):
+            pending.append(block)
+            have += block.n
+            while have >= rows:
+                whole = CycleBlock.concat(pending)
+                yield whole.rows(0, rows)
+                rest = whole.rows(rows, whole.n)
+                pending, have = ([rest] if rest.n else []), rest.n
+        if have:
+            yield CycleBlock.concat(pending)
+
+    def _raw_blocks(self, rows: int) -> Iterator[CycleBlock]:
+        """Format 2 blocks as stored; format 1 records gathered `rows` at a time."""
+        batch: list[CycleRecord] = []
+        for item in self._cycles():
+            if isinstance(item, CycleBlock):
+                yield item
+                continue
+            batch.append(item)
+            if len(batch) == rows:
+                yield CycleBlock.from_records(batch)
+                batch = []
+        if batch:
+            yield CycleBlock.from_records(batch)
+
+    def _cycles(self) -> Iterator[CycleRecord | CycleBlock]:
+        """Cycle records (format 1) and blocks (format 2) as they come, checked; problems
+        reported, the end record kept. Iterates once."""
         if self._iterated:
             raise RuntimeError("a SessionReader iterates once; open a new one")
         self._iterated = True
-        n = self.header.arm.n
-        previous: int | None = None
         for offset, payload in self._frames():
             m = _unpack(payload)
             kind = m.get("kind") if isinstance(m, dict) else None
-            if kind == "cycle":
-                try:
-                    rec = CycleRecord.from_wire(m)
-                    _check_lengths(rec, n)
-                except LogError as exc:
-                    self._problem(BAD_RECORD, offset, f"{exc}; skipped")
-                    continue
-                if previous is not None and rec.cycle != previous + 1:
-                    self._gap(offset, previous, rec.cycle)
-                previous = rec.cycle
-                yield rec
+            if kind == BLOCK_KIND:
+                block = self._block(offset, m)
+                if block is not None and block.n:
+                    yield block
+            elif kind == "cycle":
+                rec = self._record(offset, m)
+                if rec is not None:
+                    yield rec
             elif kind == "end":
                 try:
                     self.end = SessionEnd.from_wire(m)
@@ -182,6 +223,42 @@ class SessionReader:
             self._problem(DROPPED, self._size,
                           f"the writer refused {self.end.dropped} records (queue full) and "
                           f"could not encode {self.end.unencodable}")
+
+    def _record(self, offset: int, m: dict[str, Any]) -> CycleRecord | None:
+        try:
+            rec = CycleRecord.from_wire(m)
+            _check_lengths(rec, self.header.arm.n)
+        except LogError as exc:
+            self._problem(BAD_RECORD, offset, f"{exc}; skipped")
+            return None
+        self._check_sequence(offset, np.array([rec.cycle], dtype=np.int64))
+        return rec
+
+    def _block(self, offset: int, m: dict[str, Any]) -> CycleBlock | None:
+        try:
+            block = decode_block(m)
+            keep = _good_rows(block, self.header.arm.n)
+        except Exception as exc:  # noqa: BLE001 - whatever the bytes say, not a block
+            self._problem(BAD_RECORD, offset, f"a cycle block that cannot be read ({exc}); "
+                          f"skipped")
+            return None
+        if not keep.all():
+            self._problem(BAD_RECORD, offset, f"{int((~keep).sum())} of {block.n} cycles in "
+                          f"this block are malformed (joint count, twist length or time); "
+                          f"skipped")
+            block = block.take(keep)
+        if block.n:
+            self._check_sequence(offset, block["cycle"])
+        return block
+
+    def _check_sequence(self, offset: int, cycles: np.ndarray) -> None:
+        """Report every break in the cycle numbers (within and before these cycles)."""
+        before = cycles[:-1] if self._previous is None else \
+            np.concatenate(([self._previous], cycles[:-1]))
+        after = cycles if self._previous is not None else cycles[1:]
+        for i in np.flatnonzero(after != before + 1).tolist():
+            self._gap(offset, int(before[i]), int(after[i]))
+        self._previous = int(cycles[-1])
 
     def _frames(self) -> Iterator[tuple[int, bytes]]:
         """(offset, payload) of every good frame after the header; damage is reported and
@@ -268,6 +345,15 @@ def _unpack(payload: bytes) -> Any:
         return msgpack.unpackb(payload, raw=False)
     except Exception:  # noqa: BLE001 - whatever the bytes are, they are not a record
         return None
+
+
+def _good_rows(block: CycleBlock, n_joints: int) -> np.ndarray:
+    """Which rows of a block hold what `_check_lengths` asks of a record."""
+    keep = np.isfinite(block["t_s"])
+    for name, width in (("q", n_joints), ("rates", n_joints), ("twist", 6),
+                        ("achieved_twist", 6)):
+        keep &= block[name].lengths == width
+    return keep
 
 
 def _check_lengths(rec: CycleRecord, n_joints: int) -> None:

@@ -28,7 +28,7 @@ from ..errors import LogError
 
 SESSION_SUFFIX = ".jwlog"
 MAGIC = b"\x8fJWLOG\r\n"          # high first byte: binary; \r\n: catches text-mode mangling
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2                 # 1: one msgpack frame per cycle; 2: cycle blocks
 FRAME_MARK = b"\xc1J"
 MAX_PAYLOAD_BYTES = 16 * 1024 * 1024   # a longer length field is corruption, not a record
 
@@ -241,11 +241,12 @@ class SessionEnd:
 
 
 def make_header(arm: Arm, settings: Mapping[str, Any], *, started_at: datetime | None = None,
-                started_monotonic_ns: int | None = None) -> SessionHeader:
+                started_monotonic_ns: int | None = None,
+                format_version: int = FORMAT_VERSION) -> SessionHeader:
     """The header of a session starting now (or at the times given)."""
     when = started_at if started_at is not None else datetime.now().astimezone()
     return SessionHeader(
-        format_version=FORMAT_VERSION,
+        format_version=format_version,
         software_version=software_version(),
         protocol_version=protocol_version(),
         arm=arm,

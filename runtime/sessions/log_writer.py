@@ -26,12 +26,13 @@ import zlib
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import Any, BinaryIO, Callable, Mapping
+from typing import Any, BinaryIO, Callable, Iterable, Mapping
 
 import msgpack
 
 from ..arm.model import Arm
 from ..errors import LogError
+from .log_blocks import CycleBlock, encode_block
 from .log_schema import (FORMAT_VERSION, FRAME_MARK, MAGIC, SESSION_SUFFIX, CycleRecord,
                          SessionEnd, make_header)
 
@@ -39,8 +40,9 @@ from .log_schema import (FORMAT_VERSION, FRAME_MARK, MAGIC, SESSION_SUFFIX, Cycl
 PREAMBLE = struct.Struct("<8sH")
 FRAME_HEAD = struct.Struct("<2sII")
 _LENGTH = struct.Struct("<I")
-_CHUNK_RECORDS = 8         # records per write; the write releases the GIL, so the loop
-                           # never waits on the writer's Python work for more than a chunk
+WRITABLE_VERSIONS = (1, 2)
+MAX_FLUSH_RECORDS = 2048      # records per block at most (a writer that fell behind)
+CALLER_BLOCK_RECORDS = 256    # records per block when the caller encodes
 
 
 def encode_preamble(version: int = FORMAT_VERSION) -> bytes:
@@ -115,13 +117,14 @@ class SessionRecorder:
     """Writes one session file from a background thread. Start it with `start()`.
 
     `record()` is the only call made from the control loop: it appends to a bounded queue
-    and returns at once. The writer thread wakes every `flush_interval_s`, encodes and
-    writes all queued records and, with `fsync=True`, asks the OS to put them on the disk.
+    and returns at once. The writer thread wakes every `flush_interval_s`, gathers all
+    queued records into one block (format 2: columns, compressed, see `log_blocks`), writes
+    it and, with `fsync=True`, asks the OS to put it on the disk.
 
-    With `encode_in_caller=True`, `record()` encodes the record itself (~20 µs) and the
-    thread only writes bytes. For a caller with time to spare between cycles (a lockstep
-    run encodes while the simulated arm steps) that is cheaper than the thread's encoding,
-    which holds the interpreter lock in bursts the caller then waits out.
+    With `encode_in_caller=True`, `record()` collects records and encodes a block itself
+    every `CALLER_BLOCK_RECORDS`; the thread only writes bytes. For a caller with time to
+    spare between cycles (a lockstep run encodes while the simulated arm steps) that avoids
+    the thread's interpreter-lock bursts the caller would otherwise wait out.
 
     fsync is off by default: the worst cases it guards against are power loss and a kernel
     crash, since after a process crash or kill -9 everything written is already in the OS's
@@ -131,14 +134,17 @@ class SessionRecorder:
 
     def __init__(self, file: BinaryIO, path: Path, *, flush_interval_s: float,
                  queue_size: int, fsync: bool, bytes_written: int,
-                 encode_in_caller: bool = False) -> None:
+                 encode_in_caller: bool = False, format_version: int = FORMAT_VERSION
+                 ) -> None:
         self.path = path
         self.flush_interval_s = flush_interval_s
+        self.format_version = format_version
         self._file = file
         self._fsync = fsync
         self._capacity = queue_size
         self._encode_in_caller = encode_in_caller
-        self._queue: collections.deque[CycleRecord | bytes] = collections.deque()
+        self._queue: collections.deque[CycleRecord | _Encoded] = collections.deque()
+        self._collected: list[CycleRecord] = []       # encode_in_caller: the next block
         self._stop = threading.Event()
         self._closed = False
         self._failed: str | None = None
@@ -159,18 +165,22 @@ class SessionRecorder:
     def start(cls, path: str | Path, arm: Arm, settings: Mapping[str, Any], *,
               flush_interval_s: float = 0.2, queue_size: int = 4096, fsync: bool = False,
               opener: Opener = open_new_file, started_at: datetime | None = None,
-              started_monotonic_ns: int | None = None,
-              encode_in_caller: bool = False) -> "SessionRecorder":
+              started_monotonic_ns: int | None = None, encode_in_caller: bool = False,
+              format_version: int = FORMAT_VERSION) -> "SessionRecorder":
         """Create the file, write the preamble and header (synchronously, before any cycle)
-        and start the writer thread. A file that cannot be created raises LogError."""
+        and start the writer thread. A file that cannot be created raises LogError.
+        `format_version=1` writes the previous format (one msgpack frame per cycle)."""
         if not flush_interval_s > 0:
             raise ValueError(f"flush_interval_s must be positive, got {flush_interval_s}")
         if queue_size < 1:
             raise ValueError(f"queue_size must be at least 1, got {queue_size}")
+        if format_version not in WRITABLE_VERSIONS:
+            raise ValueError(f"format_version must be one of {WRITABLE_VERSIONS}")
         path = Path(path)
         header = make_header(arm, settings, started_at=started_at,
-                             started_monotonic_ns=started_monotonic_ns)
-        data = encode_preamble() + encode_frame(header.to_wire())
+                             started_monotonic_ns=started_monotonic_ns,
+                             format_version=format_version)
+        data = encode_preamble(format_version) + encode_frame(header.to_wire())
         file = None
         try:
             file = opener(path)
@@ -183,7 +193,8 @@ class SessionRecorder:
                 _close_quietly(file)
             raise LogError(f"cannot write session log {path}: {exc.strerror or exc}") from None
         recorder = cls(file, path, flush_interval_s=flush_interval_s, queue_size=queue_size,
-                       fsync=fsync, bytes_written=len(data), encode_in_caller=encode_in_caller)
+                       fsync=fsync, bytes_written=len(data), encode_in_caller=encode_in_caller,
+                       format_version=format_version)
         recorder._thread.start()
         return recorder
 
@@ -195,20 +206,23 @@ class SessionRecorder:
         if self._failed is not None or self._closed:
             self._refused += 1
             return False
-        if len(self._queue) >= self._capacity:
+        if len(self._queue) + len(self._collected) >= self._capacity:
             self._dropped += 1
             return False
-        if self._encode_in_caller:
-            try:
-                item: CycleRecord | bytes = encode_frame(rec.to_wire())
-            except Exception:  # noqa: BLE001 - one bad record must not stop the session
-                self._unencodable_here += 1
-                return False
-        else:
-            item = rec
-        self._queue.append(item)
         self._handed += 1
+        if not self._encode_in_caller:
+            self._queue.append(rec)
+        else:
+            self._collected.append(rec)
+            if len(self._collected) >= CALLER_BLOCK_RECORDS:
+                self._hand_over_collected()
         return True
+
+    def _hand_over_collected(self) -> None:
+        encoded, bad = self._encode(self._collected)
+        self._collected = []
+        self._unencodable_here += bad
+        self._queue.extend(encoded)
 
     @property
     def failed(self) -> str | None:
@@ -226,13 +240,15 @@ class SessionRecorder:
         """Write what is queued and the end record, close the file, return the counts.
         Waits at most `timeout_s` for the writer (a stalled disk must not hang the exit)."""
         if not self._closed:
+            if self._collected and self._failed is None:
+                self._hand_over_collected()
             self._closed = True
             self._stop.set()
         self._thread.join(timeout_s)
         if self._thread.is_alive() and self._failed is None:
             self._failed = f"the writer did not finish within {timeout_s:g} s (disk stalled?)"
         if not self._thread.is_alive():
-            self._lost_in_writer += len(self._queue)   # handed just as the writer failed
+            self._lost_in_writer += _count(self._queue)   # handed just as the writer failed
             self._queue.clear()
         return self.stats()
 
@@ -241,6 +257,22 @@ class SessionRecorder:
 
     def __exit__(self, *exc_info: object) -> None:
         self.close()
+
+    # -- encoding (writer thread, or the caller with encode_in_caller) ------------------
+
+    def _encode(self, records: list[CycleRecord]) -> tuple[list[_Encoded], int]:
+        """Frames for `records` and how many records could not be encoded (skipped)."""
+        if self.format_version == 1:
+            return _encode_v1(records)
+        try:
+            return [_Encoded(encode_frame(encode_block(CycleBlock.from_records(records))),
+                             len(records))], 0
+        except Exception:  # noqa: BLE001 - one bad record must not stop the session
+            good = [r for r in records if _encodable(r)]
+            if len(good) == len(records):     # not the records' fault: report it
+                raise
+            encoded, _ = self._encode(good) if good else ([], 0)
+            return encoded, len(records) - len(good)
 
     # -- the writer thread ------------------------------------------------------------
 
@@ -261,30 +293,44 @@ class SessionRecorder:
         finally:
             _close_quietly(self._file)
 
-    def _write_pending(self) -> None:
+    def _take_pending(self) -> list[_Encoded]:
+        """Everything queued now, encoded: one block per MAX_FLUSH_RECORDS records."""
         queue = self._queue
         self._queue_peak = max(self._queue_peak, len(queue))
-        while queue and self._failed is None:
-            frames = []
-            for _ in range(min(len(queue), _CHUNK_RECORDS)):
-                item = queue.popleft()
-                if isinstance(item, bytes):       # encoded by the caller
-                    frames.append(item)
-                    continue
-                try:
-                    frames.append(encode_frame(item.to_wire()))
-                except Exception:  # noqa: BLE001 - one bad record must not stop the session
-                    self._unencodable += 1
-            data = b"".join(frames)
+        out: list[_Encoded] = []
+        records: list[CycleRecord] = []
+        for _ in range(len(queue)):
+            item = queue.popleft()
+            if isinstance(item, _Encoded):        # encoded by the caller
+                out.append(item)
+                continue
+            records.append(item)
+            if len(records) == MAX_FLUSH_RECORDS:
+                out += self._encode_counted(records)
+                records = []
+        if records:
+            out += self._encode_counted(records)
+        return out
+
+    def _encode_counted(self, records: list[CycleRecord]) -> list[_Encoded]:
+        encoded, bad = self._encode(records)
+        self._unencodable += bad
+        return encoded
+
+    def _write_pending(self) -> None:
+        while self._queue and self._failed is None:
+            frames = self._take_pending()
+            data = b"".join(f.data for f in frames)
             try:
                 _write_all(self._file, data)
             except OSError as exc:
-                whole = _complete_frames(frames, getattr(exc, "bytes_written", 0))
+                done = getattr(exc, "bytes_written", 0)
+                whole = _complete_frames(frames, done)
                 self._written += whole
-                self._bytes += getattr(exc, "bytes_written", 0)
-                self._fail(self._os_reason(exc), unwritten=len(frames) - whole)
+                self._bytes += done
+                self._fail(self._os_reason(exc), unwritten=_count(frames) - whole)
                 return
-            self._written += len(frames)
+            self._written += _count(frames)
             self._bytes += len(data)
         try:
             self._file.flush()
@@ -316,7 +362,7 @@ class SessionRecorder:
                 self._fail(self._os_reason(exc))
 
     def _fail(self, reason: str, unwritten: int = 0) -> None:
-        self._lost_in_writer += unwritten + len(self._queue)
+        self._lost_in_writer += unwritten + _count(self._queue)
         self._queue.clear()
         self._failed = reason
 
@@ -325,14 +371,45 @@ class SessionRecorder:
         return f"writing {self.path} failed: {what}; recording stopped"
 
 
-def _complete_frames(frames: list[bytes], n_bytes: int) -> int:
-    """How many of `frames`, written back to back, fit whole in the first n_bytes."""
+@dataclass(frozen=True)
+class _Encoded:
+    """A frame ready to write and how many cycle records it holds."""
+
+    data: bytes
+    records: int
+
+
+def _count(items: Iterable[CycleRecord | _Encoded]) -> int:
+    """Cycle records in a queue or frame list (an encoded block counts its records)."""
+    return sum(i.records if isinstance(i, _Encoded) else 1 for i in items)
+
+
+def _encode_v1(records: list[CycleRecord]) -> tuple[list[_Encoded], int]:
+    out, bad = [], 0
+    for rec in records:
+        try:
+            out.append(_Encoded(encode_frame(rec.to_wire()), 1))
+        except Exception:  # noqa: BLE001 - one bad record must not stop the session
+            bad += 1
+    return out, bad
+
+
+def _encodable(rec: CycleRecord) -> bool:
+    try:
+        encode_block(CycleBlock.from_records([rec]))
+    except Exception:  # noqa: BLE001 - whatever fails, this record cannot be written
+        return False
+    return True
+
+
+def _complete_frames(frames: list[_Encoded], n_bytes: int) -> int:
+    """How many records of `frames`, written back to back, are whole in the first n_bytes."""
     whole, end = 0, 0
     for frame in frames:
-        end += len(frame)
+        end += len(frame.data)
         if end > n_bytes:
             break
-        whole += 1
+        whole += frame.records
     return whole
 
 
