@@ -196,7 +196,7 @@ def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRec
 
 
 def _format_rerun(r: dict[str, Any], arm: Arm) -> str:
-    from .inspect import format_table
+    from ..operator.terminal import format_table
     verdict = ("identical" if r["largest_difference"] == 0.0 else
                f"identical within {r['tolerance']:g}") if r["identical"] else "DIFFERENT"
     lines = [f"re-run ({r['mode']}) of {r['log']} with arm {r['arm']}: {r['cycles']} cycles, "
