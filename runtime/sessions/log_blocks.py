@@ -37,6 +37,7 @@ ZLIB_LEVEL = 6                  # zlib's default; 9 gains ~2 % for three times t
 # Column types (docs/SESSION_FORMAT.md, "Column types").
 F8, I8, F8_OPT, BOOL, STR, F8_LIST, BOOL_LIST, STR_F8_MAP, MSGPACK = (
     "f8", "i8", "f8?", "bool", "str", "f8[]", "bool[]", "str:f8", "msgpack")
+COLUMN_TYPES = (F8, I8, F8_OPT, BOOL, STR, F8_LIST, BOOL_LIST, STR_F8_MAP, MSGPACK)
 # Deltas of eight-byte columns: XOR for noisy measurements (timing, tracking error),
 # DELTA2 (second difference) for smooth signals (poses, rates, time, counters); measured
 # on the demo session: 89 bytes a cycle with the choice below, 102 with XOR throughout.
