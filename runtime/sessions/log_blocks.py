@@ -342,41 +342,62 @@ def _stride(lengths: np.ndarray) -> int:
 
 def encode_block(block: CycleBlock) -> dict[str, Any]:
     """The msgpack map of a cycle block (the payload of its frame)."""
-    described, parts = [], []
+    return _block_map(block.n, [_pack_column(name, kind, block.columns[name])
+                                for name, kind in COLUMNS])
+
+
+def encode_records(records: Sequence[CycleRecord], pause: Callable[[], None] | None = None
+                   ) -> dict[str, Any]:
+    """The block map of `records`, gathered and packed one column at a time, calling
+    `pause()` between columns: a writer thread sleeps there, so that it never holds the
+    interpreter lock for longer than one column while the control loop wants it."""
+    packed = []
     for name, kind in COLUMNS:
-        col = block.columns[name]
-        desc: dict[str, Any] = {"name": name, "type": kind}
-        if kind in (F8, I8, F8_OPT, F8_LIST, STR_F8_MAP):
-            desc["delta"] = DELTA2 if name in SMOOTH else XOR
-        if kind in (F8, I8):
-            data = pack_eight(col, 1, desc["delta"])
-        elif kind == BOOL:
-            data = col.astype(np.uint8).tobytes()
-        elif kind == F8_OPT:
-            data = col[0].astype(np.uint8).tobytes() + pack_eight(col[1], 1, desc["delta"])
-        elif kind == STR:
-            desc["values"] = list(col.table)
-            data = col.codes.astype(_u4).tobytes()
-        elif kind == F8_LIST:
-            desc["stride"] = _stride(col.lengths)
-            data = (col.lengths.astype(_u4).tobytes()
-                    + pack_eight(col.flat, desc["stride"], desc["delta"]))
-        elif kind == BOOL_LIST:
-            data = col.lengths.astype(_u4).tobytes() + col.flat.astype(np.uint8).tobytes()
-        elif kind == STR_F8_MAP:
-            desc["keys"] = [list(k) for k in col.keys]
-            desc["stride"] = len(col.keys[0]) if len(col.keys) == 1 and col.keys[0] else 1
-            data = (col.codes.astype(_u4).tobytes()
-                    + pack_eight(col.flat, desc["stride"], desc["delta"]))
-        else:
-            data = msgpack.packb(col, use_bin_type=True)
-        desc["size"] = len(data)
-        described.append(desc)
-        parts.append(data)
-    layout = msgpack.packb(described, use_bin_type=True)
-    body = _LAYOUT_LENGTH.pack(len(layout)) + layout + b"".join(parts)
-    return {"kind": BLOCK_KIND, "count": block.n, "codec": CODEC,
+        col = _GATHER[kind](list(map(attrgetter(name), records)))
+        if kind == STR:
+            _check_table(name, col.table)
+        packed.append(_pack_column(name, kind, col))
+        if pause is not None:
+            pause()
+    return _block_map(len(records), packed)
+
+
+def _block_map(n: int, packed: list[tuple[dict[str, Any], bytes]]) -> dict[str, Any]:
+    layout = msgpack.packb([desc for desc, _ in packed], use_bin_type=True)
+    body = b"".join([_LAYOUT_LENGTH.pack(len(layout)), layout] + [data for _, data in packed])
+    return {"kind": BLOCK_KIND, "count": n, "codec": CODEC,
             "body": zlib.compress(body, ZLIB_LEVEL)}
+
+
+def _pack_column(name: str, kind: str, col: Any) -> tuple[dict[str, Any], bytes]:
+    """A column's layout map and bytes (docs/SESSION_FORMAT.md, "Column types")."""
+    desc: dict[str, Any] = {"name": name, "type": kind}
+    if kind in (F8, I8, F8_OPT, F8_LIST, STR_F8_MAP):
+        desc["delta"] = DELTA2 if name in SMOOTH else XOR
+    if kind in (F8, I8):
+        data = pack_eight(col, 1, desc["delta"])
+    elif kind == BOOL:
+        data = col.astype(np.uint8).tobytes()
+    elif kind == F8_OPT:
+        data = col[0].astype(np.uint8).tobytes() + pack_eight(col[1], 1, desc["delta"])
+    elif kind == STR:
+        desc["values"] = list(col.table)
+        data = col.codes.astype(_u4).tobytes()
+    elif kind == F8_LIST:
+        desc["stride"] = _stride(col.lengths)
+        data = (col.lengths.astype(_u4).tobytes()
+                + pack_eight(col.flat, desc["stride"], desc["delta"]))
+    elif kind == BOOL_LIST:
+        data = col.lengths.astype(_u4).tobytes() + col.flat.astype(np.uint8).tobytes()
+    elif kind == STR_F8_MAP:
+        desc["keys"] = [list(k) for k in col.keys]
+        desc["stride"] = len(col.keys[0]) if len(col.keys) == 1 and col.keys[0] else 1
+        data = (col.codes.astype(_u4).tobytes()
+                + pack_eight(col.flat, desc["stride"], desc["delta"]))
+    else:
+        data = msgpack.packb(col, use_bin_type=True)
+    desc["size"] = len(data)
+    return desc, data
 
 
 def decode_block(m: Mapping[str, Any]) -> CycleBlock:
