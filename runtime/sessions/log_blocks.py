@@ -58,7 +58,6 @@ COLUMNS: tuple[tuple[str, str], ...] = (
 FIELDS = tuple(name for name, _ in COLUMNS)
 _NULLABLE_STR = {"binding_limit"}
 _LAYOUT_LENGTH = struct.Struct("<I")
-MAX_BODY_BYTES = 256 * 1024 * 1024   # an inflated block larger than this is corruption
 _u4 = np.dtype("<u4")
 _u8 = np.dtype("<u8")
 
@@ -120,16 +119,48 @@ class KeyedFloats:
 
 
 @dataclass(frozen=True)
+class Objects:
+    """A msgpack column not decoded yet: segments (msgpack array of n values, lo, hi), the
+    column being values lo … hi − 1 of each array in turn. Decoded on first use."""
+
+    segments: tuple[tuple[bytes, int, int, int], ...]
+
+    def tolist(self) -> list[Any]:
+        out: list[Any] = []
+        for data, n, lo, hi in self.segments:
+            values = msgpack.unpackb(data, raw=False)
+            if not isinstance(values, list) or len(values) != n:
+                raise LogError(f"a msgpack column is not a list of {n} values")
+            if any(v is not None and not isinstance(v, dict) for v in values[lo:hi]):
+                raise LogError("a msgpack column holds a value that is not a map")
+            out += values[lo:hi]
+        return out
+
+    def rows(self, start: int, stop: int) -> "Objects":
+        kept, at = [], 0
+        for data, n, lo, hi in self.segments:
+            a, b = max(lo, lo + start - at), min(hi, lo + stop - at)
+            if a < b:
+                kept.append((data, n, a, b))
+            at += hi - lo
+        return Objects(tuple(kept))
+
+
+@dataclass(frozen=True)
 class CycleBlock:
     """Cycle records column by column, by field name: an ndarray for f8, i8 and bool; a
     (present, values) pair of ndarrays for f8?; `Strings`, `Ragged` (f8[], bool[]),
-    `KeyedFloats` (str:f8) and a list of maps or None (msgpack)."""
+    `KeyedFloats` (str:f8) and a list of maps or None (msgpack; `Objects` until first
+    asked for)."""
 
     n: int
     columns: dict[str, Any] = field(repr=False)
 
     def __getitem__(self, name: str) -> Any:
-        return self.columns[name]
+        col = self.columns[name]
+        if isinstance(col, Objects):
+            col = self.columns[name] = col.tolist()
+        return col
 
     def matrix(self, name: str, width: int) -> np.ndarray:
         """A list column as an (n, width) float matrix (LogError if a row differs)."""
@@ -146,9 +177,11 @@ class CycleBlock:
 
     def rows(self, start: int, stop: int) -> "CycleBlock":
         """Rows start … stop − 1."""
-        keep = np.zeros(self.n, dtype=bool)
-        keep[start:stop] = True
-        return self.take(keep)
+        start, stop = max(0, start), min(self.n, stop)
+        if (start, stop) == (0, self.n):
+            return self
+        return CycleBlock(max(0, stop - start),
+                          {k: _slice(c, start, stop) for k, c in self.columns.items()})
 
     @classmethod
     def concat(cls, blocks: Sequence["CycleBlock"]) -> "CycleBlock":
@@ -160,7 +193,7 @@ class CycleBlock:
 
     def records(self) -> list[CycleRecord]:
         """The block as CycleRecords (Python objects per row: for replay-sized logs)."""
-        per_field = [_as_rows(self.columns[name]) for name in FIELDS]
+        per_field = [_as_rows(self[name]) for name in FIELDS]
         return [CycleRecord(*row) for row in zip(*per_field)]
 
     @classmethod
@@ -175,18 +208,44 @@ class CycleBlock:
         for (name, kind), vals in zip(COLUMNS, values):
             cols[name] = _GATHER[kind](vals)
             if kind == STR:
-                _check_table(name, cols[name].table)
+                check_table(name, cols[name].table)
         return cls(n, cols)
 
 
-def _check_table(name: str, table: Sequence[Any]) -> None:
+def check_table(name: str, table: Sequence[Any]) -> None:
     allowed = (str, type(None)) if name in _NULLABLE_STR else (str,)
     for v in table:
         if not isinstance(v, allowed):
             raise TypeError(f"{name}: {v!r} is not text")
 
 
+def _slice(col: Any, start: int, stop: int) -> Any:
+    if isinstance(col, (np.ndarray, list)):
+        return col[start:stop]
+    if isinstance(col, tuple):                       # f8?: (present, values)
+        return col[0][start:stop], col[1][start:stop]
+    if isinstance(col, Strings):
+        return Strings(col.codes[start:stop], col.table)
+    if isinstance(col, Objects):
+        return col.rows(start, stop)
+    if isinstance(col, Ragged):
+        ends = np.cumsum(col.lengths, dtype=np.int64)
+        return Ragged(col.lengths[start:stop], col.flat[_flat_range(ends, start, stop)])
+    widths = np.array([len(k) for k in col.keys] or [0], dtype=np.int64)[col.codes]
+    ends = np.cumsum(widths)
+    return KeyedFloats(col.codes[start:stop], col.keys, col.flat[_flat_range(ends, start, stop)])
+
+
+def _flat_range(ends: np.ndarray, start: int, stop: int) -> slice:
+    """The flat values of rows start … stop − 1, given each row's end offset."""
+    first = int(ends[start - 1]) if start > 0 else 0
+    last = int(ends[stop - 1]) if stop > 0 else 0
+    return slice(first, max(first, last))
+
+
 def _take(col: Any, keep: np.ndarray) -> Any:
+    if isinstance(col, Objects):
+        col = col.tolist()
     if isinstance(col, np.ndarray):
         return col[keep]
     if isinstance(col, tuple):                       # f8?: (present, values)
@@ -197,11 +256,14 @@ def _take(col: Any, keep: np.ndarray) -> Any:
         return [v for v, k in zip(col, keep.tolist()) if k]
     if isinstance(col, Ragged):
         return Ragged(col.lengths[keep], col.flat[np.repeat(keep, col.lengths)])
-    widths = np.array([len(col.keys[c]) for c in col.codes.tolist()], dtype=np.int64)
+    widths = np.array([len(k) for k in col.keys] or [0], dtype=np.int64)[col.codes]
     return KeyedFloats(col.codes[keep], col.keys, col.flat[np.repeat(keep, widths)])
 
 
 def _concat(parts: list[Any]) -> Any:
+    if all(isinstance(p, Objects) for p in parts):
+        return Objects(tuple(chain.from_iterable(p.segments for p in parts)))
+    parts = [p.tolist() if isinstance(p, Objects) else p for p in parts]
     first = parts[0]
     if isinstance(first, np.ndarray):
         return np.concatenate(parts)
@@ -230,7 +292,7 @@ def _merge_tables(parts: list[tuple[np.ndarray, tuple[Any, ...]]]
 
 
 def _as_rows(col: Any) -> list[Any]:
-    """One Python value per row, as CycleRecord holds it."""
+    """One Python value per row, as CycleRecord holds it (Objects already decoded)."""
     if isinstance(col, np.ndarray):
         return col.tolist()
     if isinstance(col, tuple):
@@ -269,7 +331,7 @@ def _gather_list(dtype: Any) -> Callable[[Sequence[Any]], Ragged]:
 def _gather_map(vals: Sequence[Mapping[str, float]]) -> KeyedFloats:
     codes, keys = _dictionary(list(map(tuple, vals)))
     for names in keys:
-        _check_table("scales", names)
+        check_table("scales", names)
     flat = np.fromiter(chain.from_iterable(m.values() for m in vals), np.float64)
     return KeyedFloats(codes, tuple(keys), flat)
 
@@ -313,19 +375,6 @@ def pack_eight(values: np.ndarray, stride: int, delta: str) -> bytes:
     return bits.reshape(-1).view(np.uint8).reshape(-1, 8).T.tobytes()
 
 
-def unpack_eight(data: bytes, stride: int, delta: str, dtype: Any) -> np.ndarray:
-    """The inverse of `pack_eight`: len(data) / 8 values of `dtype`."""
-    m = len(data) // 8
-    bits = np.frombuffer(data, np.uint8).reshape(8, m).T.copy().view(_u8).reshape(-1, stride)
-    if delta == XOR:
-        bits = np.bitwise_xor.accumulate(bits, axis=0)
-    elif delta == DELTA2:
-        bits = np.cumsum(np.cumsum(bits, axis=0, dtype=_u8), axis=0, dtype=_u8)
-    else:
-        raise LogError(f"unknown delta {delta!r}")
-    return bits.reshape(m).view(dtype)
-
-
 def _shifted(rows: np.ndarray) -> np.ndarray:
     """The rows moved down by one, zeros first."""
     out = np.zeros_like(rows)
@@ -355,7 +404,7 @@ def encode_records(records: Sequence[CycleRecord], pause: Callable[[], None] | N
     for name, kind in COLUMNS:
         col = _GATHER[kind](list(map(attrgetter(name), records)))
         if kind == STR:
-            _check_table(name, col.table)
+            check_table(name, col.table)
         packed.append(_pack_column(name, kind, col))
         if pause is not None:
             pause()
@@ -398,139 +447,3 @@ def _pack_column(name: str, kind: str, col: Any) -> tuple[dict[str, Any], bytes]
         data = msgpack.packb(col, use_bin_type=True)
     desc["size"] = len(data)
     return desc, data
-
-
-def decode_block(m: Mapping[str, Any]) -> CycleBlock:
-    """The CycleBlock of a block map; LogError says what is wrong with a malformed one."""
-    n = m.get("count")
-    if type(n) is not int or not 0 <= n <= MAX_BLOCK_ROWS:
-        raise LogError(f"implausible row count {n!r}")
-    if m.get("codec") != CODEC:
-        raise LogError(f"unknown codec {m.get('codec')!r}")
-    body = _inflate(m.get("body"))
-    if len(body) < _LAYOUT_LENGTH.size:
-        raise LogError("block body shorter than its layout length")
-    (length,) = _LAYOUT_LENGTH.unpack_from(body)
-    at = _LAYOUT_LENGTH.size + length
-    described = msgpack.unpackb(body[_LAYOUT_LENGTH.size:at], raw=False)
-    if not isinstance(described, list) or not all(isinstance(d, dict) for d in described):
-        raise LogError("block layout is not a list of column maps")
-    cols = {}
-    for desc in described:
-        size = desc.get("size")
-        if type(size) is not int or size < 0 or at + size > len(body):
-            raise LogError(f"column {desc.get('name')!r}: size {size!r} beyond the block")
-        chunk = body[at:at + size]
-        at += size
-        decoder = _DECODERS.get(desc.get("type"))   # unknown types: a newer writer's column
-        if decoder is not None:
-            cols[desc["name"]] = decoder(chunk, n, desc)
-    if at != len(body):
-        raise LogError(f"block body has {len(body) - at} bytes after its columns")
-    missing = [name for name in FIELDS if name not in cols]
-    if missing:
-        raise LogError(f"cycle block has no column {missing[0]!r}")
-    return CycleBlock(n, cols)
-
-
-def _inflate(data: Any) -> bytes:
-    if not isinstance(data, bytes):
-        raise LogError("block body is not binary")
-    inflater = zlib.decompressobj()
-    out = inflater.decompress(data, MAX_BODY_BYTES)    # bounded: damage cannot balloon memory
-    if not inflater.eof or inflater.unused_data:
-        raise LogError("block body is not one complete zlib stream")
-    return out
-
-
-def _expect(chunk: bytes, size: int, what: str) -> None:
-    if len(chunk) != size:
-        raise LogError(f"{what}: {len(chunk)} bytes, expected {size}")
-
-
-def _lengths(chunk: bytes, n: int, desc: Mapping[str, Any], item: int) -> tuple[np.ndarray, bytes]:
-    if len(chunk) < 4 * n:
-        raise LogError(f"{desc['name']}: too short for {n} row lengths")
-    lengths = np.frombuffer(chunk, _u4, n)
-    rest = chunk[4 * n:]
-    _expect(rest, int(lengths.sum(dtype=np.int64)) * item, desc["name"])
-    return lengths, rest
-
-
-def _decode_eight(dtype: Any) -> Callable[[bytes, int, Mapping[str, Any]], np.ndarray]:
-    def decode(chunk: bytes, n: int, desc: Mapping[str, Any]) -> np.ndarray:
-        _expect(chunk, 8 * n, desc["name"])
-        return unpack_eight(chunk, 1, desc["delta"], dtype)
-    return decode
-
-
-def _decode_bool(chunk: bytes, n: int, desc: Mapping[str, Any]) -> np.ndarray:
-    _expect(chunk, n, desc["name"])
-    return np.frombuffer(chunk, np.uint8) != 0
-
-
-def _decode_optional(chunk: bytes, n: int, desc: Mapping[str, Any]
-                     ) -> tuple[np.ndarray, np.ndarray]:
-    _expect(chunk, 9 * n, desc["name"])
-    return (np.frombuffer(chunk[:n], np.uint8) != 0,
-            unpack_eight(chunk[n:], 1, desc["delta"], np.float64))
-
-
-def _codes(chunk: bytes, n: int, table_size: int, what: str) -> np.ndarray:
-    codes = np.frombuffer(chunk[:4 * n], _u4)
-    if len(codes) != n or (n and int(codes.max()) >= table_size):
-        raise LogError(f"{what}: codes out of range")
-    return codes
-
-
-def _decode_str(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Strings:
-    table = tuple(desc["values"])
-    _check_table(desc["name"], table)
-    _expect(chunk, 4 * n, desc["name"])
-    return Strings(_codes(chunk, n, len(table), desc["name"]), table)
-
-
-def _decode_f8_list(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Ragged:
-    lengths, rest = _lengths(chunk, n, desc, 8)
-    stride = _checked_stride(desc, len(rest) // 8)
-    return Ragged(lengths, unpack_eight(rest, stride, desc["delta"], np.float64))
-
-
-def _decode_bool_list(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Ragged:
-    lengths, rest = _lengths(chunk, n, desc, 1)
-    return Ragged(lengths, np.frombuffer(rest, np.uint8) != 0)
-
-
-def _decode_map(chunk: bytes, n: int, desc: Mapping[str, Any]) -> KeyedFloats:
-    keys = tuple(tuple(k) for k in desc["keys"])
-    for names in keys:
-        _check_table(desc["name"], names)
-    codes = _codes(chunk, n, len(keys), desc["name"])
-    widths = np.array([len(k) for k in keys], dtype=np.int64)
-    rest = chunk[4 * n:]
-    _expect(rest, int(widths[codes].sum()) * 8 if n else 0, desc["name"])
-    stride = _checked_stride(desc, len(rest) // 8)
-    return KeyedFloats(codes, keys, unpack_eight(rest, stride, desc["delta"], np.float64))
-
-
-def _checked_stride(desc: Mapping[str, Any], count: int) -> int:
-    stride = desc.get("stride", 1)
-    if type(stride) is not int or stride < 1 or (count and count % stride):
-        raise LogError(f"{desc['name']}: stride {stride!r} does not divide {count} values")
-    return stride
-
-
-def _decode_objects(chunk: bytes, n: int, desc: Mapping[str, Any]) -> list[Any]:
-    values = msgpack.unpackb(chunk, raw=False)
-    if not isinstance(values, list) or len(values) != n:
-        raise LogError(f"{desc['name']}: not a list of {n} values")
-    if any(v is not None and not isinstance(v, dict) for v in values):
-        raise LogError(f"{desc['name']}: a value is not a map")
-    return values
-
-
-_DECODERS: dict[str, Callable[[bytes, int, Mapping[str, Any]], Any]] = {
-    F8: _decode_eight(np.float64), I8: _decode_eight(np.int64), BOOL: _decode_bool,
-    F8_OPT: _decode_optional, STR: _decode_str, F8_LIST: _decode_f8_list,
-    BOOL_LIST: _decode_bool_list, STR_F8_MAP: _decode_map, MSGPACK: _decode_objects,
-}

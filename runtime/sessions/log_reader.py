@@ -18,12 +18,14 @@ import msgpack
 import numpy as np
 
 from ..errors import LogError
-from .log_blocks import BLOCK_KIND, CycleBlock, decode_block
+from .log_blocks import BLOCK_KIND, CycleBlock
+from .log_blocks_decode import ParsedBlock, decode_blocks, parse_block
 from .log_schema import (FORMAT_VERSION, FRAME_MARK, MAGIC, MAX_PAYLOAD_BYTES, CycleRecord,
                          SessionEnd, SessionHeader)
 from .log_writer import FRAME_HEAD, PREAMBLE
 
 CHUNK_ROWS = 4096         # cycles per chunk of `blocks()`
+RUN_ROWS = 4096           # format 2 blocks are decoded together up to this many cycles
 _SCAN_WINDOW = 1 << 16     # bytes read at a time when looking for the next good frame
 _READ_BLOCK = 1 << 18      # the reader's buffer
 
@@ -150,10 +152,16 @@ class SessionReader:
     def __iter__(self) -> Iterator[CycleRecord]:
         """Every readable cycle record, in file order."""
         for item in self._cycles():
-            if isinstance(item, CycleBlock):
-                yield from item.records()
-            else:
+            if not isinstance(item, CycleBlock):
                 yield item
+                continue
+            try:
+                records = item.records()
+            except LogError as exc:             # the input column, decoded only now
+                self._problem(BAD_RECORD, self._size, f"{item.n} cycles whose input cannot "
+                              f"be read ({exc}); skipped")
+                continue
+            yield from records
 
     def blocks(self, rows: int = CHUNK_ROWS) -> Iterator[CycleBlock]:
         """Every readable cycle, column by column, in chunks of exactly `rows` cycles (the
@@ -188,19 +196,27 @@ class SessionReader:
             yield CycleBlock.from_records(batch)
 
     def _cycles(self) -> Iterator[CycleRecord | CycleBlock]:
-        """Cycle records (format 1) and blocks (format 2) as they come, checked; problems
-        reported, the end record kept. Iterates once."""
+        """Cycle records (format 1) and runs of blocks (format 2) as they come, checked;
+        problems reported, the end record kept. Iterates once."""
         if self._iterated:
             raise RuntimeError("a SessionReader iterates once; open a new one")
         self._iterated = True
+        run: list[tuple[int, ParsedBlock]] = []     # blocks decoded together, with offsets
         for offset, payload in self._frames():
             m = _unpack(payload)
             kind = m.get("kind") if isinstance(m, dict) else None
             if kind == BLOCK_KIND:
-                block = self._block(offset, m)
-                if block is not None and block.n:
-                    yield block
-            elif kind == "cycle":
+                parsed = self._parse(offset, m)
+                if parsed is not None and parsed.n:
+                    run.append((offset, parsed))
+                if sum(p.n for _, p in run) >= RUN_ROWS:
+                    yield from self._decode_run(run)
+                    run = []
+                continue
+            if run:
+                yield from self._decode_run(run)
+                run = []
+            if kind == "cycle":
                 rec = self._record(offset, m)
                 if rec is not None:
                     yield rec
@@ -216,6 +232,8 @@ class SessionReader:
                               f"record kind {kind!r} is unknown to this version; skipped")
             else:
                 self._problem(BAD_RECORD, offset, "not a cycle or end record; skipped")
+        if run:
+            yield from self._decode_run(run)
         if self.end is None:
             self._problem(UNCLOSED, self._size, "no end record: the session did not close "
                           "cleanly (crash, kill or power loss); everything before is kept")
@@ -231,33 +249,49 @@ class SessionReader:
         except LogError as exc:
             self._problem(BAD_RECORD, offset, f"{exc}; skipped")
             return None
-        self._check_sequence(offset, np.array([rec.cycle], dtype=np.int64))
+        self._check_sequence(np.array([offset]), np.array([rec.cycle], dtype=np.int64))
         return rec
 
-    def _block(self, offset: int, m: dict[str, Any]) -> CycleBlock | None:
+    def _parse(self, offset: int, m: dict[str, Any]) -> ParsedBlock | None:
         try:
-            block = decode_block(m)
-            keep = _good_rows(block, self.header.arm.n)
+            return parse_block(m)
         except Exception as exc:  # noqa: BLE001 - whatever the bytes say, not a block
             self._problem(BAD_RECORD, offset, f"a cycle block that cannot be read ({exc}); "
                           f"skipped")
             return None
-        if not keep.all():
-            self._problem(BAD_RECORD, offset, f"{int((~keep).sum())} of {block.n} cycles in "
-                          f"this block are malformed (joint count, twist length or time); "
-                          f"skipped")
-            block = block.take(keep)
-        if block.n:
-            self._check_sequence(offset, block["cycle"])
-        return block
 
-    def _check_sequence(self, offset: int, cycles: np.ndarray) -> None:
-        """Report every break in the cycle numbers (within and before these cycles)."""
-        before = cycles[:-1] if self._previous is None else \
-            np.concatenate(([self._previous], cycles[:-1]))
-        after = cycles if self._previous is not None else cycles[1:]
-        for i in np.flatnonzero(after != before + 1).tolist():
-            self._gap(offset, int(before[i]), int(after[i]))
+    def _decode_run(self, run: list[tuple[int, ParsedBlock]]) -> Iterator[CycleBlock]:
+        """Decode checked blocks together; drop malformed cycles and report gaps."""
+        try:
+            block = decode_blocks([p for _, p in run])
+        except Exception:  # noqa: BLE001 - checked blocks decode; if not, one at a time
+            if len(run) > 1:
+                for one in run:
+                    yield from self._decode_run([one])
+                return
+            self._problem(BAD_RECORD, run[0][0], "a cycle block that cannot be decoded; "
+                          "skipped")
+            return
+        offsets = np.repeat([o for o, _ in run], [p.n for _, p in run])
+        keep = _good_rows(block, self.header.arm.n)
+        if not keep.all():
+            for offset in np.unique(offsets[~keep]).tolist():
+                mine = offsets == offset
+                self._problem(BAD_RECORD, offset, f"{int((mine & ~keep).sum())} of "
+                              f"{int(mine.sum())} cycles in this block are malformed (joint "
+                              f"count, twist length or time); skipped")
+            block, offsets = block.take(keep), offsets[keep]
+        if block.n:
+            self._check_sequence(offsets, block["cycle"])
+            yield block
+
+    def _check_sequence(self, offsets: np.ndarray, cycles: np.ndarray) -> None:
+        """Report every break in the cycle numbers (within and before these cycles), at
+        the offset of the record or block where the cycle after the break is."""
+        previous = np.concatenate(([self._previous if self._previous is not None
+                                    else cycles[0] - 1], cycles[:-1]))
+        for i in np.flatnonzero(cycles != previous + 1).tolist():
+            self._gap(int(offsets[i]), int(previous[i]), int(cycles[i]))
         self._previous = int(cycles[-1])
 
     def _frames(self) -> Iterator[tuple[int, bytes]]:

@@ -28,8 +28,10 @@ from runtime.cli import main
 from runtime.control.cycle import ControlCycle
 from runtime.control.mapping import load_pad
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.sessions.log_blocks import (BLOCK_KIND, COLUMNS, CycleBlock, decode_block,
-                                         encode_block, pack_eight, unpack_eight)
+from runtime.sessions.log_blocks import BLOCK_KIND, COLUMNS, CycleBlock, encode_block, \
+    pack_eight
+from runtime.sessions.log_blocks_decode import Part, decode_block, decode_blocks, \
+    eight_values, parse_block
 from runtime.sessions.log_reader import BAD_RECORD, CORRUPT, GAP, TORN_TAIL, SessionReader, \
     read_session
 from runtime.sessions.log_schema import CycleRecord, cycle_record
@@ -115,8 +117,23 @@ def test_eight_byte_deltas_invert_exactly(bits: list[int], stride: int, delta: s
     values = np.array(bits[:len(bits) // stride * stride], dtype="<u8").view("<f8")
     data = pack_eight(values, stride, delta)
     assert len(data) == 8 * len(values)
-    back = unpack_eight(data, stride, delta, np.float64)
+    part = Part(len(values), {"delta": delta}, b"", data, stride)
+    back = eight_values([part], np.float64)
     assert back.view("<u8").tolist() == values.view("<u8").tolist()
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(records, min_size=1, max_size=30), st.lists(st.integers(0, 30), max_size=5))
+def test_blocks_decoded_together_equal_the_records(recs: list[CycleRecord],
+                                                   cuts: list[int]) -> None:
+    """A run of blocks decodes in one go (deltas undone across the run, corrected at each
+    block's start) to exactly the records they hold."""
+    bounds = sorted({0, len(recs), *(c % (len(recs) + 1) for c in cuts)})
+    parsed = [parse_block(msgpack.unpackb(msgpack.packb(
+        encode_block(CycleBlock.from_records(recs[a:b])), use_bin_type=True), raw=False))
+        for a, b in zip(bounds, bounds[1:])]
+    back = decode_blocks(parsed).records()
+    assert [record_bits(r) for r in back] == [record_bits(r) for r in recs]
 
 
 def test_byte_planes_are_as_documented() -> None:
