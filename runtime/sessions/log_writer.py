@@ -284,7 +284,7 @@ class SessionRecorder:
             while self._failed is None:
                 stopping = self._stop.wait(max(0.0, next_flush - time.monotonic()))
                 next_flush = max(next_flush + interval, time.monotonic())
-                self._write_pending()
+                self._write_pending(everything=stopping)
                 if stopping:
                     if self._failed is None:
                         self._write_end()
@@ -318,8 +318,13 @@ class SessionRecorder:
         self._unencodable += bad
         return encoded
 
-    def _write_pending(self) -> None:
-        while self._queue and self._failed is None:
+    def _write_pending(self, everything: bool) -> None:
+        """Write what was queued when the flush began, as one block (records handed over
+        while it is encoded wait for the next flush); with `everything`, until the queue
+        is empty (the last flush)."""
+        first = True
+        while self._queue and self._failed is None and (first or everything):
+            first = False
             frames = self._take_pending()
             data = b"".join(f.data for f in frames)
             try:
