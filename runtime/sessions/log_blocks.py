@@ -2,17 +2,17 @@
 
 A block is one frame of the log holding every cycle record of one flush. Each field is one
 column for the whole block, numbers as little-endian binary, and the columns together are
-compressed with zlib. Encoding and decoding are done in bulk with numpy: no Python-level
-work per record beyond gathering the field values (`operator.attrgetter`, `zip`).
+compressed with zlib. Encoding works in bulk with numpy, one column at a time: no
+Python-level work per record beyond collecting each field's values.
 
-Eight-byte numbers (float64, int64) are stored as the XOR of each value's bits with the
-value `stride` places before it, then byte plane by byte plane (all least significant bytes
-first). Successive cycles differ in their low bits only, so the high planes become long
-runs of zero bytes that zlib squeezes to almost nothing; the round trip is bit-exact (NaN
-payloads and -0.0 included). docs/SESSION_FORMAT.md gives the layout byte for byte;
-`COLUMNS` is the list it documents (tests/runtime/sessions/test_session_format_doc.py keeps
-the two in step).
-"""
+Eight-byte numbers (float64, int64) are stored as deltas of their bit patterns down each
+column (XOR with the previous row, or the second difference), then byte plane by byte
+plane (all least significant bytes first). Successive cycles differ in their low bits
+only, so the high planes become long runs of zero bytes that zlib squeezes to almost
+nothing; the round trip is bit-exact (NaN payloads and -0.0 included). Decoding is
+`log_blocks_decode`. docs/SESSION_FORMAT.md gives the layout byte for byte; `COLUMNS` is
+the list it documents (tests/runtime/sessions/test_session_format_doc.py keeps the two in
+step)"""
 
 from __future__ import annotations
 
@@ -32,7 +32,7 @@ from .log_schema import CycleRecord
 BLOCK_KIND = "cycles"
 CODEC = "zlib"
 MAX_BLOCK_ROWS = 1 << 20        # more rows in one block is corruption, not a flush
-ZLIB_LEVEL = 6                  # zlib's default; 9 gains ~2 % for three times the time
+ZLIB_LEVEL = 6                  # zlib's default; 9 gained < 1 % on the demo log
 
 # Column types (docs/SESSION_FORMAT.md, "Column types").
 F8, I8, F8_OPT, BOOL, STR, F8_LIST, BOOL_LIST, STR_F8_MAP, MSGPACK = (
@@ -275,13 +275,13 @@ def _concat(parts: list[Any]) -> Any:
         return Ragged(np.concatenate([p.lengths for p in parts]),
                       np.concatenate([p.flat for p in parts]))
     if isinstance(first, Strings):
-        codes, table = _merge_tables([(p.codes, p.table) for p in parts])
+        codes, table = merge_tables([(p.codes, p.table) for p in parts])
         return Strings(codes, table)
-    codes, keys = _merge_tables([(p.codes, p.keys) for p in parts])
+    codes, keys = merge_tables([(p.codes, p.keys) for p in parts])
     return KeyedFloats(codes, keys, np.concatenate([p.flat for p in parts]))
 
 
-def _merge_tables(parts: list[tuple[np.ndarray, tuple[Any, ...]]]
+def merge_tables(parts: list[tuple[np.ndarray, tuple[Any, ...]]]
                   ) -> tuple[np.ndarray, tuple[Any, ...]]:
     """Dictionary-coded parts re-coded against one table."""
     table = tuple(dict.fromkeys(chain.from_iterable(t for _, t in parts)))

@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import zlib
 from dataclasses import dataclass
-from itertools import chain
 from typing import Any, Mapping, Sequence
 
 import msgpack
@@ -22,7 +21,7 @@ import numpy as np
 from ..errors import LogError
 from .log_blocks import (BOOL, BOOL_LIST, CODEC, COLUMNS, DELTA2, F8, F8_LIST, F8_OPT, I8,
                          MAX_BLOCK_ROWS, MSGPACK, STR, STR_F8_MAP, XOR, CycleBlock,
-                         KeyedFloats, Objects, Ragged, Strings, check_table)
+                         KeyedFloats, Objects, Ragged, Strings, check_table, merge_tables)
 
 MAX_BODY_BYTES = 256 * 1024 * 1024   # an inflated block larger than this is corruption
 _LAYOUT_LENGTH_BYTES = 4
@@ -249,12 +248,10 @@ def _heads(parts: Sequence[Part], dtype: Any) -> np.ndarray:
 
 def _recoded(parts: Sequence[Part], key: str, freeze: Any) -> tuple[np.ndarray, tuple]:
     """Dictionary codes of all parts against one merged table."""
-    tables = [[freeze(v) for v in p.desc[key]] for p in parts]
-    table = tuple(dict.fromkeys(chain.from_iterable(tables)))
-    index = {v: i for i, v in enumerate(table)}
-    codes = [np.array([index[v] for v in t] or [0], dtype=_u4)[np.frombuffer(p.head, _u4)]
-             for p, t in zip(parts, tables)]
-    return (np.concatenate(codes) if codes else np.zeros(0, _u4)), table
+    if not parts:
+        return np.zeros(0, _u4), ()
+    return merge_tables([(np.frombuffer(p.head, _u4), tuple(freeze(v) for v in p.desc[key]))
+                         for p in parts])
 
 
 def _decode_str(parts: Sequence[Part]) -> Strings:

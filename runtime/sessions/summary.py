@@ -278,26 +278,3 @@ def _value(x: float) -> float | None:
 
 def _t(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
-
-
-def _peak(current: tuple[float, float], values: np.ndarray, t: np.ndarray
-          ) -> tuple[float, float]:
-    i = int(np.argmax(values))
-    return (float(values[i]), float(t[i])) if values[i] > current[0] else current
-
-
-def _over(peak: float | None, limit: float) -> bool:
-    """Above the limit beyond rounding: a rate stepped by exactly max_accel·dt comes back
-    as an acceleration a few ulp off max_accel (the same 1e-9 as runtime.sessions.preflight)."""
-    return peak is not None and peak > limit * (1.0 + 1e-9)
-
-
-def _value(x: float) -> float | None:
-    """A peak, or None where nothing was measured (-inf)."""
-    return float(x) if x != -math.inf else None
-
-
-def _t(x: float) -> float | None:
-    return float(x) if math.isfinite(x) else None
-
-

@@ -33,8 +33,10 @@ from runtime.errors import LogError
 from runtime.arm.model import load_arm
 from runtime.sessions.log_reader import (BAD_RECORD, CORRUPT, DROPPED, GAP, TORN_TAIL, UNCLOSED,
                                         UNKNOWN_KIND, SessionReader, read_session)
-from runtime.sessions.log_schema import FORMAT_VERSION, MAGIC, CycleRecord, make_header, software_version
-from runtime.sessions.log_writer import SessionRecorder, encode_frame, encode_preamble, new_session_path
+from runtime.sessions.log_schema import (FORMAT_VERSION, MAGIC, CycleRecord, make_header,
+                                        software_version)
+from runtime.sessions.log_writer import (SessionRecorder, encode_frame, encode_preamble,
+                                        new_session_path)
 from runtime.arm.serial import arm_from_dict, arm_to_dict
 
 ROOT = Path(__file__).resolve().parents[3]

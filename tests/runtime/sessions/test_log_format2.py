@@ -275,8 +275,7 @@ def small_log(arm, tmp_path_factory) -> tuple[bytes, list[tuple[int, int]], list
     """A file of six blocks of 40 cycles, its frames and each block's cycle numbers."""
     recs = drive_like_records(arm, 240)
     path = tmp_path_factory.mktemp("fuzz") / "f.jwlog"
-    with SessionRecorder.start(path, arm, SETTINGS, flush_interval_s=60) as rec:
-        pass
+    SessionRecorder.start(path, arm, SETTINGS, flush_interval_s=60).close()   # header, end
     data = path.read_bytes()
     head = data[:frames(data)[0][1]]              # preamble and header
     blocks = [encode_frame(encode_block(CycleBlock.from_records(recs[i:i + 40])))
@@ -300,8 +299,8 @@ def encode_frame_raw(payload: bytes) -> bytes:
         + payload
 
 
-@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow,
-                                                                  HealthCheck.function_scoped_fixture])
+@settings(max_examples=200, deadline=None,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(cut=st.integers(0, 10**6), flips=st.lists(st.integers(0, 10**9), max_size=4),
        inserts=st.lists(st.tuples(st.integers(1, 6), garbage_frame), max_size=3))
 def test_fuzzed_files_never_raise_and_keep_every_untouched_block(
