@@ -373,3 +373,21 @@ def test_nan_sigma_of_unsolved_cycles_survives(arm, tmp_path) -> None:
     assert any(math.isnan(r.sigma_min) for r in recs)       # cycles before enabling
     back = read_session(write_log(tmp_path / "n.jwlog", arm, recs)).records
     assert [record_bits(r) for r in back] == [record_bits(r) for r in recs]
+
+
+@pytest.mark.sim
+def test_preflight_plays_formats_1_and_2_of_a_session_alike(arm, tmp_path, capsys) -> None:
+    """`jogwire preflight ARM LOG`: a recorded session as the profile, whichever format."""
+    recs = drive_like_records(arm, 300)
+    results = []
+    for version in (1, 2):
+        log = write_log(tmp_path / f"v{version}.jwlog", arm, recs, version=version)
+        code = main(["preflight", "elbow6", str(log), "--out", str(tmp_path / f"out{version}"),
+                     "--no-report", "--json"])
+        out = json.loads(capsys.readouterr().out)
+        assert code in (0, 1), out
+        results.append(out)
+    one, two = results
+    assert one["verdict"] == two["verdict"] and one["cycles"] == two["cycles"] > 0
+    assert one["tcp_peak_speed"] == two["tcp_peak_speed"]
+    assert [j["peak_speed"] for j in one["joints"]] == [j["peak_speed"] for j in two["joints"]]
