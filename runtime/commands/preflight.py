@@ -29,7 +29,8 @@ import numpy as np
 from ..errors import ConfigError, LogError
 from ..operator.inputs.script import ScriptSource, load_script
 from ..control.limits import REDUCED_SPEED_M_S
-from ..sessions.lockstep import STATE_LAGS, LockstepSim, run_closed_loop, substeps_for
+from ..sessions.lockstep import (LINKS, STATE_LAGS, LockstepSim, run_closed_loop,
+                                 substeps_for)
 from ..control.mapping import InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle
@@ -64,6 +65,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="how many cycles the measured pose each cycle works on lags "
                              "behind the arm: 1 (default) as over a real link, 0 for a link "
                              "without delay")
+    add_link_argument(parser)
     parser.add_argument("--reduced", action="store_true",
                         help="reduced speed locked on: TCP ≤ 0.25 m/s (ISO 10218-1)")
     parser.add_argument("--out", metavar="DIR", default=DEFAULT_OUT,
@@ -73,6 +75,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print the summary as one JSON object (SI units) instead of text")
     parser.add_argument("--no-report", action="store_true",
                         help="skip the HTML report and its plots (faster; JSON and log only)")
+
+
+def add_link_argument(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--lockstep-link", choices=LINKS, default="auto",
+                        help="how messages cross to the simulated arm child: shm (shared "
+                             "memory, the pipes as doorbell), pipe, or auto (default: shm on "
+                             "x86-64 with two cores or more, else pipe). The motion and its "
+                             "log are the same either way")
 
 
 @dataclass(frozen=True)
@@ -136,7 +146,7 @@ def run(args: argparse.Namespace) -> int:
     reduced = bool(args.reduced or profile.reduced_locked)
     run_info = run_preflight(args.arm, arm, profile, rate_hz=args.rate, step_hz=args.step_hz,
                              reduced=reduced, log_path=out_dir / f"{stem}{SESSION_SUFFIX}",
-                             state_lag=args.state_lag)
+                             state_lag=args.state_lag, link=args.lockstep_link)
     result = run_info.result
     paths = {"session_log": str(run_info.log_path), "summary": str(out_dir / f"{stem}.json")}
     if not args.no_report:
@@ -171,10 +181,11 @@ class PreflightRun:
 
 def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                   step_hz: float, reduced: bool, log_path: Path, state_lag: int = 1,
-                  progress: Progress | None = None) -> PreflightRun:
+                  progress: Progress | None = None, link: str = "auto") -> PreflightRun:
     """Run `profile` on the simulated arm in lockstep, record it, evaluate it.
 
-    state_lag: cycles the measured pose lags behind the arm (`lockstep.run_closed_loop`)."""
+    state_lag: cycles the measured pose lags behind the arm (`lockstep.run_closed_loop`).
+    link: how the messages cross to the child (`lockstep.link_kind`)."""
     safety = SafetySettings()
     pad = load_pad(profile.pad_source) if Path(profile.pad_source).exists() \
         else load_pad(profile.pad_name)
@@ -195,7 +206,7 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
     computes = np.zeros(n_cycles)
     wall0 = time.perf_counter()
     with LockstepSim(arm_spec, arm, rate_hz=rate_hz, step_hz=step_hz,
-                     start_q=profile.start_q) as sim, \
+                     start_q=profile.start_q, link=link) as sim, \
             SessionRecorder.start(log_path, arm, cycle_settings_, started_at=started_at,
                                   queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)

@@ -43,7 +43,7 @@ import numpy as np
 
 from ..link.arm_process import ArmProcess
 from ..errors import ConfigError, LogError, TransportError
-from ..sessions.lockstep import LockstepSim, arm_file_for, run_closed_loop
+from ..sessions.lockstep import LINKS, LockstepSim, arm_file_for, run_closed_loop
 from ..arm.model import Arm, load_arm
 from ..operator.progress import Progress
 from ..link.protocol import FLAG_REDUCED_SPEED, Rates, hello_for
@@ -86,6 +86,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="send even if the target is not at the recorded start pose")
     parser.add_argument("--step-hz", type=float, default=1000.0, metavar="HZ",
                         help="physics step rate of the simulated arm (default 1000)")
+    parser.add_argument("--lockstep-link", choices=LINKS, default="auto",
+                        help="with --closed-loop: how messages cross to the simulated arm "
+                             "child: shm, pipe or auto (default; as `jogwire preflight`)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -175,7 +178,7 @@ def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRec
     bar = Progress(f"re-run {Path(args.log).name}", n_cycles * cycle.dt_s)
     start_q = recorded_q[0] if records[0].q else None
     with LockstepSim(spec, arm, rate_hz=settings.rate_hz, step_hz=args.step_hz,
-                     start_q=start_q) as sim:
+                     start_q=start_q, link=args.lockstep_link) as sim:
         for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
                                  state_lag=settings.state_lag_cycles):
             rates[c.k] = c.out.rates

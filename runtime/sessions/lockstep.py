@@ -6,8 +6,9 @@
               └──────────── state (q, q̇) after them ◄──┘
 
 `runtime` never imports the simulator: the arm runs in a child process and every cycle is
-one round trip over a pair of pipes (`runtime.link.pipes`: the wire's messages, a
-seventh of a loopback socket's round trip; docs/PROTOCOL.md, "Lockstep mode"). One rates
+one round trip over a pair of pipes (`runtime.link.pipes`: the wire's messages, in the pipes
+or, where two cores allow, in shared-memory rings beside them; docs/PROTOCOL.md, "Lockstep
+over pipes"). One rates
 message advances `substeps` physics steps, so a 500 Hz cycle on a 1 ms physics step is two
 steps per message. The run is deterministic: the next rates go out only after the state
 whose `applied_seq` is the last rates' `seq` has come back, and each cycle's time is the
@@ -37,7 +38,8 @@ from ..control.mapping import InputFrame
 from ..arm.model import Arm, configs_dir, limits_digest, load_arm
 from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
 from ..link.protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
-from ..link.pipes import PipeClient, link_spec
+from ..link.pipes import PipeChannel, PipeClient, link_spec
+from ..link import shared_rings
 
 Vector = NDArray[np.float64]
 
@@ -47,6 +49,21 @@ Vector = NDArray[np.float64]
 # gets a stale_after far beyond any stall.
 LOCKSTEP_STALE_AFTER_S = 3600.0
 ANSWER_TIMEOUT_S = 10.0     # no state this long after a rates message: the child is gone
+LINKS = ("auto", "shm", "pipe")
+
+
+def link_kind(choice: str) -> str:
+    """The link a lockstep run takes: "shm" (frames through shared rings, the pipes as
+    doorbell) where `shared_rings.usable()`, "pipe" otherwise; or the one asked for.
+    ConfigError if shared rings are asked for where they do not work."""
+    if choice not in LINKS:
+        raise ConfigError(f"the lockstep link is one of {', '.join(LINKS)}, got {choice!r}",
+                          field="lockstep-link")
+    why_not = shared_rings.usable() if choice != "pipe" else None
+    if choice == "shm" and why_not:
+        raise ConfigError(f"no shared-memory lockstep link here: {why_not}",
+                          field="lockstep-link")
+    return "pipe" if choice == "pipe" or why_not else "shm"
 
 
 def substeps_for(rate_hz: float, step_hz: float) -> int:
@@ -108,17 +125,27 @@ class LockstepSim:
     arm_spec: what the child loads (a shipped name or a file); `arm` is our model of it,
     and the hello exchange refuses a child whose arm differs (ModelMismatch).
     start_q: the pose the arm starts in (rad or m); None = the arm's home pose.
+    link: "auto", "shm" or "pipe" (`link_kind`); the one taken is in `link`.
     """
 
     def __init__(self, arm_spec: str, arm: Arm, *, rate_hz: float, step_hz: float,
                  start_q: Sequence[float] | None = None,
-                 ready_timeout_s: float = 30.0) -> None:
+                 ready_timeout_s: float = 30.0, link: str = "auto") -> None:
         self.arm = arm
         self.substeps = substeps_for(rate_hz, step_hz)
         self.step_s = 1.0 / step_hz
-        # Two pipes: ours to write rates into and the child's to write states into.
+        self.link = link_kind(link)
+        # Two pipes: ours to write rates into and the child's to write states into; with
+        # shared rings, the frames go through the memory and the pipes ring the bells.
         to_child, from_child = os.pipe(), os.pipe()
         child_ends = (to_child[0], from_child[1])
+        if self.link == "shm":
+            memory_fd = shared_rings.create_memory()
+            channel = shared_rings.RingChannel(from_child[0], to_child[1], memory_fd,
+                                               arm_side=False)
+            child_ends += (memory_fd,)
+        else:
+            channel = PipeChannel(from_child[0], to_child[1])
         options = ["--lockstep", "--link", link_spec(*child_ends), "--step-hz",
                    repr(float(step_hz)), "--substeps", str(self.substeps), "--stale-after",
                    repr(LOCKSTEP_STALE_AFTER_S)]
@@ -132,7 +159,7 @@ class LockstepSim:
         self.seq = 0
         self.states: deque[State] = deque()    # arrived, not yet waited for
         self.client: PipeClient | None = PipeClient(
-            from_child[0], to_child[1], endpoint="the simulated arm's pipe",
+            channel, endpoint=f"the simulated arm's {self.link} link",
             hello=hello_for(arm, "runtime", stale_after_s=LOCKSTEP_STALE_AFTER_S))
         try:
             # Its own session: a Ctrl-C reaches only us, and we end the child in order.
