@@ -34,7 +34,7 @@ from collections import Counter
 
 from ..errors import TransportError
 from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, encode
-from .shared_rings import RingChannel
+from .shared_rings import RingChannel, create_memory
 from .transport import Inbox, check_answer, decode_counted
 
 PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)
@@ -69,6 +69,19 @@ def parse_link_spec(spec: str) -> tuple[int, ...]:
         raise TransportError(f"a lockstep link is given as fd:READ,WRITE or "
                              f"shm:READ,WRITE,MEMORY, got {spec!r}")
     return fds
+
+
+def child_link(kind: str) -> tuple["PipeChannel | RingChannel", tuple[int, ...]]:
+    """A new link to a child about to start: this process's channel ("pipe" or "shm"),
+    and the descriptors to pass to the child (`link_spec(*fds)` describes them; close
+    them here once the child has started: its exit then ends our reads)."""
+    to_child, from_child = os.pipe(), os.pipe()
+    child_ends: tuple[int, ...] = (to_child[0], from_child[1])
+    if kind != "shm":
+        return PipeChannel(from_child[0], to_child[1]), child_ends
+    memory_fd = create_memory()
+    channel = RingChannel(from_child[0], to_child[1], memory_fd, arm_side=False)
+    return channel, child_ends + (memory_fd,)
 
 
 def arm_side_channel(spec: str) -> "PipeChannel | RingChannel":

@@ -38,7 +38,7 @@ from ..control.mapping import InputFrame
 from ..arm.model import Arm, configs_dir, limits_digest, load_arm
 from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
 from ..link.protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
-from ..link.pipes import PipeChannel, PipeClient, link_spec
+from ..link.pipes import PipeClient, child_link, link_spec
 from ..link import shared_rings
 
 Vector = NDArray[np.float64]
@@ -135,20 +135,8 @@ class LockstepSim:
         self.substeps = substeps_for(rate_hz, step_hz)
         self.step_s = 1.0 / step_hz
         self.link = link_kind(link)
-        # Two pipes: ours to write rates into and the child's to write states into; with
-        # shared rings, the frames go through the memory and the pipes ring the bells.
-        to_child, from_child = os.pipe(), os.pipe()
-        child_ends = (to_child[0], from_child[1])
-        if self.link == "shm":
-            memory_fd = shared_rings.create_memory()
-            channel = shared_rings.RingChannel(from_child[0], to_child[1], memory_fd,
-                                               arm_side=False)
-            child_ends += (memory_fd,)
-        else:
-            channel = PipeChannel(from_child[0], to_child[1])
-        options = ["--lockstep", "--link", link_spec(*child_ends), "--step-hz",
-                   repr(float(step_hz)), "--substeps", str(self.substeps), "--stale-after",
-                   repr(LOCKSTEP_STALE_AFTER_S)]
+        options = ["--lockstep", "--step-hz", repr(float(step_hz)), "--substeps",
+                   str(self.substeps), "--stale-after", repr(LOCKSTEP_STALE_AFTER_S)]
         if start_q is not None:
             q0 = np.asarray(start_q, dtype=float)
             if q0.shape != (arm.n,) or not np.all(np.isfinite(q0)):
@@ -156,6 +144,10 @@ class LockstepSim:
             if np.any(q0 < arm.lower) or np.any(q0 > arm.upper):
                 raise ConfigError("the start pose is outside the joint limits", field="q")
             options.append("--q=" + ",".join(repr(float(v)) for v in q0))
+        # Two pipes, ours to write rates into and the child's to write states into; with
+        # shared rings, the frames go through the memory and the pipes ring the bells.
+        channel, child_ends = child_link(self.link)
+        options += ["--link", link_spec(*child_ends)]
         self.seq = 0
         self.states: deque[State] = deque()    # arrived, not yet waited for
         self.client: PipeClient | None = PipeClient(

@@ -16,8 +16,8 @@ import pytest
 from runtime.errors import ModelMismatch, TransportError
 from runtime.arm.model import load_arm
 from runtime.link import shared_rings
-from runtime.link.pipes import (PIPE_PEER, PipeChannel, PipeClient, PipeServer, link_spec,
-                                parse_link_spec)
+from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer, arm_side_channel,
+                                child_link, link_spec, parse_link_spec)
 from runtime.link.protocol import MAX_MESSAGE_BYTES, Hello, Rates, Refuse, State, encode, hello_for
 
 N = 3
@@ -31,15 +31,8 @@ def arm():
 def channels(kind: str):
     """(runtime's channel, arm side's channel) joined as LockstepSim joins itself to its
     child: two pipes, and with "shm" the shared memory of the rings."""
-    to_server, to_client = os.pipe(), os.pipe()
-    if kind == "pipe":
-        return PipeChannel(to_client[0], to_server[1]), PipeChannel(to_server[0], to_client[1])
-    memory = shared_rings.create_memory()
-    try:
-        return (shared_rings.RingChannel(to_client[0], to_server[1], memory, arm_side=False),
-                shared_rings.RingChannel(to_server[0], to_client[1], memory, arm_side=True))
-    finally:
-        os.close(memory)
+    ours, child_ends = child_link(kind)
+    return ours, arm_side_channel(link_spec(*child_ends))
 
 
 @pytest.fixture(params=["pipe", "shm"])
