@@ -13,8 +13,11 @@ Both run call by call, interleaved (with jogwire's FK + Jacobian alone as a thir
 on the poses of a simulated jog (q += q̇·dt at 500 Hz; WORKLOADS below), so the machine's
 load hits all alike and the jogwire path sees damping and limits as they come in use;
 medians are also given per path (clear of limits and singularities, near a position limit,
-damped). Also times the candidate ways of getting σ_min (the choice made
-in runtime/control/solver.py). Run from the repository root:
+damped). Then the full solve split into its stages, each timed alone on the same poses,
+round-robin with the full solve (FK + J; σ_min and damping; the DLS solve; the null-space
+term; each limit; what is left: checks, the result, calls). Also times the candidate ways
+of getting σ_min (the choice made in runtime/control/solver.py). Every figure is printed
+with the load average. Run from the repository root:
 
     python benchmarks/bench_solver.py [--cycles N] [--arm reach7]
 """
@@ -22,6 +25,8 @@ in runtime/control/solver.py). Run from the repository root:
 from __future__ import annotations
 
 import argparse
+import math
+import os
 import sys
 import tempfile
 import time
@@ -32,9 +37,12 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian  # noqa: E402
-from runtime.control.limits import JointBounds, clear_of_limits  # noqa: E402
+from runtime.control.limits import (JointBounds, acceleration_step, braking_factor,  # noqa: E402
+                                    clear_of_limits, speed_factor, start_pose, tcp_caps)
 from runtime.arm.model import Arm, load_arm  # noqa: E402
-from runtime.control.solver import _eigvalsh, _solve, solve  # noqa: E402
+from runtime.control.solver import (_REFINE_BELOW, _constants, _eigen_pinv_gram,  # noqa: E402
+                                    _eigvalsh, _identity, _resolve_at_limits, _solve,
+                                    damping_squared, solve)
 from sim.urdf import write_urdf  # noqa: E402
 
 DT_S = 0.002
@@ -96,9 +104,11 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
             reference(q, v)
     clock = time.perf_counter
     gesture = int(1.0 / DT_S)
+    inputs = []
     for k, v in enumerate(twists):
         if workload == "gestures" and k % gesture == 0:  # start at rest at the home pose
             q, prev = arm.home(), np.zeros(arm.n)
+        inputs.append((q, v, prev))
         t0 = clock()
         sol = solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
         t1 = clock()
@@ -114,7 +124,73 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
         prev = sol.rates
         q = q + prev * DT_S
     return {"ours": ours, "theirs": theirs, "kinematics": kinematics, "paths": paths,
-            "binding": binding}
+            "binding": binding, "inputs": inputs}
+
+
+STAGES = ("full solve", "FK + Jacobian", "σ_min and damping (JJᵀ, eigenvalues, λ)",
+          "DLS solve of the task", "null-space term (centring, projected)",
+          "start pose + clear-of-limits check", "joint-limit re-solve (near a limit)",
+          "limit: joint speed", "limit: position brake (near a limit)",
+          "limit: TCP caps (J·q̇, linear, angular, reduced)", "limit: acceleration")
+
+
+def stage_split(arm: Arm, inputs: list) -> dict[str, np.ndarray]:
+    """Each stage of `solve` timed alone on the cycle's inputs, right after the full solve
+    on them (µs; NaN where a stage does not run that cycle). The stages call what `solve`
+    calls, in its order (runtime/control/solver.py); the null-space term is timed as its
+    own solve here, where `solve` folds it into the task solve when λ = 0."""
+    consts = _constants(arm)
+    b = consts.bounds
+    out = {name: np.full(len(inputs), np.nan) for name in STAGES}
+    clock = time.perf_counter
+    for k, (q, v, prev) in enumerate(inputs):
+        t0 = clock()
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
+        t1 = clock()
+        T, J = pose_and_jacobian(arm, q)
+        t2 = clock()
+        Jt, vt = (J, v) if consts.full_task else (J[arm.task_mask], v[arm.task_mask])
+        G = np.dot(Jt, Jt.T)
+        values = _eigvalsh(G).tolist()
+        smallest, largest = max(values[0], 0.0), max(values[-1], 0.0)
+        lam2 = damping_squared(math.sqrt(smallest), consts.threshold, consts.damping_max)
+        t3 = clock()
+        rates = np.dot(_solve(G + lam2 * _identity(len(G)), vt), Jt)
+        t4 = clock()
+        z = None
+        if consts.nullspace and Jt.shape[0] < consts.n:
+            z = (q - consts.mid) * consts.k_grad
+            Jz = np.dot(Jt, z)
+            regular = smallest > _REFINE_BELOW * largest
+            rates = rates + z - np.dot(_solve(G, Jz) if regular else
+                                       _eigen_pinv_gram(Jt, Jz, G), Jt)
+        t5 = clock()
+        q_start = start_pose(q, prev, DT_S, 1)
+        clear = clear_of_limits(b, q_start, DT_S)
+        t6 = clock()
+        if not clear:
+            rates = _resolve_at_limits(arm, q_start, Jt, vt, z, rates, 0.0, DT_S)[0]
+        t7 = clock()
+        speed_factor(b, rates)
+        t8 = clock()
+        if not clear:
+            braking_factor(b, q_start, rates, DT_S)
+        t9 = clock()
+        tcp_caps(arm, np.dot(J, rates), False)
+        t10 = clock()
+        acceleration_step(b, q_start, prev, rates, DT_S, clear=clear)
+        t11 = clock()
+        nan = math.nan
+        row = (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4 if z is not None else nan,
+               t6 - t5, nan if clear else t7 - t6, t8 - t7, nan if clear else t9 - t8,
+               t10 - t9, t11 - t10)
+        for name, value in zip(STAGES, row):
+            out[name][k] = value
+    return {name: t * 1e6 for name, t in out.items()}
+
+
+def load_average() -> str:
+    return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
@@ -155,7 +231,8 @@ def main(argv: list[str] | None = None) -> int:
         results = {w: run(arm, urdf, args.cycles, w) for w in WORKLOADS}
     us = 1e6
     print(f"Full solve per cycle, {arm.name} ({arm.n} joints), {args.cycles} cycles per workload "
-          f"at {1 / DT_S:.0f} Hz (numpy {np.__version__}, Python {sys.version.split()[0]})")
+          f"at {1 / DT_S:.0f} Hz (numpy {np.__version__}, Python {sys.version.split()[0]}); "
+          f"load {load_average()}")
     for workload, result in results.items():
         ours, theirs = result["ours"] * us, result["theirs"] * us
         print(f"{workload}: {WORKLOADS[workload]}")
@@ -174,6 +251,24 @@ def main(argv: list[str] | None = None) -> int:
         share = ", ".join(f"{k} {v / args.cycles:.0%}" for k, v in
                           sorted(result["binding"].items(), key=lambda kv: -kv[1]))
         print(f"  binding limit: {share}")
+    split = stage_split(arm, results["wander"]["inputs"])
+    full = np.nanmedian(split["full solve"])
+    print(f"The full solve in stages, each timed alone on the same cycles (workload wander; "
+          f"median µs over the cycles where the stage runs; load {load_average()}):")
+    total = 0.0
+    for name in STAGES:
+        t = split[name]
+        ran = ~np.isnan(t)
+        if not ran.any():
+            print(f"  {name:<52}      —   (never ran)")
+            continue
+        median = float(np.median(t[ran]))
+        share = float(ran.mean())
+        if name != "full solve":
+            total += median * share
+        print(f"  {name:<52} {median:6.1f}" + (f"   in {share:.0%} of cycles" if share < 1 else ""))
+    print(f"  {'rest: checks, the result, calls (full − stages)':<52} {full - total:6.1f}")
+    print("  clearance rows: not in this tree (runtime/control/clearance.py)")
     print("σ_min options on 6×n Jacobians (median µs):")
     for name, t in sigma_min_options(arm, 5000).items():
         print(f"  {name:<48} {t:6.1f}")
