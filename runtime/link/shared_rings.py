@@ -78,10 +78,10 @@ class RingChannel:
 
     def __init__(self, read_fd: int, write_fd: int, memory_fd: int, *, arm_side: bool,
                  spin_s: float = SPIN_S) -> None:
-        self.read_fd, self.write_fd, self.memory_fd = read_fd, write_fd, memory_fd
+        self.read_fd, self.write_fd = read_fd, write_fd
         os.set_blocking(read_fd, False)
         os.set_blocking(write_fd, False)    # a full pipe of bells: the reader has enough
-        self.memory = mmap.mmap(memory_fd, MEMORY_BYTES)
+        self.memory = mmap.mmap(memory_fd, MEMORY_BYTES)   # stays mapped once the fd closes
         self.words = memoryview(self.memory).cast("Q")
         out_ring, in_ring = (TO_RUNTIME, TO_ARM) if arm_side else (TO_ARM, TO_RUNTIME)
         self.out_written, self.out_taken, self.out_slots = _layout(out_ring)
