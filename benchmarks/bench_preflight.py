@@ -20,6 +20,8 @@ Measured in one run, on the same machine state:
                    arm side's work    the child's handling of one message, in process
                                       (decode, rules, 2 physics steps, state encoded)
                    physics            2 × SimulatedArm.step + read_state in this process
+                   link handling      each side's own part of one exchange, both ends in
+                                      this process: encode + send, take + decode
                    link round trip    a small message to a child process and back over
                                       each link's own channel code, bare, and with each
                                       side busy 60 µs between messages (about each side's
@@ -56,12 +58,13 @@ from runtime.commands.preflight import load_profile, run_preflight  # noqa: E402
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 from runtime.control.mapping import load_pad  # noqa: E402
 from runtime.arm.model import configs_dir, load_arm  # noqa: E402
-from runtime.link.pipes import PIPE_PEER, child_link, link_spec  # noqa: E402
+from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer,  # noqa: E402
+                                arm_side_channel, child_link, link_spec)
 from runtime.control.cycle import ControlCycle  # noqa: E402
 from runtime.sessions.log_schema import frame_from_wire  # noqa: E402
 from runtime.sessions.preflight import TraceBuilder  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
-from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
+from runtime.link.protocol import Rates, State, decode, encode, hello_for  # noqa: E402
 from runtime.sessions.log_writer import SessionRecorder  # noqa: E402
 from runtime.sessions.log_schema import cycle_record  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
@@ -238,6 +241,9 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
     out["arm side's work per message, in process"] = arm_side_work(arm, rates)
 
     for link in links:
+        for name, value in link_ops(arm, link, len(records)).items():
+            out[f"{link}: {name}"] = value
+    for link in links:
         out[f"{link} round trip (bare)"] = link_round_trip(link, len(records))
         out[f"{link} round trip, 60 µs of work each side, less the work"] = \
             link_round_trip(link, len(records), 6e-5)
@@ -289,6 +295,42 @@ def arm_side_work(arm, rates: np.ndarray) -> float:
             endpoint.cycle_lockstep(0.0)
             times.append(time.perf_counter_ns() - t)
     return statistics.median(times) / 1e3
+
+
+def link_ops(arm, link: str, n: int) -> dict[str, float]:
+    """Median µs of each side's own message handling per cycle, both ends in this process
+    (nothing waits): here the rates encoded and sent and the state taken and decoded; at
+    the arm side the rates taken and decoded and the state encoded and sent."""
+    ours, child_ends = child_link(link)
+    client = PipeClient(ours, hello=hello_for(arm, "runtime", stale_after_s=3600.0))
+    server = PipeServer(arm_side_channel(link_spec(*child_ends)), n_joints=arm.n)
+    state = State(seq=1, t_ns=1, q=tuple(arm.home().tolist()), qd=(0.0,) * arm.n,
+                  applied_seq=1, echo_ns=0, status="tracking")
+    qd = np.full(arm.n, 0.1)
+    names = ("here: rates encoded and sent", "arm side: rates taken and decoded",
+             "arm side: state encoded and sent", "here: state taken and decoded")
+    times = {name: [] for name in names}
+    clock = time.perf_counter_ns
+    try:
+        for k in range(n):
+            t0 = clock()
+            client.send(Rates(seq=k + 1, t_ns=k, qd=qd))
+            t1 = clock()
+            server.drain()
+            t2 = clock()
+            server.send(PIPE_PEER, state)
+            t3 = clock()
+            client.messages()
+            t4 = clock()
+            for name, t in zip(names, (t1 - t0, t2 - t1, t3 - t2, t4 - t3)):
+                times[name].append(t)
+            if link == "shm" and k % 1000 == 999:   # the bells nobody waited for
+                server.poll(0.0)
+                client.poll(0.0)
+    finally:
+        client.close()
+        server.close()
+    return {name: statistics.median(t) / 1e3 for name, t in times.items()}
 
 
 def link_round_trip(link: str, n: int, work_s: float = 0.0) -> float:
