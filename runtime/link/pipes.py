@@ -34,7 +34,7 @@ from collections import Counter
 
 from ..errors import TransportError
 from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, encode
-from .shared_rings import RingChannel, create_memory
+from .shared_rings import RingChannel, close_fds, create_memory
 from .transport import Inbox, check_answer, decode_counted
 
 PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)
@@ -173,11 +173,7 @@ class PipeChannel:
         return True
 
     def close(self) -> None:
-        for fd in (self.read_fd, self.write_fd):
-            try:
-                os.close(fd)
-            except OSError:
-                pass
+        close_fds(self.read_fd, self.write_fd)
         self.read_fd = self.write_fd = -1
         self.ended = True
 

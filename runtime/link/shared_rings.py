@@ -181,15 +181,20 @@ class RingChannel:
     def close(self) -> None:
         if self.read_fd < 0:
             return
-        for fd in (self.read_fd, self.write_fd):
-            try:
-                os.close(fd)
-            except OSError:
-                pass
+        close_fds(self.read_fd, self.write_fd)
         self.read_fd = self.write_fd = -1
         self.words.release()
         self.memory.close()
         self.ended = True
+
+
+def close_fds(*fds: int) -> None:
+    """Close each descriptor; one already closed is no error (closing is idempotent)."""
+    for fd in fds:
+        try:
+            os.close(fd)
+        except OSError:
+            pass
 
 
 def _layout(ring: int) -> tuple[int, int, int]:
