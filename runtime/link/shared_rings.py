@@ -189,7 +189,7 @@ class RingChannel:
 
 
 def close_fds(*fds: int) -> None:
-    """Close each descriptor; one already closed is no error (closing is idempotent)."""
+    """Close each descriptor, ignoring errors (an end the other side already closed)."""
     for fd in fds:
         try:
             os.close(fd)
