@@ -8,9 +8,10 @@ Measured in one run, on the same machine state:
                  the pipes alone), with the default state lag of one cycle (this process
                  computes a cycle while the child steps the last) and with lag 0 (strictly
                  one after the other); the HTML report's time apart
-  per side       in each run, what one cycle is on each side: working, and waiting for
-                 the other (this process: in `LockstepSim.wait`; the child: in its poll,
-                 from the summary it prints when it stops)
+  per side       in each run, what one cycle of the loop (from the handshake on) is on
+                 each side: working, and waiting for the other (this process: its time in
+                 `LockstepSim.wait`; the child: its time on messages, from the summary it
+                 prints when it stops)
   rerun          `replay --rerun` (open loop) of that 60 s session log: wall time, factor
   components     what one preflight cycle is made of, each timed alone (medians):
                    control cycle      ControlCycle.step on the run's recorded poses
@@ -118,15 +119,19 @@ def load_average() -> str:
 
 
 class _TimedLockstepSim(LockstepSim):
-    """LockstepSim that keeps the time this process waits for states, and the child's
-    time waiting for rates (from the summary line it prints when it stops)."""
+    """LockstepSim that keeps how long its loop ran (from the handshake to close), how
+    long this process waited for states in it, and how long the child worked on messages
+    (from the summary line it prints when it stops)."""
 
     last: "_TimedLockstepSim | None" = None
 
     def __init__(self, *args, **kwargs) -> None:
+        started = time.perf_counter()
         super().__init__(*args, **kwargs)
-        self.waited_s = 0.0
-        self.child_waited_s = float("nan")
+        self.ready = time.perf_counter()
+        self.start_s = self.ready - started
+        self.loop_s = self.waited_s = 0.0
+        self.child_worked_s = float("nan")
         _TimedLockstepSim.last = self
 
     def wait(self, seq: int):
@@ -134,13 +139,15 @@ class _TimedLockstepSim(LockstepSim):
         try:
             return super().wait(seq)
         finally:
-            self.waited_s += time.perf_counter() - t
+            now = time.perf_counter()
+            self.waited_s += now - t
+            self.loop_s = now - self.ready      # the loop ends with its last wait
 
     def close(self) -> None:
         super().close()
-        found = re.search(r"waited ([0-9.]+) s for messages", self.child.errors)
+        found = re.search(r"worked ([0-9.]+) s on messages", self.child.errors)
         if found:
-            self.child_waited_s = float(found.group(1))
+            self.child_worked_s = float(found.group(1))
 
 
 def bench_preflight(folder: Path, seconds: float, state_lag: int, link: str,
@@ -167,7 +174,8 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int, link: str,
         report_s = time.perf_counter() - t
     return log, {"motion_s": run.result.duration_s, "cycles": run.cycles,
                  "run_s": run.wall_s, "report_s": report_s, "verdict": run.result.verdict,
-                 "here_waited_s": sim.waited_s, "child_waited_s": sim.child_waited_s}
+                 "start_s": sim.start_s, "loop_s": sim.loop_s, "here_waited_s": sim.waited_s,
+                 "child_worked_s": sim.child_worked_s}
 
 
 def bench_rerun(log: Path) -> dict:
@@ -411,16 +419,19 @@ def main() -> int:
                 runs[lag, link] = (log, pre)
                 cycles = pre["cycles"]
                 per_cycle = 1e6 * pre["run_s"] / cycles
+                loop = 1e6 * pre["loop_s"] / cycles
                 here_wait = 1e6 * pre["here_waited_s"] / cycles
-                there_wait = 1e6 * pre["child_waited_s"] / cycles
+                there_work = 1e6 * pre["child_worked_s"] / cycles
                 print(f"preflight {ARM}, state lag {lag}, {link} link: {pre['motion_s']:.1f} s "
                       f"of motion, {cycles} cycles ({RATE_HZ:g} Hz, physics {STEP_HZ:g} Hz): "
                       f"run {pre['run_s']:.2f} s = {pre['motion_s'] / pre['run_s']:.2f}x real "
                       f"time ({per_cycle:.0f} µs per cycle); verdict {pre['verdict']}; "
                       f"load {load_average()}")
-                print(f"    per cycle here: working {per_cycle - here_wait:.0f} µs, waiting "
-                      f"for the state {here_wait:.0f} µs; in the child: working "
-                      f"{per_cycle - there_wait:.0f} µs, waiting for rates {there_wait:.0f} µs")
+                print(f"    the loop alone {loop:.0f} µs a cycle (starting the child and the "
+                      f"handshake: {pre['start_s']:.2f} s); per cycle here: working "
+                      f"{loop - here_wait:.0f} µs, waiting for the state {here_wait:.0f} µs; "
+                      f"in the child: working {there_work:.0f} µs, waiting or between "
+                      f"messages {loop - there_work:.0f} µs")
         base = runs[1, links[0]][1]
         for link in links[1:]:
             for lag in (1, 0):

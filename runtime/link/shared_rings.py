@@ -16,7 +16,14 @@ bell; the pipe's end (EOF) still says the other process is gone, at once.
 
 The payload is the wire's own encoded message, so nothing above this changes.
 
-Why this is correct without locks: one writer and one reader per ring, and on x86-64 stores
+The bell. Writing to a pipe costs a system call, and waking a sleeping reader much more, so
+a reader about to sleep raises a flag in the ring first and the writer rings only when the
+flag is up. Each side puts a full memory barrier between its store and its load (taking a
+process-local lock: a locked instruction on x86-64), so at least one of them sees the
+other's store: the writer the flag, or the reader the new count. Should that ever fail, the reader sleeps at most NAP_S
+before it looks again: a late frame, never a lost one.
+
+Why the rings need no lock between the processes: one writer and one reader per ring, and on x86-64 stores
 become visible to other cores in program order and loads are not reordered with older loads
 or younger stores (the "TSO" model). A count is one aligned 8-byte store (a memoryview of
 format "Q" stores it with one `memcpy` of 8 bytes, a single move), so it is never seen
@@ -31,21 +38,25 @@ import os
 import platform
 import select
 import struct
+import threading
 import time
 from collections import Counter
 
 from .protocol import MAX_MESSAGE_BYTES
 
 SLOTS = 8                     # frames a ring holds; lockstep has at most 2–3 in flight
-SPIN_S = 0.002                # poll the count this long before sleeping (see pipes.SPIN_S)
+BUSY_S = 2e-4                 # a waiting reader polls the count without yielding this long
+SPIN_S = 0.002                # … and yielding its core between looks until this long
+NAP_S = 0.002                 # a sleeping reader looks again at least this often
 _LENGTH = struct.Struct("<I")
-_LINE = 64                    # the counts sit on their own cache lines (no false sharing)
+_LINE = 64                    # each word on its own cache line (no false sharing)
 _STRIDE = -(-(_LENGTH.size + MAX_MESSAGE_BYTES) // _LINE) * _LINE
-_RING_BYTES = 2 * _LINE + SLOTS * _STRIDE       # written count, taken count, slots
+_RING_BYTES = 3 * _LINE + SLOTS * _STRIDE       # written, taken, reader asleep; slots
 MEMORY_BYTES = 2 * _RING_BYTES
 TO_ARM, TO_RUNTIME = 0, 1      # ring numbers
 _BELL = b"\x00"
 _ROOM_SLEEP_S = 1e-4          # a full ring (the reader far behind): re-check this often
+_FENCE = threading.Lock()     # taking it is a locked instruction: a full memory barrier
 
 
 def usable() -> str | None:
@@ -84,8 +95,8 @@ class RingChannel:
         self.memory = mmap.mmap(memory_fd, MEMORY_BYTES)   # stays mapped once the fd closes
         self.words = memoryview(self.memory).cast("Q")
         out_ring, in_ring = (TO_RUNTIME, TO_ARM) if arm_side else (TO_ARM, TO_RUNTIME)
-        self.out_written, self.out_taken, self.out_slots = _layout(out_ring)
-        self.in_written, self.in_taken, self.in_slots = _layout(in_ring)
+        self.out_written, self.out_taken, self.out_asleep, self.out_slots = _layout(out_ring)
+        self.in_written, self.in_taken, self.in_asleep, self.in_slots = _layout(in_ring)
         self.spin_s = spin_s
         self.ended = False                 # the other process closed its ends (or died)
         self.dropped: Counter[str] = Counter()
@@ -94,8 +105,9 @@ class RingChannel:
     def send(self, payload: bytes) -> bool:
         """Put one frame in the outgoing ring and ring the bell; False if the other process
         is gone. A frame over the cap keeps only its length: the reader counts it
-        `oversize`, as over a pipe."""
-        if self.read_fd < 0:
+        `oversize`, as over a pipe. (A reader gone is seen here once a wait has seen its
+        end, at the latest BUSY_S + `spin_s` into that wait.)"""
+        if self.ended:
             return False
         words = self.words
         written = words[self.out_written]
@@ -108,6 +120,10 @@ class RingChannel:
         if n <= MAX_MESSAGE_BYTES:
             self.memory[at + 4:at + 4 + n] = payload
         words[self.out_written] = written + 1          # last: the frame is whole
+        with _FENCE:                                   # the count out before the flag is read
+            pass
+        if not words[self.out_asleep]:
+            return True                                # the reader is looking: no bell needed
         try:
             os.write(self.write_fd, _BELL)
         except BlockingIOError:
@@ -119,24 +135,36 @@ class RingChannel:
 
     def poll(self, timeout_s: float) -> bool:
         """Wait up to timeout_s for a frame (or the end of the link); True if there.
-        Polls the count for the first `spin_s`, giving the core to anything else runnable
-        between looks, then sleeps until a bell rings."""
+        Polls the count for the first BUSY_S, then yields the core to anything else
+        runnable between looks until `spin_s`, then sleeps until a bell rings (or NAP_S
+        passes: see "the bell" in the module's notes)."""
         now = time.monotonic()
-        deadline, spin_until = now + max(timeout_s, 0.0), now + min(self.spin_s, timeout_s)
-        words, written, taken = self.words, self.in_written, self.in_taken
-        while True:
-            if self.ended or words[written] != words[taken]:
-                return True
-            now = time.monotonic()
-            if now < spin_until:
-                os.sched_yield()
-                continue
-            self._drain_bells()            # a bell rung after this wakes the select below
-            if self.ended or words[written] != words[taken]:
-                return True
-            if now >= deadline:
-                return False
-            select.select([self.read_fd], [], [], deadline - now)
+        deadline = now + max(timeout_s, 0.0)
+        busy_until, spin_until = now + min(BUSY_S, timeout_s), now + min(self.spin_s, timeout_s)
+        words, written, taken, asleep = self.words, self.in_written, self.in_taken, \
+            self.in_asleep
+        try:
+            while True:
+                if self.ended or words[written] != words[taken]:
+                    return True
+                now = time.monotonic()
+                if now < busy_until:
+                    continue
+                if now < spin_until:
+                    os.sched_yield()
+                    continue
+                words[asleep] = 1          # from here on, the writer rings
+                with _FENCE:               # the flag out before the count is read
+                    pass
+                self._drain_bells()        # a bell rung after this wakes the select below
+                if self.ended or words[written] != words[taken]:
+                    return True
+                if now >= deadline:
+                    return False
+                select.select([self.read_fd], [], [], min(deadline - now, NAP_S))
+        finally:
+            if self.read_fd >= 0:
+                words[asleep] = 0
 
     def take(self) -> list[bytes]:
         """Every frame in the incoming ring, in order, without waiting; oversized ones are
@@ -197,8 +225,8 @@ def close_fds(*fds: int) -> None:
             pass
 
 
-def _layout(ring: int) -> tuple[int, int, int]:
-    """(index of the written count, index of the taken count, byte offset of slot 0) in
-    the shared memory (counts as indexes of 8-byte words)."""
+def _layout(ring: int) -> tuple[int, int, int, int]:
+    """(index of the written count, of the taken count, of the reader's asleep flag, byte
+    offset of slot 0) in the shared memory (words as indexes of 8-byte words)."""
     base = ring * _RING_BYTES
-    return base // 8, (base + _LINE) // 8, base + 2 * _LINE
+    return base // 8, (base + _LINE) // 8, (base + 2 * _LINE) // 8, base + 3 * _LINE
