@@ -435,9 +435,9 @@ def main() -> int:
         base = runs[1, links[0]][1]
         for link in links[1:]:
             for lag in (1, 0):
-                other = runs[lag, link][1]
-                print(f"  lag {lag}: the {links[0]} link runs {other['run_s'] / runs[lag, links[0]][1]['run_s']:.2f}x "
-                      f"as fast as the {link} link (same run)")
+                speed = runs[lag, link][1]["run_s"] / runs[lag, links[0]][1]["run_s"]
+                print(f"  lag {lag}: the {links[0]} link runs {speed:.2f}x as fast as the "
+                      f"{link} link (same run)")
         print(f"  the HTML report of the lag-1 {links[0]} run: {base['report_s']:.2f} s")
         log = runs[1, links[0]][0]
         rerun = bench_rerun(log)

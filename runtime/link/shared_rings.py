@@ -2,7 +2,7 @@
 
     runtime  ──ring 0 (runtime → arm side)──►  sim child (`sim.arm --link shm:R,W,M`)
              ◄──ring 1 (arm side → runtime)──
-             the two pipes: one byte per frame (the bell), EOF when a process is gone
+             the two pipes: a byte wakes a reader that sleeps; EOF when a process is gone
 
 A lockstep run hands one message each way per control cycle. Over a pipe, a message that
 finds its reader asleep costs a wake-up (tens to hundreds of µs on a virtual machine), more
@@ -10,25 +10,26 @@ than either side's work. Here each direction is a ring of SLOTS frames in memory
 processes map (a memfd passed like the pipe ends: no name, nothing left behind by a killed
 process). The writer copies the frame into the next slot and then stores the count of
 frames written; the reader reads that count first, copies the frame out and then stores the
-count it has taken. A reader that waits polls the count (yielding the core to anything
-runnable) for `spin_s`, then sleeps in `select` on its pipe, where every frame also rings a
-bell; the pipe's end (EOF) still says the other process is gone, at once.
+count it has taken. A reader that waits polls the count: BUSY_S without pause, then until
+`spin_s` yielding its core to anything runnable between looks; then it sleeps in `select`
+on its pipe. The pipe's end (EOF) still says the other process is gone, at once.
 
 The payload is the wire's own encoded message, so nothing above this changes.
 
 The bell. Writing to a pipe costs a system call, and waking a sleeping reader much more, so
-a reader about to sleep raises a flag in the ring first and the writer rings only when the
-flag is up. Each side puts a full memory barrier between its store and its load (taking a
-process-local lock: a locked instruction on x86-64), so at least one of them sees the
-other's store: the writer the flag, or the reader the new count. Should that ever fail, the reader sleeps at most NAP_S
-before it looks again: a late frame, never a lost one.
+a reader about to sleep raises a flag in the ring first and the writer writes a byte to the
+pipe only when the flag is up. Each side puts a full memory barrier between its store and
+its load (taking a process-local lock: a locked instruction on x86-64), so at least one of
+them sees the other's store: the writer the flag, or the reader the new count. Should that
+ever fail, the reader sleeps at most NAP_S before it looks again: a late frame, never a
+lost one.
 
-Why the rings need no lock between the processes: one writer and one reader per ring, and on x86-64 stores
-become visible to other cores in program order and loads are not reordered with older loads
-or younger stores (the "TSO" model). A count is one aligned 8-byte store (a memoryview of
-format "Q" stores it with one `memcpy` of 8 bytes, a single move), so it is never seen
-half-written. Other processors may reorder stores, so `usable()` is False there and the
-runtime uses the pipes alone.
+Why the rings need no lock between the processes: one writer and one reader per ring, and
+on x86-64 stores become visible to other cores in program order and loads are not reordered
+with older loads or younger stores (the "TSO" model). A count is one aligned 8-byte store (a
+memoryview of format "Q" stores it with one `memcpy` of 8 bytes, a single move), so it is
+never seen half-written. Other processors may reorder stores, so `usable()` is False there
+and the runtime uses the pipes alone.
 """
 
 from __future__ import annotations
@@ -80,7 +81,7 @@ def create_memory() -> int:
 
 
 class RingChannel:
-    """Frames through the two rings in `memory_fd`; the pipe ends carry the bells.
+    """Frames through the two rings in `memory_fd`; the pipe ends wake and end.
 
     arm_side: this end writes ring TO_RUNTIME and reads ring TO_ARM (the child); else the
     reverse. Offers what `pipes.PipeChannel` offers: send, poll, take, ended, close."""
@@ -103,9 +104,9 @@ class RingChannel:
         self.received = 0
 
     def send(self, payload: bytes) -> bool:
-        """Put one frame in the outgoing ring and ring the bell; False if the other process
-        is gone. A frame over the cap keeps only its length: the reader counts it
-        `oversize`, as over a pipe. (A reader gone is seen here once a wait has seen its
+        """Put one frame in the outgoing ring (and ring the bell if the reader sleeps);
+        False if the other process is gone. A frame over the cap keeps only its length:
+        the reader counts it `oversize`, as over a pipe. (A reader gone is seen here once a wait has seen its
         end, at the latest BUSY_S + `spin_s` into that wait.)"""
         if self.ended:
             return False
