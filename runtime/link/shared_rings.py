@@ -106,8 +106,8 @@ class RingChannel:
     def send(self, payload: bytes) -> bool:
         """Put one frame in the outgoing ring (and ring the bell if the reader sleeps);
         False if the other process is gone. A frame over the cap keeps only its length:
-        the reader counts it `oversize`, as over a pipe. (A reader gone is seen here once a wait has seen its
-        end, at the latest BUSY_S + `spin_s` into that wait.)"""
+        the reader counts it `oversize`, as over a pipe. (A reader gone is seen here once a
+        wait has seen its end, at the latest BUSY_S + `spin_s` into that wait.)"""
         if self.ended:
             return False
         words = self.words
