@@ -185,3 +185,32 @@ def test_shared_rings_are_refused_where_they_do_not_work(monkeypatch) -> None:
     monkeypatch.setattr(shared_rings.platform, "machine", lambda: "x86_64")
     monkeypatch.setattr(shared_rings.os, "sched_getaffinity", lambda _pid: {0})
     assert "one core" in shared_rings.usable() and link_kind("auto") == "pipe"
+
+
+def test_the_bell_rings_only_for_a_reader_that_sleeps(arm, monkeypatch) -> None:
+    """A reader that is not waiting gets its frame without a byte on the pipe; one that
+    sleeps (past its spin, flag up) is woken by the byte and lowers its flag. (Its own
+    look every NAP_S is put off here, so only the byte can wake it in time.)"""
+    import threading
+    monkeypatch.setattr(shared_rings, "NAP_S", 60.0)
+    ours, theirs = channels("shm")
+    try:
+        assert ours.send(b"first")
+        with pytest.raises(BlockingIOError):
+            os.read(theirs.read_fd, 16)                  # no bell: nobody slept
+        assert theirs.take() == [b"first"]
+        woke: list[bool] = []
+        reader = threading.Thread(target=lambda: woke.append(theirs.poll(10.0)))
+        reader.start()
+        deadline = time.monotonic() + 5.0
+        while not theirs.words[theirs.in_asleep] and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert theirs.words[theirs.in_asleep] == 1       # asleep, flag up
+        started = time.monotonic()
+        assert ours.send(b"second")
+        reader.join(5.0)
+        assert woke == [True] and time.monotonic() - started < 5.0
+        assert theirs.words[theirs.in_asleep] == 0 and theirs.take() == [b"second"]
+    finally:
+        ours.close()
+        theirs.close()
