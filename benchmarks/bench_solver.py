@@ -124,7 +124,7 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
         prev = sol.rates
         q = q + prev * DT_S
     return {"ours": ours, "theirs": theirs, "kinematics": kinematics, "paths": paths,
-            "binding": binding, "inputs": inputs}
+            "binding": binding, "inputs": inputs, "load": load_average()}
 
 
 STAGES = ("full solve", "FK + Jacobian", "σ_min and damping (JJᵀ, eigenvalues, λ)",
@@ -235,7 +235,7 @@ def main(argv: list[str] | None = None) -> int:
           f"load {load_average()}")
     for workload, result in results.items():
         ours, theirs = result["ours"] * us, result["theirs"] * us
-        print(f"{workload}: {WORKLOADS[workload]}")
+        print(f"{workload}: {WORKLOADS[workload]} (load after it {result['load']})")
         rows = [("jogwire solve", ours), ("reference: pin J + numpy.linalg.solve DLS", theirs),
                 ("  (jogwire FK + Jacobian alone)", result["kinematics"] * us)]
         for name, t in rows:
@@ -269,8 +269,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"  {name:<52} {median:6.1f}" + (f"   in {share:.0%} of cycles" if share < 1 else ""))
     print(f"  {'rest: checks, the result, calls (full − stages)':<52} {full - total:6.1f}")
     print("  clearance rows: not in this tree (runtime/control/clearance.py)")
-    print("σ_min options on 6×n Jacobians (median µs):")
-    for name, t in sigma_min_options(arm, 5000).items():
+    options = sigma_min_options(arm, 5000)
+    print(f"σ_min options on 6×n Jacobians (median µs; load {load_average()}):")
+    for name, t in options.items():
         print(f"  {name:<48} {t:6.1f}")
     return 0
 
