@@ -44,12 +44,13 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from collections import Counter  # noqa: E402
 
 from runtime.link.arm_process import child_env  # noqa: E402
-from runtime.commands.preflight import load_profile, run_preflight  # noqa: E402
+from runtime.sessions.preflight_run import load_profile, preflight_settings, run_preflight  # noqa: E402
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 from runtime.control.mapping import load_pad  # noqa: E402
 from runtime.arm.model import configs_dir, load_arm  # noqa: E402
 from runtime.link.pipes import PIPE_PEER  # noqa: E402
 from runtime.control.cycle import ControlCycle, frame_from_wire  # noqa: E402
+from runtime.control.settings import RunSettings  # noqa: E402
 from runtime.sessions.preflight import TraceBuilder  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
 from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
@@ -104,8 +105,8 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int,
     arm = load_arm(ARM)
     profile = load_profile(str(long_profile(folder, seconds)), arm, RATE_HZ)
     log = folder / f"run-lag{state_lag}.jwlog"
-    run = run_preflight(ARM, arm, profile, rate_hz=RATE_HZ, step_hz=STEP_HZ, reduced=False,
-                        log_path=log, state_lag=state_lag,
+    settings = preflight_settings(rate_hz=RATE_HZ, reduced=False, state_lag=state_lag)
+    run = run_preflight(ARM, arm, profile, settings, step_hz=STEP_HZ, log_path=log,
                         progress=Progress("", 1, enabled=False))
     report_s = None
     if with_report:
@@ -142,7 +143,7 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
     frames = [frame_from_wire(r.input) for r in records]
     out: dict[str, float] = {}
 
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     outs, times = [], []
     for rec, frame in zip(records, frames):
         q = np.array(rec.q)

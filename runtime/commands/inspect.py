@@ -47,7 +47,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     if args.csv == "-" and args.json:
         raise ConfigError("--csv - and --json both want standard output; give --csv a file",
-                          field="--csv")
+                          field="csv")
     with SessionReader(args.log) as reader:
         stats = SessionStats(reader.header.arm)
         for chunk in _chunks(reader, _CHUNK):
@@ -343,7 +343,7 @@ def write_csv(log: Path, target: str, stats: SessionStats) -> int:
                     writer.writerow(csv_row(rec, stats, scale_names))
                     rows += 1
     except OSError as exc:
-        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="--csv"
+        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="csv"
                           ) from None
     return rows
 

@@ -20,6 +20,7 @@ import numpy as np
 from ..errors import ConfigError
 from ..arm.kinematics import KinematicsReport, analyse_pose
 from ..arm.model import TASK_AXES, Arm, load_arm
+from ..control.settings import RunSettings
 from ..control.solver import Solution, parse_axes, solve
 from ..arm.transforms import matrix_to_rpy
 
@@ -58,15 +59,15 @@ def parse_q(text: str | list[str], arm: Arm, *, degrees: bool) -> np.ndarray:
     parts = [p.strip() for p in text.replace(" ", ",").split(",") if p.strip()]
     if len(parts) != arm.n:
         raise ConfigError(f"{arm.name} has {arm.n} joints ({', '.join(arm.joint_names)}); "
-                          f"got {len(parts)} values", field="--q")
+                          f"got {len(parts)} values", field="q")
     q = np.empty(arm.n)
     for i, (part, joint) in enumerate(zip(parts, arm.joints)):
         try:
             value = float(part)
         except ValueError:
-            raise ConfigError(f"{joint.name}: {part!r} is not a number", field="--q") from None
+            raise ConfigError(f"{joint.name}: {part!r} is not a number", field="q") from None
         if not math.isfinite(value):
-            raise ConfigError(f"{joint.name}: {part!r} is not a finite number", field="--q")
+            raise ConfigError(f"{joint.name}: {part!r} is not a finite number", field="q")
         q[i] = math.radians(value) if degrees and joint.is_revolute else value
     return q
 
@@ -78,13 +79,13 @@ def parse_twist(text: str | list[str]) -> np.ndarray:
     parts = [p.strip() for p in text.replace(" ", ",").split(",") if p.strip()]
     if len(parts) != 6:
         raise ConfigError(f"a twist is 6 numbers vx,vy,vz,wx,wy,wz; got {len(parts)}",
-                          field="--twist")
+                          field="twist")
     try:
         twist = np.array([float(p) for p in parts])
     except ValueError:
-        raise ConfigError(f"not a number in {text!r}", field="--twist") from None
+        raise ConfigError(f"not a number in {text!r}", field="twist") from None
     if not np.isfinite(twist).all():
-        raise ConfigError(f"not a finite number in {text!r}", field="--twist")
+        raise ConfigError(f"not a finite number in {text!r}", field="twist")
     return twist
 
 
@@ -206,7 +207,8 @@ def run(args: argparse.Namespace) -> int:
     solution = None
     if args.twist is not None:
         solution = solve(arm, q, parse_twist(args.twist), frame=args.frame,
-                         locked=parse_axes(args.lock, field_name="--lock"), reduced=args.reduced)
+                         locked=parse_axes(args.lock, field_name="lock"), reduced=args.reduced,
+                         dt_s=RunSettings().dt_s)   # one cycle at the drive's default rate
     if args.json:
         data = probe_report(arm, q, report)
         if solution is not None:

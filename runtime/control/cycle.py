@@ -26,14 +26,13 @@ from ..arm.kinematics import analyse_pose
 from .limits import apply_limits, binding_limit
 from .mapping import DirectCommand, InputFrame, Intent, Mapper, PadMapping
 from ..arm.model import Arm
-from .safety import SafetyGate, SafetySettings, Verdict
+from .safety import SafetyGate, Verdict
+from .settings import STATE_LAGS, RunSettings
 from .solver import Solution, solve
 
 Vector = NDArray[np.float64]
 
-# How many cycles the measured pose a closed-loop run works on may lag behind the arm
-# (runtime.sessions.lockstep.run_closed_loop; recorded as `state_lag_cycles`, read by runtime.sessions.rerun).
-STATE_LAGS = (0, 1)
+__all__ = ["STATE_LAGS", "ControlCycle", "CycleOutput", "frame_from_wire", "frame_to_wire"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -49,14 +48,13 @@ class CycleOutput:
 class ControlCycle:
     """Mapper, safety gate and solver for one arm, with the rates sent last cycle."""
 
-    def __init__(self, arm: Arm, pad: PadMapping, *, rate_hz: float,
-                 safety: SafetySettings = SafetySettings(), reduced_locked: bool = False,
-                 locked: tuple[str, ...] = ()) -> None:
+    def __init__(self, arm: Arm, pad: PadMapping, settings: RunSettings) -> None:
         self.arm = arm
-        self.dt_s = 1.0 / rate_hz
-        self.locked = locked
-        self.mapper = Mapper(pad, arm, reduced_locked=reduced_locked)
-        self.gate = SafetyGate(safety)
+        self.settings = settings
+        self.dt_s = settings.dt_s
+        self.locked = settings.locked_axes
+        self.mapper = Mapper(pad, arm, reduced_locked=settings.reduced_locked)
+        self.gate = SafetyGate(settings.safety())
         self.prev_rates = np.zeros(arm.n)
 
     def step(self, frame: InputFrame, now_s: float, q: Vector | None,

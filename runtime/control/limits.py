@@ -294,7 +294,7 @@ def tcp_caps(arm: Arm, twist: Vector, reduced: bool) -> tuple[float, float, floa
 
 def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                  reduced: bool = False, prev_rates: Vector | None = None,
-                 dt_s: float = 0.002, clear: bool | None = None) -> Limited:
+                 dt_s: float, clear: bool | None = None) -> Limited:
     """Bring `rates` (the solver's joint rates) within every limit of `arm` at pose q.
 
     J is the 6×n geometric Jacobian at q (TCP reference point; only norms of J·q̇ are used,

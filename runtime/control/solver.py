@@ -332,7 +332,7 @@ def _lock_index(locked: tuple[str, ...]) -> NDArray[np.intp]:
 
 def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
-          prev_rates: Vector | None = None, dt_s: float = 0.002) -> Solution:
+          prev_rates: Vector | None = None, dt_s: float) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
     q           measured joint positions (n,), rad or m

@@ -23,14 +23,6 @@ from sim.bridge import BridgeTarget, Driver, JointSample, VirtualDriver, build_p
     load_driver, main
 
 
-class FakeClock:
-    def __init__(self) -> None:
-        self.t = 100.0
-
-    def __call__(self) -> float:
-        return self.t
-
-
 class RecordingDriver(Driver):
     """A controller that only records what it is asked to do (for the bridge boundary)."""
 
@@ -67,41 +59,41 @@ def reach7():
 # VirtualDriver
 # ----------------------------------------------------------------------------------------
 
-def test_virtual_driver_integrates_rates(reach7) -> None:
-    clock = FakeClock()
+def test_virtual_driver_integrates_rates(reach7, fake_clock) -> None:
+    clock = fake_clock(read_cost_s=0.0)
     driver = VirtualDriver(clock=clock)
     q0 = driver.open(reach7).q
     qd = np.linspace(-0.2, 0.2, reach7.n)
     driver.write_rates(qd)
-    clock.t += 0.5
+    clock.now += 0.5
     sample = driver.read_state()
     assert np.allclose(sample.q, q0 + 0.5 * qd) and np.array_equal(sample.qd, qd)
     driver.write_rates(np.zeros(reach7.n))
-    clock.t += 1.0
+    clock.now += 1.0
     assert np.allclose(driver.read_state().q, q0 + 0.5 * qd)
     driver.close()
 
 
-def test_virtual_driver_stops_at_the_joint_limits(reach7) -> None:
-    clock = FakeClock()
+def test_virtual_driver_stops_at_the_joint_limits(reach7, fake_clock) -> None:
+    clock = fake_clock(read_cost_s=0.0)
     driver = VirtualDriver(clock=clock)
     driver.open(reach7)
     qd = np.zeros(reach7.n)
     qd[0] = 1.0
     driver.write_rates(qd)
-    clock.t += 10.0
+    clock.now += 10.0
     sample = driver.read_state()
     assert sample.q[0] == reach7.upper[0] and sample.qd[0] == 0.0
 
 
-def test_dry_run_csv_has_every_command(tmp_path: Path, reach7) -> None:
-    clock = FakeClock()
+def test_dry_run_csv_has_every_command(tmp_path: Path, reach7, fake_clock) -> None:
+    clock = fake_clock(read_cost_s=0.0)
     path = tmp_path / "commands.csv"
     driver = VirtualDriver(csv_path=path, clock=clock)
     driver.open(reach7)
     sent = [np.full(reach7.n, 0.01 * k) for k in range(5)]
     for qd in sent:
-        clock.t += 0.002
+        clock.now += 0.002
         driver.write_rates(qd)
     driver.close()
     rows = list(csv.reader(path.read_text().splitlines()))

@@ -196,6 +196,10 @@ class ScriptSource:
     def elapsed_s(self, now_s: float) -> float:
         return 0.0 if self._t0 is None else now_s - self._t0
 
+    def progress(self, now_s: float) -> tuple[str, float, float]:
+        """(script name, elapsed s, duration s) for the status."""
+        return self.script.name, self.elapsed_s(now_s), self.script.duration_s
+
     def finished(self, now_s: float) -> bool:
         """True once the last segment has ended (enable is then held released)."""
         return self._t0 is not None and self.elapsed_s(now_s) >= self.script.duration_s

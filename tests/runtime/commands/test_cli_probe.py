@@ -101,7 +101,7 @@ def test_human_table(capsys) -> None:
 def test_bad_q_is_a_clean_error(capsys, q: str, message: str) -> None:
     assert main(["probe", "elbow6", "--q", q]) == 2
     err = capsys.readouterr().err
-    assert message in err and "--q" in err and "Traceback" not in err
+    assert message in err and "[q]" in err and "Traceback" not in err
 
 
 def test_unknown_arm_is_a_clean_error(capsys) -> None:

@@ -15,13 +15,15 @@ from runtime.arm.kinematics import tcp_pose
 from runtime.control.mapping import DirectCommand, InputFrame, load_pad
 from runtime.arm.model import load_arm
 from runtime.control.cycle import ControlCycle, frame_from_wire, frame_to_wire
-from runtime.control.safety import MOVING, SafetySettings
+from runtime.control.settings import RunSettings
+from runtime.control.safety import MOVING
 
 RATE_HZ = 500.0
 
 
 def run_script(arm, script, *, reduced=False):
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ, reduced_locked=reduced)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ,
+                                                           reduced_locked=reduced))
     source = ScriptSource(script)
     q = arm.home()
     dt = 1.0 / RATE_HZ
@@ -54,7 +56,7 @@ def test_square_returns_to_start_and_stops(arm_name):
 
 def test_stale_state_commands_zero():
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     go = InputFrame(device="test", present=True,
                     command=DirectCommand(twist=(0.05, 0, 0, 0, 0, 0)))
     off = InputFrame(device="test", present=True, command=DirectCommand(enable=False))
@@ -69,8 +71,8 @@ def test_stale_state_commands_zero():
 
 def test_a_slow_link_commands_zero_and_the_default_is_a_link_without_delay():
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ,
-                         safety=SafetySettings(stale_after_s=0.1))
+    cycle = ControlCycle(arm, load_pad("keyboard"),
+                         RunSettings(rate_hz=RATE_HZ, stale_after_s=0.1))
     go = InputFrame(device="test", present=True,
                     command=DirectCommand(twist=(0.05, 0, 0, 0, 0, 0)))
     off = InputFrame(device="test", present=True, command=DirectCommand(enable=False))
@@ -96,7 +98,7 @@ def test_cycle_record_keeps_what_a_rerun_needs(tmp_path):
     from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
     arm = load_arm("elbow6")
     outputs_frames = []
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     source = ScriptSource(load_script("square", arm))
     q = arm.home()
     path = tmp_path / "s.jwlog"

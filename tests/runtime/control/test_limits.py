@@ -23,6 +23,7 @@ from runtime.control.solver import solve
 
 ARMS = {name: load_arm(name) for name in ("elbow6", "reach7", "scara4", "planar3")}
 TOL = 1e-9  # relative slack for round-off in the bound checks
+DT_S = 0.002  # one cycle at 500 Hz, the drive's rate
 
 
 # ----------------------------------------------------------------------------------------
@@ -137,9 +138,9 @@ def test_reduced_speed_switched_on_while_moving_caps_at_once() -> None:
     # already at ≤ 0.25 m/s at the TCP.
     arm = ARMS["elbow6"]
     q = arm.home()
-    fast = solve(arm, q, [0.5, 0, 0, 0, 0, 0])
+    fast = solve(arm, q, [0.5, 0, 0, 0, 0, 0], dt_s=DT_S)
     assert np.linalg.norm(fast.achieved_twist[:3]) == pytest.approx(0.5, rel=1e-9)
-    s = solve(arm, q, [0.5, 0, 0, 0, 0, 0], reduced=True, prev_rates=fast.rates)
+    s = solve(arm, q, [0.5, 0, 0, 0, 0, 0], reduced=True, prev_rates=fast.rates, dt_s=DT_S)
     assert np.linalg.norm(s.achieved_twist[:3]) <= REDUCED_SPEED_M_S * (1 + TOL)
     assert s.scales["reduced_speed"] <= 0.5 * (1 + TOL)
 

@@ -156,9 +156,9 @@ def test_input_specs():
 
 
 def test_open_source_builds_the_named_source(arm):
-    src = open_source("script:square", arm=arm)
+    src = open_source("script:square", arm=arm, stale_after_s=0.1)
     assert isinstance(src, ScriptSource) and src.script.name == "square"
-    net = open_source("network:tcp://127.0.0.1:*", arm=arm)
+    net = open_source("network:tcp://127.0.0.1:*", arm=arm, stale_after_s=0.1)
     try:
         assert net.name.startswith("network tcp://127.0.0.1:")
         assert not net.read(0.0).present
