@@ -3,12 +3,17 @@
 Each subcommand lives in `runtime/commands/<name>.py` with two functions:
 `add_arguments(parser)` and `run(args) -> int` (the exit status). Only this module and the
 command modules read argv, the environment and the terminal.
+
+Errors end here, in one place: a `JogwireError` (bad input) and an `OSError` (a path that
+cannot be read or written) become one line on stderr and exit status 2, never a traceback;
+Ctrl-C is 130 and a closed stdout (`jogwire … | head`) 141, as a shell reports them.
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 from .errors import JogwireError
@@ -49,6 +54,19 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())   # no flush error
+        return 141
+    except OSError as exc:
+        print(f"jogwire {args.command}: {describe_os_error(exc)}", file=sys.stderr)
+        return 2
+
+
+def describe_os_error(exc: OSError) -> str:
+    """`PATH: reason` (both paths for a rename or link), or the error's own words."""
+    reason = exc.strerror or str(exc)
+    paths = [str(p) for p in (exc.filename, exc.filename2) if p is not None]
+    return f"{' → '.join(paths)}: {reason}" if paths else reason
 
 
 if __name__ == "__main__":

@@ -126,6 +126,8 @@ def run(args: argparse.Namespace) -> int:
         after = args.screenshot_after if args.screenshot_after is not None else \
             (args.duration / 2 if args.duration else 3.0)
         screenshot = (Path(args.screenshot), after)
+    if not args.no_record:             # a folder that cannot be made fails before the arm starts
+        Path(args.sessions).mkdir(parents=True, exist_ok=True)
     out = sys.stdout
     if plan.note:
         say(out, f"jogwire drive: {plan.note}")

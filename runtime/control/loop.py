@@ -136,7 +136,7 @@ class FixedRateLoop:
     window_s: how much recent history the percentile statistics cover.
     """
 
-    def __init__(self, rate_hz: float = 500.0, *, clock: Callable[[], float] = time.perf_counter,
+    def __init__(self, rate_hz: float, *, clock: Callable[[], float] = time.perf_counter,
                  sleep: Callable[[float], None] = time.sleep, spin_s: float = 3e-4,
                  window_s: float = 10.0) -> None:
         if not (math.isfinite(rate_hz) and rate_hz > 0):

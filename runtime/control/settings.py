@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from typing import Any, Mapping
 
 from ..errors import ConfigError, LogError
-from .safety import SafetySettings
+from .safety import OVERRUN_LIMIT, STALE_AFTER_S, SafetySettings
 
 RATE_RANGE_HZ = (1.0, 2000.0)          # control loop rate
 STALE_AFTER_RANGE_S = (0.005, 5.0)     # arm state (and, arm side, rates) older → stop
@@ -49,9 +49,9 @@ class RunSettings:
     """
 
     rate_hz: float = 500.0
-    stale_after_s: float = 0.1
+    stale_after_s: float = STALE_AFTER_S
     max_round_trip_s: float | None = None
-    overrun_limit: int = 5
+    overrun_limit: int = OVERRUN_LIMIT
     reduced_locked: bool = False
     locked_axes: tuple[str, ...] = ()
     state_lag_cycles: int | None = None

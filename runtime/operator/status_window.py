@@ -33,6 +33,7 @@ from numpy.typing import NDArray
 from .inputs.pygame_init import init_events, init_fonts, pygame
 from ..arm.kinematics import joint_frames
 from ..control.loop import TimingStats
+from ..control.safety import STALE_AFTER_S
 from ..arm.model import Arm
 
 SIZE = (1120, 720)
@@ -93,7 +94,7 @@ class StatusSnapshot:
     target: str = ""
     connected: bool = False
     state_age_s: float | None = None
-    stale_after_s: float = 0.05
+    stale_after_s: float = STALE_AFTER_S
     rtt_s: float | None = None
     timing: TimingStats | None = None
     elapsed_s: float = 0.0

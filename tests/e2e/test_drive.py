@@ -66,7 +66,7 @@ def run_script(tmp: Path, *extra: str):
     (tmp / "line_x.toml").write_text(SCRIPT, encoding="utf-8")
     done = subprocess.run(
         drive_argv("--headless", "--input", f"script:{tmp / 'line_x.toml'}", "--rate",
-                   f"{RATE_HZ:g}", "--sessions", str(tmp / "sessions"), "--summary-json",
+                   f"{RATE_HZ:g}", "--sessions", str(tmp / "sessions"), "--json-file",
                    str(tmp / "summary.json"), *extra),
         cwd=tmp, env=headless_env(), capture_output=True, text=True, timeout=90)
     assert done.returncode == 0, done.stdout + done.stderr

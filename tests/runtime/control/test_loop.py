@@ -120,7 +120,8 @@ def test_stats_line_is_readable(fake_clock):
 
 
 @pytest.mark.parametrize("kw", [dict(rate_hz=0.0), dict(rate_hz=float("nan")),
-                                dict(spin_s=-1.0), dict(window_s=0.0)])
+                                dict(rate_hz=500.0, spin_s=-1.0),
+                                dict(rate_hz=500.0, window_s=0.0)])
 def test_bad_settings_are_refused(kw):
     with pytest.raises(ValueError):
         FixedRateLoop(**kw)
