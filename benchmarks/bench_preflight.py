@@ -46,8 +46,9 @@ from collections import Counter  # noqa: E402
 from runtime.link.arm_process import child_env  # noqa: E402
 from runtime.sessions.preflight_run import load_profile, preflight_settings, run_preflight  # noqa: E402
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
-from runtime.control.mapping import load_pad  # noqa: E402
-from runtime.arm.model import configs_dir, load_arm  # noqa: E402
+from runtime.control.pads import load_pad  # noqa: E402
+from runtime.arm.model import configs_dir  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.link.pipes import PIPE_PEER  # noqa: E402
 from runtime.control.cycle import ControlCycle, frame_from_wire  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402

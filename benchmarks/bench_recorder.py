@@ -30,7 +30,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.arm.model import load_arm  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.sessions.recorder import (CycleRecord, SessionReader, SessionRecorder,  # noqa: E402
                               encode_frame)
 

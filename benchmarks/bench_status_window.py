@@ -37,7 +37,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.operator.inputs.pygame_init import pygame  # noqa: E402
 from runtime.control.loop import FixedRateLoop, TimingStats  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.control.solver import solve  # noqa: E402
 from runtime.operator import status_window  # noqa: E402
 from runtime.operator.status_window import SIZE, StatusSnapshot, StatusWindow, draw_status  # noqa: E402

@@ -15,8 +15,8 @@ import json
 import sys
 from pathlib import Path
 
-from ..arm.model import load_arm
-from ..control.mapping import load_pad
+from ..arm.load import load_arm
+from ..control.pads import load_pad
 from ..control.settings import RunSettings
 from ..errors import ConfigError
 from ..link.transport import check_endpoint, load_client_keys

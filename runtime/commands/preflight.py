@@ -23,7 +23,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-from ..arm.model import Arm, load_arm
+from ..arm.model import Arm
+from ..arm.load import load_arm
 from ..control.limits import REDUCED_SPEED_M_S
 from ..control.settings import STATE_LAGS, RunSettings
 from ..errors import ConfigError

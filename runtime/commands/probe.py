@@ -19,7 +19,8 @@ import numpy as np
 
 from ..errors import ConfigError
 from ..arm.kinematics import KinematicsReport, analyse_pose
-from ..arm.model import TASK_AXES, Arm, load_arm
+from ..arm.model import TASK_AXES, Arm
+from ..arm.load import load_arm
 from ..control.settings import RunSettings
 from ..control.solver import Solution, parse_axes, solve
 from ..arm.transforms import matrix_to_rpy

@@ -40,7 +40,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..arm.model import Arm, load_arm
+from ..arm.model import Arm
+from ..arm.load import load_arm
 from ..control.settings import RunSettings
 from ..errors import ConfigError, LogError
 from ..link.arm_process import ArmProcess

@@ -24,7 +24,9 @@ from numpy.typing import NDArray
 
 from ..arm.kinematics import analyse_pose
 from .limits import apply_limits, binding_limit
-from .mapping import DirectCommand, InputFrame, Intent, Mapper, PadMapping
+from .intent import DirectCommand, InputFrame, Intent
+from .mapping import Mapper
+from .pads import PadMapping
 from ..arm.model import Arm
 from .safety import SafetyGate, Verdict
 from .settings import STATE_LAGS, RunSettings

@@ -50,11 +50,10 @@ from ..errors import ConfigError
 from ..arm.kinematics import jacobian_from_frames, joint_frames, tool_frame_jacobian, twist_to_base
 from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
                      pushing_into_limits)
-from ..arm.model import TASK_AXES, Arm
+from ..arm.model import FRAMES, TASK_AXES, Arm
 
 Vector = NDArray[np.float64]
 
-FRAMES = ("base", "tool")
 
 RESOLVE_TOLERANCE = 0.02
 """How far (relative to ‖v‖ over the task rows) a re-solved motion may stray outside the

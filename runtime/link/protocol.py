@@ -35,7 +35,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import ModelMismatch, ProtocolError
-from ..arm.model import Arm, limits_digest
+from ..arm.model import FRAMES, Arm, limits_digest
 
 PROTOCOL_VERSION = 1
 MAX_MESSAGE_BYTES = 16384   # a hello for MAX_JOINTS joints with long names stays well below
@@ -48,7 +48,6 @@ INT64_MIN, INT64_MAX = -2**63, 2**63 - 1
 ROLES = ("runtime", "observer", "sim", "bridge")
 STATUSES = ("waiting", "tracking", "stale")
 REFUSE_CODES = ("mismatch", "busy", "no_hello", "not_controller", "version")
-FRAMES = ("base", "tool")
 
 FLAG_REDUCED_SPEED = 1      # rates.flags bit 0: the operator selected reduced speed
 KNOWN_FLAGS = FLAG_REDUCED_SPEED

@@ -55,7 +55,8 @@ from ..arm.kinematics import analyse_pose
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle, CycleOutput
 from ..control.loop import FixedRateLoop, Tick, TimingStats
-from ..control.mapping import DirectCommand, InputFrame, PadMapping
+from ..control.intent import DirectCommand, InputFrame
+from ..control.pads import PadMapping
 from ..control.settings import RunSettings
 from ..link.arm_process import ArmProcess
 from ..link.protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \

@@ -33,8 +33,9 @@ from numpy.typing import NDArray
 
 from ..link.arm_process import ArmProcess
 from ..errors import ConfigError, TransportError
-from ..control.mapping import InputFrame
-from ..arm.model import Arm, configs_dir, limits_digest, load_arm
+from ..control.intent import InputFrame
+from ..arm.model import Arm, configs_dir, limits_digest
+from ..arm.load import load_arm
 from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
 from ..link.protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
 from ..link.pipes import PipeClient, link_spec

@@ -20,7 +20,8 @@ import numpy as np
 
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle
-from ..control.mapping import InputFrame, load_pad
+from ..control.intent import InputFrame
+from ..control.pads import load_pad
 from ..control.settings import RunSettings
 from ..errors import ConfigError, LogError
 from ..operator.inputs.script import ScriptSource, load_script

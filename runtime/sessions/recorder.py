@@ -45,7 +45,7 @@ import msgpack
 import numpy as np
 
 from ..errors import LogError
-from ..control.mapping import InputFrame
+from ..control.intent import InputFrame
 from ..arm.model import JOINT_KINDS, Arm, Joint, SolverSettings
 from ..control.cycle import CycleOutput, frame_to_wire
 

@@ -16,7 +16,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ..arm.model import Arm
-from ..control.mapping import InputFrame
+from ..control.intent import InputFrame
 from ..errors import ConfigError, TransportError
 from ..link.protocol import FLAG_REDUCED_SPEED, Rates
 from ..link.transport import ArmClient

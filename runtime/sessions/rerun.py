@@ -27,7 +27,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import ConfigError, LogError
-from ..control.mapping import InputFrame, PadMapping, load_pad
+from ..control.intent import InputFrame
+from ..control.pads import PadMapping, load_pad
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle, frame_from_wire
 from ..control.settings import RunSettings

@@ -12,7 +12,7 @@ import pytest
 
 from runtime.errors import TransportError
 from runtime.sessions.lockstep import LockstepSim
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]
 

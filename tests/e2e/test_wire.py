@@ -20,7 +20,7 @@ import zmq
 
 from runtime.link.arm_process import ArmProcess, child_env
 from runtime.errors import ProtocolError
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.link.protocol import Rates, State, decode, hello_for
 from runtime.link.transport import ArmClient
 

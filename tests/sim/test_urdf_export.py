@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.arm.transforms import make_transform, rpy_to_matrix
 from runtime.arm.urdf import load_urdf_arm
 from sim.urdf import arm_to_urdf, matrix_to_rpy_exact, write_urdf

@@ -20,7 +20,7 @@ from __future__ import annotations
 from typing import Any, Protocol, runtime_checkable
 
 from ...errors import ConfigError
-from ...control.mapping import InputFrame
+from ...control.intent import InputFrame
 from ...arm.model import Arm
 
 __all__ = ["INPUT_KINDS", "EventInput", "FiniteInput", "InputSource", "PumpedInput",

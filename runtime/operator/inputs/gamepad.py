@@ -25,7 +25,8 @@ from __future__ import annotations
 import threading
 from dataclasses import dataclass, field
 
-from ...control.mapping import Button, InputFrame, clamp_unit
+from ...control.intent import Button, InputFrame
+from ...control.shaping import clamp_unit
 from .pygame_init import init_events, pygame
 
 # (k, v, name): the hat value (x, y) points `name` when its k-th component is v

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from collections import Counter
 
-from ...control.mapping import DirectCommand, InputFrame
+from ...control.intent import DirectCommand, InputFrame
 from ...link.protocol import LatenessFilter, SequenceGate, Twist
 from ...link.transport import DEFAULT_TWIST_ENDPOINT, Keys, LatestSubscriber
 

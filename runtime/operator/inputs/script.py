@@ -33,7 +33,8 @@ from pathlib import Path
 from typing import Any
 
 from ...errors import ConfigError
-from ...control.mapping import FRAMES, DirectCommand, InputFrame
+from ...arm.model import FRAMES
+from ...control.intent import DirectCommand, InputFrame
 from ...arm.model import ANGLE_UNITS, Arm, configs_dir
 from ...tomlsource import TomlSource, finite_number, read_toml, reject_unknown
 

@@ -14,7 +14,8 @@ import pytest
 
 from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import Arm, limits_digest, load_arm
+from runtime.arm.model import Arm, limits_digest
+from runtime.arm.load import load_arm
 
 GOOD_TOML = """\
 name = "two_link"

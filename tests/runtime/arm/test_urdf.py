@@ -15,7 +15,7 @@ import pytest
 
 from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.arm.transforms import make_transform
 from runtime.arm.urdf import DEFAULT_RAMP_S, load_urdf_arm
 

@@ -17,7 +17,7 @@ from pathlib import Path
 import pytest
 
 from runtime.cli import main
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.sessions.recorder import CycleRecord, SessionRecorder
 
 ROOT = Path(__file__).resolve().parents[3]

@@ -15,7 +15,7 @@ import pytest
 from runtime.cli import main
 from runtime.commands.probe import probe_report
 from runtime.arm.kinematics import analyse_pose
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from sim.urdf import write_urdf
 
 ROOT = Path(__file__).resolve().parents[3]

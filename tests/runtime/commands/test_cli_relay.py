@@ -19,7 +19,7 @@ import pytest
 from runtime.link.arm_process import child_env
 from runtime.cli import main
 from runtime.link.relay_runner import Relay
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.link.protocol import Rates, StateFreshness, hello_for
 from runtime.link.relay import DIRECTIONS, Link, LinkFaults
 from runtime.link.transport import ArmClient, ArmServer

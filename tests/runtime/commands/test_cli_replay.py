@@ -23,8 +23,8 @@ from runtime.cli import main
 from runtime.sessions.replay import check_start
 from runtime.errors import ConfigError
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.control.mapping import load_pad
-from runtime.arm.model import load_arm
+from runtime.control.pads import load_pad
+from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle
 from runtime.control.settings import RunSettings
 from runtime.sessions.recorder import FRAME_MARK, MAGIC, SessionRecorder, cycle_record

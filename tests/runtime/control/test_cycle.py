@@ -12,8 +12,9 @@ import pytest
 
 from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
-from runtime.control.mapping import DirectCommand, InputFrame, load_pad
-from runtime.arm.model import load_arm
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.pads import load_pad
+from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle, frame_from_wire, frame_to_wire
 from runtime.control.settings import RunSettings
 from runtime.control.safety import MOVING

@@ -19,7 +19,8 @@ from hypothesis import strategies as st
 from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose, twist_to_base
 from runtime.control.limits import SCALE_NAMES, JointBounds
-from runtime.arm.model import SolverSettings, load_arm
+from runtime.arm.model import SolverSettings
+from runtime.arm.load import load_arm
 from runtime.control.solver import (DampedSolve, damped_least_squares, damping_squared,
                             joint_centring_gradient, parse_axes, solve, within_command)
 

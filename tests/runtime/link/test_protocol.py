@@ -14,7 +14,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from runtime.errors import ModelMismatch, ProtocolError
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.link.protocol import (FIELDS, KINDS, MAX_JOINTS, MAX_MESSAGE_BYTES, PROTOCOL_VERSION,
                               REASONS, Hello, LatenessFilter, Rates, Refuse, RoundTripMeter,
                               SequenceGate, State,

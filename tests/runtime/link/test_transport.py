@@ -15,7 +15,7 @@ import zmq
 
 from runtime.link import transport
 from runtime.errors import ModelMismatch, ProtocolError, TransportError
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.link.protocol import MAX_MESSAGE_BYTES, Hello, Rates, Refuse, State, Twist, encode, \
     hello_for
 from runtime.link.transport import (ArmClient, ArmServer, LatestSubscriber, Publisher,

@@ -13,7 +13,7 @@ import pytest  # noqa: E402
 
 from runtime.operator.inputs.keyboard import KeyboardSource  # noqa: E402
 from runtime.control.loop import FixedRateLoop  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.operator.status_window import (GROUND, SIZE, STATE_COLOURS, StatusSnapshot,  # noqa: E402
                                    StatusWindow, draw_status, render_png)
 from runtime.operator.inputs.pygame_init import pygame  # noqa: E402

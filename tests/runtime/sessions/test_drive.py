@@ -19,8 +19,8 @@ from runtime.errors import ConfigError
 from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
 from runtime.control.loop import FixedRateLoop
-from runtime.control.mapping import load_pad
-from runtime.arm.model import load_arm
+from runtime.control.pads import load_pad
+from runtime.arm.load import load_arm
 from runtime.link.protocol import State
 from runtime.link.transport import Inbox
 

@@ -12,8 +12,9 @@ import pytest
 
 from runtime.errors import ConfigError
 from runtime.sessions.lockstep import SimStep, run_closed_loop
-from runtime.control.mapping import DirectCommand, InputFrame, load_pad
-from runtime.arm.model import load_arm
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.pads import load_pad
+from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle
 from runtime.control.settings import RunSettings
 

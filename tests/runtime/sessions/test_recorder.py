@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 
 from runtime.errors import LogError
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.sessions.recorder import (BAD_RECORD, CORRUPT, DROPPED, FORMAT_VERSION, GAP, MAGIC,
                               TORN_TAIL, UNCLOSED, UNKNOWN_KIND, CycleRecord, SessionReader,
                               SessionRecorder, arm_from_dict, arm_to_dict, encode_frame,
@@ -190,7 +190,7 @@ def test_streaming_reader_matches_read_session(tmp_path: Path, arm) -> None:
 
 CHILD = textwrap.dedent("""
     import sys, time
-    from runtime.arm.model import load_arm
+    from runtime.arm.load import load_arm
     from runtime.sessions.recorder import CycleRecord, SessionRecorder
     arm = load_arm("elbow6")
     rec = SessionRecorder.start(sys.argv[1], arm, {"rate_hz": 500}, flush_interval_s=0.1)

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from runtime.arm.kinematics import geometric_jacobian
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.sessions.preflight import TraceBuilder, evaluate
 from runtime.sessions.recorder import CycleRecord
 from runtime.sessions.report import PLOT_NAMES, ReportContext, reduce_series, render_html, render_plots

@@ -15,8 +15,9 @@ import pytest
 
 from runtime.errors import LogError
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.control.mapping import InputFrame, load_pad
-from runtime.arm.model import load_arm
+from runtime.control.intent import InputFrame
+from runtime.control.pads import load_pad
+from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle
 from runtime.control.settings import RunSettings
 from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
