@@ -26,8 +26,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.kinematics import jacobian_from_frames, joint_frames  # noqa: E402
-from runtime.arm.model import Arm  # noqa: E402
 from runtime.arm.load import load_arm  # noqa: E402
+from runtime.arm.model import Arm  # noqa: E402
 from sim.urdf import write_urdf  # noqa: E402
 
 

@@ -4,7 +4,8 @@ Measured in one run, on the same machine state:
 
   preflight      a 60 s profile on reach7 (the shipped `gentle`, repeated), 500 Hz control,
                  1 ms physics step (2 steps per cycle): wall time and real-time factor,
-                 with the default state lag of one cycle (this process computes a cycle while the child steps the last) and
+                 with the default state lag of one cycle (this process computes a cycle
+                 while the child steps the last) and
                  with lag 0 (strictly one after the other); the HTML report's time apart
   rerun          `replay --rerun` (open loop) of that 60 s session log: wall time, factor
   components     what one preflight cycle is made of, each timed alone (medians):
@@ -43,18 +44,18 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from collections import Counter  # noqa: E402
 
-from runtime.link.arm_process import child_env  # noqa: E402
-from runtime.sessions.preflight_run import load_profile, preflight_settings, run_preflight  # noqa: E402
-from runtime.sessions.lockstep import LockstepSim  # noqa: E402
-from runtime.control.pads import load_pad  # noqa: E402
-from runtime.arm.model import configs_dir  # noqa: E402
 from runtime.arm.load import load_arm  # noqa: E402
-from runtime.link.pipes import PIPE_PEER  # noqa: E402
+from runtime.arm.model import configs_dir  # noqa: E402
 from runtime.control.cycle import ControlCycle, frame_from_wire  # noqa: E402
+from runtime.control.pads import load_pad  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402
-from runtime.sessions.preflight import TraceBuilder  # noqa: E402
-from runtime.operator.progress import Progress  # noqa: E402
+from runtime.link.arm_process import child_env  # noqa: E402
+from runtime.link.pipes import PIPE_PEER  # noqa: E402
 from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
+from runtime.operator.progress import Progress  # noqa: E402
+from runtime.sessions.lockstep import LockstepSim  # noqa: E402
+from runtime.sessions.preflight import TraceBuilder  # noqa: E402
+from runtime.sessions.preflight_run import load_profile, preflight_settings, run_preflight  # noqa: E402
 from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session  # noqa: E402
 from runtime.sessions.rerun import cycle_settings, inputs_of, rerun_open_loop  # noqa: E402
 
@@ -178,7 +179,7 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
             times.append(time.perf_counter_ns() - t)
     out["lockstep exchange (pipe + child)"] = statistics.median(times) / 1e3
 
-    from sim.arm import SimulatedArm   # the benchmark may; the runtime never does
+    from sim.arm import SimulatedArm  # the benchmark may; the runtime never does
     times = []
     with SimulatedArm(arm, step_s=1.0 / STEP_HZ) as sim_arm:
         for k in range(len(records)):

@@ -31,8 +31,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.load import load_arm  # noqa: E402
-from runtime.sessions.recorder import (CycleRecord, SessionReader, SessionRecorder,  # noqa: E402
-                              encode_frame)
+from runtime.sessions.recorder import CycleRecord, SessionReader, SessionRecorder, encode_frame  # noqa: E402
 
 RATE_HZ = 500
 PERIOD_S = 1.0 / RATE_HZ

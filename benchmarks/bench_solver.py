@@ -32,9 +32,9 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.kinematics import geometric_jacobian, jacobian_from_frames, joint_frames  # noqa: E402
-from runtime.control.limits import JointBounds, clear_of_limits  # noqa: E402
-from runtime.arm.model import Arm  # noqa: E402
 from runtime.arm.load import load_arm  # noqa: E402
+from runtime.arm.model import Arm  # noqa: E402
+from runtime.control.limits import JointBounds, clear_of_limits  # noqa: E402
 from runtime.control.solver import _eigvalsh, _solve, solve  # noqa: E402
 from sim.urdf import write_urdf  # noqa: E402
 

@@ -20,15 +20,22 @@ from .errors import JogwireError
 
 # name → (module, one-line help). Add a command by adding its module here.
 COMMANDS: dict[str, tuple[str, str]] = {
-    "drive": ("runtime.commands.drive", "drive an arm's tool by hand (the simulated demo arm by default)"),
-    "probe": ("runtime.commands.probe", "kinematics at a pose: TCP pose, Jacobian, singular values"),
-    "inspect": ("runtime.commands.inspect", "summarise a recorded session log; export its cycle table"),
-    "preflight": ("runtime.commands.preflight", "prove a motion against the arm's ratings on the simulated arm: report and verdict"),
-    "replay": ("runtime.commands.replay", "send a recorded session to a target, or re-run it through today's pipeline"),
+    "drive": ("runtime.commands.drive",
+              "drive an arm's tool by hand (the simulated demo arm by default)"),
+    "probe": ("runtime.commands.probe",
+              "kinematics at a pose: TCP pose, Jacobian, singular values"),
+    "inspect": ("runtime.commands.inspect",
+                "summarise a recorded session log; export its cycle table"),
+    "preflight": ("runtime.commands.preflight",
+                  "prove a motion against the arm's ratings on the simulated arm: report and "
+                  "verdict"),
+    "replay": ("runtime.commands.replay",
+               "send a recorded session to a target, or re-run it through today's pipeline"),
     "sim": ("runtime.commands.sim", "run the PyBullet simulated arm (the arm side of the wire)"),
     "bridge": ("runtime.commands.bridge", "run the hardware bridge stub around a Driver"),
     "keys": ("runtime.commands.keys", "make CURVE key pairs for a link off this machine"),
-    "relay": ("runtime.commands.relay", "a perturbing relay on the arm link: delay, loss, garbage, stalls"),
+    "relay": ("runtime.commands.relay",
+              "a perturbing relay on the arm link: delay, loss, garbage, stalls"),
 }
 
 

@@ -28,9 +28,9 @@ from pathlib import Path
 import numpy as np
 import pybullet as pb
 
-from runtime.errors import ConfigError, JogwireError
-from runtime.arm.model import Arm
 from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
+from runtime.errors import ConfigError, JogwireError
 from runtime.link.pipes import PipeServer, parse_link_spec
 from runtime.link.protocol import hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys

@@ -29,9 +29,9 @@ from typing import Callable
 
 import numpy as np
 
-from runtime.errors import ConfigError, JogwireError
-from runtime.arm.model import Arm
 from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
+from runtime.errors import ConfigError, JogwireError
 from runtime.link.protocol import hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 

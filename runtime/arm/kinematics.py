@@ -28,7 +28,7 @@ Jacobian = NDArray[np.float64]  # (6, n)
 
 def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     """origin_i · Motion_i(q_i) for every joint, as one (n, 4, 4) batch (base not included)."""
-    O = arm.origins
+    O = arm.origins  # noqa: E741 (the origins, O_i in the formula)
     q = np.asarray(q, dtype=float)
     c = np.cos(q)[:, None]
     s = np.sin(q)[:, None]

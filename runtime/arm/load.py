@@ -15,9 +15,20 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..tomlsource import TomlSource as _Source, finite_number, read_toml
-from .model import ANGLE_UNITS, JOINT_KINDS, LENGTH_UNITS, TASK_AXES, Arm, DHRow, Joint, \
-    SolverSettings, chain_from_dh, configs_dir
+from ..tomlsource import TomlSource as _Source
+from ..tomlsource import finite_number, read_toml
+from .model import (
+    ANGLE_UNITS,
+    JOINT_KINDS,
+    LENGTH_UNITS,
+    TASK_AXES,
+    Arm,
+    DHRow,
+    Joint,
+    SolverSettings,
+    chain_from_dh,
+    configs_dir,
+)
 from .transforms import Mat4, make_transform
 from .urdf import load_urdf_arm
 
@@ -225,7 +236,8 @@ def _common_fields(data: dict, src: _Source, angle: float) -> dict[str, Any]:
     for key in tcp:
         if key not in ("linear", "angular"):
             raise src.error(f"unknown key {key!r}", f"tcp_limits.{key}", "tcp_limits", None, key)
-    lin = finite_number(src, tcp.get("linear", 1.0), "tcp_limits.linear", "tcp_limits", None, "linear")
+    lin = finite_number(src, tcp.get("linear", 1.0), "tcp_limits.linear", "tcp_limits", None,
+                        "linear")
     ang = finite_number(src, tcp.get("angular", 180.0 if angle != 1.0 else math.pi),
                   "tcp_limits.angular", "tcp_limits", None, "angular")
     for key, v in (("linear", lin), ("angular", ang)):

@@ -25,8 +25,8 @@ from typing import Any, Iterable, Iterator, TextIO
 
 import numpy as np
 
-from ..errors import ConfigError
 from ..arm.model import Arm
+from ..errors import ConfigError
 from ..sessions.recorder import CycleRecord, SessionHeader, SessionReader
 
 TWIST_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")

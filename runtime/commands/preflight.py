@@ -23,16 +23,21 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-from ..arm.model import Arm
 from ..arm.load import load_arm
+from ..arm.model import Arm
 from ..control.limits import REDUCED_SPEED_M_S
 from ..control.settings import STATE_LAGS, RunSettings
 from ..errors import ConfigError
 from ..operator.terminal import format_table, json_safe
 from ..sessions.lockstep import substeps_for
 from ..sessions.preflight import PreflightResult
-from ..sessions.preflight_run import PreflightRun, Profile, load_profile, preflight_settings, \
-    run_preflight
+from ..sessions.preflight_run import (
+    PreflightRun,
+    Profile,
+    load_profile,
+    preflight_settings,
+    run_preflight,
+)
 from ..sessions.recorder import SESSION_SUFFIX
 
 DEFAULT_OUT = "preflight"

@@ -17,13 +17,13 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import ConfigError
 from ..arm.kinematics import KinematicsReport, analyse_pose
-from ..arm.model import TASK_AXES, Arm
 from ..arm.load import load_arm
+from ..arm.model import TASK_AXES, Arm
+from ..arm.transforms import matrix_to_rpy
 from ..control.settings import RunSettings
 from ..control.solver import Solution, parse_axes, solve
-from ..arm.transforms import matrix_to_rpy
+from ..errors import ConfigError
 
 SINGULAR_RATIO = 1e-9  # σ_min / σ_max below this is reported as a singular pose (round-off)
 

@@ -40,8 +40,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..arm.model import Arm
 from ..arm.load import load_arm
+from ..arm.model import Arm
 from ..control.settings import RunSettings
 from ..errors import ConfigError, LogError
 from ..link.arm_process import ArmProcess
@@ -50,8 +50,7 @@ from ..link.transport import ArmClient, load_client_keys
 from ..operator.terminal import format_table
 from ..sessions.lockstep import arm_file_for
 from ..sessions.recorder import CycleRecord, Session, read_session
-from ..sessions.replay import ReplayLink, check_speed, check_start, paced_send, \
-    rerun_closed_loop
+from ..sessions.replay import ReplayLink, check_speed, check_start, paced_send, rerun_closed_loop
 from ..sessions.rerun import continuous_records, cycle_settings, inputs_of, rerun_open_loop
 
 DEFAULT_TOLERANCE = 1e-12

@@ -23,11 +23,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.kinematics import analyse_pose
-from .limits import apply_limits, binding_limit
+from ..arm.model import Arm
 from .intent import DirectCommand, InputFrame, Intent
+from .limits import apply_limits, binding_limit
 from .mapping import Mapper
 from .pads import PadMapping
-from ..arm.model import Arm
 from .safety import SafetyGate, Verdict
 from .settings import STATE_LAGS, RunSettings
 from .solver import Solution, solve

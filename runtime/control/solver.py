@@ -46,11 +46,17 @@ from typing import Any, Callable, Iterable, NamedTuple
 import numpy as np
 from numpy.typing import NDArray
 
-from ..errors import ConfigError
 from ..arm.kinematics import jacobian_from_frames, joint_frames, tool_frame_jacobian, twist_to_base
-from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
-                     pushing_into_limits)
 from ..arm.model import FRAMES, TASK_AXES, Arm
+from ..errors import ConfigError
+from .limits import (
+    SCALE_NAMES,
+    JointBounds,
+    apply_limits,
+    binding_limit,
+    clear_of_limits,
+    pushing_into_limits,
+)
 
 Vector = NDArray[np.float64]
 

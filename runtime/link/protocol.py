@@ -34,8 +34,8 @@ import msgpack
 import numpy as np
 from numpy.typing import NDArray
 
-from ..errors import ModelMismatch, ProtocolError
 from ..arm.model import FRAMES, Arm, limits_digest
+from ..errors import ModelMismatch, ProtocolError
 
 PROTOCOL_VERSION = 1
 MAX_MESSAGE_BYTES = 16384   # a hello for MAX_JOINTS joints with long names stays well below

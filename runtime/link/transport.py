@@ -25,8 +25,8 @@ calls decode, count malformed messages by reason in `dropped`, and never raise f
 
 Security: an endpoint that is neither loopback (tcp://127.x.x.x, tcp://[::1],
 tcp://localhost) nor ipc:// needs CURVE keys (`jogwire keys DIR`); the check runs before any
-socket exists. The side holding `ServerKeys` authenticates clients against a folder of allowed public keys
-through a ZAP handler (pyzmq's ThreadAuthenticator) on its own ZeroMQ context.
+socket exists. The side holding `ServerKeys` authenticates clients against a folder of allowed
+public keys through a ZAP handler (pyzmq's ThreadAuthenticator) on its own ZeroMQ context.
 """
 
 from __future__ import annotations
@@ -47,8 +47,7 @@ import zmq.auth
 from zmq.auth.thread import ThreadAuthenticator
 
 from ..errors import ModelMismatch, ProtocolError, TransportError
-from .protocol import MAX_MESSAGE_BYTES, Hello, Message, Refuse, State, check_hello, decode, \
-    encode
+from .protocol import MAX_MESSAGE_BYTES, Hello, Message, Refuse, State, check_hello, decode, encode
 
 DEFAULT_ARM_ENDPOINT = "tcp://127.0.0.1:47810"     # arm side binds, runtime connects
 DEFAULT_TWIST_ENDPOINT = "tcp://127.0.0.1:47811"   # runtime binds, input programs connect

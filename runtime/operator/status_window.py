@@ -30,11 +30,11 @@ from pathlib import Path
 import numpy as np
 from numpy.typing import NDArray
 
-from .inputs.pygame_init import init_events, init_fonts, pygame
 from ..arm.kinematics import joint_frames
+from ..arm.model import Arm
 from ..control.loop import TimingStats
 from ..control.safety import STALE_AFTER_S
-from ..arm.model import Arm
+from .inputs.pygame_init import init_events, init_fonts, pygame
 
 SIZE = (1120, 720)
 

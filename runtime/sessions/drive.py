@@ -54,13 +54,22 @@ import numpy as np
 from ..arm.kinematics import analyse_pose
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle, CycleOutput
-from ..control.loop import FixedRateLoop, Tick, TimingStats
 from ..control.intent import DirectCommand, InputFrame
+from ..control.loop import FixedRateLoop, Tick, TimingStats
 from ..control.pads import PadMapping
 from ..control.settings import RunSettings
 from ..link.arm_process import ArmProcess
-from ..link.protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \
-    StateFreshness, encode, hello_differences, hello_for
+from ..link.protocol import (
+    FLAG_REDUCED_SPEED,
+    Hello,
+    Rates,
+    RoundTripMeter,
+    State,
+    StateFreshness,
+    encode,
+    hello_differences,
+    hello_for,
+)
 from ..link.transport import ArmClient, ClientKeys
 from ..operator.inputs import FiniteInput, InputSource, open_source
 from ..operator.terminal import say
@@ -134,7 +143,7 @@ class DriveSession:
         self._mismatch: str | None = None
         self._prev_start: float | None = None
         self._script_done_at: float | None = None
-        from ..operator.status_window import StatusSnapshot   # pygame: imported only when driving
+        from ..operator.status_window import StatusSnapshot  # pygame: imported only when driving
         self._snapshot_type = StatusSnapshot
 
     # -- other threads -------------------------------------------------------------------

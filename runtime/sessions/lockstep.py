@@ -31,14 +31,14 @@ from typing import Any, Callable, Iterator, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from ..link.arm_process import ArmProcess
-from ..errors import ConfigError, TransportError
-from ..control.intent import InputFrame
-from ..arm.model import Arm, configs_dir, limits_digest
 from ..arm.load import load_arm
+from ..arm.model import Arm, configs_dir, limits_digest
 from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
-from ..link.protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
+from ..control.intent import InputFrame
+from ..errors import ConfigError, TransportError
+from ..link.arm_process import ArmProcess
 from ..link.pipes import PipeClient, link_spec
+from ..link.protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
 
 Vector = NDArray[np.float64]
 

@@ -43,8 +43,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.kinematics import geometric_jacobian, tcp_pose, twist_to_base
-from ..control.limits import REDUCED_SPEED_M_S
 from ..arm.model import Arm
+from ..control.limits import REDUCED_SPEED_M_S
 
 Vector = NDArray[np.float64]
 

@@ -44,10 +44,10 @@ from typing import Any, BinaryIO, Callable, Iterator, Mapping, Sequence
 import msgpack
 import numpy as np
 
-from ..errors import LogError
-from ..control.intent import InputFrame
 from ..arm.model import JOINT_KINDS, Arm, Joint, SolverSettings
 from ..control.cycle import CycleOutput, frame_to_wire
+from ..control.intent import InputFrame
+from ..errors import LogError
 
 SESSION_SUFFIX = ".jwlog"
 MAGIC = b"\x8fJWLOG\r\n"          # high first byte: binary; \r\n: catches text-mode mangling

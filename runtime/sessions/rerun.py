@@ -26,14 +26,14 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from ..errors import ConfigError, LogError
-from ..control.intent import InputFrame
-from ..control.pads import PadMapping, load_pad
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle, frame_from_wire
-from ..control.settings import RunSettings
-from .recorder import BAD_RECORD, CORRUPT, GAP, CycleRecord, Session
+from ..control.intent import InputFrame
+from ..control.pads import PadMapping, load_pad
 from ..control.safety import BLOCKED
+from ..control.settings import RunSettings
+from ..errors import ConfigError, LogError
+from .recorder import BAD_RECORD, CORRUPT, GAP, CycleRecord, Session
 
 Vector = NDArray[np.float64]
 

@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import child_env
 from runtime.arm.kinematics import tcp_pose
+from runtime.link.arm_process import child_env
 from runtime.sessions.recorder import read_session
 
 pytestmark = pytest.mark.e2e

@@ -14,15 +14,22 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import ArmProcess
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
 from runtime.commands import bridge as bridge_command
 from runtime.errors import ConfigError
-from runtime.arm.model import Arm
-from runtime.arm.load import load_arm
+from runtime.link.arm_process import ArmProcess
 from runtime.link.protocol import Rates, hello_for
 from runtime.link.transport import ArmClient
-from sim.bridge import BridgeTarget, Driver, JointSample, VirtualDriver, build_parser, \
-    load_driver, main
+from sim.bridge import (
+    BridgeTarget,
+    Driver,
+    JointSample,
+    VirtualDriver,
+    build_parser,
+    load_driver,
+    main,
+)
 
 
 class RecordingDriver(Driver):

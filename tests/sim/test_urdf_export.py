@@ -64,7 +64,7 @@ def test_every_link_has_a_plausible_inertial(name: str) -> None:
     for link in ET.fromstring(arm_to_urdf(load_arm(name))).findall("link"):
         inertial = link.find("inertial")
         mass = float(inertial.find("mass").get("value"))
-        I = inertial.find("inertia")
+        I = inertial.find("inertia")  # noqa: E741 (the inertia tensor)
         ixx, iyy, izz = (float(I.get(k)) for k in ("ixx", "iyy", "izz"))
         # Principal moments of a rigid body obey the triangle inequality (any dynamics text).
         assert ixx > 0 and iyy > 0 and izz > 0

@@ -19,9 +19,9 @@ from __future__ import annotations
 
 from typing import Any, Protocol, runtime_checkable
 
-from ...errors import ConfigError
-from ...control.intent import InputFrame
 from ...arm.model import Arm
+from ...control.intent import InputFrame
+from ...errors import ConfigError
 
 __all__ = ["INPUT_KINDS", "EventInput", "FiniteInput", "InputSource", "PumpedInput",
            "open_source", "parse_input_spec"]

@@ -32,10 +32,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from ...errors import ConfigError
-from ...arm.model import FRAMES
+from ...arm.model import ANGLE_UNITS, FRAMES, Arm, configs_dir
 from ...control.intent import DirectCommand, InputFrame
-from ...arm.model import ANGLE_UNITS, Arm, configs_dir
+from ...errors import ConfigError
 from ...tomlsource import TomlSource, finite_number, read_toml, reject_unknown
 
 _RELEASED = DirectCommand(enable=False)

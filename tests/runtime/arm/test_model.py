@@ -12,10 +12,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import Arm, limits_digest
 from runtime.arm.load import load_arm
+from runtime.arm.model import Arm, limits_digest
+from runtime.errors import ConfigError
 
 GOOD_TOML = """\
 name = "two_link"

@@ -12,10 +12,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.cli import main
-from runtime.commands.probe import probe_report
 from runtime.arm.kinematics import analyse_pose
 from runtime.arm.load import load_arm
+from runtime.cli import main
+from runtime.commands.probe import probe_report
 from sim.urdf import write_urdf
 
 ROOT = Path(__file__).resolve().parents[3]

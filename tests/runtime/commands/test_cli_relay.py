@@ -16,12 +16,12 @@ import time
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import child_env
-from runtime.cli import main
-from runtime.link.relay_runner import Relay
 from runtime.arm.load import load_arm
+from runtime.cli import main
+from runtime.link.arm_process import child_env
 from runtime.link.protocol import Rates, StateFreshness, hello_for
 from runtime.link.relay import DIRECTIONS, Link, LinkFaults
+from runtime.link.relay_runner import Relay
 from runtime.link.transport import ArmClient, ArmServer
 from sim.arm_side import ArmSession, Reading
 from sim.endpoint import ArmEndpoint

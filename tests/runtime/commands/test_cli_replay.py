@@ -18,16 +18,16 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import child_env
-from runtime.cli import main
-from runtime.sessions.replay import check_start
-from runtime.errors import ConfigError
-from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.control.pads import load_pad
 from runtime.arm.load import load_arm
+from runtime.cli import main
 from runtime.control.cycle import ControlCycle
+from runtime.control.pads import load_pad
 from runtime.control.settings import RunSettings
+from runtime.errors import ConfigError
+from runtime.link.arm_process import child_env
+from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.sessions.recorder import FRAME_MARK, MAGIC, SessionRecorder, cycle_record
+from runtime.sessions.replay import check_start
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

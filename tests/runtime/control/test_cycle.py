@@ -10,14 +10,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
-from runtime.control.intent import DirectCommand, InputFrame
-from runtime.control.pads import load_pad
 from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle, frame_from_wire, frame_to_wire
-from runtime.control.settings import RunSettings
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.pads import load_pad
 from runtime.control.safety import MOVING
+from runtime.control.settings import RunSettings
+from runtime.operator.inputs.script import ScriptSource, load_script
 
 RATE_HZ = 500.0
 
@@ -88,7 +88,8 @@ def test_a_slow_link_commands_zero_and_the_default_is_a_link_without_delay():
 
 
 def test_input_frame_round_trips_through_plain_data():
-    frame = InputFrame(device="pad", present=True, axes=(0.5, -1.0), pressed=frozenset({4, "space"}))
+    frame = InputFrame(device="pad", present=True, axes=(0.5, -1.0),
+                       pressed=frozenset({4, "space"}))
     assert frame_from_wire(frame_to_wire(frame)) == frame
     cmd = InputFrame(device="s", present=True,
                      command=DirectCommand(twist=(0.1, 0, 0, 0, 0, 0.2), frame="tool", joint=None))

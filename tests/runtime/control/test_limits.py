@@ -15,10 +15,21 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from runtime.arm.kinematics import geometric_jacobian
-from runtime.control.limits import (REDUCED_SPEED_M_S, SCALE_NAMES, JointBounds, acceleration_step,
-                            apply_limits, binding_limit, braking_factor, braking_speed,
-                            cap_factor, clear_of_limits, distance_ahead, speed_factor)
 from runtime.arm.load import load_arm
+from runtime.control.limits import (
+    REDUCED_SPEED_M_S,
+    SCALE_NAMES,
+    JointBounds,
+    acceleration_step,
+    apply_limits,
+    binding_limit,
+    braking_factor,
+    braking_speed,
+    cap_factor,
+    clear_of_limits,
+    distance_ahead,
+    speed_factor,
+)
 from runtime.control.solver import solve
 
 ARMS = {name: load_arm(name) for name in ("elbow6", "reach7", "scara4", "planar3")}

@@ -16,13 +16,20 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose, twist_to_base
-from runtime.control.limits import SCALE_NAMES, JointBounds
-from runtime.arm.model import SolverSettings
 from runtime.arm.load import load_arm
-from runtime.control.solver import (DampedSolve, damped_least_squares, damping_squared,
-                            joint_centring_gradient, parse_axes, solve, within_command)
+from runtime.arm.model import SolverSettings
+from runtime.control.limits import SCALE_NAMES, JointBounds
+from runtime.control.solver import (
+    DampedSolve,
+    damped_least_squares,
+    damping_squared,
+    joint_centring_gradient,
+    parse_axes,
+    solve,
+    within_command,
+)
+from runtime.errors import ConfigError
 
 ARMS = {name: load_arm(name) for name in ("elbow6", "reach7", "scara4", "planar3")}
 DEG = math.pi / 180.0
@@ -198,7 +205,8 @@ def test_reach7_centring_moves_joints_toward_mid_range_only_while_jogging() -> N
     q = np.radians([20, 60, 40, -80, 30, 70, 50])
     twist = np.array([0.05, 0, 0, 0, 0, 0])
     s = solve(arm, q, twist, dt_s=DT_S)
-    plain = solve(ARMS["reach7"].with_changes(solver=SolverSettings(nullspace_gain=0.0)), q, twist, dt_s=DT_S)
+    plain = solve(ARMS["reach7"].with_changes(solver=SolverSettings(nullspace_gain=0.0)), q,
+                  twist, dt_s=DT_S)
     grad = joint_centring_gradient(q, arm.lower, arm.upper)
     assert (s.rates - plain.rates) @ grad > 0  # the added motion ascends w
     np.testing.assert_allclose(s.achieved_twist, plain.achieved_twist, atol=1e-12)
@@ -240,7 +248,8 @@ def test_locked_axes_are_held_not_freed() -> None:
 def test_locks_in_tool_axes_hold_tool_axes() -> None:
     arm = ARMS["elbow6"]
     q = arm.home()
-    s = solve(arm, q, [0.02, 0.03, 0.04, 0.3, 0.2, 0.1], frame="tool", locked=("vz", "wz"), dt_s=DT_S)
+    s = solve(arm, q, [0.02, 0.03, 0.04, 0.3, 0.2, 0.1], frame="tool", locked=("vz", "wz"),
+              dt_s=DT_S)
     R = tcp_pose(arm, q)[:3, :3]
     in_tool = np.concatenate((R.T @ s.achieved_twist[:3], R.T @ s.achieved_twist[3:]))
     np.testing.assert_allclose(in_tool, [0.02, 0.03, 0, 0.3, 0.2, 0], atol=1e-12)
@@ -330,7 +339,8 @@ def test_extreme_finite_inputs_stay_finite() -> None:
 
 def test_solution_record_is_json_ready() -> None:
     arm = ARMS["reach7"]
-    s = solve(arm, arm.home(), [0.3, 0, 0, 0, 0, 0], reduced=True, prev_rates=np.zeros(7), dt_s=DT_S)
+    s = solve(arm, arm.home(), [0.3, 0, 0, 0, 0, 0], reduced=True, prev_rates=np.zeros(7),
+              dt_s=DT_S)
     d = json.loads(json.dumps(s.as_dict(), allow_nan=False))
     assert set(d["scales"]) == set(SCALE_NAMES)
     assert d["binding_limit"] == s.binding_limit == min(s.scales, key=s.scales.get)

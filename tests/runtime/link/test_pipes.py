@@ -12,8 +12,8 @@ import time
 import msgpack
 import pytest
 
-from runtime.errors import ModelMismatch, TransportError
 from runtime.arm.load import load_arm
+from runtime.errors import ModelMismatch, TransportError
 from runtime.link.pipes import PIPE_PEER, PipeClient, PipeServer, link_spec, parse_link_spec
 from runtime.link.protocol import MAX_MESSAGE_BYTES, Hello, Rates, Refuse, State, encode, hello_for
 

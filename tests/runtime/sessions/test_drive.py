@@ -9,20 +9,19 @@ import math
 import numpy as np
 import pytest
 
-from runtime.control.settings import RunSettings
-from runtime.operator.terminal import format_summary
-from runtime.sessions.drive import SETTLE_TIMEOUT_S, DriveSession, build_summary, \
-    enter_realtime
-from runtime.sessions.drive_stats import LogHistogram
-from runtime.sessions.drive_ui import plan_input
-from runtime.errors import ConfigError
-from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
+from runtime.arm.load import load_arm
 from runtime.control.loop import FixedRateLoop
 from runtime.control.pads import load_pad
-from runtime.arm.load import load_arm
+from runtime.control.settings import RunSettings
+from runtime.errors import ConfigError
 from runtime.link.protocol import State
 from runtime.link.transport import Inbox
+from runtime.operator.inputs.script import ScriptSource, load_script
+from runtime.operator.terminal import format_summary
+from runtime.sessions.drive import SETTLE_TIMEOUT_S, DriveSession, build_summary, enter_realtime
+from runtime.sessions.drive_stats import LogHistogram
+from runtime.sessions.drive_ui import plan_input
 
 RATE_HZ = 500.0
 

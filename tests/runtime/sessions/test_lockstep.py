@@ -1,5 +1,5 @@
-"""runtime/sessions/lockstep.py `run_closed_loop` against an arm kept in this process: which pose each
-cycle works on for each state lag, the order cycles come out in, and what reaches the arm.
+"""runtime/sessions/lockstep.py `run_closed_loop` against an arm kept in this process: which pose
+each cycle works on for each state lag, the order cycles come out in, and what reaches the arm.
 
 The arm is an ideal integrator (q ← q + q̇·dt per cycle), so every pose is known exactly:
 with lag 0 cycle k must see q0 + dt·Σ_{i<k} rates_i, with lag 1 the sum stops one cycle
@@ -10,13 +10,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from runtime.errors import ConfigError
-from runtime.sessions.lockstep import SimStep, run_closed_loop
-from runtime.control.intent import DirectCommand, InputFrame
-from runtime.control.pads import load_pad
 from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.pads import load_pad
 from runtime.control.settings import RunSettings
+from runtime.errors import ConfigError
+from runtime.sessions.lockstep import SimStep, run_closed_loop
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.control.limits import REDUCED_SPEED_M_S
 from runtime.arm.load import load_arm
+from runtime.control.limits import REDUCED_SPEED_M_S
 from runtime.sessions.preflight import MEASURED_TOLERANCE, TraceBuilder, evaluate
 from runtime.sessions.recorder import CycleRecord
 

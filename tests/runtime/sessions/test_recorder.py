@@ -25,13 +25,30 @@ import msgpack
 import numpy as np
 import pytest
 
-from runtime.errors import LogError
 from runtime.arm.load import load_arm
-from runtime.sessions.recorder import (BAD_RECORD, CORRUPT, DROPPED, FORMAT_VERSION, GAP, MAGIC,
-                              TORN_TAIL, UNCLOSED, UNKNOWN_KIND, CycleRecord, SessionReader,
-                              SessionRecorder, arm_from_dict, arm_to_dict, encode_frame,
-                              encode_preamble, make_header, new_session_path, read_session,
-                              software_version)
+from runtime.errors import LogError
+from runtime.sessions.recorder import (
+    BAD_RECORD,
+    CORRUPT,
+    DROPPED,
+    FORMAT_VERSION,
+    GAP,
+    MAGIC,
+    TORN_TAIL,
+    UNCLOSED,
+    UNKNOWN_KIND,
+    CycleRecord,
+    SessionReader,
+    SessionRecorder,
+    arm_from_dict,
+    arm_to_dict,
+    encode_frame,
+    encode_preamble,
+    make_header,
+    new_session_path,
+    read_session,
+    software_version,
+)
 
 ROOT = Path(__file__).resolve().parents[3]
 PREAMBLE_BYTES = 10      # magic (8) + version (2)

@@ -15,7 +15,13 @@ from runtime.arm.kinematics import geometric_jacobian
 from runtime.arm.load import load_arm
 from runtime.sessions.preflight import TraceBuilder, evaluate
 from runtime.sessions.recorder import CycleRecord
-from runtime.sessions.report import PLOT_NAMES, ReportContext, reduce_series, render_html, render_plots
+from runtime.sessions.report import (
+    PLOT_NAMES,
+    ReportContext,
+    reduce_series,
+    render_html,
+    render_plots,
+)
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

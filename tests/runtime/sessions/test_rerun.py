@@ -13,17 +13,22 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.errors import LogError
-from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.control.intent import InputFrame
-from runtime.control.pads import load_pad
 from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle
-from runtime.control.settings import RunSettings
-from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
-from runtime.sessions.rerun import (RecordedInputs, continuous_records, cycle_settings, inputs_of,
-                           rerun_open_loop)
+from runtime.control.intent import InputFrame
+from runtime.control.pads import load_pad
 from runtime.control.safety import BLOCKED
+from runtime.control.settings import RunSettings
+from runtime.errors import LogError
+from runtime.operator.inputs.script import ScriptSource, load_script
+from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
+from runtime.sessions.rerun import (
+    RecordedInputs,
+    continuous_records,
+    cycle_settings,
+    inputs_of,
+    rerun_open_loop,
+)
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

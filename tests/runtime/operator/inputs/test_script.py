@@ -8,14 +8,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.errors import ConfigError
-from runtime.operator.inputs import open_source, parse_input_spec
-from runtime.operator.inputs.script import ScriptSource, load_script, profile_names
+from runtime.arm.load import load_arm
 from runtime.control.limits import REDUCED_SPEED_M_S
 from runtime.control.mapping import Mapper
 from runtime.control.pads import load_pad
-from runtime.arm.load import load_arm
 from runtime.control.safety import MOVING, READY, SafetyGate
+from runtime.errors import ConfigError
+from runtime.operator.inputs import open_source, parse_input_spec
+from runtime.operator.inputs.script import ScriptSource, load_script, profile_names
 
 
 @pytest.fixture(scope="module")
