@@ -25,7 +25,7 @@ import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Callable, TextIO
 
 import numpy as np
 
@@ -94,7 +94,7 @@ class VirtualDriver(Driver):
         self.csv_path = None if csv_path is None else Path(csv_path)
         self.q0 = q0
         self.clock = clock
-        self._file = None
+        self._file: TextIO | None = None
         self.commands_written = 0
 
     def open(self, arm: Arm) -> JointSample:

@@ -147,7 +147,7 @@ def analyse_pose(arm: Arm, q: NDArray[np.float64]) -> KinematicsReport:
     frames, T = joint_frames(arm, q)
     J = jacobian_from_frames(arm, frames, T)
     Jt = task_rows(J, arm.task_mask)
-    sv = np.linalg.svd(Jt, compute_uv=False)
+    sv = np.asarray(np.linalg.svd(Jt, compute_uv=False), dtype=np.float64)
     m = Jt.shape[0]
     if len(sv) < m:
         sv = np.concatenate((sv, np.zeros(m - len(sv))))

@@ -65,7 +65,8 @@ def _vector3(src: _Source, value: Any, field_name: str, table: str, key: str) ->
     return [finite_number(src, v, field_name, table, None, key) for v in value]
 
 
-def _unit(src: _Source, data: dict, key: str, table: dict[str, float], default: str) -> float:
+def _unit(src: _Source, data: dict[str, Any], key: str, table: dict[str, float],
+          default: str) -> float:
     name = data.get(key, default)
     if not isinstance(name, str) or name not in table:
         raise src.error(f"unknown unit {name!r}; use one of {', '.join(table)}", key, None, None,
@@ -73,7 +74,7 @@ def _unit(src: _Source, data: dict, key: str, table: dict[str, float], default: 
     return table[name]
 
 
-def _frame(src: _Source, data: dict, table: str, length: float, angle: float) -> Mat4:
+def _frame(src: _Source, data: dict[str, Any], table: str, length: float, angle: float) -> Mat4:
     spec = data.get(table, {})
     if not isinstance(spec, dict):
         raise src.error("must be a table with xyz and rpy", table, None, None, table)
@@ -90,34 +91,36 @@ _JOINT_KEYS = {"name", "type", "d", "a", "alpha", "theta", "lower", "upper", "ma
                "max_accel", "rated_speed", "rated_accel", "effort"}
 
 
-def _joint_limits(src: _Source, spec: dict, i: int, scale: float, name: str) -> dict[str, Any]:
+def _joint_limits(src: _Source, spec: dict[str, Any], i: int, scale: float,
+                  name: str) -> dict[str, Any]:
     """Position, speed and acceleration limits of joint i, converted to SI."""
-    def get(key: str, required: bool = True, default: float | None = None) -> float | None:
+    def need(key: str) -> float:
         fname = f"joints[{i}].{key}"
         if key not in spec:
-            if required:
-                raise src.error(f"joint {name!r} has no {key!r}", fname, "joints", i, None)
-            return default
+            raise src.error(f"joint {name!r} has no {key!r}", fname, "joints", i, None)
         return finite_number(src, spec[key], fname, "joints", i, key)
 
-    lower, upper = get("lower") * scale, get("upper") * scale
+    def get(key: str) -> float | None:
+        return need(key) if key in spec else None
+
+    lower, upper = need("lower") * scale, need("upper") * scale
     if lower >= upper:
         raise src.error(f"lower ({spec['lower']}) must be below upper ({spec['upper']})",
                         f"joints[{i}].lower", "joints", i, "lower")
     out: dict[str, Any] = {"lower": lower, "upper": upper}
     for key in ("max_speed", "max_accel"):
-        v = get(key)
+        v = need(key)
         if v <= 0:
             raise src.error(f"must be positive, got {spec[key]}", f"joints[{i}].{key}",
                             "joints", i, key)
         out[key] = v * scale
     for key, fallback in (("rated_speed", "max_speed"), ("rated_accel", "max_accel")):
-        v = get(key, required=False)
-        if v is not None and v <= 0:
+        rated = get(key)
+        if rated is not None and rated <= 0:
             raise src.error(f"must be positive, got {spec[key]}", f"joints[{i}].{key}",
                             "joints", i, key)
-        out[key] = out[fallback] if v is None else v * scale
-    effort = get("effort", required=False)
+        out[key] = out[fallback] if rated is None else rated * scale
+    effort = get("effort")
     if effort is not None and effort <= 0:
         raise src.error(f"must be positive, got {spec['effort']}", f"joints[{i}].effort",
                         "joints", i, "effort")
@@ -125,7 +128,7 @@ def _joint_limits(src: _Source, spec: dict, i: int, scale: float, name: str) -> 
     return out
 
 
-def arm_from_toml(data: dict, src: _Source) -> Arm:
+def arm_from_toml(data: dict[str, Any], src: _Source) -> Arm:
     """Validate a parsed arm TOML document and build the `Arm`."""
     top_keys = {"name", "summary", "convention", "angle_unit", "length_unit", "task", "base",
                 "tool", "tcp_limits", "solver", "joints", "urdf", "base_link", "tip_link", "home"}
@@ -188,7 +191,7 @@ def _require_table(src: _Source, value: Any, field_name: str, table: str, index:
         raise err if err.line is not None else src.error(message, field_name, None, None, table)
 
 
-def _home(data: dict, src: _Source, joints: tuple[Joint, ...], angle: float, length: float
+def _home(data: dict[str, Any], src: _Source, joints: tuple[Joint, ...], angle: float, length: float
           ) -> tuple[float, ...] | None:
     """The optional start pose `home = [...]` (angle/length units), inside the limits."""
     if "home" not in data:
@@ -205,7 +208,7 @@ def _home(data: dict, src: _Source, joints: tuple[Joint, ...], angle: float, len
     return tuple(home)
 
 
-def _common_fields(data: dict, src: _Source, angle: float) -> dict[str, Any]:
+def _common_fields(data: dict[str, Any], src: _Source, angle: float) -> dict[str, Any]:
     length = LENGTH_UNITS[data.get("length_unit", "m")]
     task = data.get("task", list(TASK_AXES))
     if not isinstance(task, list) or not task or any(t not in TASK_AXES for t in task):
@@ -262,7 +265,7 @@ def _common_fields(data: dict, src: _Source, angle: float) -> dict[str, Any]:
 _URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_accel"}
 
 
-def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm:
+def _arm_from_urdf_toml(data: dict[str, Any], src: _Source, common: dict[str, Any]) -> Arm:
     """An arm TOML that points at a URDF file and adds what URDF lacks (accelerations, task).
 
     `[[joints]]` tables here only override speeds and accelerations of URDF joints by name.
@@ -277,7 +280,7 @@ def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm
     specs = data.get("joints", [])
     if not isinstance(specs, list):
         raise src.error("must be a list of [[joints]] tables", "joints", None, None, "joints")
-    overrides: dict[str, tuple[int, dict]] = {}
+    overrides: dict[str, tuple[int, dict[str, Any]]] = {}
     for i, spec in enumerate(specs):
         _require_table(src, spec, f"joints[{i}]", "joints", i)
         for key in spec:
@@ -295,7 +298,7 @@ def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm
         if j.name in overrides:
             i, spec = overrides.pop(j.name)
             scale = angle if j.is_revolute else length
-            changes = {}
+            changes: dict[str, float] = {}
             for key in ("max_speed", "max_accel", "rated_speed", "rated_accel"):
                 if key in spec:
                     v = finite_number(src, spec[key], f"joints[{i}].{key}", "joints", i, key)
@@ -303,7 +306,7 @@ def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm
                         raise src.error(f"must be positive, got {spec[key]}",
                                         f"joints[{i}].{key}", "joints", i, key)
                     changes[key] = v * scale
-            j = replace(j, **changes)
+            j = replace(j, **changes)  # type: ignore[arg-type]  # (floats, by key)
         joints.append(j)
     if overrides:
         name, (i, _) = next(iter(overrides.items()))

@@ -27,6 +27,7 @@ import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 from xml.parsers import expat
 
 import numpy as np
@@ -141,7 +142,7 @@ def _read_tree(doc: _Document) -> tuple[list[str], dict[str, _UrdfJoint]]:
         if kind not in URDF_JOINT_TYPES:
             raise doc.error(f"unknown joint type {kind!r}; URDF knows "
                             f"{', '.join(URDF_JOINT_TYPES)}", el, f"joint[{name}].type")
-        ends = {}
+        ends: dict[str, str] = {}
         for end in ("parent", "child"):
             sub = el.find(end)
             field = f"joint[{name}].{end}.link"
@@ -149,7 +150,7 @@ def _read_tree(doc: _Document) -> tuple[list[str], dict[str, _UrdfJoint]]:
                 raise doc.error(f"missing <{end} link=...>", el if sub is None else sub, field)
             if sub.get("link") not in known:
                 raise doc.error(f"unknown link {sub.get('link')!r}", sub, field)
-            ends[end] = sub.get("link")
+            ends[end] = str(sub.get("link"))
         if ends["child"] in by_child:
             raise doc.error(f"link {ends['child']!r} already has parent joint "
                             f"{by_child[ends['child']].name!r}; URDF is a tree", el,
@@ -247,7 +248,7 @@ def _axis(doc: _Document, j: _UrdfJoint) -> np.ndarray:
     return axis / norm
 
 
-def _limits(doc: _Document, j: _UrdfJoint) -> dict[str, float | None]:
+def _limits(doc: _Document, j: _UrdfJoint) -> dict[str, Any]:
     """Position, speed and acceleration limits (SI) of a moving joint."""
     el = j.element.find("limit")
     field = f"joint[{j.name}].limit"
@@ -330,6 +331,7 @@ def load_urdf_arm(path: str | Path, base_link: str | None = None,
         joints.append(Joint(name=j.name, kind=kind, origin=origin, **_limits(doc, j)))
         carry = R.T.copy()
     robot_name = doc.root.get("name") or path.stem
-    return Arm(name=robot_name, joints=tuple(joints), base=base, flange=carry,
+    return Arm(name=robot_name, joints=tuple(joints), base=base,
+               flange=np.eye(4) if carry is None else carry,
                tool=np.eye(4), summary=f"from URDF {path.name}: {base_link} → {tip_link}",
                source=str(path))

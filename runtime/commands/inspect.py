@@ -197,7 +197,8 @@ class SessionStats:
         h: SessionHeader = reader.header
         arm = self.arm
         has = self.cycles > 0
-        duration = (self.t_last - self.t_first) if has else 0.0
+        first, last = self.t_first, self.t_last
+        duration = last - first if has and first is not None and last is not None else 0.0
         periods = np.frombuffer(self.periods, dtype=float) if has else np.zeros(0)
         computes = np.frombuffer(self.computes, dtype=float) if has else np.zeros(0)
         joints = []

@@ -27,7 +27,7 @@ import signal
 import sys
 import time
 from pathlib import Path
-from typing import TextIO
+from typing import Any, TextIO
 
 from ..errors import ConfigError
 from ..link.relay import DIRECTIONS, GARBAGE_KINDS, Link, faults_from_options
@@ -96,7 +96,7 @@ class _Signals:
         self.stopped = False
         self.deadline = None if duration_s is None else time.monotonic() + duration_s
         self.relay = relay
-        self._previous = {}
+        self._previous: dict[int, Any] = {}
 
     def __call__(self) -> bool:
         return self.stopped or (self.deadline is not None and time.monotonic() >= self.deadline)

@@ -17,7 +17,7 @@ recorded rates exactly.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Mapping
 
 import numpy as np
 from numpy.typing import NDArray
@@ -121,7 +121,7 @@ def frame_to_wire(frame: InputFrame) -> dict[str, Any]:
     }
 
 
-def frame_from_wire(m: dict[str, Any]) -> InputFrame:
+def frame_from_wire(m: Mapping[str, Any]) -> InputFrame:
     c = m.get("command")
     command = None if c is None else DirectCommand(
         twist=tuple(float(v) for v in c["twist"]), frame=str(c["frame"]),

@@ -158,7 +158,7 @@ def pushing_into_limits(bounds: JointBounds, q: Vector, rates: Vector, dt_s: flo
 
 def _worst_ratio(values: Vector, inv_limits: tuple[float, ...]) -> float:
     """max_i |values_i| / limit_i."""
-    return max(map(mul, map(abs, values.tolist()), inv_limits))
+    return float(max(map(mul, map(abs, values.tolist()), inv_limits)))
 
 
 def speed_factor(bounds: JointBounds, rates: Vector) -> float:

@@ -33,7 +33,7 @@ import numpy as np
 class Tick(NamedTuple):
     """What the body learns about its cycle. Times are clock readings in seconds."""
 
-    index: int             # cycle number, from 0
+    index: int  # type: ignore[assignment]  # cycle number, from 0 (shadows tuple.index)
     deadline_s: float      # when this cycle was due
     start_s: float         # when it started
     period_s: float        # nominal period T = 1/rate

@@ -152,7 +152,7 @@ def _choice(src: TomlSource, value: Any, options: tuple[str, ...], field_name: s
     if value not in options:
         raise src.error(f"got {value!r}; use one of {', '.join(options)}", field_name, table,
                         index, key)
-    return value
+    return str(value)
 
 
 def _button(src: TomlSource, value: Any, device: str, field_name: str, table: str,

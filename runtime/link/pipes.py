@@ -26,8 +26,8 @@ import struct
 import time
 from collections import Counter
 
-from ..errors import TransportError
-from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, encode
+from ..errors import ProtocolError, TransportError
+from .protocol import MAX_MESSAGE_BYTES, Hello, Message, State, encode
 from .transport import Inbox, check_answer, decode_counted
 
 PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)

@@ -191,7 +191,7 @@ def _flags(value: Any, n: int | None, field: str) -> int:
     value = _FLAG_WORD(value, n, field)
     if value & ~KNOWN_FLAGS:
         raise _bad("range", field, f"unknown flag bits {value & ~KNOWN_FLAGS:#x}")
-    return value
+    return int(value)
 
 
 def _bool(value: Any, n: int | None, field: str) -> bool:
@@ -293,7 +293,7 @@ _KEYS = {kind: frozenset(("v", "kind", *(key for key, _ in spec)))
          for kind, spec in FIELDS.items()}
 
 
-def _checked(kind: str, data: dict, n_joints: int | None) -> dict[str, Any]:
+def _checked(kind: str, data: dict[str, Any], n_joints: int | None) -> dict[str, Any]:
     """The field values of a `kind` map, each checked; raises ProtocolError."""
     spec, expected = FIELDS[kind], _KEYS[kind]
     if data.keys() != expected:
@@ -326,7 +326,8 @@ def encode(msg: Message) -> bytes:
     """One wire frame for `msg`. Raises ProtocolError if `msg` breaks the schema (never sent)."""
     data = to_map(msg)
     _checked(data["kind"], data, None)
-    return msgpack.packb(data, use_bin_type=True)
+    packed: bytes = msgpack.packb(data, use_bin_type=True)
+    return packed
 
 
 _UNPACK_LIMITS = dict(raw=False, strict_map_key=True, use_list=True,
@@ -367,7 +368,8 @@ def decode(data: Any, *, n_joints: int | None = None) -> Message:
         raise ProtocolError("no string 'kind'", reason="schema" if kind is None else "type")
     if kind not in FIELDS:
         raise ProtocolError(f"unknown kind {kind[:40]!r}", reason="kind")
-    return KINDS[kind](**_checked(kind, obj, n_joints))
+    message: Message = KINDS[kind](**_checked(kind, obj, n_joints))
+    return message
 
 
 # ----------------------------------------------------------------------------------------

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 import time
-from typing import Callable
+from typing import Callable, cast
 
 import zmq
 
@@ -170,7 +170,7 @@ class Relay:
             self._to_peer(d)
 
     def _to_target(self, d: Delivery, now: float, retry_until: float | None) -> None:
-        up = self.upstreams.get(d.route)
+        up = self.upstreams.get(_route(d))
         if up is None:
             self._unsent("rates", d)
             return
@@ -188,14 +188,14 @@ class Relay:
 
     def _to_peer(self, d: Delivery) -> None:
         try:
-            self.front.socket.send_multipart([d.route, *d.frames], zmq.NOBLOCK)
+            self.front.socket.send_multipart([_route(d), *d.frames], zmq.NOBLOCK)
         except zmq.Again:
             self._unsent("state", d)
         except zmq.ZMQError as exc:
             if exc.errno != zmq.EHOSTUNREACH:
                 raise
             self._unsent("state", d)
-            self._close_upstream(d.route)
+            self._close_upstream(_route(d))
 
     def _unsent(self, direction: str, d: Delivery) -> None:
         counters = self.links[direction].counters
@@ -245,3 +245,8 @@ class Relay:
         return {name: {"faults": link.faults.describe(), **link.counters.as_dict()}
                 for name, link in self.links.items()} | {
             "peers_seen": self.peers_seen, "peers_gone": self.peers_gone}
+
+
+def _route(d: Delivery) -> bytes:
+    """The peer's routing id: the relay routes by the ROUTER's identity frames (bytes)."""
+    return cast(bytes, d.route)

@@ -40,7 +40,7 @@ import time
 from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Union
+from typing import Union, cast
 
 import zmq
 import zmq.auth
@@ -250,7 +250,7 @@ class _Socket:
 
     def _recv_frames(self) -> list[bytes] | None:
         # Asking ZMQ_EVENTS first is cheaper than the zmq.Again that ends every drain.
-        if not self.socket.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+        if not cast(int, self.socket.getsockopt(zmq.EVENTS)) & zmq.POLLIN:
             return None
         try:
             return self.socket.recv_multipart(zmq.NOBLOCK, copy=True)

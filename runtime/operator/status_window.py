@@ -141,12 +141,6 @@ def _text(surf: pygame.Surface, text: str, pos: tuple[int, int], size: int = 20,
     return rect
 
 
-def _panel(surf: pygame.Surface, rect: pygame.Rect, title: str) -> pygame.Rect:
-    pygame.draw.rect(surf, PANEL, rect, border_radius=6)
-    _text(surf, title.upper(), (rect.x + 12, rect.y + 8), 17, MUTED, bold=True)
-    return rect.inflate(-24, -34).move(0, 11)
-
-
 def _mix(a: tuple[int, int, int], b: tuple[int, int, int], t: float) -> tuple[int, int, int]:
     return tuple(int(round(x + (y - x) * t)) for x, y in zip(a, b))  # type: ignore[return-value]
 
@@ -405,8 +399,8 @@ def _draw_chain(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
         pygame.draw.line(surf, TOOL, screen[-1], px(tool_end), 3)
         pygame.draw.circle(surf, TOOL, screen[-1], 6)
     surf.set_clip(clip)
-    p = T[:3, 3]
-    _text(surf, f"TCP  x {p[0]:+.3f}  y {p[1]:+.3f}  z {p[2]:+.3f} m",
+    tcp = T[:3, 3]
+    _text(surf, f"TCP  x {tcp[0]:+.3f}  y {tcp[1]:+.3f}  z {tcp[2]:+.3f} m",
           (L.views[1][0].right, L.views[0][0].y - 25), 17, MUTED, anchor="topright")
 
 

@@ -155,6 +155,10 @@ class DriveSession:
         else:
             self._force = True
 
+    def _elapsed_s(self, now: float) -> float:
+        """Session time (s): since the first cycle."""
+        return 0.0 if self.t0 is None else now - self.t0
+
     @property
     def ending(self) -> bool:
         return self._ending_since is not None
@@ -236,7 +240,7 @@ class DriveSession:
             period = tick.period_s if self._prev_start is None else now - self._prev_start
             end = self.clock()
             self.recorder.record(cycle_record(
-                tick.index, now - self.t0, frame, out, self.q, state_age_s=age,
+                tick.index, self._elapsed_s(now), frame, out, self.q, state_age_s=age,
                 overrun_streak=tick.overrun_streak, period_s=period, compute_s=end - now,
                 overrun=end > tick.deadline_s + tick.period_s))
         self._prev_start = now
@@ -276,7 +280,7 @@ class DriveSession:
         return None
 
     def _due_end(self, now: float) -> str | None:
-        if self.duration_s is not None and now - self.t0 >= self.duration_s:
+        if self.duration_s is not None and self._elapsed_s(now) >= self.duration_s:
             return f"--duration {self.duration_s:g} s reached"
         source = self.source
         if isinstance(source, FiniteInput) and self.duration_s is None and source.finished(now):
@@ -336,7 +340,7 @@ class DriveSession:
             reduced=intent.reduced, joint=intent.joint, sigma_min=sigma,
             manipulability=manip, damping=damping, binding_limit=binding, target=self.target,
             connected=connected, state_age_s=age, stale_after_s=self.stale_after_s,
-            rtt_s=self.round_trip.level_s, elapsed_s=now - self.t0, note=self._note(now))
+            rtt_s=self.round_trip.level_s, elapsed_s=self._elapsed_s(now), note=self._note(now))
 
     def _note(self, now: float) -> str:
         notes = []

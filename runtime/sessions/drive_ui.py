@@ -30,6 +30,7 @@ from ..operator.inputs import EventInput, InputSource, PumpedInput, parse_input_
 from ..operator.terminal import say, status_line, terminal_width
 
 if TYPE_CHECKING:
+    from ..operator.status_window import StatusWindow
     from .drive import DriveSession
 
 __all__ = ["DEMO_SCRIPT", "DriveUI", "InputPlan", "MainThread", "StopSignals", "plan_input",
@@ -121,7 +122,7 @@ class MainThread:
         self.child = child
         self.screenshot = screenshot
         self.thread: threading.Thread | None = None
-        self.window = None
+        self.window: StatusWindow | None = None
         self.frame_hz = WINDOW_MAX_HZ
         self.child_exit: int | None = None
         self._told_recording = False
@@ -161,7 +162,7 @@ class MainThread:
         return self.thread is not None and self.thread.is_alive()
 
     def save_screenshot(self) -> Path | None:
-        if self._shot is None:
+        if self._shot is None or self.screenshot is None:
             return None
         from ..operator.inputs.pygame_init import pygame
         from ..operator.status_window import StatusSnapshot, render_png
@@ -199,15 +200,17 @@ class MainThread:
 
     def run_window(self, source: InputSource) -> None:
         handle = source.handle_event if isinstance(source, EventInput) else None
+        window = self.window
+        assert window is not None, "open_window first"
         try:
-            result = self.window.run(self.snapshot, on_event=handle, frame_hz=self.frame_hz,
+            result = window.run(self.snapshot, on_event=handle, frame_hz=self.frame_hz,
                                      should_stop=lambda: not self.watch())
             if result == "closed":
                 self.drive.request_end("the window was closed")
                 while self.watch():      # the loop settles the arm; nothing left to draw
                     time.sleep(0.01)
         finally:
-            self.window.close()
+            window.close()
 
     def run_headless(self, source: InputSource, out: TextIO) -> None:
         pump = source.pump if isinstance(source, PumpedInput) else None

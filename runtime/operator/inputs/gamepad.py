@@ -157,7 +157,8 @@ class GamepadSource:
         """Make an open pad the active one, reading its current state (lock held)."""
         pressed: set[Button] = {b for b in range(js.get_numbuttons()) if js.get_button(b)}
         for h in range(js.get_numhats()):
-            pressed |= hat_buttons(h, js.get_hat(h))
+            x, y = js.get_hat(h)
+            pressed |= hat_buttons(h, (int(x), int(y)))
         axes = [clamp_unit(js.get_axis(a)) for a in range(js.get_numaxes())]
         self._active = _Pad(iid, js.get_name(), axes, pressed)
         self.name = f"pad {js.get_name()!r} #{iid}"

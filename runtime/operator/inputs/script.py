@@ -135,8 +135,8 @@ def _segment(src: TomlSource, spec: Any, i: int, angle: float, arm: Arm | None) 
     if not isinstance(twist_raw, list) or len(twist_raw) != 6:
         raise src.error(f"must list 6 numbers (vx vy vz wx wy wz), got {twist_raw!r}",
                         f + "twist", *where, "twist")
-    twist = [finite_number(src, v, f + "twist", *where, "twist") for v in twist_raw]
-    twist = tuple(v if k < 3 else v * angle for k, v in enumerate(twist))
+    values = [finite_number(src, v, f + "twist", *where, "twist") for v in twist_raw]
+    twist = tuple(v if k < 3 else v * angle for k, v in enumerate(values))
     frame = spec.get("frame", "base")
     if frame not in FRAMES:
         raise src.error(f"got {frame!r}; use base or tool", f + "frame", *where, "frame")
