@@ -91,5 +91,3 @@ def open_source(spec: str, *, arm: Arm, stale_after_s: float) -> InputSource:
     from .keyboard import KeyboardSource
     return KeyboardSource()
 
-
-__all__ = ["INPUT_KINDS", "InputFrame", "InputSource", "open_source", "parse_input_spec"]
