@@ -68,14 +68,6 @@ def rot4(R: Mat3) -> Mat4:
     return T
 
 
-def inverse_transform(T: Mat4) -> Mat4:
-    """Closed-form inverse of a rigid transform: [Rᵀ, −Rᵀp]."""
-    Ti = np.eye(4)
-    Ti[:3, :3] = T[:3, :3].T
-    Ti[:3, 3] = -T[:3, :3].T @ T[:3, 3]
-    return Ti
-
-
 def rotation_aligning_z(axis: Sequence[float] | NDArray[np.float64]) -> Mat3:
     """A rotation R with R·ẑ = axis (unit). Used to give every joint a local z axis."""
     a = np.asarray(axis, dtype=float)

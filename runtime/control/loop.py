@@ -221,8 +221,14 @@ class FixedRateLoop:
         return self.stats()
 
     def _wait_until(self, deadline: float) -> None:
-        remaining = deadline - self._clock()
-        if remaining > self.spin_s:
-            self._sleep(remaining - self.spin_s)
-        while self._clock() < deadline:
-            pass
+        wait_until(deadline, self._clock, self._sleep, self.spin_s)
+
+
+def wait_until(deadline: float, clock: Callable[[], float],
+               sleep: Callable[[float], None] = time.sleep, spin_s: float = 3e-4) -> None:
+    """Sleep until `spin_s` before `deadline` (s on `clock`), then spin on the clock to it."""
+    remaining = deadline - clock()
+    if remaining > spin_s:
+        sleep(remaining - spin_s)
+    while clock() < deadline:
+        pass

@@ -395,6 +395,11 @@ def geometry_digest(arm: Arm) -> str:
     return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
 
 
+def rates_message(seq: int, t_ns: int, qd: Any, *, reduced: bool = False) -> Rates:
+    """Rates number `seq` stamped `t_ns`, with the reduced-speed flag when `reduced`."""
+    return Rates(seq=seq, t_ns=t_ns, qd=qd, flags=FLAG_REDUCED_SPEED if reduced else 0)
+
+
 def hello_for(arm: Arm, role: str, *, stale_after_s: float) -> Hello:
     """Our hello for `arm`, speaking as `role`."""
     return Hello(role=role, arm=arm.name, joints=arm.joint_names, digest=limits_digest(arm),

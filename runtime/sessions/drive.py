@@ -60,7 +60,6 @@ from ..control.pads import PadMapping
 from ..control.settings import RunSettings
 from ..link.arm_process import ArmProcess
 from ..link.protocol import (
-    FLAG_REDUCED_SPEED,
     Hello,
     Rates,
     RoundTripMeter,
@@ -69,6 +68,7 @@ from ..link.protocol import (
     encode,
     hello_differences,
     hello_for,
+    rates_message,
 )
 from ..link.transport import ArmClient, ClientKeys
 from ..operator.inputs import FiniteInput, InputSource, open_source
@@ -224,8 +224,8 @@ class DriveSession:
         self.stats.add_round_trip(rtt, self.settings.round_trip_limit_s)
         self.seq += 1
         sent = self._last_sent_s = self.clock()
-        self.client.send(Rates(seq=self.seq, t_ns=int(sent * 1e9), qd=out.rates,
-                               flags=FLAG_REDUCED_SPEED if out.intent.reduced else 0))
+        self.client.send(rates_message(self.seq, int(sent * 1e9), out.rates,
+                                       reduced=out.intent.reduced))
         if self.lockstep:
             self._await_applied(self.seq, sent + self.stale_after_s)
         if self.ending and not self._ending_first_seq:

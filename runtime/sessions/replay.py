@@ -11,22 +11,22 @@ from __future__ import annotations
 import math
 import time
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any, Sequence
 
 import numpy as np
 
 from ..arm.model import Arm
 from ..control.intent import InputFrame
+from ..control.loop import wait_until
 from ..errors import ConfigError, TransportError
-from ..link.protocol import FLAG_REDUCED_SPEED, Rates
+from ..link.protocol import rates_message
 from ..link.transport import ArmClient
 from ..operator.progress import Progress
 from .lockstep import LockstepSim, run_closed_loop
 from .recorder import CycleRecord
 from .rerun import CycleSettings, RecordedInputs
 
-__all__ = ["ReplayLink", "check_speed", "check_start", "paced_send", "rerun_closed_loop",
-           "wait_until"]
+__all__ = ["ReplayLink", "check_speed", "check_start", "paced_send", "rerun_closed_loop"]
 
 START_TOLERANCE = {"revolute": math.radians(1.0), "prismatic": 1e-3}   # rad, m
 STATE_TIMEOUT_S = 0.5       # no state from the target this long: stop sending
@@ -78,8 +78,8 @@ class ReplayLink:
 
     def send(self, qd: np.ndarray, reduced: bool = False) -> bool:
         self.seq += 1
-        return self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=qd,
-                                      flags=FLAG_REDUCED_SPEED if reduced else 0))
+        return self.client.send(rates_message(self.seq, time.monotonic_ns(), qd,
+                                              reduced=reduced))
 
 
 
@@ -147,7 +147,7 @@ def paced_send(link: ReplayLink, records: Sequence[CycleRecord], *, speed: float
         if k + 1 < n and clock() >= start + times[k + 1]:
             skipped += 1
             continue
-        wait_until(start + times[k], clock)
+        wait_until(start + times[k], clock, spin_s=SPIN_S)
         link.send(rates[k], records[k].reduced)
         sent += 1
         inbox = client.receive()
@@ -170,12 +170,3 @@ def paced_send(link: ReplayLink, records: Sequence[CycleRecord], *, speed: float
             "speed": speed, "wall_s": wall, "dropped_sends": client.send_dropped,
             "joints": [{"name": name, "max_pose_deviation": float(d)}
                        for name, d in zip(client.hello.joints, deviation)]}
-
-
-def wait_until(deadline: float, clock: Callable[[], float]) -> None:
-    """Sleep until SPIN_S before `deadline` (s on `clock`), then spin to it."""
-    remaining = deadline - clock()
-    if remaining > SPIN_S:
-        time.sleep(remaining - SPIN_S)
-    while clock() < deadline:
-        pass
