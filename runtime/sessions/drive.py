@@ -109,6 +109,8 @@ class DriveSession:
         self.settings = settings
         self.cycle = ControlCycle(arm, pad, settings)
         self.source = source
+        # a script ends: checked once here, not every cycle (a protocol isinstance is slow)
+        self._finite = source if isinstance(source, FiniteInput) else None
         self.client = client
         self.recorder = recorder
         self.clock = clock
@@ -282,8 +284,8 @@ class DriveSession:
     def _due_end(self, now: float) -> str | None:
         if self.duration_s is not None and self._elapsed_s(now) >= self.duration_s:
             return f"--duration {self.duration_s:g} s reached"
-        source = self.source
-        if isinstance(source, FiniteInput) and self.duration_s is None and source.finished(now):
+        finite = self._finite
+        if finite is not None and self.duration_s is None and finite.finished(now):
             if self._script_done_at is None:
                 self._script_done_at = now
             elif now - self._script_done_at >= SCRIPT_TAIL_S:
@@ -350,8 +352,8 @@ class DriveSession:
             notes.append("arm side: no fresh rates")
         if self.recorder is not None and self.recorder.failed:
             notes.append("RECORDING STOPPED")
-        if isinstance(self.source, FiniteInput):
-            name, elapsed_s, total_s = self.source.progress(now)
+        if self._finite is not None:
+            name, elapsed_s, total_s = self._finite.progress(now)
             notes.append(f"script {name} {elapsed_s:.1f} / {total_s:.1f} s")
         return " · ".join(notes)
 
