@@ -27,6 +27,7 @@ import numpy as np
 
 from ..arm.model import Arm
 from ..errors import ConfigError
+from ..operator.terminal import format_table, json_safe
 from ..sessions.recorder import CycleRecord, SessionHeader, SessionReader
 
 TWIST_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
@@ -59,7 +60,7 @@ def run(args: argparse.Namespace) -> int:
         if args.csv == "-":
             return 0
     if args.json:
-        print(json.dumps(_json_safe(summary), indent=2, allow_nan=False))
+        print(json.dumps(json_safe(summary), indent=2, allow_nan=False))
     else:
         print(format_summary(summary, degrees=args.deg))
     return 0
@@ -289,23 +290,6 @@ def _t(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
 
-def _json_safe(value: Any) -> Any:
-    """JSON has no inf, NaN or bytes: those become null and hex text."""
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, bytes):
-        return value.hex()
-    if isinstance(value, dict):
-        return {k: _json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
-    return value
-
-
-# ----------------------------------------------------------------------------------------
-# CSV
-# ----------------------------------------------------------------------------------------
-
 def csv_columns(stats: SessionStats) -> list[str]:
     names = stats.arm.joint_names
     return (["cycle", "t_s", "enabled", "enable_reason", "reduced", "frame"]
@@ -372,17 +356,6 @@ def _num(x: float | None, digits: int = 3, scale: float = 1.0) -> str:
 
 def _pct(x: float | None, of: float) -> str:
     return "—" if x is None or of <= 0 else f"{100.0 * x / of:.0f} %"
-
-
-def format_table(headers: list[str], rows: list[list[str]], indent: int = 2) -> list[str]:
-    """Columns aligned: the first left, the rest right."""
-    widths = [max(len(str(c)) for c in col) for col in zip(headers, *rows)]
-
-    def line(cells: list[str]) -> str:
-        parts = [f"{cells[0]:<{widths[0]}}"] + [f"{c:>{w}}" for c, w in zip(cells[1:],
-                                                                             widths[1:])]
-        return (" " * indent + "  ".join(parts)).rstrip()
-    return [line(headers)] + [line(r) for r in rows]
 
 
 def format_summary(s: dict[str, Any], *, degrees: bool = False) -> str:
