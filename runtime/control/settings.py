@@ -84,7 +84,8 @@ class RunSettings:
 
     @property
     def round_trip_limit_s(self) -> float:
-        return self.safety().round_trip_limit_s
+        """The round-trip limit in force (s): max_round_trip_s, else stale_after_s."""
+        return self.stale_after_s if self.max_round_trip_s is None else self.max_round_trip_s
 
     @property
     def closed_loop_lag(self) -> int:
