@@ -25,7 +25,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "probe": ("runtime.commands.probe",
               "kinematics at a pose: TCP pose, Jacobian, singular values"),
     "inspect": ("runtime.commands.inspect",
-                "summarise a recorded session log; export its cycle table"),
+                "summarise a session log, or list a folder of them"),
     "preflight": ("runtime.commands.preflight",
                   "prove a motion against the arm's ratings on the simulated arm: report and "
                   "verdict"),
@@ -33,6 +33,9 @@ COMMANDS: dict[str, tuple[str, str]] = {
                "send a recorded session to a target, or re-run it through today's pipeline"),
     "sim": ("runtime.commands.sim", "run the PyBullet simulated arm (the arm side of the wire)"),
     "bridge": ("runtime.commands.bridge", "run the hardware bridge stub around a Driver"),
+    "pads": ("runtime.commands.pads",
+             "the gamepads connected; check one against a pad file live, or teach jogwire a "
+             "new one"),
     "keys": ("runtime.commands.keys", "make CURVE key pairs for a link off this machine"),
     "relay": ("runtime.commands.relay",
               "a perturbing relay on the arm link: delay, loss, garbage, stalls"),

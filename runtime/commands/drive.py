@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 from pathlib import Path
 
@@ -21,7 +22,8 @@ from ..control.settings import RunSettings
 from ..errors import ConfigError
 from ..link.transport import check_endpoint, load_client_keys
 from ..operator.inputs import parse_input_spec
-from ..operator.terminal import format_summary, json_safe, say
+from ..operator.terminal import format_drive_summary, json_safe, say
+from ..sessions.archive import BYTES_PER_MB, SECONDS_PER_DAY, ArchiveCap
 from ..sessions.drive import REALTIME_PRIORITY, DriveInput, DriveTarget, run_drive
 from ..sessions.drive_ui import DEMO_SCRIPT, DriveUI, plan_input, probe_display_and_pads
 
@@ -37,7 +39,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="shipped arm name, arm .toml or .urdf (default elbow6)")
     parser.add_argument("--pad", metavar="PAD",
                         help="pad mapping: shipped name (twinstick, twinstick_sdl, keyboard) "
-                             "or a .toml (default twinstick for a pad, keyboard for keys)")
+                             "or a .toml (default for a pad: the shipped file SDL's layout "
+                             "of it fits, else twinstick; see `jogwire pads`; keyboard for "
+                             "keys)")
     parser.add_argument("--input", metavar="SPEC",
                         help="gamepad | keyboard | script:FILE | network:ENDPOINT (default: "
                              "a gamepad if one is plugged in, else the keyboard when a window "
@@ -56,6 +60,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-record", action="store_true", help="do not write a session log")
     parser.add_argument("--sessions", default="sessions", metavar="DIR",
                         help="where session logs go (default ./sessions)")
+    parser.add_argument("--sessions-max-mb", type=float, metavar="MB",
+                        help="at the start, remove the oldest session logs in --sessions until "
+                             "they take at most MB megabytes (never this session's; each "
+                             "removal is listed)")
+    parser.add_argument("--sessions-max-days", type=float, metavar="DAYS",
+                        help="at the start, remove session logs in --sessions older than DAYS "
+                             "days (never this session's; each removal is listed)")
     parser.add_argument("--gui", action="store_true",
                         help="open PyBullet's own window for the simulated arm")
     parser.add_argument("--lockstep", action="store_true",
@@ -101,6 +112,11 @@ def _check_options(args: argparse.Namespace) -> None:
                               field=flag)
     if args.keys is not None and args.target is None:
         raise ConfigError("--keys is for a --target off this host", field="keys")
+    for flag in ("sessions_max_mb", "sessions_max_days"):
+        value = getattr(args, flag)
+        if value is not None and not (math.isfinite(value) and value > 0):
+            raise ConfigError(f"--{flag.replace('_', '-')} must be positive, got {value:g}",
+                              field=flag.replace("_", "-"))
 
 
 def run(args: argparse.Namespace) -> int:
@@ -120,7 +136,11 @@ def run(args: argparse.Namespace) -> int:
     display, pads = probe_display_and_pads(args.headless, need_pads)
     plan = plan_input(args.input, headless=args.headless, display=display, pads=pads)
     kind, _ = parse_input_spec(plan.spec)
-    pad = load_pad(args.pad or DEFAULT_PADS.get(kind, "keyboard"))
+    pad_name, pad_note = args.pad or DEFAULT_PADS.get(kind, "keyboard"), ""
+    if args.pad is None and kind == "gamepad":    # the shipped file SDL says the pad fits
+        from ..operator.pad_check import pad_file_for_first_pad
+        pad_name, pad_note = pad_file_for_first_pad(pad_name)
+    pad = load_pad(pad_name)
     screenshot = None
     if args.screenshot:
         after = args.screenshot_after if args.screenshot_after is not None else \
@@ -129,16 +149,22 @@ def run(args: argparse.Namespace) -> int:
     if not args.no_record:             # a folder that cannot be made fails before the arm starts
         Path(args.sessions).mkdir(parents=True, exist_ok=True)
     out = sys.stdout
-    if plan.note:
-        say(out, f"jogwire drive: {plan.note}")
+    for note in (plan.note, pad_note):
+        if note:
+            say(out, f"jogwire drive: {note}")
+    cap = ArchiveCap(
+        max_bytes=None if args.sessions_max_mb is None
+        else int(args.sessions_max_mb * BYTES_PER_MB),
+        max_age_s=None if args.sessions_max_days is None
+        else args.sessions_max_days * SECONDS_PER_DAY)
     result = run_drive(settings, arm, DriveInput(plan.spec, pad),
                        DriveTarget(args.arm, args.target, keys, gui=args.gui,
                                    lockstep=args.lockstep),
                        DriveUI(plan.window, out, screenshot), duration_s=args.duration,
                        sessions_dir=None if args.no_record else args.sessions,
-                       realtime=args.realtime)
+                       sessions_cap=cap, realtime=args.realtime)
     summary = result.summary
-    say(out, format_summary(summary))
+    say(out, format_drive_summary(summary))
     if "screenshot" in summary:
         say(out, f"  screenshot {summary['screenshot']}")
     if args.json_file:

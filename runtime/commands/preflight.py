@@ -30,6 +30,7 @@ from ..control.settings import STATE_LAGS, RunSettings
 from ..errors import ConfigError
 from ..operator.terminal import format_table, json_safe
 from ..sessions.lockstep import substeps_for
+from ..sessions.log_schema import SESSION_SUFFIX
 from ..sessions.preflight import PreflightResult
 from ..sessions.preflight_run import (
     PreflightRun,
@@ -38,7 +39,6 @@ from ..sessions.preflight_run import (
     preflight_settings,
     run_preflight,
 )
-from ..sessions.recorder import SESSION_SUFFIX
 
 DEFAULT_OUT = "preflight"
 

@@ -49,6 +49,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                        help="axes the twist is given in (default base)")
     twist.add_argument("--reduced", action="store_true",
                        help="reduced-speed mode: TCP linear speed at most 0.25 m/s")
+    twist.add_argument("--rate", type=float, default=RunSettings.rate_hz, metavar="HZ",
+                       help="control rate the braking and acceleration limits are judged at "
+                            f"(default {RunSettings.rate_hz:g})")
     twist.add_argument("--lock", metavar="AXES", default="",
                        help="axes held still, e.g. wx,wy,wz to translate only")
 
@@ -209,7 +212,7 @@ def run(args: argparse.Namespace) -> int:
     if args.twist is not None:
         solution = solve(arm, q, parse_twist(args.twist), frame=args.frame,
                          locked=parse_axes(args.lock, field_name="lock"), reduced=args.reduced,
-                         dt_s=RunSettings().dt_s)   # one cycle at the drive's default rate
+                         dt_s=RunSettings(rate_hz=args.rate).dt_s)
     if args.json:
         data = probe_report(arm, q, report)
         if solution is not None:

@@ -49,7 +49,8 @@ from ..link.protocol import hello_for
 from ..link.transport import ArmClient, load_client_keys
 from ..operator.terminal import format_table
 from ..sessions.lockstep import arm_file_for
-from ..sessions.recorder import CycleRecord, Session, read_session
+from ..sessions.log_reader import Session, read_session
+from ..sessions.log_schema import CycleRecord
 from ..sessions.replay import ReplayLink, check_speed, check_start, paced_send, rerun_closed_loop
 from ..sessions.rerun import continuous_records, cycle_settings, inputs_of, rerun_open_loop
 

@@ -17,15 +17,14 @@ recorded rates exactly.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Mapping
 
 import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.kinematics import analyse_pose
 from ..arm.model import Arm
-from .intent import DirectCommand, InputFrame, Intent
-from .limits import apply_limits, binding_limit
+from .intent import InputFrame, Intent
+from .limits import apply_limits, binding_limit, start_pose
 from .mapping import Mapper
 from .pads import PadMapping
 from .safety import SafetyGate, Verdict
@@ -34,7 +33,7 @@ from .solver import Solution, solve
 
 Vector = NDArray[np.float64]
 
-__all__ = ["STATE_LAGS", "ControlCycle", "CycleOutput", "frame_from_wire", "frame_to_wire"]
+__all__ = ["STATE_LAGS", "ControlCycle", "CycleOutput"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,6 +53,8 @@ class ControlCycle:
         self.arm = arm
         self.settings = settings
         self.dt_s = settings.dt_s
+        # how far q lags the arm (limits.start_pose): as set for a lockstep run, else one cycle
+        self.state_lag_cycles = settings.closed_loop_lag
         self.locked = settings.locked_axes
         self.mapper = Mapper(pad, arm, reduced_locked=settings.reduced_locked)
         self.gate = SafetyGate(settings.safety())
@@ -83,7 +84,8 @@ class ControlCycle:
         else:
             solution = solve(self.arm, q, intent.twist, frame=intent.frame,
                              locked=self.locked, reduced=intent.reduced,
-                             prev_rates=self.prev_rates, dt_s=self.dt_s)
+                             prev_rates=self.prev_rates, dt_s=self.dt_s,
+                             state_lag_cycles=self.state_lag_cycles)
         self.prev_rates = solution.rates
         return CycleOutput(solution.rates, intent, verdict, solution)
 
@@ -92,42 +94,14 @@ class ControlCycle:
         rates = np.zeros(self.arm.n)
         rates[intent.joint] = intent.joint_rate
         pose = analyse_pose(self.arm, q)
-        limited = apply_limits(self.arm, q, rates, pose.jacobian, reduced=intent.reduced,
+        q_start = start_pose(q, self.prev_rates, self.dt_s, self.state_lag_cycles)
+        limited = apply_limits(self.arm, q_start, rates, pose.jacobian, reduced=intent.reduced,
                                prev_rates=self.prev_rates, dt_s=self.dt_s)
         return Solution(
             rates=limited.rates, damping=0.0, sigma_min=float(pose.singular_values[-1]),
             manipulability=pose.manipulability, commanded_twist=pose.jacobian @ rates,
             achieved_twist=limited.twist, tracking_error=0.0, tracking_error_linear=0.0,
             tracking_error_angular=0.0, scales=limited.scales,
-            binding_limit=binding_limit(limited.scales), saturated_joints=())
+            binding_limit=binding_limit(limited.scales), saturated_joints=(),
+            conflicts=limited.conflicts)
 
-
-# ----------------------------------------------------------------------------------------
-# Input frames as plain data (for the session log and re-runs)
-# ----------------------------------------------------------------------------------------
-
-def frame_to_wire(frame: InputFrame) -> dict[str, Any]:
-    """An InputFrame as msgpack-ready values; `frame_from_wire` gives it back exactly."""
-    c = frame.command
-    return {
-        "device": frame.device,
-        "present": frame.present,
-        "axes": [float(a) for a in frame.axes],
-        "pressed": sorted(frame.pressed, key=lambda b: (isinstance(b, str), str(b))),
-        "command": None if c is None else {
-            "twist": [float(v) for v in c.twist], "frame": c.frame, "enable": c.enable,
-            "reduced": c.reduced, "joint": c.joint, "joint_rate": float(c.joint_rate),
-            "stop": c.stop, "reset": c.reset},
-    }
-
-
-def frame_from_wire(m: Mapping[str, Any]) -> InputFrame:
-    c = m.get("command")
-    command = None if c is None else DirectCommand(
-        twist=tuple(float(v) for v in c["twist"]), frame=str(c["frame"]),
-        enable=bool(c["enable"]), reduced=bool(c["reduced"]),
-        joint=None if c["joint"] is None else int(c["joint"]),
-        joint_rate=float(c["joint_rate"]), stop=bool(c["stop"]), reset=bool(c["reset"]))
-    return InputFrame(device=str(m["device"]), present=bool(m["present"]),
-                      axes=tuple(float(a) for a in m["axes"]),
-                      pressed=frozenset(m["pressed"]), command=command)

@@ -46,7 +46,7 @@ from typing import Any, Callable, Iterable, NamedTuple
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ..arm.kinematics import jacobian_from_frames, joint_frames, tool_frame_jacobian, twist_to_base
+from ..arm.kinematics import pose_and_jacobian, tool_frame_jacobian, twist_to_base
 from ..arm.model import FRAMES, TASK_AXES, Arm
 from ..errors import ConfigError
 from .limits import (
@@ -56,6 +56,7 @@ from .limits import (
     binding_limit,
     clear_of_limits,
     pushing_into_limits,
+    start_pose,
 )
 
 Vector = NDArray[np.float64]
@@ -133,6 +134,7 @@ class Solution:
     scales            every limit factor in [0, 1] by name (limits.SCALE_NAMES)
     binding_limit     the name of the smallest factor below 1, or None
     saturated_joints  joints taken out of the solve because they sit at a position limit
+    conflicts         bounds that had to give way to another this cycle (limits.CONFLICTS)
     """
 
     rates: Vector
@@ -147,6 +149,7 @@ class Solution:
     scales: dict[str, float] = field(default_factory=dict)
     binding_limit: str | None = None
     saturated_joints: tuple[str, ...] = ()
+    conflicts: tuple[str, ...] = ()
 
     @property
     def scale(self) -> float:
@@ -338,7 +341,8 @@ def _lock_index(locked: tuple[str, ...]) -> NDArray[np.intp]:
 
 def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
-          prev_rates: Vector | None = None, dt_s: float) -> Solution:
+          prev_rates: Vector | None = None, dt_s: float,
+          state_lag_cycles: int = 1) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
     q           measured joint positions (n,), rad or m
@@ -348,6 +352,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     reduced     reduced-speed mode: TCP linear speed ≤ 0.25 m/s (ISO 10218-1)
     prev_rates  the rates sent last cycle (acceleration limit); None skips that limit
     dt_s        control period, s
+    state_lag_cycles  how many periods q lags the arm (0 or 1): the position limits are
+                judged from where the arm will be when these rates act (`start_pose`)
 
     Never raises or returns NaN for finite inputs of the right shapes (exact singularities
     and zero twists included). Wrong shapes, non-finite values, an unknown frame or axis
@@ -365,8 +371,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         v *= MAX_TWIST / size
         size = MAX_TWIST
 
-    frames, T = joint_frames(arm, q)
-    J = jacobian_from_frames(arm, frames, T)
+    T, J = pose_and_jacobian(arm, q)
     v_base = twist_to_base(v, T) if frame == "tool" else v
     if consts.full_task:
         Jt, vt = (tool_frame_jacobian(J, T) if frame == "tool" else J), v
@@ -374,7 +379,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         Jt, vt = J[arm.task_mask], v_base[arm.task_mask]
     moving = size > 0.0 and (consts.full_task or bool(vt.any()))
 
-    clear = clear_of_limits(consts.bounds, q, dt_s)
+    q_start = start_pose(q, prev_rates, dt_s, state_lag_cycles)
+    clear = clear_of_limits(consts.bounds, q_start, dt_s)
     z = None
     if moving and consts.nullspace and Jt.shape[0] < consts.n:  # z = k∇w (Siciliano 2009)
         inside = q if clear else np.minimum(np.maximum(q, consts.lower), consts.upper)
@@ -382,10 +388,11 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     first = DampedSolve(Jt, vt, z, consts.threshold, consts.damping_max)
     rates, damping, free = first.rates, first.damping, None
     if moving and not clear:
-        rates, damping, free = _resolve_at_limits(arm, q, Jt, vt, z, rates, damping, dt_s)
+        rates, damping, free = _resolve_at_limits(arm, q_start, Jt, vt, z, rates, damping,
+                                                  dt_s)
 
-    limited = apply_limits(arm, q, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
-                           clear=clear)
+    limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates,
+                           dt_s=dt_s, clear=clear)
     # Tracking error over the task rows; norms are the same in base and tool axes.
     e_lin = e_ang = 0.0
     for is_task, is_linear, a, c in zip(consts.task_axes, _IS_LINEAR, limited.twist.tolist(),
@@ -403,7 +410,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         achieved_twist=limited.twist, tracking_error=math.sqrt(e_lin + e_ang),
         tracking_error_linear=math.sqrt(e_lin), tracking_error_angular=math.sqrt(e_ang),
         scales=limited.scales, binding_limit=binding_limit(limited.scales),
-        saturated_joints=saturated)
+        saturated_joints=saturated, conflicts=limited.conflicts)
 
 
 def _checked(n: int, q: Vector, twist: Vector, frame: str, prev_rates: Vector | None,

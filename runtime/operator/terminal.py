@@ -1,14 +1,13 @@
-"""The terminal side of the operator: one live status line, the drive summary, aligned
-tables, JSON-ready values and a write that survives a closed pipe.
-
-Everything here takes plain values (a status snapshot, a summary dict, rows of text), never a
-session object, so every command and runner can print through it.
-"""
+"""Terminal text: the summary of `jogwire inspect LOG`, the table of `jogwire inspect DIR`,
+aligned tables and JSON-safe values; for a drive, one live status line, its end-of-session
+summary and a write that survives a closed pipe. Plain values in (dicts, a status snapshot,
+rows of text), never a session object; text out."""
 
 from __future__ import annotations
 
 import math
 import os
+import textwrap
 from typing import Any
 
 import numpy as np
@@ -16,9 +15,196 @@ import numpy as np
 from ..arm.kinematics import tcp_pose
 from ..control.loop import TimingStats
 
-__all__ = ["format_summary", "format_table", "json_safe", "say", "status_line",
-           "terminal_width"]
+__all__ = ["format_catalog", "format_drive_summary", "format_summary", "format_table",
+           "json_safe", "say", "status_line", "terminal_width"]
 
+
+def json_safe(value: Any) -> Any:
+    """JSON has no inf, NaN or bytes: those become null and hex text."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, bytes):
+        return value.hex()
+    if isinstance(value, dict):
+        return {k: json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [json_safe(v) for v in value]
+    return value
+
+
+def _num(x: float | None, digits: int = 3, scale: float = 1.0) -> str:
+    if x is None:
+        return "—"
+    if not math.isfinite(x):
+        return "inf" if x > 0 else "-inf"
+    return f"{round(x * scale, digits) + 0.0:.{digits}f}"
+
+
+def _pct(x: float | None, of: float) -> str:
+    return "—" if x is None or of <= 0 else f"{100.0 * x / of:.0f} %"
+
+
+def format_table(headers: list[str], rows: list[list[str]], indent: int = 2) -> list[str]:
+    """Columns aligned: the first left, the rest right."""
+    widths = [max(len(str(c)) for c in col) for col in zip(headers, *rows)]
+
+    def line(cells: list[str]) -> str:
+        parts = [f"{cells[0]:<{widths[0]}}"] + [f"{c:>{w}}" for c, w in zip(cells[1:],
+                                                                             widths[1:])]
+        return (" " * indent + "  ".join(parts)).rstrip()
+    return [line(headers)] + [line(r) for r in rows]
+
+
+def format_summary(s: dict[str, Any], *, degrees: bool = False) -> str:
+    """The human-readable summary of `jogwire inspect`."""
+    out = [f"session   {s['file']}",
+           f"recorded  {s['started_at']} with jogwire {s['software_version']} "
+           f"(session format {s['format_version']}, protocol "
+           f"{s['protocol_version'] if s['protocol_version'] is not None else 'unknown'})",
+           f"arm       {s['arm']}, {len(s['joints'])} joints"]
+    scalars = [f"{k}={v}" for k, v in s["settings"].items()
+               if isinstance(v, (str, int, float, bool)) or v is None]
+    if scalars:
+        out += textwrap.wrap(", ".join(scalars), width=96, initial_indent="settings  ",
+                             subsequent_indent="          ")
+    if s["cycles"] == 0:
+        out += ["", "no cycles recorded"]
+        out += _format_recorder(s)
+        return "\n".join(out)
+
+    dur = s["duration_s"]
+    rate = f", {s['rate_hz']:.1f} Hz mean" if s["rate_hz"] else ""
+    out += [f"cycles    {s['cycles']} over {dur:.2f} s{rate}",
+            f"enabled   {s['time_enabled_s']:.2f} s "
+            f"({_pct(s['time_enabled_s'], s['time_recorded_s'])})"
+            + (f"; reduced speed {s['time_reduced_s']:.2f} s" if s["time_reduced_s"] else ""),
+            ""]
+
+    out.append("joints    peaks vs max (commanded) and rated (hardware); "
+               "speed in unit/s, accel in unit/s²")
+    rows = []
+    for j in s["joints"]:
+        k = 180.0 / math.pi if degrees and j["unit"] == "rad" else 1.0
+        unit = "deg" if k != 1.0 else j["unit"]
+        flag = ", ".join(_flag(what, j[f"over_max_{what}"], j[f"over_rated_{what}"])
+                         for what in ("speed", "accel")
+                         if j[f"over_max_{what}"] or j[f"over_rated_{what}"])
+        rows.append([j["name"], unit,
+                     _num(j["peak_speed"], scale=k), _num(j["max_speed"], scale=k),
+                     _num(j["rated_speed"], scale=k), _pct(j["peak_speed"], j["rated_speed"]),
+                     _num(j["peak_accel"], scale=k), _num(j["max_accel"], scale=k),
+                     _num(j["rated_accel"], scale=k), _pct(j["peak_accel"], j["rated_accel"]),
+                     f"{_num(j['min_limit_distance'], scale=k)} {unit}", flag])
+    out += format_table(["joint", "unit", "peak speed", "max", "rated", "of rated",
+                         "peak accel", "max", "rated", "of rated", "closest to limit", ""],
+                        rows)
+
+    reduced = "" if s["tcp_peak_speed_reduced"] is None else \
+        f"; in reduced speed {_num(s['tcp_peak_speed_reduced'])} m/s"
+    out += ["",
+            f"TCP       peak linear speed {_num(s['tcp_peak_speed'])} m/s at "
+            f"t = {_num(s['tcp_peak_speed_t_s'], 2)} s (cap {_num(s['tcp_cap'])} m/s){reduced}",
+            f"          peak angular speed {_num(s['tcp_peak_angular_speed'])} rad/s "
+            f"(cap {_num(s['tcp_angular_cap'])} rad/s)",
+            f"σ_min     lowest {s['min_sigma']:.4g} at t = {_num(s['min_sigma_t_s'], 2)} s; "
+            f"damping active {s['time_damped_s']:.2f} s"]
+
+    if s["limit_events"]:
+        out += ["", "limits    cycles and episodes in which each limit bound"]
+        out += format_table(["limit", "cycles", "episodes"],
+                            [[e["limit"], str(e["cycles"]), str(e["episodes"])]
+                             for e in s["limit_events"]])
+    else:
+        out += ["", "limits    no limit bound"]
+    stops = s["stops"]
+    if stops:
+        out += ["", f"stops     {len(stops)} while moving: zero sent at once, the arm side "
+                    f"brakes (not counted as commanded accelerations)"]
+        out += [f"  t = {st['t_s']:.2f} s from {st['tcp_speed'] * 1e3:.1f} mm/s "
+                f"({st['reason']})" for st in stops[:10]]
+        if len(stops) > 10:
+            out.append(f"  … and {len(stops) - 10} more (--json lists all)")
+
+    loop = s["loop"]
+    out += ["",
+            f"loop      {loop['overruns']} overruns in {s['cycles']} cycles "
+            f"({100.0 * loop['overruns'] / s['cycles']:.2f} %); period mean "
+            f"{_ms(loop['period_mean_s'])}, p99 {_ms(loop['period_p99_s'])}, max "
+            f"{_ms(loop['period_max_s'])}",
+            f"          compute median {_ms(loop['compute_median_s'])}, p99 "
+            f"{_ms(loop['compute_p99_s'])}, max {_ms(loop['compute_max_s'])}"]
+    out += _format_recorder(s)
+    for kind in ("csv", "parquet"):
+        if kind in s:
+            out += ["", f"cycle table: {s[kind]['rows']} rows written to {s[kind]['path']}"]
+    return "\n".join(out)
+
+
+def _flag(what: str, over_max: bool, over_rated: bool) -> str:
+    return f"{what} OVER RATED" if over_rated else f"{what} above max"
+
+
+def _ms(x: float | None) -> str:
+    return "—" if x is None else f"{x * 1e3:.3f} ms"
+
+
+def _format_recorder(s: dict[str, Any]) -> list[str]:
+    rec = s["recorder"]
+    if rec["closed_cleanly"]:
+        state = f"closed cleanly; {rec['written']} records written, {rec['dropped']} dropped"
+    else:
+        state = "did not close cleanly (crash, kill or power loss)"
+    out = ["", f"recorder  {state}"]
+    if s["problems"]:
+        out.append(f"problems  {len(s['problems'])}")
+        out += [f"  {p['kind']} at byte {p['offset']}: {p['message']}" for p in s["problems"]]
+    else:
+        out.append("problems  none")
+    return out
+
+
+def format_catalog(rows: list[dict[str, Any]], *, filtered: bool = False) -> str:
+    """The table of `jogwire inspect DIR`: one line per session, oldest first."""
+    if not rows:
+        return "no session log matches the filters" if filtered else "no session logs found"
+    table, unreadable = [], []
+    for r in rows:
+        if "error" in r:
+            unreadable.append(f"  {r['file']}: {r['error']}")
+            continue
+        table.append([r["started_at"][:19].replace("T", " "), r["arm"],
+                      _duration(r["duration_s"]), _duration(r["time_moving_s"]),
+                      _num(r["tcp_peak_speed"]), _sigma(r["min_sigma"]),
+                      _num(r["min_clearance"]), str(r["limit_episodes"]),
+                      "yes" if r["closed_cleanly"] else "NO",
+                      str(r["problems"]) if r["problems"] else "", _name(r["file"])])
+    out = format_table(["started", "arm", "length", "moving", "TCP peak m/s", "σ_min",
+                        "clearance m", "limit episodes", "clean", "problems", "file"],
+                       table, indent=0) if table else []
+    if unreadable:
+        out += ["", "unreadable:"] + unreadable
+    return "\n".join(out)
+
+
+def _duration(s: float | None) -> str:
+    if s is None:
+        return "—"
+    minutes, seconds = divmod(round(s), 60)
+    return f"{minutes // 60}:{minutes % 60:02d}:{seconds:02d}" if minutes >= 60 \
+        else f"{minutes}:{seconds:02d}"
+
+
+def _sigma(x: float | None) -> str:
+    return "—" if x is None else f"{x:.3g}"
+
+
+def _name(path: str) -> str:
+    return path.rsplit("/", 1)[-1]
+
+
+# ----------------------------------------------------------------------------------------
+# A drive: the live status line and the end-of-session summary
+# ----------------------------------------------------------------------------------------
 
 def status_line(snap: Any, timing: TimingStats | None) -> str:
     """One line for the terminal from a status snapshot, most important first (a narrow
@@ -45,11 +231,11 @@ def status_line(snap: Any, timing: TimingStats | None) -> str:
     return " | ".join(parts)
 
 
-def _ms(x: float | None, digits: int = 2) -> str:
+def _milli(x: float | None, digits: int = 2) -> str:
     return "—" if x is None else f"{x * 1e3:.{digits}f}"
 
 
-def format_summary(m: dict[str, Any]) -> str:
+def format_drive_summary(m: dict[str, Any]) -> str:
     """The end-of-session summary of `jogwire drive` for the terminal, from the plain dict
     `runtime.sessions.drive.build_summary` makes."""
     loop, link = m["loop"], m["link"]
@@ -61,19 +247,19 @@ def format_summary(m: dict[str, Any]) -> str:
            f"  target    {m['target']}",
            f"  cycles    {m['cycles']} at {m['rate_hz']:g} Hz ({m['thread_priority']} "
            f"priority); gate: {gate}",
-           f"  loop      period p50 {_ms(loop['period_p50_s'], 3)} / p99 "
-           f"{_ms(loop['period_p99_s'], 3)} / max {_ms(loop['period_max_s'], 3)} ms, compute "
-           f"p50 {_ms(loop['compute_p50_s'], 3)} / p99 {_ms(loop['compute_p99_s'], 3)} ms; "
+           f"  loop      period p50 {_milli(loop['period_p50_s'], 3)} / p99 "
+           f"{_milli(loop['period_p99_s'], 3)} / max {_milli(loop['period_max_s'], 3)} ms, compute "
+           f"p50 {_milli(loop['compute_p50_s'], 3)} / p99 {_milli(loop['compute_p99_s'], 3)} ms; "
            f"overruns {loop['overruns']} ({100 * loop['overrun_fraction']:.2f} %), longest "
            f"streak {loop['max_overrun_streak']}{window}"]
     age, rtt = link["state_age"], link["round_trip"]
-    out.append(f"  link      state age p50 {_ms(age['p50_s'])} / p99 {_ms(age['p99_s'])} ms, "
-               f"round trip p50 {_ms(rtt['p50_s'])} / p99 {_ms(rtt['p99_s'])} ms (rates sent → "
-               f"state showing them applied)")
+    out.append(f"  link      state age p50 {_milli(age['p50_s'])} / p99 {_milli(age['p99_s'])} ms, "
+               f"round trip p50 {_milli(rtt['p50_s'])} / p99 {_milli(rtt['p99_s'])} ms "
+               "(rates sent → state showing them applied)")
     if link["round_trip_over_limit_s"] > 0:
-        out.append(f"            ROUND TRIP over the {_ms(link['round_trip_limit_s'], 0)} ms "
+        out.append(f"            ROUND TRIP over the {_milli(link['round_trip_limit_s'], 0)} ms "
                    f"limit for {link['round_trip_over_limit_s']:.1f} s (median up to "
-                   f"{_ms(link['round_trip_worst_median_s'], 0)} ms): motion refused then")
+                   f"{_milli(link['round_trip_worst_median_s'], 0)} ms): motion refused then")
     dropped = sum(link["states_dropped"].values()) + link["states_refused"]
     out.append(f"            {link['states']} states, {dropped} dropped or refused, "
                f"{link['rates_not_sent']} rates not sent, arm side limited "
@@ -104,30 +290,6 @@ def format_summary(m: dict[str, Any]) -> str:
             state += f"; recording FAILED: {ses['failed']}"
         out.append(f"  session   {ses['path']} ({state}); see `jogwire inspect {ses['path']}`")
     return "\n".join(out)
-
-
-def format_table(headers: list[str], rows: list[list[str]], indent: int = 2) -> list[str]:
-    """Columns aligned: the first left, the rest right."""
-    widths = [max(len(str(c)) for c in col) for col in zip(headers, *rows)]
-
-    def line(cells: list[str]) -> str:
-        parts = [f"{cells[0]:<{widths[0]}}"] + [f"{c:>{w}}" for c, w in zip(cells[1:],
-                                                                             widths[1:])]
-        return (" " * indent + "  ".join(parts)).rstrip()
-    return [line(headers)] + [line(r) for r in rows]
-
-
-def json_safe(value: Any) -> Any:
-    """JSON has no inf, NaN or bytes: those become null and hex text."""
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, bytes):
-        return value.hex()
-    if isinstance(value, dict):
-        return {k: json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [json_safe(v) for v in value]
-    return value
 
 
 def say(out: Any, text: str, end: str = "\n") -> None:

@@ -1,9 +1,7 @@
-"""Runs and their log: a drive session (its loop body, main thread and statistics), preflight
-(the run, its judgement and its report), replays and re-runs, lockstep with the simulated
-arm, and the session recorder.
+"""Runs and their records: a drive session (its loop body, main thread and statistics), the
+session log (schema, writer, reader, blocks, archive, catalog, export, summary), re-runs,
+replays, lockstep runs, preflight (the run, its judgement and its report) and the one
+statistics engine.
 
 May import the control cycle, the link, the arm and the operator's side; never commands.
 """
-
-__all__ = ["drive", "drive_stats", "drive_ui", "lockstep", "preflight", "preflight_run", "recorder",
-           "replay", "report", "rerun"]

@@ -47,7 +47,7 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, TextIO
 
 import numpy as np
 
@@ -73,9 +73,11 @@ from ..link.protocol import (
 from ..link.transport import ArmClient, ClientKeys
 from ..operator.inputs import FiniteInput, InputSource, open_source
 from ..operator.terminal import say
+from .archive import BYTES_PER_MB, ArchiveCap, prune_sessions
 from .drive_stats import RunStats
 from .drive_ui import DriveUI, MainThread, StopSignals
-from .recorder import SessionRecorder, cycle_record, new_session_path
+from .log_schema import cycle_record
+from .log_writer import SessionRecorder, new_session_path
 
 __all__ = ["DriveInput", "DriveResult", "DriveSession", "DriveTarget", "build_summary",
            "enter_realtime", "run_drive", "sim_child_options", "warm_up"]
@@ -474,6 +476,15 @@ class DriveResult:
     child_exit: int | None         # the simulated arm's exit status if it ended early
 
 
+def _cap_sessions(out: TextIO, folder: str | Path, cap: ArchiveCap, current: Path) -> None:
+    """Trim the sessions folder to `cap` (never the session just started), saying what went
+    (and what could not be removed)."""
+    for r in prune_sessions(folder, cap, keep=current, now_s=time.time()):
+        what = f"{r.path.name} ({r.size_bytes / BYTES_PER_MB:.1f} MB, {r.reason})"
+        say(out, f"jogwire drive: sessions: could not remove {what}: {r.error}" if r.error
+            else f"jogwire drive: sessions: removed {what}")
+
+
 def sim_child_options(settings: RunSettings, target: DriveTarget,
                       duration_s: float | None) -> list[str]:
     """The simulated arm's command line: its watchdog is our stale_after; in lockstep it
@@ -491,9 +502,11 @@ def sim_child_options(settings: RunSettings, target: DriveTarget,
 def run_drive(settings: RunSettings, arm: Arm, source: DriveInput, target: DriveTarget,
               ui: DriveUI, *, duration_s: float | None = None,
               sessions_dir: str | Path | None = "sessions",
+              sessions_cap: ArchiveCap | None = None,
               realtime: bool = False) -> DriveResult:
     """Drive `arm` from `source` until a stop (duration, end of a script, window closed,
-    a signal, the arm side gone); record the session to `sessions_dir` (None: no log)."""
+    a signal, the arm side gone); record the session to `sessions_dir` (None: no log),
+    whose older logs `sessions_cap` trims at the start."""
     out = ui.out
     clock = time.perf_counter
     with contextlib.ExitStack() as stack:
@@ -548,6 +561,8 @@ def run_drive(settings: RunSettings, arm: Arm, source: DriveInput, target: Drive
             recorder = SessionRecorder.start(session_path, arm, header,
                                              started_monotonic_ns=int(started * 1e9))
             stack.callback(recorder.close)
+            if sessions_cap is not None:
+                _cap_sessions(out, sessions_dir, sessions_cap, session_path)
 
         drive = DriveSession(arm=arm, pad=source.pad, settings=settings, source=input_source,
                              client=client, recorder=recorder, clock=clock,

@@ -27,8 +27,10 @@ from ..errors import ConfigError, LogError
 from ..operator.inputs.script import ScriptSource, load_script
 from ..operator.progress import Progress
 from .lockstep import LockstepSim, run_closed_loop
+from .log_reader import read_session
+from .log_schema import SESSION_SUFFIX, cycle_record
+from .log_writer import SessionRecorder
 from .preflight import Finding, PreflightResult, TraceBuilder, evaluate
-from .recorder import SESSION_SUFFIX, SessionRecorder, cycle_record, read_session
 from .rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
 
 __all__ = ["PreflightRun", "Profile", "load_profile", "preflight_settings", "run_preflight"]

@@ -23,7 +23,7 @@ from ..link.protocol import rates_message
 from ..link.transport import ArmClient
 from ..operator.progress import Progress
 from .lockstep import LockstepSim, run_closed_loop
-from .recorder import CycleRecord
+from .log_schema import CycleRecord
 from .rerun import CycleSettings, RecordedInputs
 
 __all__ = ["ReplayLink", "check_speed", "check_start", "paced_send", "rerun_closed_loop"]

@@ -27,13 +27,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.model import Arm
-from ..control.cycle import ControlCycle, frame_from_wire
+from ..control.cycle import ControlCycle
 from ..control.intent import InputFrame
 from ..control.pads import PadMapping, load_pad
 from ..control.safety import BLOCKED
 from ..control.settings import RunSettings
 from ..errors import ConfigError, LogError
-from .recorder import BAD_RECORD, CORRUPT, GAP, CycleRecord, Session
+from .log_reader import BAD_RECORD, CORRUPT, GAP, Session
+from .log_schema import CycleRecord, frame_from_wire
 
 Vector = NDArray[np.float64]
 

@@ -18,7 +18,7 @@ from runtime.errors import ConfigError
 from runtime.link.protocol import State
 from runtime.link.transport import Inbox
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.operator.terminal import format_summary
+from runtime.operator.terminal import format_drive_summary
 from runtime.sessions.drive import SETTLE_TIMEOUT_S, DriveSession, build_summary, enter_realtime
 from runtime.sessions.drive_stats import LogHistogram
 from runtime.sessions.drive_ui import plan_input
@@ -158,7 +158,7 @@ def test_summary_reads_as_a_report(fake_clock):
     m = build_summary(drive, timing, priority="normal", input_name="script square",
                       target="ideal", recorder_stats=None, session_path=None, arm_side_log="",
                       started_s=0.0, ended_s=1.5)
-    text = format_summary(m)
+    text = format_drive_summary(m)
     assert "--duration 1.5 s reached after 1.5 s" in text
     assert "base_yaw" in text and "not recorded" in text
     assert m["tcp_peak_m_s"] == pytest.approx(0.05, rel=1e-6)   # the square's 5 cm/s

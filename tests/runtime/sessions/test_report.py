@@ -13,8 +13,8 @@ import pytest
 
 from runtime.arm.kinematics import geometric_jacobian
 from runtime.arm.load import load_arm
+from runtime.sessions.log_schema import CycleRecord
 from runtime.sessions.preflight import TraceBuilder, evaluate
-from runtime.sessions.recorder import CycleRecord
 from runtime.sessions.report import (
     PLOT_NAMES,
     ReportContext,

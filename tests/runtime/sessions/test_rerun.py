@@ -21,7 +21,9 @@ from runtime.control.safety import BLOCKED
 from runtime.control.settings import RunSettings
 from runtime.errors import LogError
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
+from runtime.sessions.log_reader import read_session
+from runtime.sessions.log_schema import cycle_record
+from runtime.sessions.log_writer import SessionRecorder
 from runtime.sessions.rerun import (
     RecordedInputs,
     continuous_records,
