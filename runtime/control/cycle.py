@@ -54,7 +54,7 @@ class ControlCycle:
         self.settings = settings
         self.dt_s = settings.dt_s
         # how far q lags the arm (limits.start_pose): as set for a lockstep run, else one cycle
-        self.state_lag_cycles = settings.closed_loop_lag
+        self.state_lag_cycles = settings.effective_state_lag
         self.locked = settings.locked_axes
         self.mapper = Mapper(pad, arm, reduced_locked=settings.reduced_locked)
         self.gate = SafetyGate(settings.safety())

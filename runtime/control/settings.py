@@ -45,7 +45,8 @@ class RunSettings:
     reduced_locked: reduced speed on for the whole run.
     locked_axes: task axes held at zero ("x", "y", "z", "rx", "ry", "rz").
     state_lag_cycles: a closed-loop run on the simulated arm in lockstep: cycles the measured
-        pose lags behind the arm (0 or 1); None for a run over a link.
+        pose lags behind the arm (0 or 1); None for a run over a link (`effective_state_lag`
+        is then 1).
     """
 
     rate_hz: float = 500.0
@@ -88,9 +89,10 @@ class RunSettings:
         return self.stale_after_s if self.max_round_trip_s is None else self.max_round_trip_s
 
     @property
-    def closed_loop_lag(self) -> int:
-        """The state lag of a closed-loop re-run: as recorded, else 1 (a run over a link
-        sees its state at least a cycle late)."""
+    def effective_state_lag(self) -> int:
+        """Cycles the measured pose lags behind the arm, as the cycle's limits assume it
+        (`limits.start_pose`) and a closed-loop re-run reproduces it: as set, else 1 (a run
+        over a link sees its state at least a cycle late)."""
         return 1 if self.state_lag_cycles is None else self.state_lag_cycles
 
     def safety(self) -> SafetySettings:

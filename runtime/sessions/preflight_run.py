@@ -113,7 +113,7 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
 
     settings.state_lag_cycles: cycles the measured pose lags behind the arm
     (`lockstep.run_closed_loop`; None counts as 1)."""
-    settings = replace(settings, state_lag_cycles=settings.closed_loop_lag)
+    settings = replace(settings, state_lag_cycles=settings.effective_state_lag)
     rate_hz, reduced = settings.rate_hz, settings.reduced_locked
     pad = load_pad(profile.pad_source) if Path(profile.pad_source).exists() \
         else load_pad(profile.pad_name)
@@ -147,7 +147,7 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
             computes[k] = compute_s
 
         for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles,
-                                 state_lag=settings.closed_loop_lag, prepare=prepare):
+                                 state_lag=settings.effective_state_lag, prepare=prepare):
             trace.add_state(c.after.q, c.after.qd, c.after.limited, cycle=c.k)
             bar.update((c.k + 1) * dt)
         bar.close()

@@ -50,7 +50,7 @@ def rerun_closed_loop(settings: CycleSettings, records: Sequence[CycleRecord],
     with LockstepSim(arm_spec, arm, rate_hz=settings.run.rate_hz, step_hz=step_hz,
                      start_q=start_q) as sim:
         for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
-                                 state_lag=settings.run.closed_loop_lag):
+                                 state_lag=settings.run.effective_state_lag):
             rates[c.k] = c.out.rates
             q_dev = np.maximum(q_dev, np.abs(c.q_used - recorded_q[c.k]))
             bar.update((c.k + 1) * cycle.dt_s)

@@ -146,8 +146,8 @@ def test_settings_without_a_rate_cannot_be_rerun():
 
 
 def test_the_state_lag_is_read_with_a_default_of_one_cycle():
-    assert cycle_settings({"rate_hz": 500}).run.closed_loop_lag == 1   # a drive session
-    assert cycle_settings({"rate_hz": 500, "state_lag_cycles": 0}).run.closed_loop_lag == 0
+    assert cycle_settings({"rate_hz": 500}).run.effective_state_lag == 1   # a drive session
+    assert cycle_settings({"rate_hz": 500, "state_lag_cycles": 0}).run.effective_state_lag == 0
     for bad in (2, True, "1"):
         with pytest.raises(LogError, match="state_lag_cycles"):
             cycle_settings({"rate_hz": 500, "state_lag_cycles": bad})
