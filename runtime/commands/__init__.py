@@ -5,4 +5,5 @@ link, the arm) and turns the outcome into an exit status. Commands may import an
 but never each other; errors are mapped to exit statuses in ``runtime.cli`` alone.
 """
 
-__all__ = ["bridge", "drive", "inspect", "keys", "preflight", "probe", "relay", "replay", "sim"]
+__all__ = ["bridge", "drive", "inspect", "keys", "pads", "preflight", "probe", "relay", "replay",
+           "sim"]
