@@ -96,7 +96,7 @@ def write_csv(log: Path, target: str, stats: SessionStats) -> int:
                 writer.writerows(zip(*(_csv_cells(cols[name]) for name in names)))
                 rows += block.n
     except OSError as exc:
-        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="--csv"
+        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="csv"
                           ) from None
     return rows
 
@@ -128,7 +128,7 @@ def write_parquet(log: Path, target: str, stats: SessionStats) -> int:
         import pyarrow as pa
         import pyarrow.parquet as pq
     except ImportError:
-        raise ConfigError(PYARROW_MISSING, field="--parquet") from None
+        raise ConfigError(PYARROW_MISSING, field="parquet") from None
     schema = pa.schema([(name, _arrow_type(pa, name)) for name in table_columns(stats)])
     rows = 0
     try:
@@ -139,7 +139,7 @@ def write_parquet(log: Path, target: str, stats: SessionStats) -> int:
                                              for f in schema}, schema=schema))
                 rows += block.n
     except OSError as exc:
-        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="--parquet"
+        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="parquet"
                           ) from None
     return rows
 
