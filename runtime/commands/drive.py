@@ -70,6 +70,7 @@ from ..link.protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, St
     StateFreshness, encode, hello_differences, hello_for
 from ..sessions.log_writer import SessionRecorder, new_session_path
 from ..sessions.log_schema import cycle_record
+from ..sessions.stats import MotionStats, above
 from ..sessions.archive import BYTES_PER_MB, SECONDS_PER_DAY, ArchiveCap, prune_sessions
 from ..control.safety import SafetySettings
 from ..link.transport import ArmClient, check_endpoint, load_client_keys
@@ -295,8 +296,11 @@ class LogHistogram:
 class RunStats:
     """What the summary reports, gathered by the loop thread cycle by cycle."""
 
-    def __init__(self, arm: Arm) -> None:
+    def __init__(self, arm: Arm, rate_hz: float) -> None:
         self.gate_cycles: Counter[str] = Counter()
+        # accelerations and stops: the analysis inspect and preflight use (sessions/stats.py)
+        self.motion = MotionStats(arm.joint_names, arm.max_accel, rate_hz)
+        self.conflicts: Counter[str] = Counter()       # limits.CONFLICTS, in cycles
         self.limits: dict[str, list[int]] = {}         # name → [cycles, episodes]
         self._last_limit: str | None = None
         self.peak_commanded = np.zeros(arm.n)          # |rates| sent (rad/s or m/s)
@@ -311,7 +315,8 @@ class RunStats:
         self.arm_limited = 0                           # states in which the arm side limited
         self.states = 0
 
-    def add_cycle(self, out: CycleOutput) -> None:
+    def add_cycle(self, out: CycleOutput, index: int, t_s: float) -> None:
+        """One cycle: its number and time (s since the start) as the log records them."""
         self.gate_cycles[out.verdict.state] += 1
         np.maximum(self.peak_commanded, np.abs(out.rates), out=self.peak_commanded)
         sol = out.solution
@@ -322,11 +327,16 @@ class RunStats:
             if name != self._last_limit:
                 counts[1] += 1
         self._last_limit = name
+        linear = 0.0
         if sol is not None:
             a = sol.achieved_twist
-            self.tcp_peak_m_s = max(self.tcp_peak_m_s, math.sqrt(a[0]**2 + a[1]**2 + a[2]**2))
+            linear = math.sqrt(a[0]**2 + a[1]**2 + a[2]**2)
+            self.tcp_peak_m_s = max(self.tcp_peak_m_s, linear)
+            self.conflicts.update(sol.conflicts)
             self.tcp_peak_rad_s = max(self.tcp_peak_rad_s,
                                       math.sqrt(a[3]**2 + a[4]**2 + a[5]**2))
+        self.motion.add_cycle(index, t_s, out.rates, out.verdict.allowed, out.verdict.reason,
+                              linear)
 
     def add_round_trip(self, level_s: float | None, limit_s: float) -> None:
         """One cycle's round-trip median (s, None before the first) against the limit."""
@@ -366,7 +376,7 @@ class DriveSession:
         self.same_clock = same_clock
         self.target = target
         self.lockstep = lockstep
-        self.stats = RunStats(arm)
+        self.stats = RunStats(arm, rate_hz)
         self.freshness = StateFreshness(stale_after_s)
         self.round_trip = RoundTripMeter()
         self.publish_every = max(1, round(rate_hz / SNAPSHOT_HZ))
@@ -476,7 +486,7 @@ class DriveSession:
         if self.ending and not self._ending_first_seq:
             self._ending_first_seq = self.seq
         self.stats.read_to_send.add(sent - now)
-        self.stats.add_cycle(out)
+        self.stats.add_cycle(out, tick.index, now - self.t0)
         # (a state that came in after `now` was read has a stamp a little after it)
         age = None if self.state_stamp_s is None else max(now - self.state_stamp_s, 0.0)
         if age is not None:
@@ -666,10 +676,18 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
                   arm_side_log: str, started_s: float, ended_s: float) -> dict[str, Any]:
     arm, s = drive.arm, drive.stats
     period_s = 1.0 / timing.rate_hz
+    m = s.motion
+    m.flush()
     joints = [{"name": j.name, "unit": "rad/s" if j.is_revolute else "m/s",
                "peak_commanded": float(s.peak_commanded[i]),
                "peak_measured": float(s.peak_measured[i]),
-               "max_speed": j.max_speed, "rated_speed": j.rated_speed}
+               "max_speed": j.max_speed, "rated_speed": j.rated_speed,
+               "peak_accel": float(m.peak_accel[i]),
+               "peak_accel_t_s": None if math.isnan(m.peak_accel_t[i])
+               else float(m.peak_accel_t[i]),
+               "max_accel": j.max_accel, "rated_accel": j.rated_accel,
+               "over_max_accel": above(float(m.peak_accel[i]), j.max_accel),
+               "over_rated_accel": above(float(m.peak_accel[i]), j.rated_accel)}
               for i, j in enumerate(arm.joints)]
     return {
         "arm": arm.name, "input": input_name, "target": target,
@@ -699,6 +717,8 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
         "tcp_peak_rad_s": s.tcp_peak_rad_s, "tcp_cap_rad_s": arm.tcp_max_angular_rad_s,
         "limits": {k: {"cycles": c, "episodes": e} for k, (c, e) in
                    sorted(s.limits.items(), key=lambda kv: -kv[1][0])},
+        "conflicts": dict(sorted(s.conflicts.items())),
+        "stops": [stop.as_dict() for stop in m.stops],
         "session": None if session_path is None else {
             "path": str(session_path), "written": recorder_stats.written,
             "dropped": recorder_stats.dropped, "lost": recorder_stats.lost,
@@ -747,12 +767,25 @@ def format_summary(m: dict[str, Any]) -> str:
         out.append(f"    {j['name']:<{width}}  {j['peak_commanded'] * k:7.1f} / "
                    f"{j['peak_measured'] * k:7.1f}  of {j['max_speed'] * k:6.1f} / "
                    f"{j['rated_speed'] * k:6.1f} {unit:4s}  ({pct:3.0f} % of rated)")
+    out.append("  accel     peak commanded against max / rated (stops apart)")
+    for j in m["joints"]:
+        k, unit = (180.0 / math.pi, "°/s²") if j["unit"] == "rad/s" else (1e3, "mm/s²")
+        flag = "  OVER RATED" if j["over_rated_accel"] else \
+            "  above max" if j["over_max_accel"] else ""
+        out.append(f"    {j['name']:<{width}}  {j['peak_accel'] * k:7.1f}  of "
+                   f"{j['max_accel'] * k:6.1f} / {j['rated_accel'] * k:6.1f} {unit}{flag}")
     out.append(f"  TCP       peak {m['tcp_peak_m_s'] * 1e3:.1f} mm/s commanded (cap "
                f"{m['tcp_cap_m_s'] * 1e3:.0f} mm/s), {math.degrees(m['tcp_peak_rad_s']):.1f} °/s "
                f"(cap {math.degrees(m['tcp_cap_rad_s']):.0f} °/s)")
     limits = ", ".join(f"{k} {v['cycles']} cycles in {v['episodes']} episodes"
                        for k, v in m["limits"].items()) or "no limit bound"
     out.append(f"  limits    {limits}")
+    if m["conflicts"]:
+        out.append("            gave way: " + ", ".join(f"{k} {v} cycles" for k, v in
+                                                     m["conflicts"].items()))
+    if m["stops"]:
+        out.append(f"  stops     {len(m['stops'])} while moving: zero sent at once, the arm "
+                   f"side brakes (not counted as commanded accelerations)")
     out.append(f"  stop      {m['stop']}")
     if m["arm_side"]:
         out.append(f"  arm side  {m['arm_side']}")
