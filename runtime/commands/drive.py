@@ -300,7 +300,6 @@ class RunStats:
         self.gate_cycles: Counter[str] = Counter()
         # accelerations and stops: the analysis inspect and preflight use (sessions/stats.py)
         self.motion = MotionStats(arm.joint_names, arm.max_accel, rate_hz)
-        self.conflicts: Counter[str] = Counter()       # limits.CONFLICTS, in cycles
         self.limits: dict[str, list[int]] = {}         # name → [cycles, episodes]
         self._last_limit: str | None = None
         self.peak_commanded = np.zeros(arm.n)          # |rates| sent (rad/s or m/s)
@@ -332,7 +331,6 @@ class RunStats:
             a = sol.achieved_twist
             linear = math.sqrt(a[0]**2 + a[1]**2 + a[2]**2)
             self.tcp_peak_m_s = max(self.tcp_peak_m_s, linear)
-            self.conflicts.update(sol.conflicts)
             self.tcp_peak_rad_s = max(self.tcp_peak_rad_s,
                                       math.sqrt(a[3]**2 + a[4]**2 + a[5]**2))
         self.motion.add_cycle(index, t_s, out.rates, out.verdict.allowed, out.verdict.reason,
@@ -717,7 +715,6 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
         "tcp_peak_rad_s": s.tcp_peak_rad_s, "tcp_cap_rad_s": arm.tcp_max_angular_rad_s,
         "limits": {k: {"cycles": c, "episodes": e} for k, (c, e) in
                    sorted(s.limits.items(), key=lambda kv: -kv[1][0])},
-        "conflicts": dict(sorted(s.conflicts.items())),
         "stops": [stop.as_dict() for stop in m.stops],
         "session": None if session_path is None else {
             "path": str(session_path), "written": recorder_stats.written,
@@ -780,9 +777,6 @@ def format_summary(m: dict[str, Any]) -> str:
     limits = ", ".join(f"{k} {v['cycles']} cycles in {v['episodes']} episodes"
                        for k, v in m["limits"].items()) or "no limit bound"
     out.append(f"  limits    {limits}")
-    if m["conflicts"]:
-        out.append("            gave way: " + ", ".join(f"{k} {v} cycles" for k, v in
-                                                     m["conflicts"].items()))
     if m["stops"]:
         out.append(f"  stops     {len(m['stops'])} while moving: zero sent at once, the arm "
                    f"side brakes (not counted as commanded accelerations)")
