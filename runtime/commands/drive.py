@@ -780,6 +780,14 @@ def format_summary(m: dict[str, Any]) -> str:
     if m["stops"]:
         out.append(f"  stops     {len(m['stops'])} while moving: zero sent at once, the arm "
                    f"side brakes (not counted as commanded accelerations)")
+        scale = {j["name"]: (180.0 / math.pi, "°/s²") if j["unit"] == "rad/s" else
+                 (1.0, "m/s²") for j in m["joints"]}
+        for st in m["stops"][:5]:
+            k, unit = scale[st["joint"]]
+            out.append(f"            t = {st['t_s']:.2f} s from {st['tcp_speed'] * 1e3:.1f} "
+                       f"mm/s ({st['reason']}): {st['joint']} would brake at "
+                       f"{st['asked_decel'] * k:.1f} {unit} if the arm followed the zero "
+                       f"literally")
     out.append(f"  stop      {m['stop']}")
     if m["arm_side"]:
         out.append(f"  arm side  {m['arm_side']}")
