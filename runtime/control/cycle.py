@@ -102,6 +102,6 @@ class ControlCycle:
             manipulability=pose.manipulability, commanded_twist=pose.jacobian @ rates,
             achieved_twist=limited.twist, tracking_error=0.0, tracking_error_linear=0.0,
             tracking_error_angular=0.0, scales=limited.scales,
-            binding_limit=binding_limit(limited.scales), saturated_joints=(),
+            binding_limit=binding_limit(limited.scales, limited.conflicts), saturated_joints=(),
             conflicts=limited.conflicts)
 

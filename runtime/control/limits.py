@@ -447,8 +447,12 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
     return Limited(r, twist, scales, conflicts)
 
 
-def binding_limit(scales: dict[str, float]) -> str | None:
-    """The name of the smallest factor below 1 (the first in order on a tie), or None."""
+def binding_limit(scales: dict[str, float], conflicts: tuple[str, ...] = ()) -> str | None:
+    """What limited this cycle, by name: the bound that won a conflict (`CONFLICTS`) if two
+    could not both hold, else the smallest factor below 1 (the first in order on a tie), or
+    None. The cycle's log record keeps this name, so a conflict is an event of the log."""
+    if conflicts:
+        return conflicts[0]
     name, smallest = None, 1.0
     for key, value in scales.items():
         if value < smallest:

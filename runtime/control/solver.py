@@ -132,7 +132,8 @@ class Solution:
     tracking_error    ‖achieved − commanded‖ over the task rows (limits' slowing included);
                       _linear (m/s) and _angular (rad/s) split it by kind of row
     scales            every limit factor in [0, 1] by name (limits.SCALE_NAMES)
-    binding_limit     the name of the smallest factor below 1, or None
+    binding_limit     the name of the smallest factor below 1, or None; the name of the
+                      conflict instead when two bounds could not both hold (limits.CONFLICTS)
     saturated_joints  joints taken out of the solve because they sit at a position limit
     conflicts         bounds that had to give way to another this cycle (limits.CONFLICTS)
     """
@@ -409,7 +410,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         manipulability=first.manipulability, commanded_twist=v_base,
         achieved_twist=limited.twist, tracking_error=math.sqrt(e_lin + e_ang),
         tracking_error_linear=math.sqrt(e_lin), tracking_error_angular=math.sqrt(e_ang),
-        scales=limited.scales, binding_limit=binding_limit(limited.scales),
+        scales=limited.scales, binding_limit=binding_limit(limited.scales, limited.conflicts),
         saturated_joints=saturated, conflicts=limited.conflicts)
 
 

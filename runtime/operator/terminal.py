@@ -272,12 +272,30 @@ def format_drive_summary(m: dict[str, Any]) -> str:
         out.append(f"    {j['name']:<{width}}  {j['peak_commanded'] * k:7.1f} / "
                    f"{j['peak_measured'] * k:7.1f}  of {j['max_speed'] * k:6.1f} / "
                    f"{j['rated_speed'] * k:6.1f} {unit:4s}  ({pct:3.0f} % of rated)")
+    out.append("  accel     peak commanded against max / rated (stops apart)")
+    for j in m["joints"]:
+        k, unit = (180.0 / math.pi, "°/s²") if j["unit"] == "rad/s" else (1e3, "mm/s²")
+        flag = "  OVER RATED" if j["over_rated_accel"] else \
+            "  above max" if j["over_max_accel"] else ""
+        out.append(f"    {j['name']:<{width}}  {j['peak_accel'] * k:7.1f}  of "
+                   f"{j['max_accel'] * k:6.1f} / {j['rated_accel'] * k:6.1f} {unit}{flag}")
     out.append(f"  TCP       peak {m['tcp_peak_m_s'] * 1e3:.1f} mm/s commanded (cap "
                f"{m['tcp_cap_m_s'] * 1e3:.0f} mm/s), {math.degrees(m['tcp_peak_rad_s']):.1f} °/s "
                f"(cap {math.degrees(m['tcp_cap_rad_s']):.0f} °/s)")
     limits = ", ".join(f"{k} {v['cycles']} cycles in {v['episodes']} episodes"
                        for k, v in m["limits"].items()) or "no limit bound"
     out.append(f"  limits    {limits}")
+    if m["stops"]:
+        out.append(f"  stops     {len(m['stops'])} while moving: zero sent at once, the arm "
+                   f"side brakes (not counted as commanded accelerations)")
+        scale = {j["name"]: (180.0 / math.pi, "°/s²") if j["unit"] == "rad/s" else
+                 (1.0, "m/s²") for j in m["joints"]}
+        for st in m["stops"][:5]:
+            k, unit = scale[st["joint"]]
+            out.append(f"            t = {st['t_s']:.2f} s from {st['tcp_speed'] * 1e3:.1f} "
+                       f"mm/s ({st['reason']}): {st['joint']} would brake at "
+                       f"{st['asked_decel'] * k:.1f} {unit} if the arm followed the zero "
+                       f"literally")
     out.append(f"  stop      {m['stop']}")
     if m["arm_side"]:
         out.append(f"  arm side  {m['arm_side']}")

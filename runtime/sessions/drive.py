@@ -78,6 +78,7 @@ from .drive_stats import RunStats
 from .drive_ui import DriveUI, MainThread, StopSignals
 from .log_schema import cycle_record
 from .log_writer import SessionRecorder, new_session_path
+from .stats import above
 
 __all__ = ["DriveInput", "DriveResult", "DriveSession", "DriveTarget", "build_summary",
            "enter_realtime", "run_drive", "sim_child_options", "warm_up"]
@@ -121,7 +122,7 @@ class DriveSession:
         self.same_clock = same_clock
         self.target = target
         self.lockstep = lockstep
-        self.stats = RunStats(arm)
+        self.stats = RunStats(arm, settings.rate_hz)
         self.freshness = StateFreshness(settings.stale_after_s)
         self.round_trip = RoundTripMeter()
         self.publish_every = max(1, round(settings.rate_hz / SNAPSHOT_HZ))
@@ -235,7 +236,7 @@ class DriveSession:
         if self.ending and not self._ending_first_seq:
             self._ending_first_seq = self.seq
         self.stats.read_to_send.add(sent - now)
-        self.stats.add_cycle(out)
+        self.stats.add_cycle(out, tick.index, now - self.t0)
         # (a state that came in after `now` was read has a stamp a little after it)
         age = None if self.state_stamp_s is None else max(now - self.state_stamp_s, 0.0)
         if age is not None:
@@ -396,10 +397,18 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
                   arm_side_log: str, started_s: float, ended_s: float) -> dict[str, Any]:
     arm, s = drive.arm, drive.stats
     period_s = 1.0 / timing.rate_hz
+    m = s.motion
+    m.flush()
     joints = [{"name": j.name, "unit": "rad/s" if j.is_revolute else "m/s",
                "peak_commanded": float(s.peak_commanded[i]),
                "peak_measured": float(s.peak_measured[i]),
-               "max_speed": j.max_speed, "rated_speed": j.rated_speed}
+               "max_speed": j.max_speed, "rated_speed": j.rated_speed,
+               "peak_accel": float(m.peak_accel[i]),
+               "peak_accel_t_s": None if math.isnan(m.peak_accel_t[i])
+               else float(m.peak_accel_t[i]),
+               "max_accel": j.max_accel, "rated_accel": j.rated_accel,
+               "over_max_accel": above(float(m.peak_accel[i]), j.max_accel),
+               "over_rated_accel": above(float(m.peak_accel[i]), j.rated_accel)}
               for i, j in enumerate(arm.joints)]
     return {
         "arm": arm.name, "input": input_name, "target": target,
@@ -429,6 +438,7 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
         "tcp_peak_rad_s": s.tcp_peak_rad_s, "tcp_cap_rad_s": arm.tcp_max_angular_rad_s,
         "limits": {k: {"cycles": c, "episodes": e} for k, (c, e) in
                    sorted(s.limits.items(), key=lambda kv: -kv[1][0])},
+        "stops": [stop.as_dict() for stop in m.stops],
         "session": None if session_path is None else {
             "path": str(session_path), "written": recorder_stats.written,
             "dropped": recorder_stats.dropped, "lost": recorder_stats.lost,

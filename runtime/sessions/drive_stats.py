@@ -11,6 +11,7 @@ import numpy as np
 from ..arm.model import Arm
 from ..control.cycle import CycleOutput
 from ..link.protocol import State
+from .stats import MotionStats
 
 __all__ = ["LogHistogram", "RunStats"]
 
@@ -65,8 +66,10 @@ class LogHistogram:
 class RunStats:
     """What the summary reports, gathered by the loop thread cycle by cycle."""
 
-    def __init__(self, arm: Arm) -> None:
+    def __init__(self, arm: Arm, rate_hz: float) -> None:
         self.gate_cycles: Counter[str] = Counter()
+        # accelerations and stops: the analysis inspect and preflight use (sessions/stats.py)
+        self.motion = MotionStats(arm.joint_names, arm.max_accel, rate_hz)
         self.limits: dict[str, list[int]] = {}         # name → [cycles, episodes]
         self._last_limit: str | None = None
         self.peak_commanded = np.zeros(arm.n)          # |rates| sent (rad/s or m/s)
@@ -81,7 +84,8 @@ class RunStats:
         self.arm_limited = 0                           # states in which the arm side limited
         self.states = 0
 
-    def add_cycle(self, out: CycleOutput) -> None:
+    def add_cycle(self, out: CycleOutput, index: int, t_s: float) -> None:
+        """One cycle: its number and time (s since the start) as the log records them."""
         self.gate_cycles[out.verdict.state] += 1
         np.maximum(self.peak_commanded, np.abs(out.rates), out=self.peak_commanded)
         sol = out.solution
@@ -92,11 +96,15 @@ class RunStats:
             if name != self._last_limit:
                 counts[1] += 1
         self._last_limit = name
+        linear = 0.0
         if sol is not None:
             a = sol.achieved_twist
-            self.tcp_peak_m_s = max(self.tcp_peak_m_s, math.sqrt(a[0]**2 + a[1]**2 + a[2]**2))
+            linear = math.sqrt(a[0]**2 + a[1]**2 + a[2]**2)
+            self.tcp_peak_m_s = max(self.tcp_peak_m_s, linear)
             self.tcp_peak_rad_s = max(self.tcp_peak_rad_s,
                                       math.sqrt(a[3]**2 + a[4]**2 + a[5]**2))
+        self.motion.add_cycle(index, t_s, out.rates, out.verdict.allowed, out.verdict.reason,
+                              linear)
 
     def add_round_trip(self, level_s: float | None, limit_s: float) -> None:
         """One cycle's round-trip median (s, None before the first) against the limit."""

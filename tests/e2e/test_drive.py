@@ -154,6 +154,12 @@ def test_inspect_of_a_driven_session_finds_no_acceleration_and_lists_the_stop(pa
         assert not j["over_max_accel"] and not j["over_rated_accel"], j["name"]
         assert j["peak_accel"] <= j["max_accel"] * (1 + 1e-9)
     assert len(inspected["stops"]) == 1 and inspected["stops"][0]["tcp_speed"] > 0.04
+    # The drive summary judges with the same analysis: the same peaks, the same stop.
+    for mine, theirs in zip(summary["joints"], inspected["joints"]):
+        assert mine["peak_accel"] == pytest.approx(theirs["peak_accel"], rel=1e-12, abs=1e-12)
+        assert not mine["over_max_accel"] and not mine["over_rated_accel"]
+    assert [s["t_s"] for s in summary["stops"]] == \
+        pytest.approx([s["t_s"] for s in inspected["stops"]], rel=1e-12)
 
 
 def test_status_window_renders_a_real_drive_snapshot(paced_run):

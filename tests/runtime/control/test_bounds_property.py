@@ -26,6 +26,7 @@ On every cycle, to 1e-9 relative (round-off), the commanded rates keep:
 from __future__ import annotations
 
 import math
+from collections import Counter
 
 import numpy as np
 from hypothesis import HealthCheck, event, given, settings
@@ -219,9 +220,10 @@ def test_every_bound_holds_on_every_cycle_on_random_arms(run) -> None:
     run_and_check(run)
 
 
-def run_and_check(run) -> int:
+def run_and_check(run, tally: Counter[str] | None = None) -> int:
     """Drive one random arm through its input against the ideal lagged arm, checking every
-    cycle; returns the number of cycles (benchmarks/soak_bounds.py counts them)."""
+    cycle; returns the number of cycles. `tally` counts the binding limits and named
+    conflicts by cycle (benchmarks/soak_bounds.py prints them)."""
     arm, rate_hz, p0, commands, locked = run
     b = JointBounds.of(arm)
     cycle = ControlCycle(arm, PAD, RunSettings(rate_hz=rate_hz, stale_after_s=0.05,
@@ -244,9 +246,12 @@ def run_and_check(run) -> int:
             np.testing.assert_allclose(p_start, p, rtol=0, atol=1e-12)  # the lag model
             check_cycle(arm, b, q_meas, p_start, rates, prev, dt, out, locked)
             if out.solution is not None:
-                event(f"binding: {out.solution.binding_limit}")
-                for conflict in out.solution.conflicts:
-                    event(f"conflict: {conflict}")
+                names = [f"binding: {out.solution.binding_limit}"] + \
+                    [f"conflict: {c}" for c in out.solution.conflicts]
+                for name in names:
+                    event(name)
+                if tally is not None:
+                    tally.update(names)
             q_meas = p.copy()
             p = p + rates * dt
             prev = rates

@@ -206,6 +206,7 @@ def test_reduced_speed_switched_on_while_moving_caps_at_once() -> None:
     assert np.linalg.norm(fast.achieved_twist[:3]) == pytest.approx(0.5, rel=1e-9)
     s = solve(arm, q, [0.5, 0, 0, 0, 0, 0], reduced=True, prev_rates=fast.rates, dt_s=0.002)
     assert s.conflicts == ("tcp_cap_over_acceleration",)  # named: the cap won
+    assert s.binding_limit == "tcp_cap_over_acceleration"  # and logged as the cycle's limit
     assert np.linalg.norm(s.achieved_twist[:3]) <= REDUCED_SPEED_M_S * (1 + TOL)
     assert s.scales["reduced_speed"] <= 0.5 * (1 + TOL)
 

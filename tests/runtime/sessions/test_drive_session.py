@@ -164,6 +164,33 @@ def test_summary_reads_as_a_report(fake_clock):
     assert m["tcp_peak_m_s"] == pytest.approx(0.05, rel=1e-6)   # the square's 5 cm/s
 
 
+def test_summary_lists_a_stop_apart_from_the_commanded_accelerations(fake_clock):
+    """A stop mid-motion steps the rates to zero in one cycle: the summary lists it with the
+    braking it would ask, and judges accelerations without it (runtime.sessions.stats, the
+    analysis inspect and preflight use), so none is above max_accel."""
+    drive, loop, _, arm = make_session(fake_clock)
+
+    def body(tick):
+        if drive.t0 is not None and tick.start_s - drive.t0 >= 1.5 and not drive.ending:
+            drive.request_end("stopped by SIGINT")
+        return drive.body(tick)
+
+    timing = loop.run(body, duration_s=10.0)
+    m = build_summary(drive, timing, priority="normal", input_name="script square",
+                      target="ideal", recorder_stats=None, session_path=None, arm_side_log="",
+                      started_s=0.0, ended_s=2.0)
+    (stop,) = m["stops"]
+    assert stop["tcp_speed"] == pytest.approx(0.05, rel=1e-6)     # the square's 5 cm/s
+    worst = arm.joint_names.index(stop["joint"])
+    assert stop["asked_decel"] > arm.max_accel[worst]              # a step, not a ramp
+    for j in m["joints"]:
+        assert j["peak_accel"] <= j["max_accel"] * (1 + 1e-9), j["name"]
+        assert not j["over_max_accel"] and not j["over_rated_accel"]
+    assert any(j["peak_accel"] > 0 for j in m["joints"])           # it did accelerate
+    text = format_drive_summary(m)
+    assert "stops     1 while moving" in text and "above max" not in text
+
+
 def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again(fake_clock):
     """The arm side keeps sending states but applies none of our rates for longer than
     stale_after: motion is held, and stays held when rates get through again, because
