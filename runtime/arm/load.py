@@ -17,8 +17,10 @@ import numpy as np
 from ..errors import ConfigError
 from ..tomlsource import TomlSource as _Source
 from ..tomlsource import finite_number, read_toml
+from ..tomlsource import unit_factor as _unit
 from .model import (
     ANGLE_UNITS,
+    DEFAULT_LINK_RADIUS_M,
     JOINT_KINDS,
     LENGTH_UNITS,
     TASK_AXES,
@@ -32,21 +34,33 @@ from .model import (
 from .transforms import Mat4, make_transform
 from .urdf import load_urdf_arm
 
-__all__ = ["arm_from_toml", "load_arm", "resolve_arm_path"]
+__all__ = ["arm_from_toml", "load_arm", "resolve_arm_path", "resolve_shipped"]
 
+
+
+def resolve_shipped(kind: str, name_or_path: str | Path, suffixes: tuple[str, ...] = (".toml",)
+                    ) -> Path:
+    """A shipped config name (`elbow6` under configs/arms/, for kind "arm") or a file path.
+
+    A name with one of `suffixes`, or any existing path, is taken as a path; otherwise the
+    name is looked up as configs/<kind>s/<name>.toml and an unknown name lists the shipped
+    ones.
+    """
+    p = Path(name_or_path)
+    if p.suffix in suffixes or p.exists():
+        return p
+    folder = configs_dir() / f"{kind}s"
+    shipped = folder / f"{name_or_path}.toml"
+    if shipped.exists():
+        return shipped
+    names = sorted(f.stem for f in folder.glob("*.toml"))
+    raise ConfigError(f"no {kind} named {str(name_or_path)!r}; shipped {kind}s: "
+                      f"{', '.join(names)}", field=kind)
 
 
 def resolve_arm_path(name_or_path: str | Path) -> Path:
     """A shipped arm name (`elbow6`) or a path to a .toml / .urdf file."""
-    p = Path(name_or_path)
-    if p.suffix in (".toml", ".urdf") or p.exists():
-        return p
-    shipped = configs_dir() / "arms" / f"{name_or_path}.toml"
-    if shipped.exists():
-        return shipped
-    names = sorted(f.stem for f in (configs_dir() / "arms").glob("*.toml"))
-    raise ConfigError(f"no arm named {str(name_or_path)!r}; shipped arms: {', '.join(names)}",
-                      field="arm")
+    return resolve_shipped("arm", name_or_path, (".toml", ".urdf"))
 
 
 def load_arm(name_or_path: str | Path, *, base_link: str | None = None,
@@ -65,15 +79,6 @@ def _vector3(src: _Source, value: Any, field_name: str, table: str, key: str) ->
     return [finite_number(src, v, field_name, table, None, key) for v in value]
 
 
-def _unit(src: _Source, data: dict[str, Any], key: str, table: dict[str, float],
-          default: str) -> float:
-    name = data.get(key, default)
-    if not isinstance(name, str) or name not in table:
-        raise src.error(f"unknown unit {name!r}; use one of {', '.join(table)}", key, None, None,
-                        key)
-    return table[name]
-
-
 def _frame(src: _Source, data: dict[str, Any], table: str, length: float, angle: float) -> Mat4:
     spec = data.get(table, {})
     if not isinstance(spec, dict):
@@ -88,7 +93,19 @@ def _frame(src: _Source, data: dict[str, Any], table: str, length: float, angle:
 
 
 _JOINT_KEYS = {"name", "type", "d", "a", "alpha", "theta", "lower", "upper", "max_speed",
-               "max_accel", "rated_speed", "rated_accel", "effort"}
+               "max_accel", "rated_speed", "rated_accel", "effort", "link_radius"}
+
+
+def _link_radius(src: _Source, spec: dict[str, Any], i: int, length: float) -> float:
+    """The optional `link_radius` of joint i (length unit), positive; m."""
+    if "link_radius" not in spec:
+        return DEFAULT_LINK_RADIUS_M
+    r = finite_number(src, spec["link_radius"], f"joints[{i}].link_radius", "joints", i,
+                      "link_radius")
+    if r <= 0:
+        raise src.error(f"must be positive, got {spec['link_radius']}",
+                        f"joints[{i}].link_radius", "joints", i, "link_radius")
+    return r * length
 
 
 def _joint_limits(src: _Source, spec: dict[str, Any], i: int, scale: float,
@@ -175,7 +192,8 @@ def arm_from_toml(data: dict[str, Any], src: _Source) -> Arm:
                           theta=dh["theta"] * angle))
         kinds.append(kind)
         names.append(name)
-        limits.append(_joint_limits(src, spec, i, angle if kind == "revolute" else length, name))
+        limits.append(_joint_limits(src, spec, i, angle if kind == "revolute" else length, name)
+                      | {"link_radius_m": _link_radius(src, spec, i, length)})
     origins, flange = chain_from_dh(rows, kinds, modified=(convention == "mdh"))
     joints = tuple(Joint(name=nm, kind=k, origin=o, **lim)
                    for nm, k, o, lim in zip(names, kinds, origins, limits))
@@ -262,13 +280,15 @@ def _common_fields(data: dict[str, Any], src: _Source, angle: float) -> dict[str
     )
 
 
-_URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_accel"}
+_URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_accel",
+                       "link_radius"}
 
 
 def _arm_from_urdf_toml(data: dict[str, Any], src: _Source, common: dict[str, Any]) -> Arm:
     """An arm TOML that points at a URDF file and adds what URDF lacks (accelerations, task).
 
-    `[[joints]]` tables here only override speeds and accelerations of URDF joints by name.
+    `[[joints]]` tables here only override speeds, accelerations and the collision model's
+    link radius of URDF joints by name.
     """
     if "urdf" not in data:
         raise src.error("convention 'urdf' needs a 'urdf' path", "urdf")
@@ -306,6 +326,8 @@ def _arm_from_urdf_toml(data: dict[str, Any], src: _Source, common: dict[str, An
                         raise src.error(f"must be positive, got {spec[key]}",
                                         f"joints[{i}].{key}", "joints", i, key)
                     changes[key] = v * scale
+            if "link_radius" in spec:
+                changes["link_radius_m"] = _link_radius(src, spec, i, length)
             j = replace(j, **changes)  # type: ignore[arg-type]  # (floats, by key)
         joints.append(j)
     if overrides:

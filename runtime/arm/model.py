@@ -33,6 +33,8 @@ FRAMES = ("base", "tool")         # the frames a twist is given in: the arm's ba
 JOINT_KINDS = ("revolute", "prismatic")
 ANGLE_UNITS = {"deg": math.pi / 180.0, "rad": 1.0}
 LENGTH_UNITS = {"m": 1.0, "mm": 1e-3}
+DEFAULT_LINK_RADIUS_M = 0.04
+"""Radius of a link's capsule (runtime.arm.collision) when the arm file gives none."""
 
 
 def configs_dir() -> Path:
@@ -46,7 +48,10 @@ class Joint:
     """One actuated joint. Units: rad (revolute) or m (prismatic), per second, per second².
 
     `max_speed`/`max_accel` are what jogwire commands (software limits); `rated_speed`/
-    `rated_accel` are the hardware's ratings that preflight proves against.
+    `rated_accel` are the hardware's ratings that preflight proves against. `link_radius_m`
+    is the radius of the capsule around the link this joint moves (runtime.arm.collision);
+    `collision` replaces that capsule when the arm file describes the link's shape (URDF
+    `<collision>`): capsules (start xyz, end xyz, radius) in this joint's frame, m.
     """
 
     name: str
@@ -59,6 +64,8 @@ class Joint:
     rated_accel: float
     effort: float | None
     origin: Mat4 = field(repr=False)
+    link_radius_m: float = DEFAULT_LINK_RADIUS_M
+    collision: tuple[tuple[float, ...], ...] = ()
 
     @property
     def is_revolute(self) -> bool:

@@ -5,5 +5,5 @@ Pure except the loop's clock, which is injected. May import ``runtime.arm`` (and
 shared ``errors``/``tomlsource``); never the link, sessions, operator or commands.
 """
 
-__all__ = ["cycle", "intent", "limits", "loop", "mapping", "pads", "safety", "settings", "shaping",
-           "solver"]
+__all__ = ["clearance", "cycle", "intent", "limits", "loop", "mapping", "pads", "safety",
+           "settings", "shaping", "solver"]
