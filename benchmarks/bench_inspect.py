@@ -29,9 +29,14 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from runtime.arm.model import load_arm  # noqa: E402
-from runtime.sessions.log_blocks import CycleBlock, KeyedFloats, Ragged, Strings, \
-    encode_block  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
+from runtime.sessions.log_blocks import (  # noqa: E402
+    CycleBlock,
+    KeyedFloats,
+    Ragged,
+    Strings,
+    encode_block,
+)
 from runtime.sessions.log_schema import SessionEnd, make_header  # noqa: E402
 from runtime.sessions.log_writer import encode_frame, encode_preamble  # noqa: E402
 

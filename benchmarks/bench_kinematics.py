@@ -32,7 +32,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm import kinematics  # noqa: E402
 from runtime.arm.kinematics import pose_and_jacobian  # noqa: E402
-from runtime.arm.model import Arm, load_arm  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
+from runtime.arm.model import Arm  # noqa: E402
 from sim.urdf import write_urdf  # noqa: E402
 
 

@@ -56,8 +56,8 @@ import zmq
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.link.arm_process import ArmProcess, child_env  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
 from runtime.link.protocol import State, decode, hello_for  # noqa: E402
 from runtime.link.transport import ArmClient  # noqa: E402
 

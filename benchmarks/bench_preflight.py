@@ -53,22 +53,26 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from collections import Counter  # noqa: E402
 
+from runtime.arm.load import load_arm  # noqa: E402
+from runtime.arm.model import configs_dir  # noqa: E402
+from runtime.control.cycle import ControlCycle  # noqa: E402
+from runtime.control.pads import load_pad  # noqa: E402
+from runtime.control.settings import RunSettings  # noqa: E402
 from runtime.link.arm_process import child_env  # noqa: E402
-import runtime.commands.preflight as preflight_command  # noqa: E402
-from runtime.commands.preflight import load_profile, run_preflight  # noqa: E402
-from runtime.sessions.lockstep import LockstepSim  # noqa: E402
-from runtime.control.mapping import load_pad  # noqa: E402
-from runtime.arm.model import configs_dir, load_arm  # noqa: E402
 from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer,  # noqa: E402
                                 arm_side_channel, child_link, link_spec)
-from runtime.control.cycle import ControlCycle  # noqa: E402
-from runtime.sessions.log_schema import frame_from_wire  # noqa: E402
-from runtime.sessions.preflight import TraceBuilder  # noqa: E402
-from runtime.operator.progress import Progress  # noqa: E402
 from runtime.link.protocol import Rates, State, decode, encode, hello_for  # noqa: E402
-from runtime.sessions.log_writer import SessionRecorder  # noqa: E402
-from runtime.sessions.log_schema import cycle_record  # noqa: E402
+from runtime.operator.progress import Progress  # noqa: E402
+from runtime.sessions.lockstep import LockstepSim  # noqa: E402
+import runtime.sessions.preflight_run as preflight_run  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
+from runtime.sessions.log_schema import (
+    cycle_record,  # noqa: E402
+    frame_from_wire,  # noqa: E402
+)
+from runtime.sessions.log_writer import SessionRecorder  # noqa: E402
+from runtime.sessions.preflight import TraceBuilder  # noqa: E402
+from runtime.sessions.preflight_run import load_profile, preflight_settings, run_preflight  # noqa: E402
 from runtime.sessions.rerun import cycle_settings, inputs_of, rerun_open_loop  # noqa: E402
 
 RATE_HZ = 500.0
@@ -155,13 +159,13 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int, link: str,
     arm = load_arm(ARM)
     profile = load_profile(str(long_profile(folder, seconds)), arm, RATE_HZ)
     log = folder / f"run-lag{state_lag}-{link}.jwlog"
-    preflight_command.LockstepSim = _TimedLockstepSim
+    settings = preflight_settings(rate_hz=RATE_HZ, reduced=False, state_lag=state_lag)
+    preflight_run.LockstepSim = _TimedLockstepSim
     try:
-        run = run_preflight(ARM, arm, profile, rate_hz=RATE_HZ, step_hz=STEP_HZ,
-                            reduced=False, log_path=log, state_lag=state_lag,
+        run = run_preflight(ARM, arm, profile, settings, step_hz=STEP_HZ, log_path=log,
                             progress=Progress("", 1, enabled=False), link=link)
     finally:
-        preflight_command.LockstepSim = LockstepSim
+        preflight_run.LockstepSim = LockstepSim
     sim = _TimedLockstepSim.last
     report_s = None
     if with_report:
@@ -200,7 +204,7 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
     frames = [frame_from_wire(r.input) for r in records]
     out: dict[str, float] = {}
 
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     outs, times = [], []
     for rec, frame in zip(records, frames):
         q = np.array(rec.q)
@@ -235,7 +239,7 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
                 times.append(time.perf_counter_ns() - t)
         out[f"lockstep exchange ({link} + child)"] = statistics.median(times) / 1e3
 
-    from sim.arm import SimulatedArm   # the benchmark may; the runtime never does
+    from sim.arm import SimulatedArm  # the benchmark may; the runtime never does
     times = []
     with SimulatedArm(arm, step_s=1.0 / STEP_HZ) as sim_arm:
         for k in range(len(records)):

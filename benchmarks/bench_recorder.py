@@ -36,9 +36,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.arm.model import load_arm  # noqa: E402
-from runtime.sessions.log_schema import CycleRecord  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.sessions.log_reader import SessionReader, read_session  # noqa: E402
+from runtime.sessions.log_schema import CycleRecord  # noqa: E402
 from runtime.sessions.log_writer import SessionRecorder, encode_frame  # noqa: E402
 
 RATE_HZ = 500

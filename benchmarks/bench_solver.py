@@ -15,11 +15,17 @@ load hits all alike and the jogwire path sees damping and limits as they come in
 medians are also given per path (clear of limits and singularities, near a position limit,
 damped). Then the full solve split into its stages, each timed alone on the same poses,
 round-robin with the full solve (FK + J; σ_min and damping; the DLS solve; the null-space
-term; each limit; what is left: checks, the result, calls). Also times the candidate ways
-of getting σ_min (the choice made in runtime/control/solver.py). Every figure is printed
-with the load average. Run from the repository root:
+term; each limit; the clearance rows with a cell; what is left: checks, the result, calls).
+Also times the candidate ways of getting σ_min (the choice made in
+runtime/control/solver.py). Every figure is printed with the load average.
 
-    python benchmarks/bench_solver.py [--cycles N] [--arm reach7]
+Clearance (--cell, default the demo cell `bench`): the same solve with and without the
+velocity damper (runtime/control/clearance.py), interleaved at each pose of a jog that
+drives into the cell's objects under the damper (3 s gestures at 0.3 m/s, mostly downward
+and sideways, from home); the added time per cycle, in all cycles and in those with a pair
+inside the influence distance. Run from the repository root:
+
+    python benchmarks/bench_solver.py [--cycles N] [--arm reach7] [--cell bench]
 """
 
 from __future__ import annotations
@@ -36,14 +42,18 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian  # noqa: E402
-from runtime.control.limits import (JointBounds, acceleration_step, braking_factor,  # noqa: E402
-                                    clear_of_limits, speed_factor, start_pose, tcp_caps)
-from runtime.arm.model import Arm, load_arm  # noqa: E402
-from runtime.control.solver import (_REFINE_BELOW, _constants, _eigen_pinv_gram,  # noqa: E402
-                                    _eigvalsh, _identity, _resolve_at_limits, _solve,
-                                    damping_squared, solve)
-from sim.urdf import write_urdf  # noqa: E402
+from runtime.arm.cell import load_cell
+from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
+from runtime.control.clearance import ClearanceGuard, ClearanceLimit
+from runtime.control.limits import (JointBounds, acceleration_step, apply_limits,
+                                    braking_factor, clear_of_limits, speed_factor, start_pose,
+                                    tcp_caps)
+from runtime.control.solver import (_REFINE_BELOW, _constants, _eigen_pinv_gram, _eigvalsh,
+                                    _identity, _resolve_at_limits, _solve, damping_squared,
+                                    solve)
+from sim.urdf import write_urdf
 
 DT_S = 0.002
 REFERENCE_DAMPING = 0.05
@@ -127,25 +137,58 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
             "binding": binding, "inputs": inputs, "load": load_average()}
 
 
+def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
+    """Median µs of each way to get σ_min (and what else it gives) on the arm's 6×n J."""
+    rng = np.random.default_rng(3)
+    Js = [geometric_jacobian(arm, rng.uniform(np.maximum(arm.lower, -3), np.minimum(arm.upper, 3)))
+          for _ in range(64)]
+    v = np.ones(6)
+    options = {
+        "svd(J), values only": lambda J: np.linalg.svd(J, compute_uv=False),
+        "svd(J), full": lambda J: np.linalg.svd(J, full_matrices=False),
+        "eigvalsh(JJᵀ)": lambda J: np.linalg.eigvalsh(J @ J.T),
+        "eigvalsh(JJᵀ) + solve": lambda J: (np.linalg.eigvalsh(G := J @ J.T),
+                                           np.linalg.solve(G, v)),
+        "eigh(JJᵀ)": lambda J: np.linalg.eigh(J @ J.T),
+        "chosen: eigvalsh(JJᵀ) + solve, numpy's gufuncs": lambda J: (_eigvalsh(G := J @ J.T),
+                                                                   _solve(G, v)),
+    }
+    times = {name: np.empty(repeat) for name in options}
+    clock = time.perf_counter
+    for k in range(repeat):  # round-robin, so the machine's load falls on all alike
+        J = Js[k % 64]
+        for name, f in options.items():
+            t0 = clock()
+            f(J)
+            times[name][k] = clock() - t0
+    return {name: float(np.median(t)) * 1e6 for name, t in times.items()}
+
+
 STAGES = ("full solve", "FK + Jacobian", "σ_min and damping (JJᵀ, eigenvalues, λ)",
           "DLS solve of the task", "null-space term (centring, projected)",
           "start pose + clear-of-limits check", "joint-limit re-solve (near a limit)",
           "limit: joint speed", "limit: position brake (near a limit)",
-          "limit: TCP caps (J·q̇, linear, angular, reduced)", "limit: acceleration")
+          "limit: TCP caps (J·q̇, linear, angular, reduced)", "limit: acceleration",
+          "clearance: distances and the damper's restriction",
+          "clearance: settled after the other limits")
 
 
-def stage_split(arm: Arm, inputs: list) -> dict[str, np.ndarray]:
+def stage_split(arm: Arm, inputs: list, limit: ClearanceLimit | None = None
+                ) -> dict[str, np.ndarray]:
     """Each stage of `solve` timed alone on the cycle's inputs, right after the full solve
     on them (µs; NaN where a stage does not run that cycle). The stages call what `solve`
     calls, in its order (runtime/control/solver.py); the null-space term is timed as its
-    own solve here, where `solve` folds it into the task solve when λ = 0."""
+    own solve here, where `solve` folds it into the task solve when λ = 0. With `limit`
+    (a cell), the full solve includes the clearance rows and so do the stages; the distances
+    are then measured at a pose the full solve has just measured (its far-away shortcut
+    applies as it would a cycle later, when the arm has hardly moved)."""
     consts = _constants(arm)
     b = consts.bounds
     out = {name: np.full(len(inputs), np.nan) for name in STAGES}
     clock = time.perf_counter
     for k, (q, v, prev) in enumerate(inputs):
         t0 = clock()
-        solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
         t1 = clock()
         T, J = pose_and_jacobian(arm, q)
         t2 = clock()
@@ -179,14 +222,43 @@ def stage_split(arm: Arm, inputs: list) -> dict[str, np.ndarray]:
         tcp_caps(arm, np.dot(J, rates), False)
         t10 = clock()
         acceleration_step(b, q_start, prev, rates, DT_S, clear=clear)
+        acceleration_s = clock() - t10
+        t10 = clock()
+        limited = apply_limits(arm, q_start, rates, J, prev_rates=prev, dt_s=DT_S, clear=clear)
         t11 = clock()
+        if limit is not None:
+            guard = ClearanceGuard(limit, q, Jt, math.sqrt(lam2), rates)
+            t12 = clock()
+            guard.settle(limited)
+            t13 = clock()
         nan = math.nan
         row = (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4 if z is not None else nan,
                t6 - t5, nan if clear else t7 - t6, t8 - t7, nan if clear else t9 - t8,
-               t10 - t9, t11 - t10)
+               t10 - t9, acceleration_s, nan if limit is None else t12 - t11,
+               nan if limit is None else t13 - t12)
         for name, value in zip(STAGES, row):
             out[name][k] = value
     return {name: t * 1e6 for name, t in out.items()}
+
+
+def print_split(split: dict[str, np.ndarray], what: str) -> None:
+    """The stages' medians, each over the cycles where it ran, and what they leave of the
+    full solve's median."""
+    full = float(np.nanmedian(split["full solve"]))
+    print(f"The full solve in stages, each timed alone on the same cycles ({what}; median µs "
+          f"over the cycles where the stage runs; load {load_average()}):")
+    total = 0.0
+    for name in STAGES:
+        t = split[name]
+        ran = ~np.isnan(t)
+        if not ran.any():
+            print(f"  {name:<52}      —   (not in this run)")
+            continue
+        median, share = float(np.median(t[ran])), float(ran.mean())
+        if name != "full solve":
+            total += median * share
+        print(f"  {name:<52} {median:6.1f}" + (f"   in {share:.0%} of cycles" if share < 1 else ""))
+    print(f"  {'rest: checks, the result, calls (full − stages)':<52} {full - total:6.1f}")
 
 
 def load_average() -> str:
@@ -220,19 +292,56 @@ def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
     return {name: float(np.median(t)) * 1e6 for name, t in times.items()}
 
 
+def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
+                   ) -> dict[str, np.ndarray]:
+    """Per cycle: solve time without and with the cell, and whether a pair was inside d_i."""
+    cell = load_cell(cell_name, arm)
+    limit = ClearanceLimit.of(arm, cell)
+    rng = np.random.default_rng(seed)
+    hold = int(3.0 / DT_S)
+    plain, guarded = np.empty(cycles), np.empty(cycles)
+    inputs = []
+    near = np.zeros(cycles, dtype=bool)
+    q, prev = arm.home(), np.zeros(arm.n)
+    for v in jog_twists(200):  # warm-up
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
+    clock = time.perf_counter
+    for k in range(cycles):
+        if k % hold == 0:  # a new gesture from home: 0.3 m/s, mostly down and sideways
+            q, prev = arm.home(), np.zeros(arm.n)
+            d = rng.normal(size=3) * (1.0, 1.0, 0.5) - (0.0, 0.0, 1.0)
+            v = np.concatenate((0.3 * d / np.linalg.norm(d), rng.normal(size=3) * 0.2))
+        inputs.append((q, v, prev))
+        t0 = clock()
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
+        t1 = clock()
+        sol = solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
+        t2 = clock()
+        plain[k], guarded[k] = t1 - t0, t2 - t1
+        near[k] = sol.clearance.min_distance_m < cell.clearance.influence_distance_m
+        prev = sol.rates
+        q = q + prev * DT_S
+    return {"plain": plain, "guarded": guarded, "near": near, "inputs": inputs,
+            "limit": limit, "load": load_average()}
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--cycles", type=int, default=20000, help="timed cycles")
     parser.add_argument("--arm", default="reach7", help="shipped arm name")
+    parser.add_argument("--cell", default="bench", help="shipped cell name for the clearance "
+                                                         "figures")
     args = parser.parse_args(argv)
     arm = load_arm(args.arm)
+    print(f"load average at the start {os.getloadavg()[0]:.2f} (figures under load ≥ 1 are "
+          f"not results)")
     with tempfile.TemporaryDirectory() as tmp:
         urdf = write_urdf(arm, Path(tmp) / f"{arm.name}.urdf")
         results = {w: run(arm, urdf, args.cycles, w) for w in WORKLOADS}
     us = 1e6
     print(f"Full solve per cycle, {arm.name} ({arm.n} joints), {args.cycles} cycles per workload "
-          f"at {1 / DT_S:.0f} Hz (numpy {np.__version__}, Python {sys.version.split()[0]}); "
-          f"load {load_average()}")
+          f"at {1 / DT_S:.0f} Hz (numpy {np.__version__}, Python {sys.version.split()[0]})")
     for workload, result in results.items():
         ours, theirs = result["ours"] * us, result["theirs"] * us
         print(f"{workload}: {WORKLOADS[workload]} (load after it {result['load']})")
@@ -251,28 +360,25 @@ def main(argv: list[str] | None = None) -> int:
         share = ", ".join(f"{k} {v / args.cycles:.0%}" for k, v in
                           sorted(result["binding"].items(), key=lambda kv: -kv[1]))
         print(f"  binding limit: {share}")
-    split = stage_split(arm, results["wander"]["inputs"])
-    full = np.nanmedian(split["full solve"])
-    print(f"The full solve in stages, each timed alone on the same cycles (workload wander; "
-          f"median µs over the cycles where the stage runs; load {load_average()}):")
-    total = 0.0
-    for name in STAGES:
-        t = split[name]
-        ran = ~np.isnan(t)
-        if not ran.any():
-            print(f"  {name:<52}      —   (never ran)")
-            continue
-        median = float(np.median(t[ran]))
-        share = float(ran.mean())
-        if name != "full solve":
-            total += median * share
-        print(f"  {name:<52} {median:6.1f}" + (f"   in {share:.0%} of cycles" if share < 1 else ""))
-    print(f"  {'rest: checks, the result, calls (full − stages)':<52} {full - total:6.1f}")
-    print("  clearance rows: not in this tree (runtime/control/clearance.py)")
+    print_split(stage_split(arm, results["wander"]["inputs"]),
+                "workload wander, no cell")
     options = sigma_min_options(arm, 5000)
     print(f"σ_min options on 6×n Jacobians (median µs; load {load_average()}):")
     for name, t in options.items():
         print(f"  {name:<48} {t:6.1f}")
+    cost = clearance_cost(arm, args.cell, args.cycles)
+    plain, guarded, near = cost["plain"] * us, cost["guarded"] * us, cost["near"]
+    print(f"Clearance in cell {args.cell} ({args.cycles} cycles; a pair inside d_i in "
+          f"{near.mean():.0%} of them; load after it {cost['load']}):")
+    for name, chosen in (("all cycles", np.ones_like(near)), ("a pair inside d_i", near),
+                         ("nothing inside d_i", ~near)):
+        if chosen.any():
+            print(f"  {name:<20} solve median {np.median(plain[chosen]):6.1f} µs, with the "
+                  f"cell {np.median(guarded[chosen]):6.1f} µs, added (median of per-cycle "
+                  f"differences) {np.median(guarded[chosen] - plain[chosen]):6.1f} µs")
+    print_split(stage_split(arm, cost["inputs"], cost["limit"]),
+                f"the jog into cell {args.cell}")
+    print(f"load average at the end {os.getloadavg()[0]:.2f}")
     return 0
 
 

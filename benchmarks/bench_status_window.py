@@ -35,11 +35,11 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.operator.inputs.pygame_init import pygame  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.control.loop import FixedRateLoop, TimingStats  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
 from runtime.control.solver import solve  # noqa: E402
 from runtime.operator import status_window  # noqa: E402
+from runtime.operator.inputs.pygame_init import pygame  # noqa: E402
 from runtime.operator.status_window import SIZE, StatusSnapshot, StatusWindow, draw_status  # noqa: E402
 
 ARMS = ("elbow6", "reach7", "scara4", "planar3")
@@ -113,7 +113,8 @@ def bench_loop(seconds: float, rounds: int, rate_hz: float) -> None:
     for _ in range(rounds):
         for v in variants:
             results[v].append(loop_round(v, seconds, rate_hz))
-    print(f"\nloop: {rate_hz:.0f} Hz, one solve per cycle, {rounds} rounds × {seconds:.0f} s per variant "
+    print(f"\nloop: {rate_hz:.0f} Hz, one solve per cycle, {rounds} rounds × {seconds:.0f} s "
+          "per variant "
           f"(medians over rounds)")
     for v in variants:
         rs = results[v]

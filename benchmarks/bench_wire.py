@@ -25,7 +25,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import re
 import subprocess
 import sys
 import tempfile
@@ -38,8 +37,8 @@ import zmq
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.link.arm_process import ArmProcess, child_env  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
 from runtime.link.protocol import Hello, Rates, State, hello_for  # noqa: E402
 from runtime.link.transport import ArmClient, ArmServer  # noqa: E402
 

@@ -43,9 +43,10 @@ def main() -> int:
     args = parser.parse_args()
     prop = load_property_module()
     totals: Counter[str] = Counter()
+    seen: Counter[str] = Counter()          # binding limits and conflicts, in cycles
 
     def check(run) -> None:
-        totals["cycles"] += prop.run_and_check(run)
+        totals["cycles"] += prop.run_and_check(run, seen)
         totals["examples"] += 1
         totals[f"joints {run[0].n}"] += 1
 
@@ -65,6 +66,9 @@ def main() -> int:
           f"load average {load:.2f}, seed {args.seed}")
     print("arms by joint count: " + ", ".join(
         f"{k.split()[1]}: {v}" for k, v in sorted(totals.items()) if k.startswith("joints")))
+    print("cycles in which a limit bound or a conflict was named (of the cycles that moved):")
+    for name, count in seen.most_common():
+        print(f"  {name:<40} {count}")
     return 0
 
 

@@ -3,28 +3,42 @@
 Each subcommand lives in `runtime/commands/<name>.py` with two functions:
 `add_arguments(parser)` and `run(args) -> int` (the exit status). Only this module and the
 command modules read argv, the environment and the terminal.
+
+Errors end here, in one place: a `JogwireError` (bad input) and an `OSError` (a path that
+cannot be read or written) become one line on stderr and exit status 2, never a traceback;
+Ctrl-C is 130 and a closed stdout (`jogwire … | head`) 141, as a shell reports them.
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 from .errors import JogwireError
 
 # name → (module, one-line help). Add a command by adding its module here.
 COMMANDS: dict[str, tuple[str, str]] = {
-    "drive": ("runtime.commands.drive", "drive an arm's tool by hand (the simulated demo arm by default)"),
-    "probe": ("runtime.commands.probe", "kinematics at a pose: TCP pose, Jacobian, singular values"),
-    "inspect": ("runtime.commands.inspect", "summarise a session log, or list a folder of them"),
-    "preflight": ("runtime.commands.preflight", "prove a motion against the arm's ratings on the simulated arm: report and verdict"),
-    "replay": ("runtime.commands.replay", "send a recorded session to a target, or re-run it through today's pipeline"),
+    "drive": ("runtime.commands.drive",
+              "drive an arm's tool by hand (the simulated demo arm by default)"),
+    "probe": ("runtime.commands.probe",
+              "kinematics at a pose: TCP pose, Jacobian, singular values"),
+    "inspect": ("runtime.commands.inspect",
+                "summarise a session log, or list a folder of them"),
+    "preflight": ("runtime.commands.preflight",
+                  "prove a motion against the arm's ratings on the simulated arm: report and "
+                  "verdict"),
+    "replay": ("runtime.commands.replay",
+               "send a recorded session to a target, or re-run it through today's pipeline"),
     "sim": ("runtime.commands.sim", "run the PyBullet simulated arm (the arm side of the wire)"),
     "bridge": ("runtime.commands.bridge", "run the hardware bridge stub around a Driver"),
-    "pads": ("runtime.commands.pads", "the gamepads connected; check one against a pad file live, or teach jogwire a new one"),
+    "pads": ("runtime.commands.pads",
+             "the gamepads connected; check one against a pad file live, or teach jogwire a "
+             "new one"),
     "keys": ("runtime.commands.keys", "make CURVE key pairs for a link off this machine"),
-    "relay": ("runtime.commands.relay", "a perturbing relay on the arm link: delay, loss, garbage, stalls"),
+    "relay": ("runtime.commands.relay",
+              "a perturbing relay on the arm link: delay, loss, garbage, stalls"),
 }
 
 
@@ -50,6 +64,19 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())   # no flush error
+        return 141
+    except OSError as exc:
+        print(f"jogwire {args.command}: {describe_os_error(exc)}", file=sys.stderr)
+        return 2
+
+
+def describe_os_error(exc: OSError) -> str:
+    """`PATH: reason` (both paths for a rename or link), or the error's own words."""
+    reason = exc.strerror or str(exc)
+    paths = [str(p) for p in (exc.filename, exc.filename2) if p is not None]
+    return f"{' → '.join(paths)}: {reason}" if paths else reason
 
 
 if __name__ == "__main__":

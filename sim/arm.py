@@ -29,8 +29,9 @@ import numpy as np
 import pybullet as pb
 
 from runtime import palette
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
 from runtime.errors import ConfigError, JogwireError
-from runtime.arm.model import Arm, load_arm
 from runtime.link.pipes import PipeServer, arm_side_channel
 from runtime.link.protocol import hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys

@@ -21,10 +21,18 @@ from functools import lru_cache
 import numpy as np
 from numpy.typing import NDArray
 
-from runtime.errors import ProtocolError
 from runtime.arm.model import Arm
-from runtime.link.protocol import Hello, LatenessFilter, Message, Rates, Refuse, SequenceGate, State, \
-    hello_differences
+from runtime.errors import ProtocolError
+from runtime.link.protocol import (
+    Hello,
+    LatenessFilter,
+    Message,
+    Rates,
+    Refuse,
+    SequenceGate,
+    State,
+    hello_differences,
+)
 
 Vector = NDArray[np.float64]
 
@@ -182,8 +190,9 @@ class ArmSession:
     def _on_hello(self, peer: bytes, theirs: Hello, now_ns: int) -> list[tuple[bytes, Message]]:
         reply: list[tuple[bytes, Message]] = [(peer, self.hello)]
         if theirs.role not in ("runtime", "observer"):
-            return reply + self._refuse(peer, "mismatch", f"this is the arm side ({self.hello.role}); "
-                                        f"a {theirs.role} cannot connect to it", now_ns, force=True)
+            return reply + self._refuse(peer, "mismatch",
+                                        f"this is the arm side ({self.hello.role}); a "
+                                        f"{theirs.role} cannot connect to it", now_ns, force=True)
         diffs = hello_differences(self.hello, theirs)
         if diffs:
             text = f"refused {theirs.role} hello for arm {theirs.arm!r}: " + "; ".join(diffs)

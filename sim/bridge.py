@@ -1,6 +1,6 @@
 """The hardware bridge stub: the wire contract around a `Driver` an integrator fills in.
 
-    python -m sim.bridge ARM [--driver module:Class] [--dry-run-csv FILE] [--rate-hz HZ] …
+    python -m sim.bridge ARM [--driver module:Class] [--dry-run-csv FILE] [--rate HZ] …
                                                                           (= jogwire bridge)
 
 The bridge serves the same socket and messages as the simulated arm (docs/PROTOCOL.md): it
@@ -25,12 +25,13 @@ import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Callable, TextIO
 
 import numpy as np
 
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
 from runtime.errors import ConfigError, JogwireError
-from runtime.arm.model import Arm, load_arm
 from runtime.link.protocol import hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
@@ -93,7 +94,7 @@ class VirtualDriver(Driver):
         self.csv_path = None if csv_path is None else Path(csv_path)
         self.q0 = q0
         self.clock = clock
-        self._file = None
+        self._file: TextIO | None = None
         self.commands_written = 0
 
     def open(self, arm: Arm) -> JointSample:
@@ -202,8 +203,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help=f"where to listen (default {DEFAULT_ARM_ENDPOINT}; a non-loopback "
                         "address needs --keys)")
     p.add_argument("--keys", metavar="DIR", help="CURVE keys made by `jogwire keys DIR`")
-    p.add_argument("--rate-hz", type=float, default=500.0,
+    p.add_argument("--rate", dest="rate_hz", type=float, default=500.0, metavar="HZ",
                    help="bridge periods per second (default 500)")
+    p.add_argument("--rate-hz", dest="rate_hz", type=float, help=argparse.SUPPRESS)  # old name
     p.add_argument("--stale-after", type=float, default=0.1, metavar="S",
                    help="no fresh rates for S seconds → ramp to zero (default 0.1)")
     p.add_argument("--driver", metavar="MODULE:CLASS",
@@ -232,7 +234,7 @@ def load_driver(spec: str | None, csv_path: str | None) -> Driver:
 
 def serve(args: argparse.Namespace, arm: Arm) -> int:
     if not (1.0 <= args.rate_hz <= 10000.0):
-        raise ConfigError("--rate-hz must be between 1 and 10000", field="rate-hz")
+        raise ConfigError("--rate must be between 1 and 10000 Hz", field="rate")
     if not args.stale_after > 0:
         raise ConfigError("--stale-after must be positive", field="stale-after")
     keys = load_server_keys(args.keys) if args.keys else None

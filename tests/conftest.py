@@ -20,6 +20,33 @@ def headless_sdl() -> None:
         os.environ.setdefault(key, value)
 
 
+class FakeClock:
+    """A clock (s) that moves only when slept on, when work is simulated, by hand (`now`),
+    or by `read_cost_s` on every reading (so a spin-wait ends, as a real one does)."""
+
+    def __init__(self, start_s: float = 100.0, read_cost_s: float = 1e-6,
+                 sleep_overshoot_s: float = 0.0) -> None:
+        self.now = start_s
+        self.read_cost_s = read_cost_s
+        self.sleep_overshoot_s = sleep_overshoot_s
+        self.sleeps = 0
+
+    def __call__(self) -> float:
+        self.now += self.read_cost_s
+        return self.now
+
+    def sleep(self, d: float) -> None:
+        self.sleeps += 1
+        self.now += d + self.sleep_overshoot_s
+
+    def work(self, d: float) -> None:
+        self.now += d
+
+
+@pytest.fixture
+def fake_clock() -> type[FakeClock]:
+    """The fake clock class: `fake_clock(start_s=…, read_cost_s=…)` makes one."""
+    return FakeClock
 @pytest.fixture
 def virtual_pads():
     """Make virtual pads in this process (tests/virtual_pad.py): `virtual_pads(**kwargs)`

@@ -166,3 +166,17 @@ def test_sim_imports_only_the_arm_and_the_link() -> None:
             if target.startswith("runtime"):
                 assert target in SHARED or folder_of(target) in {"arm", "link"}, \
                     f"{module_name(path)} imports {target}"
+
+
+@pytest.mark.parametrize("folder", sorted(ALLOWED) + ["commands"])
+def test_each_folder_says_what_it_holds_and_lists_its_modules(folder: str) -> None:
+    """The folder's docstring names what it may import; `__all__` lists every module."""
+    init = ROOT / "runtime" / folder / "__init__.py"
+    tree = ast.parse(init.read_text(encoding="utf-8"))
+    assert "import" in (ast.get_docstring(tree) or "")
+    listed = next(ast.literal_eval(n.value) for n in tree.body if isinstance(n, ast.Assign)
+                  and any(getattr(t, "id", "") == "__all__" for t in n.targets))
+    here = init.parent
+    modules = {p.stem for p in here.glob("*.py") if p.name != "__init__.py"} | \
+        {p.parent.name for p in here.glob("*/__init__.py")}
+    assert sorted(listed) == sorted(modules)

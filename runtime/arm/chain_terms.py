@@ -115,17 +115,18 @@ def build_chain_terms(origins: NDArray[np.float64], revolute: list[bool], base: 
 
     # The sine arguments: row 0 gives 1, then cos and sin of f·q for every revolute group.
     angles, phases = [np.zeros(n)], [np.pi / 2]
-    columns = []                                    # the entries of s each group uses
+    columns: list[list[int] | None] = []            # the entries of s each group uses
     for joints in groups:
         if not revolute[joints[0]]:
             columns.append(None)                    # 1 and q_i: known once s is complete
             continue
-        columns.append([0])
+        entries = [0]
+        columns.append(entries)
         for f in _frequencies(len(joints)):
             for phase in (np.pi / 2, 0.0):          # cos, sin
                 row = np.zeros(n)
                 row[joints] = f
-                columns[-1].append(len(angles))
+                entries.append(len(angles))
                 angles.append(row)
                 phases.append(phase)
     A, phi = np.array(angles), np.array(phases)

@@ -34,7 +34,7 @@ Jacobian = NDArray[np.float64]  # (6, n)
 
 def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     """origin_i · Motion_i(q_i) for every joint, as one (n, 4, 4) batch (base not included)."""
-    O = arm.origins
+    O = arm.origins  # noqa: E741 (the origins, O_i in the formula)
     q = np.asarray(q, dtype=float)
     c = np.cos(q)[:, None]
     s = np.sin(q)[:, None]
@@ -60,7 +60,7 @@ def _chain(c: ChainTerms, q: NDArray[np.float64]) -> NDArray[np.float64]:
     if c.with_q:
         s = np.concatenate((s, q))
     local = c.matrix.dot(s).reshape(-1, 7)
-    chain = local.copy()                      # the first group's products are already final
+    chain: NDArray[np.float64] = local.copy()  # the first group's products are final
     for rows, before in c.steps:              # the chain product is sequential by nature
         local[rows].dot(chain[before], out=chain[rows])
     return chain
@@ -104,7 +104,7 @@ for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
 
 
 # S(p) of `pose_and_jacobian` as a linear map of (p, 1): S = _SHIFT·(p, 1), (42, 4).
-_SHIFT = np.zeros((6, 7, 4))
+_SHIFT: NDArray[np.float64] = np.zeros((6, 7, 4))
 for _a in range(3):
     _SHIFT[3 + _a, _a, 3] = 1.0                 # ω rows: z
     _SHIFT[_a, 4 + _a, 3] = 1.0                 # v rows: + o × z
@@ -182,7 +182,7 @@ def analyse_pose(arm: Arm, q: NDArray[np.float64]) -> KinematicsReport:
     q = np.asarray(q, dtype=float)
     T, J = pose_and_jacobian(arm, q)
     Jt = task_rows(J, arm.task_mask)
-    sv = np.linalg.svd(Jt, compute_uv=False)
+    sv = np.asarray(np.linalg.svd(Jt, compute_uv=False), dtype=np.float64)
     m = Jt.shape[0]
     if len(sv) < m:
         sv = np.concatenate((sv, np.zeros(m - len(sv))))

@@ -19,7 +19,8 @@ from .model import JOINT_KINDS, Arm, Joint, SolverSettings
 def arm_to_dict(arm: Arm) -> dict[str, Any]:
     """Every field of the arm (joints with origins, base, flange, tool, task axes, TCP caps,
     solver settings, home) as msgpack/JSON-ready values; 4×4 matrices as nested lists."""
-    return plain_data(arm, "arm")
+    data: dict[str, Any] = plain_data(arm, "arm")
+    return data
 
 
 def arm_from_dict(data: Mapping[str, Any]) -> Arm:

@@ -6,6 +6,8 @@ R = Rz(yaw)·Ry(pitch)·Rx(roll), as in the URDF specification.
 
 from __future__ import annotations
 
+from typing import Sequence
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -28,7 +30,7 @@ def rotz(angle_rad: float) -> Mat3:
     return np.array([[c, -s, 0.0], [s, c, 0.0], [0.0, 0.0, 1.0]])
 
 
-def rpy_to_matrix(rpy_rad) -> Mat3:
+def rpy_to_matrix(rpy_rad: Sequence[float] | NDArray[np.float64]) -> Mat3:
     """R = Rz(y)·Ry(p)·Rx(r). Example: rpy (0, 0, π/2) maps x to y."""
     r, p, y = (float(v) for v in rpy_rad)
     return rotz(y) @ roty(p) @ rotx(r)
@@ -46,7 +48,8 @@ def matrix_to_rpy(R: Mat3) -> NDArray[np.float64]:
     return np.array([roll, pitch, yaw])
 
 
-def make_transform(xyz_m=(0.0, 0.0, 0.0), rpy_rad=(0.0, 0.0, 0.0)) -> Mat4:
+def make_transform(xyz_m: Sequence[float] | NDArray[np.float64] = (0.0, 0.0, 0.0),
+                   rpy_rad: Sequence[float] | NDArray[np.float64] = (0.0, 0.0, 0.0)) -> Mat4:
     T = np.eye(4)
     T[:3, :3] = rpy_to_matrix(rpy_rad)
     T[:3, 3] = np.asarray(xyz_m, dtype=float)
@@ -65,15 +68,7 @@ def rot4(R: Mat3) -> Mat4:
     return T
 
 
-def inverse_transform(T: Mat4) -> Mat4:
-    """Closed-form inverse of a rigid transform: [Rᵀ, −Rᵀp]."""
-    Ti = np.eye(4)
-    Ti[:3, :3] = T[:3, :3].T
-    Ti[:3, 3] = -T[:3, :3].T @ T[:3, 3]
-    return Ti
-
-
-def rotation_aligning_z(axis) -> Mat3:
+def rotation_aligning_z(axis: Sequence[float] | NDArray[np.float64]) -> Mat3:
     """A rotation R with R·ẑ = axis (unit). Used to give every joint a local z axis."""
     a = np.asarray(axis, dtype=float)
     a = a / np.linalg.norm(a)
@@ -87,4 +82,5 @@ def rotation_aligning_z(axis) -> Mat3:
     s = np.linalg.norm(k)
     k /= s
     K = np.array([[0.0, -k[2], k[1]], [k[2], 0.0, -k[0]], [-k[1], k[0], 0.0]])
-    return np.eye(3) + s * K + (1.0 - c) * (K @ K)  # Rodrigues
+    R: Mat3 = np.eye(3) + s * K + (1.0 - c) * (K @ K)  # Rodrigues
+    return R

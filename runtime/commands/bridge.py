@@ -15,7 +15,7 @@ OPTIONS_SUMMARY = """\
 options (passed to the bridge; `jogwire bridge ARM --help` explains each):
   --endpoint E          where to listen (default tcp://127.0.0.1:47810)
   --keys DIR            CURVE keys from `jogwire keys DIR` (needed off loopback)
-  --rate-hz HZ          bridge periods per second (default 500)
+  --rate HZ             bridge periods per second (default 500)
   --stale-after S       no fresh rates for S seconds → ramp to zero (default 0.1)
   --driver MODULE:CLASS your sim.bridge.Driver subclass (default: the VirtualDriver)
   --dry-run-csv FILE    VirtualDriver: write every command it would send to FILE

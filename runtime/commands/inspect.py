@@ -60,10 +60,10 @@ def run(args: argparse.Namespace) -> int:
     given = [name for name in FOLDER_ONLY if getattr(args, name)]
     if given:
         raise ConfigError("filters apply to a folder of sessions, not to one log",
-                          field="--" + given[0].replace("_", "-"))
+                          field=given[0].replace("_", "-"))
     if args.csv == "-" and args.json:
         raise ConfigError("--csv - and --json both want standard output; give --csv a file",
-                          field="--csv")
+                          field="csv")
     summary, stats = session_stats(args.log)
     log = Path(args.log)
     if args.parquet:
@@ -83,13 +83,13 @@ def run(args: argparse.Namespace) -> int:
 def _run_folder(args: argparse.Namespace) -> int:
     if args.csv or args.parquet:
         raise ConfigError("exports take one session log, not a folder",
-                          field="--csv" if args.csv else "--parquet")
+                          field="csv" if args.csv else "--parquet")
     filt = CatalogFilter(
         arm=args.arm,
         since=None if args.since is None else parse_when(args.since, end_of_day=False,
-                                                         field="--since"),
+                                                         field="since"),
         until=None if args.until is None else parse_when(args.until, end_of_day=True,
-                                                         field="--until"),
+                                                         field="until"),
         limit_events=args.limit_events)
     rows = catalog(args.log, filt)
     if args.json:

@@ -17,8 +17,9 @@ import argparse
 import os
 import time
 
-from ..arm.model import load_arm
-from ..control.mapping import Mapper, load_pad
+from ..arm.load import load_arm
+from ..control.mapping import Mapper
+from ..control.pads import load_pad
 from ..errors import ConfigError
 
 

@@ -35,28 +35,26 @@ import json
 import math
 import subprocess
 import sys
-import time
 from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
 
+from ..arm.load import load_arm
+from ..arm.model import Arm
+from ..control.settings import RunSettings
+from ..errors import ConfigError, LogError
 from ..link.arm_process import ArmProcess
-from ..errors import ConfigError, LogError, TransportError
-from ..sessions.lockstep import LINKS, LockstepSim, arm_file_for, run_closed_loop
-from ..arm.model import Arm, load_arm
-from ..operator.progress import Progress
-from ..link.protocol import FLAG_REDUCED_SPEED, Rates, hello_for
-from ..sessions.log_schema import CycleRecord
-from ..sessions.log_reader import Session, read_session
-from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of, \
-    rerun_open_loop
+from ..link.protocol import hello_for
 from ..link.transport import ArmClient, load_client_keys
+from ..operator.terminal import format_table
+from ..sessions.lockstep import LINKS, arm_file_for
+from ..sessions.log_reader import Session, read_session
+from ..sessions.log_schema import CycleRecord
+from ..sessions.replay import ReplayLink, check_speed, check_start, paced_send, rerun_closed_loop
+from ..sessions.rerun import continuous_records, cycle_settings, inputs_of, rerun_open_loop
 
 DEFAULT_TOLERANCE = 1e-12
-START_TOLERANCE = {"revolute": math.radians(1.0), "prismatic": 1e-3}   # rad, m
-STATE_TIMEOUT_S = 0.5       # no state from the target this long: stop sending
-SPIN_S = 3e-4               # sleep until this long before a send, then spin (loop.py)
 ZERO_REPEATS = 5            # zero-rate messages sent at the end (one could be lost)
 
 
@@ -110,18 +108,18 @@ def run(args: argparse.Namespace) -> int:
 
 def _check_options(args: argparse.Namespace) -> None:
     if args.closed_loop and not args.rerun:
-        raise ConfigError("--closed-loop goes with --rerun", field="--closed-loop")
+        raise ConfigError("--closed-loop goes with --rerun", field="closed-loop")
     if args.rerun and (args.target or args.speed != 1.0 or args.from_here):
         raise ConfigError("--target, --speed and --from-here are for sending; a re-run "
-                          "moves no arm", field="--rerun")
+                          "moves no arm", field="rerun")
     if not (math.isfinite(args.speed) and 0.01 <= args.speed <= 100.0):
         raise ConfigError(f"--speed must be within 0.01…100, got {args.speed:g}",
-                          field="--speed")
+                          field="speed")
     if not (math.isfinite(args.step_hz) and 1.0 <= args.step_hz <= 20000.0):
         raise ConfigError(f"--step-hz must be within 1…20000, got {args.step_hz:g}",
-                          field="--step-hz")
+                          field="step-hz")
     if not (math.isfinite(args.tolerance) and args.tolerance >= 0.0):
-        raise ConfigError("--tolerance must be a number ≥ 0", field="--tolerance")
+        raise ConfigError("--tolerance must be a number ≥ 0", field="tolerance")
 
 
 def _arm(session: Session, override: str | None) -> Arm:
@@ -131,7 +129,7 @@ def _arm(session: Session, override: str | None) -> Arm:
     arm = load_arm(override)
     if arm.n != recorded.n:
         raise ConfigError(f"{override} has {arm.n} joints; the session was recorded with "
-                          f"{recorded.n} ({recorded.name})", field="--arm")
+                          f"{recorded.n} ({recorded.name})", field="arm")
     return arm
 
 
@@ -149,7 +147,10 @@ def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRe
     settings = cycle_settings(session.header.settings, where=where)
     frames = inputs_of(records, where)
     if args.closed_loop:
-        result = _rerun_closed(args, settings, records, frames, arm)
+        result = rerun_closed_loop(settings, records, frames, arm,
+                                   arm_spec=args.arm or arm_file_for(arm),
+                                   step_hz=args.step_hz, label=Path(args.log).name,
+                                   link=args.lockstep_link)
     else:
         cycle = settings.control_cycle(arm)
         diff = rerun_open_loop(cycle, records, frames)
@@ -165,41 +166,7 @@ def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRe
     return 0 if same else 1
 
 
-def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRecord],
-                  frames, arm: Arm) -> dict[str, Any]:
-    cycle = settings.control_cycle(arm)
-    inputs = RecordedInputs(records, frames, cycle.dt_s)
-    n_cycles = len(records)
-    recorded = np.array([r.rates for r in records])
-    recorded_q = np.array([r.q for r in records])
-    rates = np.zeros_like(recorded)
-    q_dev = np.zeros(arm.n)
-    spec = args.arm or arm_file_for(arm)
-    bar = Progress(f"re-run {Path(args.log).name}", n_cycles * cycle.dt_s)
-    start_q = recorded_q[0] if records[0].q else None
-    with LockstepSim(spec, arm, rate_hz=settings.rate_hz, step_hz=args.step_hz,
-                     start_q=start_q, link=args.lockstep_link) as sim:
-        for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
-                                 state_lag=settings.state_lag_cycles):
-            rates[c.k] = c.out.rates
-            q_dev = np.maximum(q_dev, np.abs(c.q_used - recorded_q[c.k]))
-            bar.update((c.k + 1) * cycle.dt_s)
-        bar.close()
-    diff = np.abs(rates - recorded)
-    worst = diff.argmax(axis=0)
-    differs = np.flatnonzero(diff.max(axis=1) > 0.0)
-    return {"mode": "closed loop (lockstep simulated arm)", "cycles": n_cycles,
-            "largest_difference": float(diff.max()),
-            "differing_cycles": int(differs.size),
-            "first_difference_t_s": float(records[differs[0]].t_s) if differs.size else None,
-            "joints": [{"name": name, "max_abs_difference": float(diff[i, j]),
-                        "at_t_s": float(records[i].t_s) if diff[i, j] > 0 else None,
-                        "max_pose_deviation": float(q_dev[j])}
-                       for j, (name, i) in enumerate(zip(arm.joint_names, worst.tolist()))]}
-
-
 def _format_rerun(r: dict[str, Any], arm: Arm) -> str:
-    from ..operator.terminal import format_table
     verdict = ("identical" if r["largest_difference"] == 0.0 else
                f"identical within {r['tolerance']:g}") if r["identical"] else "DIFFERENT"
     lines = [f"re-run ({r['mode']}) of {r['log']} with arm {r['arm']}: {r['cycles']} cycles, "
@@ -229,22 +196,9 @@ def _format_rerun(r: dict[str, Any], arm: Arm) -> str:
 # Send
 # ----------------------------------------------------------------------------------------
 
-class _Link:
-    """The runtime's end of the arm link while sending: the client and its sequence."""
-
-    def __init__(self, client: ArmClient) -> None:
-        self.client = client
-        self.seq = 0
-
-    def send(self, qd: np.ndarray, reduced: bool = False) -> bool:
-        self.seq += 1
-        return self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=qd,
-                                      flags=FLAG_REDUCED_SPEED if reduced else 0))
-
-
 def _send(args: argparse.Namespace, session: Session, records: Sequence[CycleRecord],
           arm: Arm) -> int:
-    _check_speed(arm, records, args.speed)
+    check_speed(arm, records, args.speed)
     start_q = np.array(records[0].q) if records[0].q else None
     child = None
     if args.target:
@@ -259,11 +213,12 @@ def _send(args: argparse.Namespace, session: Session, records: Sequence[CycleRec
     link = None
     try:
         keys = load_client_keys(args.keys) if args.keys else None
-        link = _Link(ArmClient(endpoint, hello=hello_for(arm, "runtime", stale_after_s=0.1),
-                               keys=keys))
+        hello = hello_for(arm, "runtime", stale_after_s=RunSettings.stale_after_s)
+        link = ReplayLink(ArmClient(endpoint, hello=hello, keys=keys))
         _, first = link.client.handshake(timeout_s=5.0)
-        _check_start(arm, np.array(first.q), start_q, args.from_here)
-        result = _paced_send(link, records, args, target)
+        check_start(arm, np.array(first.q), start_q, args.from_here)
+        result = paced_send(link, records, speed=args.speed, target=target,
+                            label=str(args.log))
     finally:
         if link is not None:
             for _ in range(ZERO_REPEATS):     # stop the arm, whatever ended the replay
@@ -276,103 +231,6 @@ def _send(args: argparse.Namespace, session: Session, records: Sequence[CycleRec
     else:
         print(_format_send(result, arm))
     return 0
-
-
-def _check_speed(arm: Arm, records: Sequence[CycleRecord], speed: float) -> None:
-    """Refuse a playback speed whose scaled rates would break the arm's limits.
-
-    Rates scale with X and accelerations with X², so only X ≤ 1 is always safe."""
-    if speed <= 1.0:
-        return
-    rates = np.array([r.rates for r in records])
-    t = np.array([r.t_s for r in records])
-    peak_speed = np.abs(rates).max(axis=0)
-    dt = np.diff(t)
-    ok = dt > 0
-    peak_accel = (np.abs(np.diff(rates, axis=0))[ok] / dt[ok, None]).max(axis=0) \
-        if ok.any() else np.zeros(arm.n)
-    with np.errstate(divide="ignore"):
-        fastest = min(float(np.min(arm.max_speed / peak_speed)),
-                      float(np.sqrt(np.min(arm.max_accel / peak_accel))))
-    fastest *= 1.0 + 1e-9          # a rate scaled onto a limit lands on it ± rounding
-    if speed > fastest:
-        raise ConfigError(f"at --speed {speed:g} the replay would command rates or "
-                          f"accelerations above {arm.name}'s limits (rates scale with the "
-                          f"speed, accelerations with its square); the fastest allowed is "
-                          f"--speed {math.floor(fastest * 100) / 100:g}", field="--speed")
-
-
-def _check_start(arm: Arm, q: np.ndarray, start_q: np.ndarray | None, from_here: bool) -> None:
-    if start_q is None or from_here:
-        return
-    tol = np.array([START_TOLERANCE[j.kind] for j in arm.joints])
-    off = np.abs(q - start_q)
-    if np.any(off > tol):
-        i = int(np.argmax(off / tol))
-        j = arm.joints[i]
-        k = math.degrees(1.0) if j.is_revolute else 1.0
-        unit = "deg" if j.is_revolute else "m"
-        raise ConfigError(
-            f"the target is not at the recorded start pose: {j.name} is at "
-            f"{q[i] * k:.3f} {unit}, the recording starts at {start_q[i] * k:.3f} {unit}; move "
-            f"the arm there first, or pass --from-here to replay the rates from where it is",
-            field="--from-here")
-
-
-def _paced_send(link: _Link, records: Sequence[CycleRecord], args: argparse.Namespace,
-                target: str) -> dict[str, Any]:
-    """Each record's rates (× speed) at its recorded time (÷ speed) after the start.
-
-    A record whose successor is already due when it comes up is skipped, never sent late
-    (the wire's rule: a late command is dropped, not queued), so the replay keeps the
-    recorded timing on a busy machine and the arm follows the newest rates."""
-    client = link.client
-    rates = np.array([r.rates for r in records]) * args.speed
-    times = (np.array([r.t_s for r in records]) - records[0].t_s) / args.speed
-    n = len(records)
-    recorded_q = np.array([r.q for r in records]) if records[0].q else None
-    deviation = np.zeros(rates.shape[1])
-    bar = Progress(f"replay {Path(args.log).name}", float(times[-1]) if n else 0.0)
-    clock = time.perf_counter
-    start = clock() + 0.02
-    last_state = clock()
-    latest_q = None
-    sent = skipped = 0
-    for k in range(n):
-        if k + 1 < n and clock() >= start + times[k + 1]:
-            skipped += 1
-            continue
-        _wait_until(start + times[k], clock)
-        link.send(rates[k], records[k].reduced)
-        sent += 1
-        inbox = client.receive()
-        now = clock()
-        if inbox.state is not None:
-            latest_q, last_state = np.array(inbox.state.q), now
-        elif now - last_state > STATE_TIMEOUT_S:
-            raise TransportError(f"no state from {target} for {STATE_TIMEOUT_S:g} s; replay "
-                                 f"stopped at t = {records[k].t_s:.3f} s")
-        if inbox.refuse is not None and inbox.refuse.code != "no_hello":
-            raise TransportError(f"{target} refused the replay ({inbox.refuse.code}): "
-                                 f"{inbox.refuse.reason}")
-        if latest_q is not None and recorded_q is not None:
-            deviation = np.maximum(deviation, np.abs(latest_q - recorded_q[k]))
-        bar.update(float(times[k]))
-    bar.close()
-    wall = clock() - start
-    return {"log": str(args.log), "target": target, "cycles": n, "sent": sent,
-            "skipped_late": skipped, "recorded_s": float(records[-1].t_s - records[0].t_s),
-            "speed": args.speed, "wall_s": wall, "dropped_sends": client.send_dropped,
-            "joints": [{"name": name, "max_pose_deviation": float(d)}
-                       for name, d in zip(client.hello.joints, deviation)]}
-
-
-def _wait_until(deadline: float, clock) -> None:
-    remaining = deadline - clock()
-    if remaining > SPIN_S:
-        time.sleep(remaining - SPIN_S)
-    while clock() < deadline:
-        pass
 
 
 def _format_send(r: dict[str, Any], arm: Arm) -> str:

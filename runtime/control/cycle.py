@@ -22,17 +22,18 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.kinematics import analyse_pose
-from .limits import apply_limits, binding_limit, start_pose
-from .mapping import InputFrame, Intent, Mapper, PadMapping
 from ..arm.model import Arm
-from .safety import SafetyGate, SafetySettings, Verdict
+from .intent import InputFrame, Intent
+from .limits import apply_limits, binding_limit, start_pose
+from .mapping import Mapper
+from .pads import PadMapping
+from .safety import SafetyGate, Verdict
+from .settings import STATE_LAGS, RunSettings
 from .solver import Solution, solve
 
 Vector = NDArray[np.float64]
 
-# How many cycles the measured pose a closed-loop run works on may lag behind the arm
-# (runtime.sessions.lockstep.run_closed_loop; recorded as `state_lag_cycles`, read by runtime.sessions.rerun).
-STATE_LAGS = (0, 1)
+__all__ = ["STATE_LAGS", "ControlCycle", "CycleOutput"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -48,15 +49,15 @@ class CycleOutput:
 class ControlCycle:
     """Mapper, safety gate and solver for one arm, with the rates sent last cycle."""
 
-    def __init__(self, arm: Arm, pad: PadMapping, *, rate_hz: float,
-                 safety: SafetySettings = SafetySettings(), reduced_locked: bool = False,
-                 locked: tuple[str, ...] = (), state_lag_cycles: int = 1) -> None:
+    def __init__(self, arm: Arm, pad: PadMapping, settings: RunSettings) -> None:
         self.arm = arm
-        self.dt_s = 1.0 / rate_hz
-        self.state_lag_cycles = state_lag_cycles  # how far q lags the arm (limits.start_pose)
-        self.locked = locked
-        self.mapper = Mapper(pad, arm, reduced_locked=reduced_locked)
-        self.gate = SafetyGate(safety)
+        self.settings = settings
+        self.dt_s = settings.dt_s
+        # how far q lags the arm (limits.start_pose): as set for a lockstep run, else one cycle
+        self.state_lag_cycles = settings.effective_state_lag
+        self.locked = settings.locked_axes
+        self.mapper = Mapper(pad, arm, reduced_locked=settings.reduced_locked)
+        self.gate = SafetyGate(settings.safety())
         self.prev_rates = np.zeros(arm.n)
 
     def step(self, frame: InputFrame, now_s: float, q: Vector | None,
@@ -101,6 +102,6 @@ class ControlCycle:
             manipulability=pose.manipulability, commanded_twist=pose.jacobian @ rates,
             achieved_twist=limited.twist, tracking_error=0.0, tracking_error_linear=0.0,
             tracking_error_angular=0.0, scales=limited.scales,
-            binding_limit=binding_limit(limited.scales), saturated_joints=(),
+            binding_limit=binding_limit(limited.scales, limited.conflicts), saturated_joints=(),
             conflicts=limited.conflicts)
 

@@ -250,7 +250,7 @@ def pushing_into_limits(bounds: JointBounds, q: Vector, rates: Vector, dt_s: flo
 
 def _worst_ratio(values: Vector, inv_limits: tuple[float, ...]) -> float:
     """max_i |values_i| / limit_i."""
-    return max(map(mul, map(abs, values.tolist()), inv_limits))
+    return float(max(map(mul, map(abs, values.tolist()), inv_limits)))
 
 
 def speed_factor(bounds: JointBounds, rates: Vector) -> float:
@@ -387,13 +387,14 @@ def tcp_caps(arm: Arm, twist: Vector, reduced: bool) -> tuple[float, float, floa
 
 def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                  reduced: bool = False, prev_rates: Vector | None = None,
-                 dt_s: float = 0.002, clear: bool | None = None) -> Limited:
+                 dt_s: float, clear: bool | None = None) -> Limited:
     """Bring `rates` (the solver's joint rates) within every limit of `arm`.
 
     q is the pose where the rates start to act (`start_pose`: the measured pose moved on by
     the rates still in flight); the position limits are judged from it. J is the 6×n
     geometric Jacobian at the measured pose (TCP reference point; only norms of J·q̇ are
-    used, so any axes do): the TCP caps hold at the pose the controller knows. `prev_rates` are the rates sent last cycle; None means no history (a
+    used, so any axes do): the TCP caps hold at the pose the controller knows. `prev_rates`
+    are the rates sent last cycle; None means no history (a
     one-off query such as `jogwire probe`) and skips the acceleration limit; the control
     loop starts from zeros. Returns the limited rates, their TCP twist and the factor of each
     limit (1.0 when it did not bind), named as in SCALE_NAMES. `clear` is
@@ -446,8 +447,12 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
     return Limited(r, twist, scales, conflicts)
 
 
-def binding_limit(scales: dict[str, float]) -> str | None:
-    """The name of the smallest factor below 1 (the first in order on a tie), or None."""
+def binding_limit(scales: dict[str, float], conflicts: tuple[str, ...] = ()) -> str | None:
+    """What limited this cycle, by name: the bound that won a conflict (`CONFLICTS`) if two
+    could not both hold, else the smallest factor below 1 (the first in order on a tie), or
+    None. The cycle's log record keeps this name, so a conflict is an event of the log."""
+    if conflicts:
+        return conflicts[0]
     name, smallest = None, 1.0
     for key, value in scales.items():
         if value < smallest:

@@ -33,7 +33,7 @@ import numpy as np
 class Tick(NamedTuple):
     """What the body learns about its cycle. Times are clock readings in seconds."""
 
-    index: int             # cycle number, from 0
+    index: int  # type: ignore[assignment]  # cycle number, from 0 (shadows tuple.index)
     deadline_s: float      # when this cycle was due
     start_s: float         # when it started
     period_s: float        # nominal period T = 1/rate
@@ -136,7 +136,7 @@ class FixedRateLoop:
     window_s: how much recent history the percentile statistics cover.
     """
 
-    def __init__(self, rate_hz: float = 500.0, *, clock: Callable[[], float] = time.perf_counter,
+    def __init__(self, rate_hz: float, *, clock: Callable[[], float] = time.perf_counter,
                  sleep: Callable[[float], None] = time.sleep, spin_s: float = 3e-4,
                  window_s: float = 10.0) -> None:
         if not (math.isfinite(rate_hz) and rate_hz > 0):
@@ -221,8 +221,14 @@ class FixedRateLoop:
         return self.stats()
 
     def _wait_until(self, deadline: float) -> None:
-        remaining = deadline - self._clock()
-        if remaining > self.spin_s:
-            self._sleep(remaining - self.spin_s)
-        while self._clock() < deadline:
-            pass
+        wait_until(deadline, self._clock, self._sleep, self.spin_s)
+
+
+def wait_until(deadline: float, clock: Callable[[], float],
+               sleep: Callable[[float], None] = time.sleep, spin_s: float = 3e-4) -> None:
+    """Sleep until `spin_s` before `deadline` (s on `clock`), then spin on the clock to it."""
+    remaining = deadline - clock()
+    if remaining > spin_s:
+        sleep(remaining - spin_s)
+    while clock() < deadline:
+        pass

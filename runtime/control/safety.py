@@ -44,6 +44,11 @@ BLOCKED = "blocked"
 STOPPED = "stopped"
 STATES = (READY, MOVING, REARM, BLOCKED, STOPPED)
 
+# The one default of stale_after (s) and of the overrun limit (cycles); a run's settings
+# (`runtime.control.settings.RunSettings`) take them from here.
+STALE_AFTER_S = 0.1
+OVERRUN_LIMIT = 5
+
 
 @dataclass(frozen=True)
 class SafetySettings:
@@ -54,8 +59,8 @@ class SafetySettings:
     max_round_trip_s: a link round trip above this (s) forbids motion; None: stale_after_s
     (`round_trip_limit_s` is the value in force)."""
 
-    stale_after_s: float = 0.05
-    overrun_limit: int = 5
+    stale_after_s: float = STALE_AFTER_S
+    overrun_limit: int = OVERRUN_LIMIT
     max_round_trip_s: float | None = None
 
     def __post_init__(self) -> None:

@@ -29,7 +29,9 @@ control loop, preflight and `jogwire probe` call. One cycle:
     null space, Flacco, De Luca & Khatib 2012/2015), so the arm slides along the limit.
     The re-solve is kept only if the arm then does no motion that was not asked for;
     otherwise the arm stops at the limit.
- 6. Limits by uniform scaling (`runtime.control.limits`).
+ 6. Limits by uniform scaling (`runtime.control.limits`). With a workcell, the velocity
+    damper (`runtime.control.clearance`) first restricts the rates to those that approach
+    nothing faster than its bound, and re-checks them after the acceleration ramp.
 
 σ_min cheaply: the eigenvalues of the small Gram matrix JJᵀ (6×6) are the σ², for fewer
 flops than an SVD of J; benchmarks/bench_solver.py times the options. One eigvalsh and one
@@ -44,17 +46,24 @@ from functools import lru_cache, partial
 from typing import Any, Callable, Iterable, NamedTuple
 
 import numpy as np
-from numpy.typing import NDArray
+from numpy.typing import ArrayLike, NDArray
 
-from ..errors import ConfigError
 from ..arm.kinematics import pose_and_jacobian, tool_frame_jacobian, twist_to_base
-from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
-                     pushing_into_limits, start_pose)
-from ..arm.model import TASK_AXES, Arm
+from ..arm.model import FRAMES, TASK_AXES, Arm
+from ..errors import ConfigError
+from .clearance import ClearanceGuard, ClearanceLimit, ClearanceReport
+from .limits import (
+    SCALE_NAMES,
+    JointBounds,
+    apply_limits,
+    binding_limit,
+    clear_of_limits,
+    pushing_into_limits,
+    start_pose,
+)
 
 Vector = NDArray[np.float64]
 
-FRAMES = ("base", "tool")
 
 RESOLVE_TOLERANCE = 0.02
 """How far (relative to ‖v‖ over the task rows) a re-solved motion may stray outside the
@@ -74,8 +83,9 @@ goes through its eigenvectors, and the null-space projection is refined."""
 
 _IS_LINEAR = (True, True, True, False, False, False)
 
-_dot = np.dot  # on these small arrays about 0.5 µs cheaper per call than the @ operator;
+# np.dot: on these small arrays about 0.5 µs cheaper per call than the @ operator;
 # for a vector x, Jᵀx is written np.dot(x, J)
+_dot: Callable[[ArrayLike, ArrayLike], Vector] = np.dot
 
 
 def _linalg_kernels() -> tuple[Callable[..., Vector], Callable[..., Vector],
@@ -125,9 +135,11 @@ class Solution:
     tracking_error    ‖achieved − commanded‖ over the task rows (limits' slowing included);
                       _linear (m/s) and _angular (rad/s) split it by kind of row
     scales            every limit factor in [0, 1] by name (limits.SCALE_NAMES)
-    binding_limit     the name of the smallest factor below 1, or None
+    binding_limit     the name of the smallest factor below 1, or None; the name of the
+                      conflict instead when two bounds could not both hold (limits.CONFLICTS)
     saturated_joints  joints taken out of the solve because they sit at a position limit
     conflicts         bounds that had to give way to another this cycle (limits.CONFLICTS)
+    clearance         distances to the cell and the damper's effect (None without a cell)
     """
 
     rates: Vector
@@ -143,6 +155,7 @@ class Solution:
     binding_limit: str | None = None
     saturated_joints: tuple[str, ...] = ()
     conflicts: tuple[str, ...] = ()
+    clearance: ClearanceReport | None = None
 
     @property
     def scale(self) -> float:
@@ -151,7 +164,7 @@ class Solution:
 
     def as_dict(self) -> dict[str, Any]:
         """Plain JSON/msgpack-ready values (lists and floats)."""
-        return {
+        out = {
             "rates": self.rates.tolist(),
             "damping": self.damping,
             "sigma_min": self.sigma_min,
@@ -166,6 +179,9 @@ class Solution:
             "binding_limit": self.binding_limit,
             "saturated_joints": list(self.saturated_joints),
         }
+        if self.clearance is not None:
+            out["clearance"] = self.clearance.as_dict()
+        return out
 
 
 # ----------------------------------------------------------------------------------------
@@ -334,8 +350,9 @@ def _lock_index(locked: tuple[str, ...]) -> NDArray[np.intp]:
 
 def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
-          prev_rates: Vector | None = None, dt_s: float = 0.002,
-          state_lag_cycles: int = 1) -> Solution:
+          prev_rates: Vector | None = None, dt_s: float,
+          state_lag_cycles: int = 1,
+          clearance: ClearanceLimit | None = None) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
     q           measured joint positions (n,), rad or m
@@ -347,6 +364,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     dt_s        control period, s
     state_lag_cycles  how many periods q lags the arm (0 or 1): the position limits are
                 judged from where the arm will be when these rates act (`start_pose`)
+    clearance   the arm's collision model in a cell: the velocity damper keeps every pair
+                clear (runtime.control.clearance); None: no cell
 
     Never raises or returns NaN for finite inputs of the right shapes (exact singularities
     and zero twists included). Wrong shapes, non-finite values, an unknown frame or axis
@@ -384,8 +403,14 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         rates, damping, free = _resolve_at_limits(arm, q_start, Jt, vt, z, rates, damping,
                                                   dt_s)
 
-    limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
-                           clear=clear)
+    guard = None
+    if clearance is not None:  # the velocity damper, around the other limits
+        guard = ClearanceGuard(clearance, q, Jt, damping, rates)
+        rates = guard.rates
+    limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates,
+                           dt_s=dt_s, clear=clear)
+    if guard is not None:
+        limited = guard.settle(limited)
     # Tracking error over the task rows; norms are the same in base and tool axes.
     e_lin = e_ang = 0.0
     for is_task, is_linear, a, c in zip(consts.task_axes, _IS_LINEAR, limited.twist.tolist(),
@@ -402,8 +427,9 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         manipulability=first.manipulability, commanded_twist=v_base,
         achieved_twist=limited.twist, tracking_error=math.sqrt(e_lin + e_ang),
         tracking_error_linear=math.sqrt(e_lin), tracking_error_angular=math.sqrt(e_ang),
-        scales=limited.scales, binding_limit=binding_limit(limited.scales),
-        saturated_joints=saturated, conflicts=limited.conflicts)
+        scales=limited.scales, binding_limit=binding_limit(limited.scales, limited.conflicts),
+        saturated_joints=saturated, conflicts=limited.conflicts,
+        clearance=None if guard is None else guard.report)
 
 
 def _checked(n: int, q: Vector, twist: Vector, frame: str, prev_rates: Vector | None,

@@ -19,7 +19,7 @@ import subprocess
 import sys
 import time
 from pathlib import Path
-from typing import IO, Any
+from typing import IO, Any, Sequence
 
 from ..errors import TransportError
 
@@ -44,13 +44,14 @@ def child_argv(kind: str, arm: str, options: list[str]) -> list[str]:
 class ArmProcess:
     """A running `sim.arm` / `sim.bridge` child. Use as a context manager; `stop()` ends it."""
 
-    def __init__(self, kind: str, arm: str, options: list[str] = (), *,
+    def __init__(self, kind: str, arm: str, options: Sequence[str] = (), *,
                  ready_timeout_s: float = 30.0, stderr: int | IO[Any] | None = None,
                  new_session: bool = False, pass_fds: tuple[int, ...] = ()) -> None:
         # new_session: the child leaves our process group, so a Ctrl-C at the terminal
         # reaches only us and we stop it in order (zero rates first, then the child).
         # pass_fds: file descriptors the child inherits (the ends of a pipe link).
-        self.proc = subprocess.Popen(child_argv(kind, arm, list(options)), env=child_env(),
+        self.argv = child_argv(kind, arm, list(options))
+        self.proc = subprocess.Popen(self.argv, env=child_env(),
                                      stdout=subprocess.PIPE, stderr=stderr, text=True,
                                      start_new_session=new_session, pass_fds=pass_fds)
         self.output = self.errors = ""
@@ -65,17 +66,19 @@ class ArmProcess:
 
     def _read_ready(self, timeout_s: float) -> str:
         deadline = time.monotonic() + timeout_s
+        stdout = self.proc.stdout
+        assert stdout is not None                    # (opened as a pipe above)
         with selectors.DefaultSelector() as sel:
-            sel.register(self.proc.stdout, selectors.EVENT_READ)
+            sel.register(stdout, selectors.EVENT_READ)
             while (remaining := deadline - time.monotonic()) > 0:
                 if sel.select(remaining):
-                    line = self.proc.stdout.readline()
+                    line = stdout.readline()
                     if not line:
                         break
                     if " ready: " in line:
                         return line.strip()
         status = self.proc.poll()
-        raise TransportError(f"the arm side ({' '.join(self.proc.args[2:])}) "
+        raise TransportError(f"the arm side ({' '.join(self.argv[2:])}) "
                              + (f"exited with status {status}" if status is not None else
                                 f"was not ready within {timeout_s:g} s"))
 

@@ -32,8 +32,8 @@ import struct
 import time
 from collections import Counter
 
-from ..errors import TransportError
-from .protocol import MAX_MESSAGE_BYTES, Hello, Message, ProtocolError, State, encode
+from ..errors import ProtocolError, TransportError
+from .protocol import MAX_MESSAGE_BYTES, Hello, Message, State, encode
 from .shared_rings import RingChannel, close_fds, create_memory
 from .transport import Inbox, check_answer, decode_counted
 

@@ -34,8 +34,8 @@ import msgpack
 import numpy as np
 from numpy.typing import NDArray
 
+from ..arm.model import FRAMES, Arm, limits_digest
 from ..errors import ModelMismatch, ProtocolError
-from ..arm.model import Arm, limits_digest
 
 PROTOCOL_VERSION = 1
 MAX_MESSAGE_BYTES = 16384   # a hello for MAX_JOINTS joints with long names stays well below
@@ -48,7 +48,6 @@ INT64_MIN, INT64_MAX = -2**63, 2**63 - 1
 ROLES = ("runtime", "observer", "sim", "bridge")
 STATUSES = ("waiting", "tracking", "stale")
 REFUSE_CODES = ("mismatch", "busy", "no_hello", "not_controller", "version")
-FRAMES = ("base", "tool")
 
 FLAG_REDUCED_SPEED = 1      # rates.flags bit 0: the operator selected reduced speed
 KNOWN_FLAGS = FLAG_REDUCED_SPEED
@@ -192,7 +191,7 @@ def _flags(value: Any, n: int | None, field: str) -> int:
     value = _FLAG_WORD(value, n, field)
     if value & ~KNOWN_FLAGS:
         raise _bad("range", field, f"unknown flag bits {value & ~KNOWN_FLAGS:#x}")
-    return value
+    return int(value)
 
 
 def _bool(value: Any, n: int | None, field: str) -> bool:
@@ -294,7 +293,7 @@ _KEYS = {kind: frozenset(("v", "kind", *(key for key, _ in spec)))
          for kind, spec in FIELDS.items()}
 
 
-def _checked(kind: str, data: dict, n_joints: int | None) -> dict[str, Any]:
+def _checked(kind: str, data: dict[str, Any], n_joints: int | None) -> dict[str, Any]:
     """The field values of a `kind` map, each checked; raises ProtocolError."""
     spec, expected = FIELDS[kind], _KEYS[kind]
     if data.keys() != expected:
@@ -327,7 +326,8 @@ def encode(msg: Message) -> bytes:
     """One wire frame for `msg`. Raises ProtocolError if `msg` breaks the schema (never sent)."""
     data = to_map(msg)
     _checked(data["kind"], data, None)
-    return msgpack.packb(data, use_bin_type=True)
+    packed: bytes = msgpack.packb(data, use_bin_type=True)
+    return packed
 
 
 _UNPACK_LIMITS = dict(raw=False, strict_map_key=True, use_list=True,
@@ -368,7 +368,8 @@ def decode(data: Any, *, n_joints: int | None = None) -> Message:
         raise ProtocolError("no string 'kind'", reason="schema" if kind is None else "type")
     if kind not in FIELDS:
         raise ProtocolError(f"unknown kind {kind[:40]!r}", reason="kind")
-    return KINDS[kind](**_checked(kind, obj, n_joints))
+    message: Message = KINDS[kind](**_checked(kind, obj, n_joints))
+    return message
 
 
 # ----------------------------------------------------------------------------------------
@@ -392,6 +393,11 @@ def geometry_digest(arm: Arm) -> str:
         lines.append(f"{joint.kind} {numbers(T[:3, 3])} {numbers(T[:3, 2])}")
     lines.append(f"tcp {numbers((T @ arm.tip)[:3, :4].ravel())}")
     return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
+
+
+def rates_message(seq: int, t_ns: int, qd: Any, *, reduced: bool = False) -> Rates:
+    """Rates number `seq` stamped `t_ns`, with the reduced-speed flag when `reduced`."""
+    return Rates(seq=seq, t_ns=t_ns, qd=qd, flags=FLAG_REDUCED_SPEED if reduced else 0)
 
 
 def hello_for(arm: Arm, role: str, *, stale_after_s: float) -> Hello:

@@ -25,8 +25,8 @@ calls decode, count malformed messages by reason in `dropped`, and never raise f
 
 Security: an endpoint that is neither loopback (tcp://127.x.x.x, tcp://[::1],
 tcp://localhost) nor ipc:// needs CURVE keys (`jogwire keys DIR`); the check runs before any
-socket exists. The side holding `ServerKeys` authenticates clients against a folder of allowed public keys
-through a ZAP handler (pyzmq's ThreadAuthenticator) on its own ZeroMQ context.
+socket exists. The side holding `ServerKeys` authenticates clients against a folder of allowed
+public keys through a ZAP handler (pyzmq's ThreadAuthenticator) on its own ZeroMQ context.
 """
 
 from __future__ import annotations
@@ -40,15 +40,14 @@ import time
 from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Union
+from typing import Union, cast
 
 import zmq
 import zmq.auth
 from zmq.auth.thread import ThreadAuthenticator
 
 from ..errors import ModelMismatch, ProtocolError, TransportError
-from .protocol import MAX_MESSAGE_BYTES, Hello, Message, Refuse, State, check_hello, decode, \
-    encode
+from .protocol import MAX_MESSAGE_BYTES, Hello, Message, Refuse, State, check_hello, decode, encode
 
 DEFAULT_ARM_ENDPOINT = "tcp://127.0.0.1:47810"     # arm side binds, runtime connects
 DEFAULT_TWIST_ENDPOINT = "tcp://127.0.0.1:47811"   # runtime binds, input programs connect
@@ -251,7 +250,7 @@ class _Socket:
 
     def _recv_frames(self) -> list[bytes] | None:
         # Asking ZMQ_EVENTS first is cheaper than the zmq.Again that ends every drain.
-        if not self.socket.getsockopt(zmq.EVENTS) & zmq.POLLIN:
+        if not cast(int, self.socket.getsockopt(zmq.EVENTS)) & zmq.POLLIN:
             return None
         try:
             return self.socket.recv_multipart(zmq.NOBLOCK, copy=True)

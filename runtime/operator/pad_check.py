@@ -15,7 +15,9 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from ..arm.model import Arm
-from ..control.mapping import ACTIONS, Button, InputFrame, Intent, Mapper, PadMapping
+from ..control.intent import Button, InputFrame, Intent
+from ..control.mapping import Mapper
+from ..control.pads import ACTIONS, PadMapping
 from .inputs.gamepad import GamepadSource
 from .inputs.pygame_init import init_events, init_fonts, pygame
 
@@ -244,14 +246,18 @@ class PadCheckWindow:
             pygame.display.quit()
             self.screen = None
 
+    def _surface(self) -> pygame.Surface:
+        assert self.screen is not None, "open the window first"
+        return self.screen
+
     def _text(self, text: str, pos: tuple[int, int], size: int = 18,
               colour: tuple[int, int, int] = TEXT) -> None:
         font = self._fonts.get(size) or self._fonts.setdefault(size, pygame.font.Font(None, size))
-        self.screen.blit(font.render(text, True, colour), pos)
+        self._surface().blit(font.render(text, True, colour), pos)
 
     def draw(self, frame: InputFrame, intent: Intent, roles: Roles, rest: tuple[float, ...],
              buttons: int, arm: Arm) -> None:
-        s = self.screen
+        s = self._surface()
         s.fill(GROUND)
         self._text(frame.device if frame.present else f"{frame.device}: waiting for a pad",
                    (20, 14), 30)

@@ -34,7 +34,8 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Protocol
 
-from ..control.mapping import Button, InputFrame, load_pad
+from ..control.intent import Button, InputFrame
+from ..control.pads import load_pad
 from ..errors import ConfigError, DeviceError
 
 PUSH_MIN = 0.7          # a stick counts as pushed this far from rest (fraction of travel)
@@ -210,7 +211,7 @@ class PadLearner:
                            f"({self.prompt})")
 
     def _feed_rest(self, now_s: float, s: _Step, frame: InputFrame) -> None:
-        if frame.pressed:
+        if frame.pressed or s.started_s is None:
             s.started_s = now_s            # a button held: start the rest over
             self._rest_samples.clear()
             return

@@ -31,10 +31,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from .. import palette
-from .inputs.pygame_init import init_events, init_fonts, pygame
 from ..arm.kinematics import joint_frames
-from ..control.loop import TimingStats
 from ..arm.model import Arm
+from ..control.loop import TimingStats
+from ..control.safety import STALE_AFTER_S
+from .inputs.pygame_init import init_events, init_fonts, pygame
 
 SIZE = (1120, 720)
 
@@ -79,7 +80,7 @@ class StatusSnapshot:
     target: str = ""
     connected: bool = False
     state_age_s: float | None = None
-    stale_after_s: float = 0.05
+    stale_after_s: float = STALE_AFTER_S
     rtt_s: float | None = None
     timing: TimingStats | None = None
     elapsed_s: float = 0.0
@@ -124,12 +125,6 @@ def _text(surf: pygame.Surface, text: str, pos: tuple[int, int], size: int = 20,
     rect = img.get_rect(**{anchor: pos})
     surf.blit(img, rect)
     return rect
-
-
-def _panel(surf: pygame.Surface, rect: pygame.Rect, title: str) -> pygame.Rect:
-    pygame.draw.rect(surf, PANEL, rect, border_radius=6)
-    _text(surf, title.upper(), (rect.x + 12, rect.y + 8), 17, MUTED, bold=True)
-    return rect.inflate(-24, -34).move(0, 11)
 
 
 def _mix(a: tuple[int, int, int], b: tuple[int, int, int], t: float) -> tuple[int, int, int]:
@@ -393,8 +388,8 @@ def _draw_chain(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
         pygame.draw.line(surf, palette.TOOL, screen[-1], px(tool_end), 3)
         pygame.draw.circle(surf, palette.TOOL, screen[-1], 6)
     surf.set_clip(clip)
-    p = T[:3, 3]
-    _text(surf, f"TCP  x {p[0]:+.3f}  y {p[1]:+.3f}  z {p[2]:+.3f} m",
+    tcp = T[:3, 3]
+    _text(surf, f"TCP  x {tcp[0]:+.3f}  y {tcp[1]:+.3f}  z {tcp[2]:+.3f} m",
           (L.views[1][0].right, L.views[0][0].y - 25), 17, MUTED, anchor="topright")
 
 

@@ -17,12 +17,12 @@ from typing import Any, Iterator, TextIO
 
 import numpy as np
 
+from ..arm.model import TASK_AXES
 from ..errors import ConfigError
 from .log_blocks import CycleBlock
 from .log_reader import SessionReader
 from .summary import SessionStats
 
-TWIST_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
 PYARROW_MISSING = ("Parquet export needs pyarrow, which is not installed; install the "
                    "analysis extra (pip install 'jogwire[analysis]') or use --csv")
 
@@ -31,9 +31,9 @@ def table_columns(stats: SessionStats) -> list[str]:
     """The column names of the cycle table, in order."""
     names = stats.arm.joint_names
     return (["cycle", "t_s", "enabled", "enable_reason", "reduced", "frame"]
-            + [f"twist_{a}" for a in TWIST_AXES]
+            + [f"twist_{a}" for a in TASK_AXES]
             + [f"q_{n}" for n in names] + [f"rate_{n}" for n in names]
-            + [f"achieved_{a}" for a in TWIST_AXES]
+            + [f"achieved_{a}" for a in TASK_AXES]
             + ["damping", "sigma_min", "manipulability", "tracking_error"]
             + [f"scale_{s}" for s in sorted(stats.scale_names)]
             + ["binding_limit", "period_s", "compute_s", "overrun"]
@@ -50,9 +50,9 @@ def table_of(block: CycleBlock, stats: SessionStats) -> dict[str, Any]:
                             "enable_reason": block["enable_reason"].tolist(),
                             "reduced": block["reduced"], "frame": block["frame"].tolist()}
     joints = stats.arm.joint_names
-    for prefix, name, labels in (("twist", "twist", TWIST_AXES), ("q", "q", joints),
+    for prefix, name, labels in (("twist", "twist", TASK_AXES), ("q", "q", joints),
                                  ("rate", "rates", joints),
-                                 ("achieved", "achieved_twist", TWIST_AXES)):
+                                 ("achieved", "achieved_twist", TASK_AXES)):
         m = block.matrix(name, len(labels))
         cols.update({f"{prefix}_{label}": m[:, k] for k, label in enumerate(labels)})
     for name in ("damping", "sigma_min", "manipulability", "tracking_error"):
@@ -96,7 +96,7 @@ def write_csv(log: Path, target: str, stats: SessionStats) -> int:
                 writer.writerows(zip(*(_csv_cells(cols[name]) for name in names)))
                 rows += block.n
     except OSError as exc:
-        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="--csv"
+        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="csv"
                           ) from None
     return rows
 
@@ -128,7 +128,7 @@ def write_parquet(log: Path, target: str, stats: SessionStats) -> int:
         import pyarrow as pa
         import pyarrow.parquet as pq
     except ImportError:
-        raise ConfigError(PYARROW_MISSING, field="--parquet") from None
+        raise ConfigError(PYARROW_MISSING, field="parquet") from None
     schema = pa.schema([(name, _arrow_type(pa, name)) for name in table_columns(stats)])
     rows = 0
     try:
@@ -139,7 +139,7 @@ def write_parquet(log: Path, target: str, stats: SessionStats) -> int:
                                              for f in schema}, schema=schema))
                 rows += block.n
     except OSError as exc:
-        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="--parquet"
+        raise ConfigError(f"cannot write {target}: {exc.strerror or exc}", field="parquet"
                           ) from None
     return rows
 

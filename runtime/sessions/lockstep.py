@@ -32,14 +32,21 @@ from typing import Any, Callable, Iterator, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from ..link.arm_process import ArmProcess
-from ..errors import ConfigError, TransportError
-from ..control.mapping import InputFrame
-from ..arm.model import Arm, configs_dir, limits_digest, load_arm
+from ..arm.load import load_arm
+from ..arm.model import Arm, configs_dir, limits_digest
 from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
-from ..link.protocol import FLAG_REDUCED_SPEED, Rates, Refuse, State, geometry_digest, hello_for
-from ..link.pipes import PipeClient, child_link, link_spec
+from ..control.intent import InputFrame
+from ..errors import ConfigError, TransportError
+from ..link.arm_process import ArmProcess
 from ..link import shared_rings
+from ..link.pipes import PipeClient, child_link, link_spec
+from ..link.protocol import (
+    Refuse,
+    State,
+    geometry_digest,
+    hello_for,
+    rates_message,
+)
 
 Vector = NDArray[np.float64]
 
@@ -180,8 +187,8 @@ class LockstepSim:
         `wait` takes to collect the state after them."""
         assert self.client is not None
         self.seq += 1
-        sent = self.client.send(Rates(seq=self.seq, t_ns=time.monotonic_ns(), qd=rates,
-                                      flags=FLAG_REDUCED_SPEED if reduced else 0))
+        sent = self.client.send(rates_message(self.seq, time.monotonic_ns(), rates,
+                                              reduced=reduced))
         if not sent:
             raise TransportError(self._gone("the link to the simulated arm is down"))
         return self.seq

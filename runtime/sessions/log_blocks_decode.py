@@ -19,9 +19,29 @@ import msgpack
 import numpy as np
 
 from ..errors import LogError
-from .log_blocks import (BOOL, BOOL_LIST, CODEC, COLUMNS, DELTA2, F8, F8_LIST, F8_OPT, I8,
-                         MAX_BLOCK_ROWS, MSGPACK, STR, STR_F8_MAP, XOR, CycleBlock,
-                         KeyedFloats, Objects, Ragged, Strings, check_table, merge_tables)
+from .log_blocks import (
+    BOOL,
+    BOOL_LIST,
+    CODEC,
+    COLUMNS,
+    DELTA2,
+    F8,
+    F8_LIST,
+    F8_OPT,
+    I8,
+    MAX_BLOCK_ROWS,
+    MSGPACK,
+    STR,
+    STR_F8_MAP,
+    XOR,
+    CycleBlock,
+    KeyedFloats,
+    Objects,
+    Ragged,
+    Strings,
+    check_table,
+    merge_tables,
+)
 
 MAX_BODY_BYTES = 256 * 1024 * 1024   # an inflated block larger than this is corruption
 _LAYOUT_LENGTH_BYTES = 4
@@ -178,6 +198,7 @@ def _parse_map(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Part:
     keys = desc.get("keys")
     _need(isinstance(keys, list) and all(isinstance(k, list) for k in keys), desc,
           "no table of key lists")
+    assert isinstance(keys, list)                  # (as _need checked)
     try:
         for names in keys:
             check_table(desc["name"], names)

@@ -20,8 +20,15 @@ import numpy as np
 from ..errors import LogError
 from .log_blocks import BLOCK_KIND, CycleBlock
 from .log_blocks_decode import ParsedBlock, decode_blocks, parse_block
-from .log_schema import (FORMAT_VERSION, FRAME_MARK, MAGIC, MAX_PAYLOAD_BYTES, CycleRecord,
-                         SessionEnd, SessionHeader)
+from .log_schema import (
+    FORMAT_VERSION,
+    FRAME_MARK,
+    MAGIC,
+    MAX_PAYLOAD_BYTES,
+    CycleRecord,
+    SessionEnd,
+    SessionHeader,
+)
 from .log_writer import FRAME_HEAD, PREAMBLE
 
 CHUNK_ROWS = 4096         # cycles per chunk of `blocks()`

@@ -23,7 +23,7 @@ import numpy as np
 from ..arm.model import Arm
 from ..arm.serial import arm_from_dict, arm_to_dict, as_bool, as_float, as_str, plain_data
 from ..control.cycle import CycleOutput
-from ..control.mapping import DirectCommand, InputFrame
+from ..control.intent import DirectCommand, InputFrame
 from ..errors import LogError
 
 SESSION_SUFFIX = ".jwlog"

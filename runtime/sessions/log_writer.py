@@ -33,9 +33,15 @@ import msgpack
 from ..arm.model import Arm
 from ..errors import LogError
 from .log_blocks import encode_records
-from .log_schema import (FORMAT_VERSION, FRAME_MARK, MAGIC, SESSION_SUFFIX, CycleRecord,
-                         SessionEnd, make_header)
-
+from .log_schema import (
+    FORMAT_VERSION,
+    FRAME_MARK,
+    MAGIC,
+    SESSION_SUFFIX,
+    CycleRecord,
+    SessionEnd,
+    make_header,
+)
 
 PREAMBLE = struct.Struct("<8sH")
 FRAME_HEAD = struct.Struct("<2sII")

@@ -47,9 +47,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.kinematics import geometric_jacobian, tcp_pose, twist_to_base
-from ..control.limits import REDUCED_SPEED_M_S
 from ..arm.model import Arm
-from .stats import MotionStats, Stop
+from ..control.limits import REDUCED_SPEED_M_S
+from .stats import ROUNDING, MotionStats, Stop
 
 Vector = NDArray[np.float64]
 
@@ -60,9 +60,6 @@ with a margin."""
 VELOCITY_ERROR = 1e-3
 """Absolute allowance on a measured joint speed (rad/s or m/s): the simulated motors'
 velocity error, below 6e-4 measured here, with a margin."""
-
-ROUNDING = 1e-9
-"""Relative allowance on commanded values: a rate scaled onto a cap lands on it ± rounding."""
 
 LIMIT_CONTACT_FRACTION = 0.05
 """A joint within margin·(1 + this) of a position limit has been braked onto its soft limit."""

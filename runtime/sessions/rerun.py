@@ -10,9 +10,8 @@ a difference is what a change of software, arm or settings would have done on th
 situation. Closed loop (in lockstep with the simulated arm) lives in `runtime.sessions.lockstep`;
 `RecordedInputs` serves both.
 
-The settings a re-run reads from the session header (docs/SESSION_FORMAT.md):
-rate_hz (required), pad / pad_source, reduced_locked, locked, stale_after_s, overrun_limit,
-max_round_trip_s, state_lag_cycles (closed loop; default 1). A cycle the session blocked
+The settings a re-run reads from the session header (docs/SESSION_FORMAT.md) are
+`RunSettings.from_header`'s (rate_hz required) and pad / pad_source. A cycle the session blocked
 for its link's round trip is re-run blocked for the recorded reason (a re-run has no link:
 its round trip is 0).
 """
@@ -20,7 +19,6 @@ its round trip is 0).
 from __future__ import annotations
 
 import bisect
-import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping, Sequence
@@ -28,13 +26,15 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from ..errors import ConfigError, LogError
-from ..control.mapping import InputFrame, PadMapping, load_pad
 from ..arm.model import Arm
-from ..control.cycle import STATE_LAGS, ControlCycle
+from ..control.cycle import ControlCycle
+from ..control.intent import InputFrame
+from ..control.pads import PadMapping, load_pad
+from ..control.safety import BLOCKED
+from ..control.settings import RunSettings
+from ..errors import ConfigError, LogError
 from .log_reader import BAD_RECORD, CORRUPT, GAP, Session
 from .log_schema import CycleRecord, frame_from_wire
-from ..control.safety import BLOCKED, SafetySettings
 
 Vector = NDArray[np.float64]
 
@@ -48,51 +48,22 @@ BREAKS = (GAP, CORRUPT, BAD_RECORD)
 
 @dataclass(frozen=True)
 class CycleSettings:
-    """How to rebuild a session's ControlCycle (from its header settings)."""
+    """How to rebuild a session's ControlCycle: its run settings and its pad mapping."""
 
-    rate_hz: float
+    run: RunSettings
     pad: PadMapping
-    reduced_locked: bool = False
-    locked: tuple[str, ...] = ()
-    safety: SafetySettings = SafetySettings()
-    state_lag_cycles: int = 1      # closed loop: cycles the pose lags (runtime.sessions.lockstep)
 
     def control_cycle(self, arm: Arm) -> ControlCycle:
-        return ControlCycle(arm, self.pad, rate_hz=self.rate_hz, safety=self.safety,
-                            reduced_locked=self.reduced_locked, locked=self.locked,
-                            state_lag_cycles=self.state_lag_cycles)
+        return ControlCycle(arm, self.pad, self.run)
 
 
 def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> CycleSettings:
-    """Read the header settings a re-run needs; a missing rate or a bad value is a LogError.
-
-    The pad mapping: the recorded file (pad_source) if it still exists, else the shipped
-    mapping of that name, else the keyboard mapping (scripted and network input carry
-    their commands in the frames and use the pad only for its start state)."""
-    rate = settings.get("rate_hz")
-    if isinstance(rate, bool) or not isinstance(rate, (int, float)) or \
-            not (math.isfinite(rate) and rate > 0):
-        raise LogError(f"{where}: the header settings have no usable rate_hz ({rate!r}); "
-                       f"a re-run needs the loop rate")
-    try:
-        defaults = SafetySettings()
-        rtt = settings.get("max_round_trip_s")
-        safety = SafetySettings(
-            stale_after_s=float(settings.get("stale_after_s", defaults.stale_after_s)),
-            overrun_limit=int(settings.get("overrun_limit", defaults.overrun_limit)),
-            max_round_trip_s=None if rtt is None else float(rtt))
-        locked = tuple(str(a) for a in settings.get("locked", ()) or ())
-        reduced = settings.get("reduced_locked", False)
-        if not isinstance(reduced, bool):
-            raise TypeError(f"reduced_locked is {reduced!r}")
-        # A drive session over a real link sees its state at least a cycle late.
-        lag = settings.get("state_lag_cycles", 1)
-        if isinstance(lag, bool) or lag not in STATE_LAGS:
-            raise ValueError(f"state_lag_cycles is {lag!r}, not one of {STATE_LAGS}")
-    except (TypeError, ValueError) as exc:
-        raise LogError(f"{where}: the header settings are malformed ({exc})") from None
-    return CycleSettings(rate_hz=float(rate), pad=_pad(settings), reduced_locked=reduced,
-                         locked=locked, safety=safety, state_lag_cycles=lag)
+    """Read the header settings a re-run needs (`RunSettings.from_header`: a missing rate
+    or a bad value is a LogError) and the pad mapping: the recorded file (pad_source) if it
+    still exists, else the shipped mapping of that name, else the keyboard mapping (scripted
+    and network input carry their commands in the frames and use the pad only for its
+    start state)."""
+    return CycleSettings(RunSettings.from_header(settings, where=where), _pad(settings))
 
 
 def _pad(settings: Mapping[str, Any]) -> PadMapping:

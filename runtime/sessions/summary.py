@@ -18,7 +18,7 @@ from ..arm.model import Arm
 from .log_blocks import CycleBlock, Strings
 from .log_reader import SessionReader
 from .log_schema import SessionHeader
-from .stats import MotionStats
+from .stats import MotionStats, above
 
 
 def summarise(path: str | Path) -> dict[str, Any]:
@@ -188,7 +188,8 @@ class SessionStats:
         h: SessionHeader = reader.header
         arm = self.arm
         has = self.cycles > 0
-        duration = (self.t_last - self.t_first) if has else 0.0
+        first, last = self.t_first, self.t_last
+        duration = last - first if has and first is not None and last is not None else 0.0
         joints = []
         m = self.motion
         for k, j in enumerate(arm.joints):
@@ -202,10 +203,10 @@ class SessionStats:
                 "peak_accel": peak_accel, "peak_accel_t_s": _t(m.peak_accel_t[k]) if m else None,
                 "max_accel": j.max_accel, "rated_accel": j.rated_accel,
                 "min_limit_distance": float(self.min_limit_distance[k]) if has else None,
-                "over_max_speed": _over(peak_speed, j.max_speed),
-                "over_rated_speed": _over(peak_speed, j.rated_speed),
-                "over_max_accel": _over(peak_accel, j.max_accel),
-                "over_rated_accel": _over(peak_accel, j.rated_accel),
+                "over_max_speed": above(peak_speed, j.max_speed),
+                "over_rated_speed": above(peak_speed, j.rated_speed),
+                "over_max_accel": above(peak_accel, j.max_accel),
+                "over_rated_accel": above(peak_accel, j.rated_accel),
             })
         end = reader.end
         return {
@@ -263,12 +264,6 @@ def _peak(current: tuple[float, float], values: np.ndarray, t: np.ndarray
           ) -> tuple[float, float]:
     i = int(np.argmax(values))
     return (float(values[i]), float(t[i])) if values[i] > current[0] else current
-
-
-def _over(peak: float | None, limit: float) -> bool:
-    """Above the limit beyond rounding: a rate stepped by exactly max_accel·dt comes back
-    as an acceleration a few ulp off max_accel (the same 1e-9 as runtime.sessions.preflight)."""
-    return peak is not None and peak > limit * (1.0 + 1e-9)
 
 
 def _value(x: float) -> float | None:

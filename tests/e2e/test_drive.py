@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import child_env
 from runtime.arm.kinematics import tcp_pose
+from runtime.link.arm_process import child_env
 from runtime.sessions.log_reader import read_session
 
 pytestmark = pytest.mark.e2e
@@ -66,7 +66,7 @@ def run_script(tmp: Path, *extra: str):
     (tmp / "line_x.toml").write_text(SCRIPT, encoding="utf-8")
     done = subprocess.run(
         drive_argv("--headless", "--input", f"script:{tmp / 'line_x.toml'}", "--rate",
-                   f"{RATE_HZ:g}", "--sessions", str(tmp / "sessions"), "--summary-json",
+                   f"{RATE_HZ:g}", "--sessions", str(tmp / "sessions"), "--json-file",
                    str(tmp / "summary.json"), *extra),
         cwd=tmp, env=headless_env(), capture_output=True, text=True, timeout=90)
     assert done.returncode == 0, done.stdout + done.stderr
@@ -154,6 +154,12 @@ def test_inspect_of_a_driven_session_finds_no_acceleration_and_lists_the_stop(pa
         assert not j["over_max_accel"] and not j["over_rated_accel"], j["name"]
         assert j["peak_accel"] <= j["max_accel"] * (1 + 1e-9)
     assert len(inspected["stops"]) == 1 and inspected["stops"][0]["tcp_speed"] > 0.04
+    # The drive summary judges with the same analysis: the same peaks, the same stop.
+    for mine, theirs in zip(summary["joints"], inspected["joints"]):
+        assert mine["peak_accel"] == pytest.approx(theirs["peak_accel"], rel=1e-12, abs=1e-12)
+        assert not mine["over_max_accel"] and not mine["over_rated_accel"]
+    assert [s["t_s"] for s in summary["stops"]] == \
+        pytest.approx([s["t_s"] for s in inspected["stops"]], rel=1e-12)
 
 
 def test_status_window_renders_a_real_drive_snapshot(paced_run):

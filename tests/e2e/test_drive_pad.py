@@ -21,7 +21,7 @@ from virtual_pad import Terminal, Timeline, VirtualPad
 
 from runtime import cli
 from runtime.arm.kinematics import tcp_pose
-from runtime.control.mapping import load_pad
+from runtime.control.pads import load_pad
 from runtime.operator.inputs.gamepad import SETTLE_S
 from runtime.sessions.log_reader import read_session
 

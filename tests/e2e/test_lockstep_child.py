@@ -11,9 +11,9 @@ import time
 import numpy as np
 import pytest
 
+from runtime.arm.load import load_arm
 from runtime.errors import TransportError
 from runtime.sessions.lockstep import LockstepSim
-from runtime.arm.model import load_arm
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]
 

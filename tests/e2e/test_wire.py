@@ -18,9 +18,9 @@ import numpy as np
 import pytest
 import zmq
 
-from runtime.link.arm_process import ArmProcess, child_env
+from runtime.arm.load import load_arm
 from runtime.errors import ProtocolError
-from runtime.arm.model import load_arm
+from runtime.link.arm_process import ArmProcess, child_env
 from runtime.link.protocol import Rates, State, decode, hello_for
 from runtime.link.transport import ArmClient
 
@@ -263,7 +263,7 @@ def test_the_arm_keeps_serving_good_messages_among_garbage(sim, observer, publis
 def test_jogwire_sim_lockstep_is_deterministic_across_processes(reach7):
     """`jogwire sim --lockstep` in a child, driven step by step, ends bit-for-bit where the
     in-process SimulatedArm ends with the same commands."""
-    from sim.arm import SimulatedArm     # the test may import sim; the runtime may not
+    from sim.arm import SimulatedArm  # the test may import sim; the runtime may not
     t = np.arange(300)[:, None] * STEP_S
     cmds = 0.5 * np.sin(2 * np.pi * (0.7 + np.arange(reach7.n)) * t)
     with SimulatedArm(reach7) as ref:

@@ -19,8 +19,8 @@ import time
 
 import msgpack
 
+from runtime.arm.load import load_arm
 from runtime.errors import ModelMismatch, TransportError
-from runtime.arm.model import load_arm
 from runtime.link.protocol import PROTOCOL_VERSION, Rates, encode, hello_for
 from runtime.link.transport import ArmClient
 

@@ -55,14 +55,14 @@ ROOT = Path(__file__).resolve().parents[2]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from runtime.link.arm_process import child_env  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.errors import LogError, ProtocolError  # noqa: E402
-from runtime.operator.inputs.script import load_script  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
+from runtime.link.arm_process import child_env  # noqa: E402
 from runtime.link.protocol import REASONS, State, Twist, decode, hello_for  # noqa: E402
-from runtime.sessions.log_reader import TORN_TAIL, read_session  # noqa: E402
 from runtime.link.relay import GARBAGE_KINDS  # noqa: E402
 from runtime.link.transport import ArmClient, Publisher  # noqa: E402
+from runtime.operator.inputs.script import load_script  # noqa: E402
+from runtime.sessions.log_reader import TORN_TAIL, read_session  # noqa: E402
 
 ARM = "elbow6"
 STALE_AFTER_S = 0.1         # both sides' watchdog (drive --stale-after, sim --stale-after)

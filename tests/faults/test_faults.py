@@ -22,7 +22,6 @@ from __future__ import annotations
 import re
 
 import pytest
-
 from faultkit import FAULTS, FLUSH_S, STALE_AFTER_S, Disturbed, FaultResult
 
 pytestmark = [pytest.mark.faults, pytest.mark.e2e, pytest.mark.timeout(180)]

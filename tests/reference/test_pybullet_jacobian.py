@@ -16,7 +16,8 @@ import pybullet
 import pytest
 
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import Arm, load_arm
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
 from runtime.arm.urdf import load_urdf_arm
 from sim.urdf import write_urdf
 

@@ -15,7 +15,7 @@ import pytest
 
 from runtime import palette
 from runtime.arm.kinematics import tcp_pose
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.link.protocol import Rates, hello_for
 from runtime.link.transport import ArmClient, ArmServer
 from sim.arm import SimulatedArm, main, write_png

@@ -3,6 +3,7 @@ bridge's own boundary, driver failures, and the bridge as a separate process on 
 
 from __future__ import annotations
 
+import argparse
 import csv
 import re
 import subprocess
@@ -13,22 +14,22 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import ArmProcess
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm
 from runtime.commands import bridge as bridge_command
 from runtime.errors import ConfigError
-from runtime.arm.model import Arm, load_arm
+from runtime.link.arm_process import ArmProcess
 from runtime.link.protocol import Rates, hello_for
 from runtime.link.transport import ArmClient
-from sim.bridge import BridgeTarget, Driver, JointSample, VirtualDriver, build_parser, \
-    load_driver, main
-
-
-class FakeClock:
-    def __init__(self) -> None:
-        self.t = 100.0
-
-    def __call__(self) -> float:
-        return self.t
+from sim.bridge import (
+    BridgeTarget,
+    Driver,
+    JointSample,
+    VirtualDriver,
+    build_parser,
+    load_driver,
+    main,
+)
 
 
 class RecordingDriver(Driver):
@@ -67,41 +68,41 @@ def reach7():
 # VirtualDriver
 # ----------------------------------------------------------------------------------------
 
-def test_virtual_driver_integrates_rates(reach7) -> None:
-    clock = FakeClock()
+def test_virtual_driver_integrates_rates(reach7, fake_clock) -> None:
+    clock = fake_clock(read_cost_s=0.0)
     driver = VirtualDriver(clock=clock)
     q0 = driver.open(reach7).q
     qd = np.linspace(-0.2, 0.2, reach7.n)
     driver.write_rates(qd)
-    clock.t += 0.5
+    clock.now += 0.5
     sample = driver.read_state()
     assert np.allclose(sample.q, q0 + 0.5 * qd) and np.array_equal(sample.qd, qd)
     driver.write_rates(np.zeros(reach7.n))
-    clock.t += 1.0
+    clock.now += 1.0
     assert np.allclose(driver.read_state().q, q0 + 0.5 * qd)
     driver.close()
 
 
-def test_virtual_driver_stops_at_the_joint_limits(reach7) -> None:
-    clock = FakeClock()
+def test_virtual_driver_stops_at_the_joint_limits(reach7, fake_clock) -> None:
+    clock = fake_clock(read_cost_s=0.0)
     driver = VirtualDriver(clock=clock)
     driver.open(reach7)
     qd = np.zeros(reach7.n)
     qd[0] = 1.0
     driver.write_rates(qd)
-    clock.t += 10.0
+    clock.now += 10.0
     sample = driver.read_state()
     assert sample.q[0] == reach7.upper[0] and sample.qd[0] == 0.0
 
 
-def test_dry_run_csv_has_every_command(tmp_path: Path, reach7) -> None:
-    clock = FakeClock()
+def test_dry_run_csv_has_every_command(tmp_path: Path, reach7, fake_clock) -> None:
+    clock = fake_clock(read_cost_s=0.0)
     path = tmp_path / "commands.csv"
     driver = VirtualDriver(csv_path=path, clock=clock)
     driver.open(reach7)
     sent = [np.full(reach7.n, 0.01 * k) for k in range(5)]
     for qd in sent:
-        clock.t += 0.002
+        clock.now += 0.002
         driver.write_rates(qd)
     driver.close()
     rows = list(csv.reader(path.read_text().splitlines()))
@@ -174,7 +175,8 @@ def test_driver_option_errors(spec: str, csv_path, words: str) -> None:
 
 
 def test_jogwire_bridge_help_lists_every_option() -> None:
-    options = {s for a in build_parser()._actions for s in a.option_strings if s.startswith("--")}
+    options = {s for a in build_parser()._actions for s in a.option_strings
+               if s.startswith("--") and a.help != argparse.SUPPRESS}   # not the old names
     listed = set(re.findall(r"^\s+(--[\w-]+)", bridge_command.OPTIONS_SUMMARY, flags=re.M))
     assert listed == options - {"--help"}
 

@@ -19,7 +19,7 @@ import pybullet as pb
 import pytest
 
 from runtime import palette
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from sim.arm import SimulatedArm, main, write_png
 
 ARMS = sorted(p.stem for p in (Path(__file__).resolve().parents[2] / "configs" / "arms")

@@ -12,7 +12,7 @@ import pytest
 
 from runtime import palette
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.arm.transforms import make_transform, rpy_to_matrix
 from runtime.arm.urdf import load_urdf_arm
 from sim.urdf import arm_to_urdf, matrix_to_rpy_exact, write_urdf
@@ -65,7 +65,7 @@ def test_every_link_has_a_plausible_inertial(name: str) -> None:
     for link in ET.fromstring(arm_to_urdf(load_arm(name))).findall("link"):
         inertial = link.find("inertial")
         mass = float(inertial.find("mass").get("value"))
-        I = inertial.find("inertia")
+        I = inertial.find("inertia")  # noqa: E741 (the inertia tensor)
         ixx, iyy, izz = (float(I.get(k)) for k in ("ixx", "iyy", "izz"))
         # Principal moments of a rigid body obey the triangle inequality (any dynamics text).
         assert ixx > 0 and iyy > 0 and izz > 0

@@ -7,19 +7,24 @@ alike and can log the raw input of every cycle:
     read(now_s) -> InputFrame     latest state; never blocks
     close() -> None
 
-The pygame sources (gamepad, keyboard) also have `handle_event(event) -> bool`: whoever
-owns pygame's event queue (the status window on the main thread, or the headless loop)
-hands each event to them. Importing this package imports neither pygame nor zmq; the
-modules that need them are imported when used.
+Some sources have more, declared below as small protocols that a runner checks with
+`isinstance`: the pygame sources take events (`EventInput`: whoever owns pygame's event
+queue, the status window on the main thread, hands each event to them), the gamepad pumps
+its own events without a window (`PumpedInput`), and a script ends (`FiniteInput`).
+Importing this package imports neither pygame nor zmq; the modules that need them are
+imported when used.
 """
 
 from __future__ import annotations
 
-from typing import Protocol
+from typing import Any, Protocol, runtime_checkable
 
-from ...errors import ConfigError
-from ...control.mapping import InputFrame
 from ...arm.model import Arm
+from ...control.intent import InputFrame
+from ...errors import ConfigError
+
+__all__ = ["INPUT_KINDS", "EventInput", "FiniteInput", "InputSource", "PumpedInput",
+           "open_source", "parse_input_spec"]
 
 INPUT_KINDS = ("gamepad", "keyboard", "script", "network")
 
@@ -30,6 +35,30 @@ class InputSource(Protocol):
     def read(self, now_s: float) -> InputFrame: ...
 
     def close(self) -> None: ...
+
+
+@runtime_checkable
+class EventInput(Protocol):
+    """A source fed with pygame events by whoever owns the event queue."""
+
+    def handle_event(self, event: Any) -> bool: ...
+
+
+@runtime_checkable
+class PumpedInput(Protocol):
+    """A source that can pump pygame's event queue itself (no window to do it)."""
+
+    def pump(self) -> list[Any]: ...
+
+
+@runtime_checkable
+class FiniteInput(Protocol):
+    """A source that ends: `finished(now_s)` once its last segment is over; `progress`
+    says how far it is, for the status (name, elapsed s, total s)."""
+
+    def finished(self, now_s: float) -> bool: ...
+
+    def progress(self, now_s: float) -> tuple[str, float, float]: ...
 
 
 def parse_input_spec(spec: str) -> tuple[str, str]:
@@ -46,7 +75,7 @@ def parse_input_spec(spec: str) -> tuple[str, str]:
     return kind, arg
 
 
-def open_source(spec: str, *, arm: Arm, stale_after_s: float = 0.1) -> InputSource:
+def open_source(spec: str, *, arm: Arm, stale_after_s: float) -> InputSource:
     """Open the source an `--input` spec names. The pygame sources need their events fed
     (`handle_event`, or `GamepadSource.pump()` without a window)."""
     kind, arg = parse_input_spec(spec)
@@ -62,5 +91,3 @@ def open_source(spec: str, *, arm: Arm, stale_after_s: float = 0.1) -> InputSour
     from .keyboard import KeyboardSource
     return KeyboardSource()
 
-
-__all__ = ["INPUT_KINDS", "InputFrame", "InputSource", "open_source", "parse_input_spec"]

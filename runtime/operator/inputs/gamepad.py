@@ -37,7 +37,8 @@ from __future__ import annotations
 import threading
 from dataclasses import dataclass, field
 
-from ...control.mapping import Button, InputFrame, clamp_unit
+from ...control.intent import Button, InputFrame
+from ...control.shaping import clamp_unit
 from .pygame_init import init_events, pygame
 
 SETTLE_S = 0.1   # a newly opened pad counts as present this long after it is first read (s)
@@ -184,7 +185,8 @@ class GamepadSource:
         """Make an open pad the active one, reading its current state (lock held)."""
         pressed: set[Button] = {b for b in range(js.get_numbuttons()) if js.get_button(b)}
         for h in range(js.get_numhats()):
-            pressed |= hat_buttons(h, js.get_hat(h))
+            x, y = js.get_hat(h)
+            pressed |= hat_buttons(h, (int(x), int(y)))
         axes = [clamp_unit(js.get_axis(a)) for a in range(js.get_numaxes())]
         self._active = _Pad(iid, js.get_name(), axes, pressed, settle_s=SETTLE_S,
                             buttons=js.get_numbuttons())

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import threading
 
-from ...control.mapping import InputFrame
+from ...control.intent import InputFrame
 from .pygame_init import init_events, pygame
 
 

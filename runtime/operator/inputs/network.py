@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from collections import Counter
 
-from ...control.mapping import DirectCommand, InputFrame
+from ...control.intent import DirectCommand, InputFrame
 from ...link.protocol import LatenessFilter, SequenceGate, Twist
 from ...link.transport import DEFAULT_TWIST_ENDPOINT, Keys, LatestSubscriber
 
@@ -25,7 +25,7 @@ from ...link.transport import DEFAULT_TWIST_ENDPOINT, Keys, LatestSubscriber
 class NetworkSource:
     """Twists from another program. `read(now_s)` never blocks."""
 
-    def __init__(self, endpoint: str = DEFAULT_TWIST_ENDPOINT, *, stale_after_s: float = 0.1,
+    def __init__(self, endpoint: str = DEFAULT_TWIST_ENDPOINT, *, stale_after_s: float,
                  keys: Keys | None = None) -> None:
         self.stale_after_s = stale_after_s
         self._socket = LatestSubscriber(endpoint, bind=True, keys=keys)

@@ -32,9 +32,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from ...arm.model import ANGLE_UNITS, FRAMES, Arm, configs_dir
+from ...control.intent import DirectCommand, InputFrame
 from ...errors import ConfigError
-from ...control.mapping import FRAMES, DirectCommand, InputFrame
-from ...arm.model import ANGLE_UNITS, Arm, configs_dir
 from ...tomlsource import TomlSource, finite_number, read_toml, reject_unknown
 
 _RELEASED = DirectCommand(enable=False)
@@ -135,8 +135,8 @@ def _segment(src: TomlSource, spec: Any, i: int, angle: float, arm: Arm | None) 
     if not isinstance(twist_raw, list) or len(twist_raw) != 6:
         raise src.error(f"must list 6 numbers (vx vy vz wx wy wz), got {twist_raw!r}",
                         f + "twist", *where, "twist")
-    twist = [finite_number(src, v, f + "twist", *where, "twist") for v in twist_raw]
-    twist = tuple(v if k < 3 else v * angle for k, v in enumerate(twist))
+    values = [finite_number(src, v, f + "twist", *where, "twist") for v in twist_raw]
+    twist = tuple(v if k < 3 else v * angle for k, v in enumerate(values))
     frame = spec.get("frame", "base")
     if frame not in FRAMES:
         raise src.error(f"got {frame!r}; use base or tool", f + "frame", *where, "frame")
@@ -195,6 +195,10 @@ class ScriptSource:
 
     def elapsed_s(self, now_s: float) -> float:
         return 0.0 if self._t0 is None else now_s - self._t0
+
+    def progress(self, now_s: float) -> tuple[str, float, float]:
+        """(script name, elapsed s, duration s) for the status."""
+        return self.script.name, self.elapsed_s(now_s), self.script.duration_s
 
     def finished(self, now_s: float) -> bool:
         """True once the last segment has ended (enable is then held released)."""

@@ -11,11 +11,21 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.arm.kinematics import (analyse_pose, condition_number, geometric_jacobian,
-                                    jacobian_from_frames, joint_frames, link_transforms,
-                                    pose_and_jacobian, tcp_pose, tool_frame_jacobian,
-                                    twist_to_base, yoshikawa_manipulability)
-from runtime.arm.model import Arm, DHRow, Joint, chain_from_dh, load_arm
+from runtime.arm.kinematics import (
+    analyse_pose,
+    condition_number,
+    geometric_jacobian,
+    jacobian_from_frames,
+    joint_frames,
+    link_transforms,
+    pose_and_jacobian,
+    tcp_pose,
+    tool_frame_jacobian,
+    twist_to_base,
+    yoshikawa_manipulability,
+)
+from runtime.arm.load import load_arm
+from runtime.arm.model import Arm, DHRow, Joint, chain_from_dh
 from runtime.arm.transforms import make_transform, trans
 
 DEMO_ARMS = ["elbow6", "reach7", "scara4", "planar3"]

@@ -13,11 +13,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.arm.transforms import make_transform
 from runtime.arm.urdf import DEFAULT_RAMP_S, load_urdf_arm
+from runtime.errors import ConfigError
 
 # A 4-joint arm with tilted and negative axes, fixed joints before, between and after the moving
 # ones, a continuous joint, a prismatic joint, and a two-finger gripper (one finger mimics the

@@ -7,8 +7,8 @@ be worked out by hand; the expected numbers below are that arithmetic.
 from __future__ import annotations
 
 import csv
-import json
 import dataclasses
+import json
 import math
 import subprocess
 import sys
@@ -16,8 +16,8 @@ from pathlib import Path
 
 import pytest
 
+from runtime.arm.load import load_arm
 from runtime.cli import main
-from runtime.arm.model import load_arm
 from runtime.sessions.log_schema import CycleRecord
 from runtime.sessions.log_writer import SessionRecorder
 from runtime.sessions.summary import Distribution

@@ -9,8 +9,10 @@ import pytest
 from virtual_pad import Terminal, add_controller_mapping
 
 from runtime import cli
-from runtime.arm.model import load_arm
-from runtime.control.mapping import InputFrame, Mapper, load_pad
+from runtime.arm.load import load_arm
+from runtime.control.intent import InputFrame
+from runtime.control.mapping import Mapper
+from runtime.control.pads import load_pad
 from runtime.operator.inputs.pygame_init import pygame
 from runtime.operator.pad_check import ON, PadCheckWindow, describe, pad_roles
 

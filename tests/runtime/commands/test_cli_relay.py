@@ -16,12 +16,12 @@ import time
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import child_env
+from runtime.arm.load import load_arm
 from runtime.cli import main
-from runtime.commands.relay import Relay
-from runtime.arm.model import load_arm
+from runtime.link.arm_process import child_env
 from runtime.link.protocol import Rates, StateFreshness, hello_for
 from runtime.link.relay import DIRECTIONS, Link, LinkFaults
+from runtime.link.relay_runner import Relay
 from runtime.link.transport import ArmClient, ArmServer
 from sim.arm_side import ArmSession, Reading
 from sim.endpoint import ArmEndpoint
@@ -133,7 +133,7 @@ def test_the_command_runs_prints_its_counters_and_writes_a_report(capsys, tmp_pa
     report = tmp_path / "relay.json"
     assert main(["relay", "--listen", "tcp://127.0.0.1:*", "--target", "tcp://127.0.0.1:9",
                  "--loss", "rates=5%", "--delay", "40ms", "--stall", "state=100ms@1s/2s",
-                 "--seed", "3", "--duration", "0.2", "--report", str(report)]) == 0
+                 "--seed", "3", "--duration", "0.2", "--json-file", str(report)]) == 0
     out = capsys.readouterr().out
     assert "jogwire relay ready: listen=tcp://127.0.0.1:" in out and "seed=3" in out
     assert "rates direction: delay 40 ms ± 0 ms, loss 5 %" in out

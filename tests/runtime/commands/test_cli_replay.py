@@ -18,16 +18,17 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from runtime.link.arm_process import child_env
+from runtime.arm.load import load_arm
 from runtime.cli import main
-from runtime.commands.replay import _check_start
-from runtime.errors import ConfigError
-from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.control.mapping import load_pad
-from runtime.arm.model import load_arm
 from runtime.control.cycle import ControlCycle
+from runtime.control.pads import load_pad
+from runtime.control.settings import RunSettings
+from runtime.errors import ConfigError
+from runtime.link.arm_process import child_env
+from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.sessions.log_schema import FRAME_MARK, MAGIC, cycle_record
 from runtime.sessions.log_writer import SessionRecorder
+from runtime.sessions.replay import check_start
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ
@@ -40,7 +41,7 @@ def good_log(tmp_path_factory) -> Path:
     (keyboard pad settings, scripted input), against an ideal arm (q += q̇·dt)."""
     path = tmp_path_factory.mktemp("replay") / "square.jwlog"
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     source = ScriptSource(load_script("square", arm))
     settings = {"command": "drive", "pad": "keyboard", "rate_hz": RATE_HZ,
                 "reduced_locked": False, "stale_after_s": 0.05, "overrun_limit": 5}
@@ -146,10 +147,10 @@ def test_a_faster_replay_than_the_limits_allow_is_refused(good_log, capsys):
 def test_sending_needs_the_target_at_the_recorded_start():
     arm = load_arm("elbow6")
     start = arm.home()
-    _check_start(arm, start + np.radians(0.5), start, from_here=False)      # within 1°
+    check_start(arm, start + np.radians(0.5), start, from_here=False)      # within 1°
     with pytest.raises(ConfigError, match="not at the recorded start pose"):
-        _check_start(arm, start + np.radians([0, 0, 2.0, 0, 0, 0]), start, from_here=False)
-    _check_start(arm, start + np.radians(5.0), start, from_here=True)
+        check_start(arm, start + np.radians([0, 0, 2.0, 0, 0, 0]), start, from_here=False)
+    check_start(arm, start + np.radians(5.0), start, from_here=True)
 
 
 @pytest.mark.e2e

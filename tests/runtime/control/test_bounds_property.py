@@ -26,6 +26,7 @@ On every cycle, to 1e-9 relative (round-off), the commanded rates keep:
 from __future__ import annotations
 
 import math
+from collections import Counter
 
 import numpy as np
 from hypothesis import HealthCheck, event, given, settings
@@ -35,9 +36,10 @@ from runtime.arm.kinematics import geometric_jacobian, tcp_pose
 from runtime.arm.model import TASK_AXES, Arm, DHRow, Joint, SolverSettings, chain_from_dh
 from runtime.arm.transforms import make_transform
 from runtime.control.cycle import ControlCycle
+from runtime.control.intent import DirectCommand, InputFrame
 from runtime.control.limits import REDUCED_SPEED_M_S, JointBounds, start_pose
-from runtime.control.mapping import DirectCommand, InputFrame, load_pad
-from runtime.control.safety import SafetySettings
+from runtime.control.pads import load_pad
+from runtime.control.settings import RunSettings
 
 REL = 1e-9          # relative slack for round-off
 ABS = 1e-12
@@ -218,13 +220,14 @@ def test_every_bound_holds_on_every_cycle_on_random_arms(run) -> None:
     run_and_check(run)
 
 
-def run_and_check(run) -> int:
+def run_and_check(run, tally: Counter[str] | None = None) -> int:
     """Drive one random arm through its input against the ideal lagged arm, checking every
-    cycle; returns the number of cycles (benchmarks/soak_bounds.py counts them)."""
+    cycle; returns the number of cycles. `tally` counts the binding limits and named
+    conflicts by cycle (benchmarks/soak_bounds.py prints them)."""
     arm, rate_hz, p0, commands, locked = run
     b = JointBounds.of(arm)
-    cycle = ControlCycle(arm, PAD, rate_hz=rate_hz, safety=SafetySettings(),
-                         locked=locked, state_lag_cycles=1)
+    cycle = ControlCycle(arm, PAD, RunSettings(rate_hz=rate_hz, stale_after_s=0.05,
+                                               locked_axes=locked, state_lag_cycles=1))
     dt = cycle.dt_s
     p = p0.copy()                  # the arm's true pose
     q_meas = p0.copy()             # what the cycle sees: the pose before the rates in flight
@@ -243,9 +246,12 @@ def run_and_check(run) -> int:
             np.testing.assert_allclose(p_start, p, rtol=0, atol=1e-12)  # the lag model
             check_cycle(arm, b, q_meas, p_start, rates, prev, dt, out, locked)
             if out.solution is not None:
-                event(f"binding: {out.solution.binding_limit}")
-                for conflict in out.solution.conflicts:
-                    event(f"conflict: {conflict}")
+                names = [f"binding: {out.solution.binding_limit}"] + \
+                    [f"conflict: {c}" for c in out.solution.conflicts]
+                for name in names:
+                    event(name)
+                if tally is not None:
+                    tally.update(names)
             q_meas = p.copy()
             p = p + rates * dt
             prev = rates

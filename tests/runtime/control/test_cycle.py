@@ -10,19 +10,22 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
-from runtime.control.mapping import DirectCommand, InputFrame, load_pad
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.control.cycle import ControlCycle
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.pads import load_pad
+from runtime.control.safety import MOVING
+from runtime.control.settings import RunSettings
+from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.sessions.log_schema import frame_from_wire, frame_to_wire
-from runtime.control.safety import MOVING, SafetySettings
 
 RATE_HZ = 500.0
 
 
 def run_script(arm, script, *, reduced=False):
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ, reduced_locked=reduced)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ,
+                                                           reduced_locked=reduced))
     source = ScriptSource(script)
     q = arm.home()
     dt = 1.0 / RATE_HZ
@@ -55,7 +58,7 @@ def test_square_returns_to_start_and_stops(arm_name):
 
 def test_stale_state_commands_zero():
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     go = InputFrame(device="test", present=True,
                     command=DirectCommand(twist=(0.05, 0, 0, 0, 0, 0)))
     off = InputFrame(device="test", present=True, command=DirectCommand(enable=False))
@@ -70,8 +73,8 @@ def test_stale_state_commands_zero():
 
 def test_a_slow_link_commands_zero_and_the_default_is_a_link_without_delay():
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ,
-                         safety=SafetySettings(stale_after_s=0.1))
+    cycle = ControlCycle(arm, load_pad("keyboard"),
+                         RunSettings(rate_hz=RATE_HZ, stale_after_s=0.1))
     go = InputFrame(device="test", present=True,
                     command=DirectCommand(twist=(0.05, 0, 0, 0, 0, 0)))
     off = InputFrame(device="test", present=True, command=DirectCommand(enable=False))
@@ -86,7 +89,8 @@ def test_a_slow_link_commands_zero_and_the_default_is_a_link_without_delay():
 
 
 def test_input_frame_round_trips_through_plain_data():
-    frame = InputFrame(device="pad", present=True, axes=(0.5, -1.0), pressed=frozenset({4, "space"}))
+    frame = InputFrame(device="pad", present=True, axes=(0.5, -1.0),
+                       pressed=frozenset({4, "space"}))
     assert frame_from_wire(frame_to_wire(frame)) == frame
     cmd = InputFrame(device="s", present=True,
                      command=DirectCommand(twist=(0.1, 0, 0, 0, 0, 0.2), frame="tool", joint=None))
@@ -94,12 +98,12 @@ def test_input_frame_round_trips_through_plain_data():
 
 
 def test_cycle_record_keeps_what_a_rerun_needs(tmp_path):
-    from runtime.sessions.log_writer import SessionRecorder
-    from runtime.sessions.log_schema import cycle_record
     from runtime.sessions.log_reader import read_session
+    from runtime.sessions.log_schema import cycle_record
+    from runtime.sessions.log_writer import SessionRecorder
     arm = load_arm("elbow6")
     outputs_frames = []
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     source = ScriptSource(load_script("square", arm))
     q = arm.home()
     path = tmp_path / "s.jwlog"

@@ -16,15 +16,28 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from runtime.arm.kinematics import geometric_jacobian
-from runtime.control.limits import (REDUCED_SPEED_M_S, SCALE_NAMES, JointBounds, acceleration_step,
-                            apply_limits, binding_limit, braking_factor, braking_speed,
-                            cap_factor, clear_of_limits, distance_ahead, speed_factor,
-                            start_pose, stopping_distance)
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
+from runtime.control.limits import (
+    REDUCED_SPEED_M_S,
+    SCALE_NAMES,
+    JointBounds,
+    acceleration_step,
+    apply_limits,
+    binding_limit,
+    braking_factor,
+    braking_speed,
+    cap_factor,
+    clear_of_limits,
+    distance_ahead,
+    speed_factor,
+    start_pose,
+    stopping_distance,
+)
 from runtime.control.solver import solve
 
 ARMS = {name: load_arm(name) for name in ("elbow6", "reach7", "scara4", "planar3")}
 TOL = 1e-9  # relative slack for round-off in the bound checks
+DT_S = 0.002  # one cycle at 500 Hz, the drive's rate
 
 
 # ----------------------------------------------------------------------------------------
@@ -193,6 +206,7 @@ def test_reduced_speed_switched_on_while_moving_caps_at_once() -> None:
     assert np.linalg.norm(fast.achieved_twist[:3]) == pytest.approx(0.5, rel=1e-9)
     s = solve(arm, q, [0.5, 0, 0, 0, 0, 0], reduced=True, prev_rates=fast.rates, dt_s=0.002)
     assert s.conflicts == ("tcp_cap_over_acceleration",)  # named: the cap won
+    assert s.binding_limit == "tcp_cap_over_acceleration"  # and logged as the cycle's limit
     assert np.linalg.norm(s.achieved_twist[:3]) <= REDUCED_SPEED_M_S * (1 + TOL)
     assert s.scales["reduced_speed"] <= 0.5 * (1 + TOL)
 

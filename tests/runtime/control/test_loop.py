@@ -8,36 +8,13 @@ import pytest
 from runtime.control.loop import FixedRateLoop, Tick
 
 
-class FakeClock:
-    """A clock that moves only when slept on, when work is simulated, or by `read_cost_s`
-    on every reading (so a spin-wait ends, as a real one does)."""
-
-    def __init__(self, start_s: float = 100.0, read_cost_s: float = 1e-6,
-                 sleep_overshoot_s: float = 0.0) -> None:
-        self.now = start_s
-        self.read_cost_s = read_cost_s
-        self.sleep_overshoot_s = sleep_overshoot_s
-        self.sleeps = 0
-
-    def __call__(self) -> float:
-        self.now += self.read_cost_s
-        return self.now
-
-    def sleep(self, d: float) -> None:
-        self.sleeps += 1
-        self.now += d + self.sleep_overshoot_s
-
-    def work(self, d: float) -> None:
-        self.now += d
-
-
-def make(rate_hz=1000.0, **clock_kw):
-    clock = FakeClock(**clock_kw)
+def make(fake_clock, rate_hz=1000.0, **clock_kw):
+    clock = fake_clock(**clock_kw)
     return FixedRateLoop(rate_hz, clock=clock, sleep=clock.sleep, spin_s=3e-4), clock
 
 
-def test_steady_cycles_keep_the_period_and_report_compute_time():
-    loop, clock = make()
+def test_steady_cycles_keep_the_period_and_report_compute_time(fake_clock):
+    loop, clock = make(fake_clock)
     ticks: list[Tick] = []
 
     def body(t: Tick):
@@ -57,19 +34,19 @@ def test_steady_cycles_keep_the_period_and_report_compute_time():
     assert ticks[-1].deadline_s - ticks[0].deadline_s == pytest.approx(0.499, abs=1e-9)
 
 
-def test_sleep_then_spin_absorbs_sleep_overshoot():
+def test_sleep_then_spin_absorbs_sleep_overshoot(fake_clock):
     # time.sleep overshoots by about 70 µs median on these machines (REFERENCES §10)
-    spin, clock = make(sleep_overshoot_s=70e-6)
+    spin, clock = make(fake_clock, sleep_overshoot_s=70e-6)
     spun = spin.run(lambda t: None, max_cycles=200)
-    clock2 = FakeClock(sleep_overshoot_s=70e-6)
+    clock2 = fake_clock(sleep_overshoot_s=70e-6)
     plain = FixedRateLoop(1000.0, clock=clock2, sleep=clock2.sleep, spin_s=0.0)
     slept = plain.run(lambda t: None, max_cycles=200)
     assert spun.late_p50_s < 5e-6
     assert slept.late_p50_s == pytest.approx(70e-6, abs=3e-6)
 
 
-def test_an_overrun_is_counted_and_skipped_without_a_burst():
-    loop, clock = make()
+def test_an_overrun_is_counted_and_skipped_without_a_burst(fake_clock):
+    loop, clock = make(fake_clock)
     starts: list[float] = []
 
     def body(t: Tick):
@@ -85,8 +62,8 @@ def test_an_overrun_is_counted_and_skipped_without_a_burst():
     assert s.overrun_streak == 0 and s.max_overrun_streak == 1
 
 
-def test_overrun_streak_is_reported_to_the_body_and_resets():
-    loop, clock = make()
+def test_overrun_streak_is_reported_to_the_body_and_resets(fake_clock):
+    loop, clock = make(fake_clock)
     seen: list[int] = []
 
     def body(t: Tick):
@@ -99,8 +76,8 @@ def test_overrun_streak_is_reported_to_the_body_and_resets():
     assert s.overrun_fraction == pytest.approx(3 / 9)
 
 
-def test_percentiles_match_numpy_over_the_window():
-    loop, clock = make()
+def test_percentiles_match_numpy_over_the_window(fake_clock):
+    loop, clock = make(fake_clock)
     work = np.random.default_rng(7).uniform(0.05e-3, 0.8e-3, size=400)
 
     def body(t: Tick):
@@ -114,8 +91,8 @@ def test_percentiles_match_numpy_over_the_window():
     assert s.compute_max_s == pytest.approx(measured.max(), rel=1e-6)
 
 
-def test_the_window_is_bounded_and_keeps_the_recent_cycles():
-    clock = FakeClock()
+def test_the_window_is_bounded_and_keeps_the_recent_cycles(fake_clock):
+    clock = fake_clock()
     loop = FixedRateLoop(1000.0, clock=clock, sleep=clock.sleep, window_s=0.05)
 
     def body(t: Tick):
@@ -126,31 +103,32 @@ def test_the_window_is_bounded_and_keeps_the_recent_cycles():
     assert s.compute_max_s == pytest.approx(0.1e-3, abs=2e-6)  # the slow ones have left
 
 
-def test_the_loop_ends_on_body_false_on_stop_and_on_duration():
-    loop, clock = make(rate_hz=500.0)
+def test_the_loop_ends_on_body_false_on_stop_and_on_duration(fake_clock):
+    loop, clock = make(fake_clock, rate_hz=500.0)
     assert loop.run(lambda t: t.index < 9).cycles == 10
-    loop, clock = make(rate_hz=500.0)
+    loop, clock = make(fake_clock, rate_hz=500.0)
     assert loop.run(lambda t: loop.stop() if t.index == 4 else None).cycles == 5
-    loop, clock = make(rate_hz=500.0)
+    loop, clock = make(fake_clock, rate_hz=500.0)
     assert loop.run(lambda t: None, duration_s=0.1).cycles == 50
     assert loop.stats().cycles == 50
 
 
-def test_stats_line_is_readable():
-    loop, clock = make()
+def test_stats_line_is_readable(fake_clock):
+    loop, clock = make(fake_clock)
     line = loop.run(lambda t: clock.work(1e-4), max_cycles=10).line()
     assert "1000 Hz" in line and "overruns 0 (0.00 %)" in line
 
 
 @pytest.mark.parametrize("kw", [dict(rate_hz=0.0), dict(rate_hz=float("nan")),
-                                dict(spin_s=-1.0), dict(window_s=0.0)])
+                                dict(rate_hz=500.0, spin_s=-1.0),
+                                dict(rate_hz=500.0, window_s=0.0)])
 def test_bad_settings_are_refused(kw):
     with pytest.raises(ValueError):
         FixedRateLoop(**kw)
 
 
-def test_a_loop_in_its_own_thread_hands_back_its_error():
-    clock = FakeClock()
+def test_a_loop_in_its_own_thread_hands_back_its_error(fake_clock):
+    clock = fake_clock()
     loop = FixedRateLoop(1000.0, clock=clock, sleep=clock.sleep)
 
     def body(t: Tick):

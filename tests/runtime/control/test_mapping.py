@@ -14,11 +14,20 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from runtime.arm.load import load_arm
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.limits import REDUCED_SPEED_M_S
+from runtime.control.mapping import Mapper
+from runtime.control.pads import load_pad, pad_names
+from runtime.control.shaping import (
+    Shaping,
+    clamp_unit,
+    deadzone_axial,
+    deadzone_radial,
+    expo_curve,
+    power_curve,
+)
 from runtime.errors import ConfigError
-from runtime.control.mapping import (REDUCED_SPEED_M_S, DirectCommand, InputFrame, Mapper, Shaping,
-                             clamp_unit, deadzone_axial, deadzone_radial, expo_curve,
-                             load_pad, pad_names, power_curve)
-from runtime.arm.model import load_arm
 
 unit = st.floats(-1.0, 1.0)
 

@@ -9,8 +9,16 @@ from __future__ import annotations
 
 import pytest
 
-from runtime.control.safety import (BLOCKED, MOVING, READY, REARM, STATES, STOPPED, SafetyGate,
-                            SafetySettings)
+from runtime.control.safety import (
+    BLOCKED,
+    MOVING,
+    READY,
+    REARM,
+    STATES,
+    STOPPED,
+    SafetyGate,
+    SafetySettings,
+)
 
 SETTINGS = SafetySettings(stale_after_s=0.05, overrun_limit=5)
 DT = 0.002

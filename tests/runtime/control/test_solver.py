@@ -16,15 +16,24 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.errors import ConfigError
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose, twist_to_base
+from runtime.arm.load import load_arm
+from runtime.arm.model import SolverSettings
 from runtime.control.limits import SCALE_NAMES, JointBounds
-from runtime.arm.model import SolverSettings, load_arm
-from runtime.control.solver import (DampedSolve, damped_least_squares, damping_squared,
-                            joint_centring_gradient, parse_axes, solve, within_command)
+from runtime.control.solver import (
+    DampedSolve,
+    damped_least_squares,
+    damping_squared,
+    joint_centring_gradient,
+    parse_axes,
+    solve,
+    within_command,
+)
+from runtime.errors import ConfigError
 
 ARMS = {name: load_arm(name) for name in ("elbow6", "reach7", "scara4", "planar3")}
 DEG = math.pi / 180.0
+DT_S = 0.002  # one cycle at 500 Hz, the drive's rate
 
 
 def planar_2r_position_jacobian(a1: float, a2: float, t1: float, t2: float) -> np.ndarray:
@@ -195,13 +204,14 @@ def test_reach7_centring_moves_joints_toward_mid_range_only_while_jogging() -> N
     arm = ARMS["reach7"].with_changes(solver=SolverSettings(nullspace_gain=200.0))
     q = np.radians([20, 60, 40, -80, 30, 70, 50])
     twist = np.array([0.05, 0, 0, 0, 0, 0])
-    s = solve(arm, q, twist)
-    plain = solve(ARMS["reach7"].with_changes(solver=SolverSettings(nullspace_gain=0.0)), q, twist)
+    s = solve(arm, q, twist, dt_s=DT_S)
+    plain = solve(ARMS["reach7"].with_changes(solver=SolverSettings(nullspace_gain=0.0)), q,
+                  twist, dt_s=DT_S)
     grad = joint_centring_gradient(q, arm.lower, arm.upper)
     assert (s.rates - plain.rates) @ grad > 0  # the added motion ascends w
     np.testing.assert_allclose(s.achieved_twist, plain.achieved_twist, atol=1e-12)
     # No command, no motion: the arm never moves on its own.
-    assert not solve(arm, q, np.zeros(6)).rates.any()
+    assert not solve(arm, q, np.zeros(6), dt_s=DT_S).rates.any()
 
 
 # ----------------------------------------------------------------------------------------
@@ -214,7 +224,7 @@ def test_scara_drops_the_directions_it_cannot_move() -> None:
     arm = ARMS["scara4"]
     q = arm.home()
     twist = np.array([0.05, -0.02, 0.03, 0.4, -0.3, 0.2])
-    s = solve(arm, q, twist)
+    s = solve(arm, q, twist, dt_s=DT_S)
     np.testing.assert_allclose(s.achieved_twist[[0, 1, 2, 5]], twist[[0, 1, 2, 5]], atol=1e-12)
     np.testing.assert_allclose(s.achieved_twist[3:5], 0.0, atol=1e-12)
     assert s.tracking_error < 1e-12
@@ -225,20 +235,21 @@ def test_locked_axes_are_held_not_freed() -> None:
     arm = ARMS["elbow6"]
     q = arm.home()
     twist = np.array([0.05, 0.02, -0.03, 0.3, 0.2, -0.1])
-    s = solve(arm, q, twist, locked=("wx", "wy", "wz"))
+    s = solve(arm, q, twist, locked=("wx", "wy", "wz"), dt_s=DT_S)
     np.testing.assert_allclose(s.achieved_twist, [0.05, 0.02, -0.03, 0, 0, 0], atol=1e-12)
     np.testing.assert_allclose(s.commanded_twist, [0.05, 0.02, -0.03, 0, 0, 0])
     # A lock on a direction outside the arm's task changes nothing (SCARA cannot tilt).
     scara = ARMS["scara4"]
-    a = solve(scara, scara.home(), twist, locked=("wx",))
-    b = solve(scara, scara.home(), twist)
+    a = solve(scara, scara.home(), twist, locked=("wx",), dt_s=DT_S)
+    b = solve(scara, scara.home(), twist, dt_s=DT_S)
     np.testing.assert_allclose(a.rates, b.rates, atol=1e-15)
 
 
 def test_locks_in_tool_axes_hold_tool_axes() -> None:
     arm = ARMS["elbow6"]
     q = arm.home()
-    s = solve(arm, q, [0.02, 0.03, 0.04, 0.3, 0.2, 0.1], frame="tool", locked=("vz", "wz"))
+    s = solve(arm, q, [0.02, 0.03, 0.04, 0.3, 0.2, 0.1], frame="tool", locked=("vz", "wz"),
+              dt_s=DT_S)
     R = tcp_pose(arm, q)[:3, :3]
     in_tool = np.concatenate((R.T @ s.achieved_twist[:3], R.T @ s.achieved_twist[3:]))
     np.testing.assert_allclose(in_tool, [0.02, 0.03, 0, 0.3, 0.2, 0], atol=1e-12)
@@ -250,8 +261,8 @@ def test_tool_frame_twist_equals_the_rotated_base_twist(name: str) -> None:
     arm = ARMS[name]
     q = arm.home()
     twist = np.array([0.03, -0.02, 0.01, 0.1, 0.05, -0.2])
-    in_tool = solve(arm, q, twist, frame="tool")
-    in_base = solve(arm, q, twist_to_base(twist, tcp_pose(arm, q)))
+    in_tool = solve(arm, q, twist, frame="tool", dt_s=DT_S)
+    in_base = solve(arm, q, twist_to_base(twist, tcp_pose(arm, q)), dt_s=DT_S)
     np.testing.assert_allclose(in_tool.rates, in_base.rates, atol=1e-12)
     np.testing.assert_allclose(in_tool.commanded_twist, in_base.commanded_twist, atol=1e-15)
 
@@ -259,13 +270,13 @@ def test_tool_frame_twist_equals_the_rotated_base_twist(name: str) -> None:
 def test_bad_names_are_clear_errors() -> None:
     arm = ARMS["elbow6"]
     with pytest.raises(ConfigError, match="unknown axis 'wq'"):
-        solve(arm, arm.home(), np.zeros(6), locked=("wq",))
+        solve(arm, arm.home(), np.zeros(6), locked=("wq",), dt_s=DT_S)
     with pytest.raises(ConfigError, match="unknown frame"):
-        solve(arm, arm.home(), np.zeros(6), frame="world")
+        solve(arm, arm.home(), np.zeros(6), frame="world", dt_s=DT_S)
     with pytest.raises(ValueError, match="finite"):
-        solve(arm, arm.home(), [math.nan, 0, 0, 0, 0, 0])
+        solve(arm, arm.home(), [math.nan, 0, 0, 0, 0, 0], dt_s=DT_S)
     with pytest.raises(ValueError, match="shape"):
-        solve(arm, np.zeros(3), np.zeros(6))
+        solve(arm, np.zeros(3), np.zeros(6), dt_s=DT_S)
     assert parse_axes("wx, wy,wz,wx") == ("wx", "wy", "wz")
     assert parse_axes("") == ()
 
@@ -279,7 +290,7 @@ def test_far_from_singularity_the_solve_is_the_exact_inverse() -> None:
     arm = ARMS["elbow6"]
     q = arm.home()
     twist = np.array([0.05, 0.02, -0.03, 0.1, 0.2, -0.1])
-    s = solve(arm, q, twist)
+    s = solve(arm, q, twist, dt_s=DT_S)
     assert s.damping == 0.0 and s.binding_limit is None and s.scale == 1.0
     np.testing.assert_allclose(s.rates, np.linalg.solve(geometric_jacobian(arm, q), twist),
                                atol=1e-12)
@@ -297,7 +308,7 @@ def test_wrist_singularity_gives_bounded_rates_and_damping() -> None:
     v = 0.1 * U[:, -1]
     undamped_rates = np.linalg.pinv(J, rcond=1e-12) @ v
     assert np.linalg.norm(undamped_rates) > 1e4  # "needs unbounded speed"
-    s = solve(arm, q, v)
+    s = solve(arm, q, v, dt_s=DT_S)
     assert s.damping > 0.0
     assert s.damping == pytest.approx(arm.solver.damping_max, rel=1e-6)
     assert s.sigma_min < 1e-6
@@ -307,12 +318,12 @@ def test_wrist_singularity_gives_bounded_rates_and_damping() -> None:
     assert (np.abs(s.rates) <= arm.max_speed * (1 + 1e-12)).all()
     # Exactly singular too: no NaN, no exception.
     q[4] = 0.0
-    assert np.isfinite(solve(arm, q, v).rates).all()
+    assert np.isfinite(solve(arm, q, v, dt_s=DT_S).rates).all()
 
 
 def test_zero_twist_gives_zero_rates_and_no_binding_limit() -> None:
     for arm in ARMS.values():
-        s = solve(arm, arm.home(), np.zeros(6))
+        s = solve(arm, arm.home(), np.zeros(6), dt_s=DT_S)
         assert not s.rates.any()
         assert s.binding_limit is None and s.saturated_joints == ()
 
@@ -328,7 +339,8 @@ def test_extreme_finite_inputs_stay_finite() -> None:
 
 def test_solution_record_is_json_ready() -> None:
     arm = ARMS["reach7"]
-    s = solve(arm, arm.home(), [0.3, 0, 0, 0, 0, 0], reduced=True, prev_rates=np.zeros(7))
+    s = solve(arm, arm.home(), [0.3, 0, 0, 0, 0, 0], reduced=True, prev_rates=np.zeros(7),
+              dt_s=DT_S)
     d = json.loads(json.dumps(s.as_dict(), allow_nan=False))
     assert set(d["scales"]) == set(SCALE_NAMES)
     assert d["binding_limit"] == s.binding_limit == min(s.scales, key=s.scales.get)
@@ -435,7 +447,7 @@ def test_achieved_twist_is_parallel_to_the_command_away_from_singularity(case) -
     # With λ = 0 (σ_min ≥ ε), no joint saturated and only uniform scaling applied, J q̇ is the
     # command times one factor: cosine ≥ 0.999 over the task rows.
     arm, q, twist, frame = case
-    s = solve(arm, q, twist, frame=frame)
+    s = solve(arm, q, twist, frame=frame, dt_s=DT_S)
     mask = arm.task_mask
     commanded = s.commanded_twist[mask]
     if s.damping > 0.0 or s.saturated_joints or np.linalg.norm(commanded) < 1e-9:
@@ -460,7 +472,7 @@ def test_probe_adds_the_twist_solve_to_its_json(capsys) -> None:
                  "--json"]) == 0
     data = json.loads(capsys.readouterr().out)
     arm = ARMS["reach7"]
-    s = solve(arm, arm.home(), [-0.3, 0.2, 0.1, 0, 0, 1], reduced=True, locked=("wx",))
+    s = solve(arm, arm.home(), [-0.3, 0.2, 0.1, 0, 0, 1], reduced=True, locked=("wx",), dt_s=DT_S)
     np.testing.assert_allclose(data["joint_rates"], s.rates, atol=1e-15)
     np.testing.assert_allclose(data["achieved_twist"], s.achieved_twist, atol=1e-15)
     assert data["damping"] == s.damping

@@ -13,8 +13,8 @@ import time
 import msgpack
 import pytest
 
+from runtime.arm.load import load_arm
 from runtime.errors import ModelMismatch, TransportError
-from runtime.arm.model import load_arm
 from runtime.link import shared_rings
 from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer, arm_side_channel,
                                 child_link, link_spec, parse_link_spec)

@@ -13,13 +13,30 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from runtime.arm.load import load_arm
 from runtime.errors import ModelMismatch, ProtocolError
-from runtime.arm.model import load_arm
-from runtime.link.protocol import (FIELDS, KINDS, MAX_JOINTS, MAX_MESSAGE_BYTES, PROTOCOL_VERSION,
-                              REASONS, Hello, LatenessFilter, Rates, Refuse, RoundTripMeter,
-                              SequenceGate, State,
-                              StateFreshness, Twist, check_hello, decode, encode,
-                              geometry_digest, hello_for)
+from runtime.link.protocol import (
+    FIELDS,
+    KINDS,
+    MAX_JOINTS,
+    MAX_MESSAGE_BYTES,
+    PROTOCOL_VERSION,
+    REASONS,
+    Hello,
+    LatenessFilter,
+    Rates,
+    Refuse,
+    RoundTripMeter,
+    SequenceGate,
+    State,
+    StateFreshness,
+    Twist,
+    check_hello,
+    decode,
+    encode,
+    geometry_digest,
+    hello_for,
+)
 
 DOC = Path(__file__).resolve().parents[3] / "docs" / "PROTOCOL.md"
 FUZZ = settings(max_examples=200, deadline=None,

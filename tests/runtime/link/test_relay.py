@@ -15,9 +15,19 @@ from hypothesis import strategies as st
 
 from runtime.errors import ConfigError, ProtocolError
 from runtime.link.protocol import Hello, Rates, Refuse, State, Twist, decode, encode
-from runtime.link.relay import (DIRECTIONS, GARBAGE_KINDS, Link, LinkFaults, Stall,
-                           faults_from_options, make_garbage, message_kind, parse_duration_s,
-                           parse_fraction, parse_stall)
+from runtime.link.relay import (
+    DIRECTIONS,
+    GARBAGE_KINDS,
+    Link,
+    LinkFaults,
+    Stall,
+    faults_from_options,
+    make_garbage,
+    message_kind,
+    parse_duration_s,
+    parse_fraction,
+    parse_stall,
+)
 
 N = 3
 PERIOD_S = 0.002      # the runtime's default cycle (500 Hz)

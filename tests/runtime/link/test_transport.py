@@ -1,5 +1,5 @@
-"""runtime/link/transport.py on real 127.0.0.1 sockets (random ports): latest-value receive, malformed
-messages counted and dropped, the handshake, LINGER 0, CURVE, and the loopback-only rule.
+"""runtime/link/transport.py on real 127.0.0.1 sockets (random ports): latest-value receive,
+malformed messages counted and dropped, the handshake, LINGER 0, CURVE, and the loopback-only rule.
 
 Sockets are synchronised by polling with a timeout, never by sleeping."""
 
@@ -13,14 +13,30 @@ import msgpack
 import pytest
 import zmq
 
-from runtime.link import transport
+from runtime.arm.load import load_arm
 from runtime.errors import ModelMismatch, ProtocolError, TransportError
-from runtime.arm.model import load_arm
-from runtime.link.protocol import MAX_MESSAGE_BYTES, Hello, Rates, Refuse, State, Twist, encode, \
-    hello_for
-from runtime.link.transport import (ArmClient, ArmServer, LatestSubscriber, Publisher,
-                               check_endpoint, is_local_endpoint, load_client_keys,
-                               load_server_keys, make_keys)
+from runtime.link import transport
+from runtime.link.protocol import (
+    MAX_MESSAGE_BYTES,
+    Hello,
+    Rates,
+    Refuse,
+    State,
+    Twist,
+    encode,
+    hello_for,
+)
+from runtime.link.transport import (
+    ArmClient,
+    ArmServer,
+    LatestSubscriber,
+    Publisher,
+    check_endpoint,
+    is_local_endpoint,
+    load_client_keys,
+    load_server_keys,
+    make_keys,
+)
 
 LOOPBACK = "tcp://127.0.0.1:*"
 N = 3

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from runtime.control.mapping import InputFrame, load_pad
+from runtime.control.intent import InputFrame
+from runtime.control.pads import load_pad
 from runtime.errors import ConfigError
 from runtime.operator.pad_learn import (
     BUTTON_STEPS,

@@ -11,12 +11,19 @@ os.environ.setdefault("SDL_AUDIODRIVER", "dummy")
 import numpy as np  # noqa: E402
 import pytest  # noqa: E402
 
-from runtime.operator.inputs.keyboard import KeyboardSource  # noqa: E402
+from runtime.arm.load import load_arm  # noqa: E402
 from runtime.control.loop import FixedRateLoop  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
-from runtime.operator.status_window import (GROUND, SIZE, STATE_COLOURS, StatusSnapshot,  # noqa: E402
-                                   StatusWindow, draw_status, render_png)
+from runtime.operator.inputs.keyboard import KeyboardSource  # noqa: E402
 from runtime.operator.inputs.pygame_init import pygame  # noqa: E402
+from runtime.operator.status_window import (  # noqa: E402
+    GROUND,
+    SIZE,
+    STATE_COLOURS,
+    StatusSnapshot,
+    StatusWindow,
+    draw_status,
+    render_png,
+)
 
 ARMS = ("elbow6", "reach7", "scara4", "planar3")
 

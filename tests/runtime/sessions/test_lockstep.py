@@ -1,5 +1,5 @@
-"""runtime/sessions/lockstep.py `run_closed_loop` against an arm kept in this process: which pose each
-cycle works on for each state lag, the order cycles come out in, and what reaches the arm.
+"""runtime/sessions/lockstep.py `run_closed_loop` against an arm kept in this process: which pose
+each cycle works on for each state lag, the order cycles come out in, and what reaches the arm.
 
 The arm is an ideal integrator (q ← q + q̇·dt per cycle), so every pose is known exactly:
 with lag 0 cycle k must see q0 + dt·Σ_{i<k} rates_i, with lag 1 the sum stops one cycle
@@ -10,11 +10,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from runtime.arm.load import load_arm
+from runtime.control.cycle import ControlCycle
+from runtime.control.intent import DirectCommand, InputFrame
+from runtime.control.pads import load_pad
+from runtime.control.settings import RunSettings
 from runtime.errors import ConfigError
 from runtime.sessions.lockstep import SimStep, run_closed_loop
-from runtime.control.mapping import DirectCommand, InputFrame, load_pad
-from runtime.arm.model import load_arm
-from runtime.control.cycle import ControlCycle
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ
@@ -55,7 +57,7 @@ def frame_at(k: int, t: float) -> InputFrame:
 
 def run(lag: int, n: int = 40):
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     sim = IntegratorArm(arm.home())
     cycles = list(run_closed_loop(cycle, sim, frame_at, n, state_lag=lag))
     return arm, sim, cycles
@@ -91,7 +93,7 @@ def test_with_lag_one_the_next_rates_go_out_before_the_last_state_is_awaited() -
 
 def test_prepare_runs_for_every_cycle_with_its_state_age() -> None:
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     seen = []
     cycles = list(run_closed_loop(
         cycle, IntegratorArm(arm.home()), frame_at, 5, state_lag=1,
@@ -102,6 +104,6 @@ def test_prepare_runs_for_every_cycle_with_its_state_age() -> None:
 
 def test_an_unsupported_lag_is_a_config_error() -> None:
     arm = load_arm("elbow6")
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     with pytest.raises(ConfigError, match="state lag"):
         list(run_closed_loop(cycle, IntegratorArm(arm.home()), frame_at, 3, state_lag=2))

@@ -29,15 +29,33 @@ import msgpack
 import numpy as np
 import pytest
 
-from runtime.errors import LogError
-from runtime.arm.model import load_arm
-from runtime.sessions.log_reader import (BAD_RECORD, CORRUPT, DROPPED, GAP, TORN_TAIL, UNCLOSED,
-                                        UNKNOWN_KIND, SessionReader, read_session)
-from runtime.sessions.log_schema import (FORMAT_VERSION, MAGIC, CycleRecord, make_header,
-                                        software_version)
-from runtime.sessions.log_writer import (SessionRecorder, encode_frame, encode_preamble,
-                                        new_session_path)
+from runtime.arm.load import load_arm
 from runtime.arm.serial import arm_from_dict, arm_to_dict
+from runtime.errors import LogError
+from runtime.sessions.log_reader import (
+    BAD_RECORD,
+    CORRUPT,
+    DROPPED,
+    GAP,
+    TORN_TAIL,
+    UNCLOSED,
+    UNKNOWN_KIND,
+    SessionReader,
+    read_session,
+)
+from runtime.sessions.log_schema import (
+    FORMAT_VERSION,
+    MAGIC,
+    CycleRecord,
+    make_header,
+    software_version,
+)
+from runtime.sessions.log_writer import (
+    SessionRecorder,
+    encode_frame,
+    encode_preamble,
+    new_session_path,
+)
 
 ROOT = Path(__file__).resolve().parents[3]
 PREAMBLE_BYTES = 10      # magic (8) + version (2)
@@ -199,7 +217,7 @@ def test_streaming_reader_matches_read_session(tmp_path: Path, arm) -> None:
 
 CHILD = textwrap.dedent("""
     import sys, time
-    from runtime.arm.model import load_arm
+    from runtime.arm.load import load_arm
     from runtime.sessions.log_schema import CycleRecord
     from runtime.sessions.log_writer import SessionRecorder
     arm = load_arm("elbow6")

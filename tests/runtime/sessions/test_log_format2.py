@@ -21,19 +21,31 @@ from pathlib import Path
 import msgpack
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings, strategies as st
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.cli import main
 from runtime.control.cycle import ControlCycle
-from runtime.control.mapping import load_pad
+from runtime.control.pads import load_pad
+from runtime.control.settings import RunSettings
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.sessions.log_blocks import BLOCK_KIND, COLUMNS, CycleBlock, encode_block, \
-    pack_eight
-from runtime.sessions.log_blocks_decode import Part, decode_block, decode_blocks, \
-    eight_values, parse_block
-from runtime.sessions.log_reader import BAD_RECORD, CORRUPT, GAP, TORN_TAIL, SessionReader, \
-    read_session
+from runtime.sessions.log_blocks import BLOCK_KIND, COLUMNS, CycleBlock, encode_block, pack_eight
+from runtime.sessions.log_blocks_decode import (
+    Part,
+    decode_block,
+    decode_blocks,
+    eight_values,
+    parse_block,
+)
+from runtime.sessions.log_reader import (
+    BAD_RECORD,
+    CORRUPT,
+    GAP,
+    TORN_TAIL,
+    SessionReader,
+    read_session,
+)
 from runtime.sessions.log_schema import CycleRecord, cycle_record
 from runtime.sessions.log_writer import CALLER_BLOCK_RECORDS, SessionRecorder, encode_frame
 from runtime.sessions.summary import summarise
@@ -161,7 +173,7 @@ def test_columns_cover_every_record_field() -> None:
 def drive_like_records(arm, n: int) -> list[CycleRecord]:
     """`n` cycles of the shipped square profile through today's control cycle, with an
     ideal arm (q += q̇·dt): records as `jogwire drive` writes them."""
-    cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)
+    cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
     source = ScriptSource(load_script("square", arm))
     q = arm.home()
     out_records = []

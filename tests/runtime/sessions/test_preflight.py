@@ -13,10 +13,10 @@ import numpy as np
 import pytest
 
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
+from runtime.arm.load import load_arm
 from runtime.control.limits import REDUCED_SPEED_M_S
-from runtime.arm.model import load_arm
-from runtime.sessions.preflight import MEASURED_TOLERANCE, TraceBuilder, evaluate
 from runtime.sessions.log_schema import CycleRecord
+from runtime.sessions.preflight import MEASURED_TOLERANCE, TraceBuilder, evaluate
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

@@ -12,10 +12,16 @@ import numpy as np
 import pytest
 
 from runtime.arm.kinematics import geometric_jacobian
-from runtime.arm.model import load_arm
-from runtime.sessions.preflight import TraceBuilder, evaluate
+from runtime.arm.load import load_arm
 from runtime.sessions.log_schema import CycleRecord
-from runtime.sessions.report import PLOT_NAMES, ReportContext, reduce_series, render_html, render_plots
+from runtime.sessions.preflight import TraceBuilder, evaluate
+from runtime.sessions.report import (
+    PLOT_NAMES,
+    ReportContext,
+    reduce_series,
+    render_html,
+    render_plots,
+)
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

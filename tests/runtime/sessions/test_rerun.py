@@ -13,17 +13,24 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from runtime.arm.load import load_arm
+from runtime.control.cycle import ControlCycle
+from runtime.control.intent import InputFrame
+from runtime.control.pads import load_pad
+from runtime.control.safety import BLOCKED
+from runtime.control.settings import RunSettings
 from runtime.errors import LogError
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.control.mapping import InputFrame, load_pad
-from runtime.arm.model import load_arm
-from runtime.control.cycle import ControlCycle
-from runtime.sessions.log_writer import SessionRecorder
-from runtime.sessions.log_schema import cycle_record
 from runtime.sessions.log_reader import read_session
-from runtime.sessions.rerun import (RecordedInputs, continuous_records, cycle_settings, inputs_of,
-                           rerun_open_loop)
-from runtime.control.safety import BLOCKED, SafetySettings
+from runtime.sessions.log_schema import cycle_record
+from runtime.sessions.log_writer import SessionRecorder
+from runtime.sessions.rerun import (
+    RecordedInputs,
+    continuous_records,
+    cycle_settings,
+    inputs_of,
+    rerun_open_loop,
+)
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ
@@ -47,9 +54,9 @@ def pad_frame(k: int) -> InputFrame:
 
 def record_session(path: Path, arm, frames, settings: dict, n: int) -> list:
     """Run the cycle as the drive loop does and record it; returns the rates sent."""
-    safety = SafetySettings(stale_after_s=settings["stale_after_s"])
-    cycle = ControlCycle(arm, load_pad(settings["pad"]), rate_hz=RATE_HZ, safety=safety,
-                         reduced_locked=settings["reduced_locked"])
+    cycle = ControlCycle(arm, load_pad(settings["pad"]), RunSettings(
+        rate_hz=RATE_HZ, stale_after_s=settings["stale_after_s"],
+        reduced_locked=settings["reduced_locked"]))
     q = arm.home()
     sent = []
     with SessionRecorder.start(path, arm, settings) as rec:
@@ -139,8 +146,8 @@ def test_settings_without_a_rate_cannot_be_rerun():
 
 
 def test_the_state_lag_is_read_with_a_default_of_one_cycle():
-    assert cycle_settings({"rate_hz": 500}).state_lag_cycles == 1   # a drive session
-    assert cycle_settings({"rate_hz": 500, "state_lag_cycles": 0}).state_lag_cycles == 0
+    assert cycle_settings({"rate_hz": 500}).run.effective_state_lag == 1   # a drive session
+    assert cycle_settings({"rate_hz": 500, "state_lag_cycles": 0}).run.effective_state_lag == 0
     for bad in (2, True, "1"):
         with pytest.raises(LogError, match="state_lag_cycles"):
             cycle_settings({"rate_hz": 500, "state_lag_cycles": bad})

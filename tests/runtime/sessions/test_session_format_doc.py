@@ -18,7 +18,7 @@ import msgpack
 import numpy as np
 import pytest
 
-from runtime.arm.model import load_arm
+from runtime.arm.load import load_arm
 from runtime.sessions.log_blocks import COLUMN_TYPES, COLUMNS, SMOOTH
 from runtime.sessions.log_reader import read_session
 from runtime.sessions.log_schema import CycleRecord

@@ -14,11 +14,12 @@ os.environ.setdefault("SDL_AUDIODRIVER", "dummy")
 import numpy as np  # noqa: E402
 import pytest  # noqa: E402
 
+from runtime.arm.load import load_arm  # noqa: E402
+from runtime.control.mapping import Mapper  # noqa: E402
+from runtime.control.pads import load_pad  # noqa: E402
+from runtime.control.safety import BLOCKED, MOVING, READY, REARM, SafetyGate  # noqa: E402
 from runtime.operator.inputs.gamepad import SETTLE_S, GamepadSource, hat_buttons, pygame  # noqa: E402
 from runtime.operator.inputs.pygame_init import display_available  # noqa: E402
-from runtime.control.mapping import Mapper, load_pad  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
-from runtime.control.safety import BLOCKED, MOVING, READY, REARM, SafetyGate  # noqa: E402
 
 PAD_ID = 4242  # an instance id no real device has in this process
 

@@ -7,8 +7,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from runtime.arm.model import load_arm
-from runtime.control.mapping import Mapper, load_pad
+from runtime.arm.load import load_arm
+from runtime.control.mapping import Mapper
+from runtime.control.pads import load_pad
 from runtime.control.safety import BLOCKED, MOVING, READY, REARM, SafetyGate
 from runtime.operator.inputs.gamepad import SETTLE_S, GamepadSource, pygame
 

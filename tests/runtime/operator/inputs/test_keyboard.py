@@ -9,11 +9,12 @@ os.environ.setdefault("SDL_AUDIODRIVER", "dummy")
 
 import pytest  # noqa: E402
 
+from runtime.arm.load import load_arm  # noqa: E402
+from runtime.control.mapping import Mapper  # noqa: E402
+from runtime.control.pads import load_pad  # noqa: E402
+from runtime.control.safety import BLOCKED, MOVING, READY, SafetyGate  # noqa: E402
 from runtime.operator.inputs.keyboard import KeyboardSource  # noqa: E402
 from runtime.operator.inputs.pygame_init import pygame  # noqa: E402
-from runtime.control.mapping import Mapper, load_pad  # noqa: E402
-from runtime.arm.model import load_arm  # noqa: E402
-from runtime.control.safety import BLOCKED, MOVING, READY, SafetyGate  # noqa: E402
 
 
 @pytest.fixture

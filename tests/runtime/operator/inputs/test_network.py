@@ -7,12 +7,13 @@ import time
 import numpy as np
 import pytest
 
-from runtime.operator.inputs.network import NetworkSource
-from runtime.control.mapping import Mapper, load_pad
-from runtime.arm.model import load_arm
-from runtime.link.protocol import Twist
+from runtime.arm.load import load_arm
+from runtime.control.mapping import Mapper
+from runtime.control.pads import load_pad
 from runtime.control.safety import BLOCKED, MOVING, READY, REARM, SafetyGate
+from runtime.link.protocol import Twist
 from runtime.link.transport import Publisher
+from runtime.operator.inputs.network import NetworkSource
 
 DEADLINE_S = 5.0
 

@@ -8,12 +8,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from runtime.arm.load import load_arm
+from runtime.control.limits import REDUCED_SPEED_M_S
+from runtime.control.mapping import Mapper
+from runtime.control.pads import load_pad
+from runtime.control.safety import MOVING, READY, SafetyGate
 from runtime.errors import ConfigError
 from runtime.operator.inputs import open_source, parse_input_spec
 from runtime.operator.inputs.script import ScriptSource, load_script, profile_names
-from runtime.control.mapping import REDUCED_SPEED_M_S, Mapper, load_pad
-from runtime.arm.model import load_arm
-from runtime.control.safety import MOVING, READY, SafetyGate
 
 
 @pytest.fixture(scope="module")
@@ -156,9 +158,9 @@ def test_input_specs():
 
 
 def test_open_source_builds_the_named_source(arm):
-    src = open_source("script:square", arm=arm)
+    src = open_source("script:square", arm=arm, stale_after_s=0.1)
     assert isinstance(src, ScriptSource) and src.script.name == "square"
-    net = open_source("network:tcp://127.0.0.1:*", arm=arm)
+    net = open_source("network:tcp://127.0.0.1:*", arm=arm, stale_after_s=0.1)
     try:
         assert net.name.startswith("network tcp://127.0.0.1:")
         assert not net.read(0.0).present

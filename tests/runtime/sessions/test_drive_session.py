@@ -1,4 +1,4 @@
-"""`jogwire drive` in-process, without sockets or a window: which input it picks, its session
+"""A drive session in-process, without sockets or a window: which input it picks, its session
 statistics, and the loop body run against an ideal arm on a fake clock — how every way of
 stopping ends with zero rates the arm side has applied."""
 
@@ -9,17 +9,19 @@ import math
 import numpy as np
 import pytest
 
-from runtime.commands.drive import SETTLE_TIMEOUT_S, DriveSession, LogHistogram, \
-    build_summary, format_summary, plan_input
-from runtime.errors import ConfigError
-from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
+from runtime.arm.load import load_arm
 from runtime.control.loop import FixedRateLoop
-from runtime.control.mapping import load_pad
-from runtime.arm.model import load_arm
-from runtime.control.cycle import ControlCycle
+from runtime.control.pads import load_pad
+from runtime.control.settings import RunSettings
+from runtime.errors import ConfigError
 from runtime.link.protocol import State
 from runtime.link.transport import Inbox
+from runtime.operator.inputs.script import ScriptSource, load_script
+from runtime.operator.terminal import format_drive_summary
+from runtime.sessions.drive import SETTLE_TIMEOUT_S, DriveSession, build_summary, enter_realtime
+from runtime.sessions.drive_stats import LogHistogram
+from runtime.sessions.drive_ui import plan_input
 
 RATE_HZ = 500.0
 
@@ -47,7 +49,7 @@ def test_keyboard_without_a_window_is_refused(headless, display):
         plan_input("keyboard", headless=headless, display=display, pads=0)
 
 
-def test_log_histogram_percentiles_against_numpy():
+def test_log_histogram_percentiles_against_numpy(fake_clock):
     """Log-binned percentiles agree with numpy's nearest-rank ones (the outside reference) to
     half a bin: a bin spans a factor 10^(1/100), 2.3 %."""
     rng = np.random.default_rng(7)
@@ -98,34 +100,21 @@ class IdealArm:
                                  status="tracking"))
 
 
-class FakeClock:
-    def __init__(self) -> None:
-        self.now = 50.0
-
-    def __call__(self) -> float:
-        self.now += 2e-6      # each reading costs a little, so spin-waits end
-        return self.now
-
-    def sleep(self, d: float) -> None:
-        self.now += d
-
-
-def make_session(script="square", *, duration_s=None, alive=True):
+def make_session(fake_clock, script="square", *, duration_s=None, alive=True):
     arm = load_arm("elbow6")
-    clock = FakeClock()
+    clock = fake_clock(start_s=50.0, read_cost_s=2e-6)
     client = IdealArm(arm, clock, alive=alive)
     source = ScriptSource(load_script(script, arm))
-    drive = DriveSession(arm=arm, cycle=ControlCycle(arm, load_pad("keyboard"),
-                                                     rate_hz=RATE_HZ),
+    drive = DriveSession(arm=arm, pad=load_pad("keyboard"),
+                         settings=RunSettings(rate_hz=RATE_HZ, stale_after_s=0.1),
                          source=source, client=client, recorder=None, clock=clock,
-                         stale_after_s=0.1, duration_s=duration_s, same_clock=True,
-                         target="ideal", rate_hz=RATE_HZ)
+                         duration_s=duration_s, same_clock=True, target="ideal")
     loop = FixedRateLoop(RATE_HZ, clock=clock, sleep=clock.sleep)
     return drive, loop, client, arm
 
 
-def test_a_stop_request_mid_motion_holds_zero_until_the_arm_is_at_rest():
-    drive, loop, arm_side, arm = make_session()
+def test_a_stop_request_mid_motion_holds_zero_until_the_arm_is_at_rest(fake_clock):
+    drive, loop, arm_side, arm = make_session(fake_clock)
     t_stop = 1.5                                      # 1 s into the first leg (+x, 5 cm/s)
 
     def body(tick):
@@ -145,17 +134,17 @@ def test_a_stop_request_mid_motion_holds_zero_until_the_arm_is_at_rest():
     assert drive.stats.round_trip.n > 0 and drive.stats.gate_cycles["moving"] > 0
 
 
-def test_the_script_end_and_the_duration_end_the_session():
-    drive, loop, _, _ = make_session("square")
+def test_the_script_end_and_the_duration_end_the_session(fake_clock):
+    drive, loop, _, _ = make_session(fake_clock, "square")
     loop.run(drive.body, duration_s=30.0)
     assert drive.end_reason == "the script finished"
-    drive, loop, _, _ = make_session("square", duration_s=2.0)
+    drive, loop, _, _ = make_session(fake_clock, "square", duration_s=2.0)
     loop.run(drive.body, duration_s=30.0)
     assert drive.end_reason == "--duration 2 s reached"
 
 
-def test_without_arm_state_the_session_ends_after_the_settling_time():
-    drive, loop, arm_side, _ = make_session(alive=False)
+def test_without_arm_state_the_session_ends_after_the_settling_time(fake_clock):
+    drive, loop, arm_side, _ = make_session(fake_clock, alive=False)
     drive.request_end("stopped by SIGTERM")
     stats = loop.run(drive.body, duration_s=5.0)
     assert stats.cycles == pytest.approx(SETTLE_TIMEOUT_S * RATE_HZ, abs=2)
@@ -163,23 +152,50 @@ def test_without_arm_state_the_session_ends_after_the_settling_time():
     assert "no fresh arm state within 1 s" in drive.stop_outcome
 
 
-def test_summary_reads_as_a_report():
-    drive, loop, _, _ = make_session(duration_s=1.5)
+def test_summary_reads_as_a_report(fake_clock):
+    drive, loop, _, _ = make_session(fake_clock, duration_s=1.5)
     timing = loop.run(drive.body, duration_s=30.0)
     m = build_summary(drive, timing, priority="normal", input_name="script square",
                       target="ideal", recorder_stats=None, session_path=None, arm_side_log="",
                       started_s=0.0, ended_s=1.5)
-    text = format_summary(m)
+    text = format_drive_summary(m)
     assert "--duration 1.5 s reached after 1.5 s" in text
     assert "base_yaw" in text and "not recorded" in text
     assert m["tcp_peak_m_s"] == pytest.approx(0.05, rel=1e-6)   # the square's 5 cm/s
 
 
-def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again():
+def test_summary_lists_a_stop_apart_from_the_commanded_accelerations(fake_clock):
+    """A stop mid-motion steps the rates to zero in one cycle: the summary lists it with the
+    braking it would ask, and judges accelerations without it (runtime.sessions.stats, the
+    analysis inspect and preflight use), so none is above max_accel."""
+    drive, loop, _, arm = make_session(fake_clock)
+
+    def body(tick):
+        if drive.t0 is not None and tick.start_s - drive.t0 >= 1.5 and not drive.ending:
+            drive.request_end("stopped by SIGINT")
+        return drive.body(tick)
+
+    timing = loop.run(body, duration_s=10.0)
+    m = build_summary(drive, timing, priority="normal", input_name="script square",
+                      target="ideal", recorder_stats=None, session_path=None, arm_side_log="",
+                      started_s=0.0, ended_s=2.0)
+    (stop,) = m["stops"]
+    assert stop["tcp_speed"] == pytest.approx(0.05, rel=1e-6)     # the square's 5 cm/s
+    worst = arm.joint_names.index(stop["joint"])
+    assert stop["asked_decel"] > arm.max_accel[worst]              # a step, not a ramp
+    for j in m["joints"]:
+        assert j["peak_accel"] <= j["max_accel"] * (1 + 1e-9), j["name"]
+        assert not j["over_max_accel"] and not j["over_rated_accel"]
+    assert any(j["peak_accel"] > 0 for j in m["joints"])           # it did accelerate
+    text = format_drive_summary(m)
+    assert "stops     1 while moving" in text and "above max" not in text
+
+
+def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again(fake_clock):
     """The arm side keeps sending states but applies none of our rates for longer than
     stale_after: motion is held, and stays held when rates get through again, because
     enable was held throughout (the square script never lets go until its end)."""
-    drive, loop, arm_side, _ = make_session()
+    drive, loop, arm_side, _ = make_session(fake_clock)
     t0 = 50.0
     arm_side.deaf = (t0 + 1.0, t0 + 1.3)
     reasons = {}
@@ -200,8 +216,6 @@ def test_rates_lost_on_the_way_stop_motion_until_enable_is_pressed_again():
 def test_realtime_refused_falls_back_to_normal_priority(monkeypatch):
     import errno
     import os
-
-    from runtime.commands.drive import enter_realtime
 
     def refuse(*_):
         raise PermissionError(errno.EPERM, "Operation not permitted")

@@ -1,0 +1,325 @@
+"""Clearance as a limit: the velocity damper in the solve (pure: no I/O, no clock).
+
+Velocity damper (B. Faverjon & P. Tournassoud, ICRA 1987; REFERENCES §11): for every pair
+closer than the influence distance d_i, the distance may shrink at most at
+
+    ḋ ≥ −gain·(d − d_s),   gain·(d_i − d_s) = ξ, the approach speed allowed at d_i,
+
+so it decays toward the safety distance d_s and never crosses it (in discrete time, with
+control period Δt, while gain·Δt < 1). Moving away is never limited. Inside d_s the same
+bound asks ḋ ≥ gain·(d_s − d) > 0: a pose that starts too close, or that a slide along a
+curved path has carried a little below d_s (the rows are linear, the motion is not), moves
+back out while the operator commands motion; with no command the arm holds still (a jog
+moves only when asked). Where two such rows conflict, they fall back to ḋ ≥ 0. The TCP
+keep-in box enters the same way, one row per face. ḋ = row·q̇ with the rows from
+`runtime.arm.distance`.
+
+Formulation: a small bounded least-squares problem after the damped solve,
+
+    q̇ = argmin ½ (q̇ − q̇₀)ᵀ H (q̇ − q̇₀)   subject to  row_i·q̇ ≥ −b_i,
+    H = J_tᵀ J_t + μ I,   μ = max(λ², μ_min),
+
+where q̇₀ is the solver's unconstrained answer and J_t the task Jacobian. Why this and not
+extra rows in the damped solve: rows in a least-squares solve are soft (they trade against
+the task, and a pair could still close in); as hard constraints of a least-squares problem
+they hold exactly, and the metric H makes the correction cost as little *task* motion as
+possible, so the component of the command along a surface survives: a diagonal jog into the
+bench slides along it instead of freezing, and a redundant arm first spends its null space
+(cost μ) to keep clear. Outside d_s, q̇ = 0 satisfies every row, so the problem is
+feasible. It is solved by an active set on its dual (few rows bind at once: one to three in
+practice): x = q̇₀ + H⁻¹Aᵀλ, λ ≥ 0 for the binding rows.
+
+The other limits then act on the result. Uniform scaling (joint speed, position brake, TCP
+caps) keeps every row with b_i ≥ 0 satisfied (outside d_s); the acceleration ramp steps
+from last cycle's rates, which were clear at last cycle's pose and may not be at this one.
+So after the limits every row is checked once more as ḋ ≥ min(−b_i, 0), and the rates are
+scaled down if needed: clearance outranks the ramp, as the TCP caps do. (Scaled-down
+motion may then push out of d_s more slowly than asked: never closer.)
+
+Distances are taken at the measured pose. With one cycle of state lag the rates act one
+period later, after the arm has moved by at most the last cycle's allowed approach,
+gain·(d − d_s)·Δt: 1 % of the margin at 5 /s and 2 ms, inside the tolerance of the
+first-order rows.
+
+The reported factor is the share of the commanded task motion kept along its direction,
+(J_t q̇ · J_t q̇₀)/‖J_t q̇₀‖², in [0, 1]; the binding pair is the closest pair among the
+binding rows.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..arm.cell import Cell, ClearanceSettings
+from ..arm.collision import CollisionModel
+from ..arm.distance import Clearances, clearances
+from ..arm.kinematics import joint_frames
+from ..arm.model import Arm
+from .limits import Limited
+
+Vector = NDArray[np.float64]
+
+METRIC_FLOOR = 1e-3
+"""μ_min: the smallest weight of plain joint motion in H (same units as JᵀJ). It keeps H
+invertible for a redundant arm and makes the null space cheap, not free."""
+
+CLEARANCE_OVER_ACCELERATION = "clearance_over_acceleration"
+"""Named in the solution's conflicts (as limits.CONFLICTS) when the rates had to drop faster
+than max_accel to keep a pair from approaching faster than the damper allows."""
+
+_SLACK_M_S = 1e-9  # a row counts as met within this (m/s)
+_MOVABLE = 1e-12   # rows with a smaller squared norm: the joints cannot change that distance
+
+
+class _Memo:
+    """The last pose at which nothing was near, and the lower bound of every distance there."""
+
+    __slots__ = ("q", "bound_m")
+
+    def __init__(self) -> None:
+        self.q: list[float] | None = None
+        self.bound_m = 0.0
+
+
+@dataclass(frozen=True, eq=False)
+class ClearanceLimit:
+    """An arm's collision model in one cell, with the damper settings: built once, passed to
+    every `solve`.
+
+    `sweep_m` bounds how far any point of the arm can move per unit motion of each joint:
+    the distance from joint j's axis to the farthest capsule point or the TCP beyond it, in
+    any pose (the link offsets along the chain, summed). A pose that differs from the last
+    pose found clear of d_i by Δq keeps every distance above that pose's bound minus
+    2·Σ|Δq_j|·sweep_j (both sides of a self pair may move), so while that stays above d_i
+    the cycle needs no distances at all (`_Memo`). The rates are the same either way (no
+    row can bind); only the reported lower bound is looser. None for arms with prismatic
+    joints, whose offsets change with q.
+    """
+
+    model: CollisionModel
+    settings: ClearanceSettings
+    sweep_m: tuple[float, ...] | None
+    memo: _Memo = field(default_factory=_Memo, repr=False)
+
+    @staticmethod
+    def of(arm: Arm, cell: Cell) -> "ClearanceLimit":
+        model = CollisionModel.build(arm, cell)
+        return ClearanceLimit(model, cell.clearance, _sweep(model))
+
+
+def _sweep(model: CollisionModel) -> tuple[float, ...] | None:
+    arm, caps = model.arm, model.capsules
+    if not arm.is_revolute.all():
+        return None
+    n = arm.n
+    # reach[i]: the farthest point carried by joint frame i, from that frame's origin
+    reach = [float(np.linalg.norm(arm.tip[:3, 3])) if i == n - 1 else 0.0 for i in range(n)]
+    for f, start, end, r in zip(caps.frame.tolist(), caps.start, caps.end, caps.radius.tolist()):
+        if f >= 0:
+            reach[f] = max(reach[f], float(max(np.linalg.norm(start), np.linalg.norm(end))) + r)
+    offsets = [float(np.linalg.norm(arm.joints[i].origin[:3, 3])) for i in range(1, n)]
+    sweep = [0.0] * n
+    carried = 0.0  # the farthest point beyond joint j, from joint j's origin
+    for j in range(n - 1, -1, -1):
+        carried = max(reach[j], (offsets[j] + carried) if j < n - 1 else 0.0)
+        sweep[j] = carried
+    return tuple(sweep)
+
+
+@dataclass(frozen=True, eq=False)
+class ClearanceReport:
+    """Clearance at one solve.
+
+    min_distance_m  the smallest distance over all pairs (m; negative: overlap); exact
+                    inside the influence distance d_i, a lower bound beyond it
+    nearest_pair    the pair at that distance (None beyond d_i)
+    binding_pair    the pair whose row bound the motion this cycle, or None
+    factor          share of the commanded task motion kept (1.0: clearance did not bind)
+    distances       the pairs measured this cycle, those that may be inside d_i
+                    (runtime.arm.distance.Clearances)
+    """
+
+    min_distance_m: float
+    nearest_pair: tuple[str, str] | None
+    binding_pair: tuple[str, str] | None
+    factor: float
+    distances: Clearances = field(repr=False)
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain JSON-ready values (min_distance_m null when there is no pair at all)."""
+        finite = self.min_distance_m < float("inf")
+        return {"min_distance_m": float(self.min_distance_m) if finite else None,
+                "nearest_pair": None if self.nearest_pair is None else list(self.nearest_pair),
+                "binding_pair": None if self.binding_pair is None else list(self.binding_pair),
+                "factor": self.factor}
+
+
+class _Rows:
+    """The damper's rows at one pose, row·q̇ ≥ floor, for the pairs inside d_i whose
+    distance the joints can change at all.
+
+    floor = −gain·(d − d_s): negative outside d_s (approach allowed, slower and slower),
+    positive inside it (any commanded motion also carries the pair back out). `stop` is the
+    same with the floors clamped at 0 (no approach, nothing more), which the zero motion
+    always meets."""
+
+    def __init__(self, limit: ClearanceLimit, found: Clearances) -> None:
+        s = limit.settings
+        if not len(found.distances):  # the usual cycle: nothing near
+            self.index, self.A = found.index, found.rate_rows
+            self.floor = self.stop = found.distances
+            return
+        near = found.distances < s.influence_distance_m
+        near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
+        self.index = np.flatnonzero(near)
+        self.A = found.rate_rows[self.index]
+        self.floor = -s.gain_per_s * (found.distances[self.index] - s.safety_distance_m)
+        self.stop = np.minimum(self.floor, 0.0)
+
+    def violated(self, rates: Vector, floor: Vector) -> bool:
+        return bool(len(self.index)) and bool((np.dot(self.A, rates) < floor
+                                               - _SLACK_M_S).any())
+
+    def scale_into(self, rates: Vector) -> float:
+        """Largest c ≤ 1 with c·rates meeting the `stop` rows (c = 0 always does)."""
+        if not len(self.index):
+            return 1.0
+        approach = np.dot(self.A, rates)
+        over = approach < self.stop - _SLACK_M_S
+        if not over.any():
+            return 1.0
+        return float(max(0.0, np.min(self.stop[over] / approach[over])))
+
+
+class ClearanceGuard:
+    """The damper around the other limits, for one solve:
+
+        guard = ClearanceGuard(limit, q, Jt, damping, rates)               # restrict
+        limited = guard.settle(apply_limits(arm, q, guard.rates, ...))     # re-check
+
+    `q` is the measured pose (rad, m), `rates` the solver's unconstrained answer, `Jt` its task
+    Jacobian and `damping` its λ.
+    With no motion commanded (rates all zero) the arm holds still, whatever the distances.
+    After `settle`, `report` holds the clearance of this solve."""
+
+    def __init__(self, limit: ClearanceLimit, q: Vector, Jt: NDArray[np.float64],
+                 damping: float, rates: Vector) -> None:
+        found = _measure(limit, q)
+        self._rows = rows = _Rows(limit, found)
+        self._Jt, self._commanded = Jt, rates
+        binding: tuple[str, str] | None = None
+        self.rates = rates
+        if rows.violated(rates, rows.floor) and bool(rates.any()):
+            mu = max(damping * damping, METRIC_FLOOR)
+            H = np.dot(Jt.T, Jt) + mu * np.eye(len(rates))
+            # Pairs inside d_s pinched from two sides can make the push-out rows conflict:
+            # then only approach is refused.
+            for floor in (rows.floor, rows.stop):
+                self.rates, active, met = _project(rates, rows.A, floor, H)
+                if met:
+                    break
+            if len(active):
+                pairs = rows.index[active]
+                binding = found.pairs[int(pairs[np.argmin(found.distances[pairs])])]
+        i = found.nearest()
+        nearest = found.beyond_m if i is None else min(float(found.distances[i]), found.beyond_m)
+        self.report = ClearanceReport(
+            min_distance_m=nearest,
+            nearest_pair=None if i is None or nearest < found.distances[i] else found.pairs[i],
+            binding_pair=binding, factor=_kept(Jt, rates, self.rates), distances=found)
+
+    def settle(self, limited: Limited) -> Limited:
+        """The limited rates, scaled down if the acceleration ramp left an approach faster
+        than a row allows, with the clearance factor added to the scales."""
+        rates, twist, report = limited.rates, limited.twist, self.report
+        c = self._rows.scale_into(rates)
+        if c < 1.0:
+            binding = report.binding_pair
+            if binding is None:
+                margin = np.dot(self._rows.A, rates) - self._rows.stop
+                binding = report.distances.pairs[int(self._rows.index[int(np.argmin(margin))])]
+            rates, twist = rates * c, twist * c
+            report = ClearanceReport(report.min_distance_m, report.nearest_pair, binding,
+                                     min(report.factor, _kept(self._Jt, self._commanded, rates)),
+                                     report.distances)
+            self.report = report
+            conflicts = limited.conflicts + (CLEARANCE_OVER_ACCELERATION,)
+            return Limited(rates, twist, {**limited.scales, "clearance": report.factor},
+                           conflicts)
+        return limited._replace(scales={**limited.scales, "clearance": report.factor})
+
+
+def _measure(limit: ClearanceLimit, q: Vector) -> Clearances:
+    """The pairs that may be inside d_i at q (see `ClearanceLimit` for the shortcut)."""
+    d_i, memo, sweep = limit.settings.influence_distance_m, limit.memo, limit.sweep_m
+    ql = q.tolist()
+    if memo.q is not None and sweep is not None:
+        moved = sum(abs(a - b) * s for a, b, s in zip(ql, memo.q, sweep))
+        if memo.bound_m - 2.0 * moved >= d_i:
+            return Clearances.none_within(len(ql), memo.bound_m - 2.0 * moved)
+    frames, T_tcp = joint_frames(limit.model.arm, q)
+    # Only pairs within d_i can bind: the rest are culled by a lower bound of their
+    # distance, which then stands in for the nearest distance (never overstated).
+    found = clearances(limit.model, frames, T_tcp, d_i)
+    memo.q, memo.bound_m = (ql, found.beyond_m) if not len(found.distances) else (None, 0.0)
+    return found
+
+
+def _kept(Jt: NDArray[np.float64], before: Vector, after: Vector) -> float:
+    """(J·after · J·before)/‖J·before‖² in [0, 1]; 1 when nothing was commanded or changed."""
+    if after is before:
+        return 1.0
+    v0 = np.dot(Jt, before)
+    size = float(np.dot(v0, v0))
+    if size <= 0.0:
+        return 1.0
+    return min(1.0, max(0.0, float(np.dot(np.dot(Jt, after), v0)) / size))
+
+
+def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.float64]
+             ) -> tuple[Vector, NDArray[np.intp], bool]:
+    """argmin ½(x − x0)ᵀH(x − x0) subject to A·x ≥ floor, by an active set on the dual:
+    x = x0 + H⁻¹Aᵀλ with λ ≥ 0 on the active rows. Returns x, the active rows and whether
+    every row is met.
+
+    Rows join while violated and leave when their multiplier turns negative. If that does
+    not settle within a few rounds (conflicting or degenerate rows), the last x is scaled
+    toward zero as far as that meets the rows: feasible though not closest when every
+    floor is ≤ 0, and reported as not met otherwise."""
+    HiAt = np.linalg.solve(H, A.T)           # (n, m)
+    W = np.dot(A, HiAt)                      # (m, m), positive semi-definite
+    slack0 = np.dot(A, x0) - floor
+    active = [int(np.argmin(slack0))]
+    x = x0
+    for _ in range(2 * len(floor) + 2):
+        idx = np.array(active)
+        Waa = W[np.ix_(idx, idx)]
+        ridge = 1e-12 * (float(np.trace(Waa)) + 1e-30) * np.eye(len(idx))  # parallel rows
+        lam = np.linalg.solve(Waa + ridge, -slack0[idx])
+        if (lam < 0.0).any():
+            active.pop(int(np.argmin(lam)))
+            if not active:
+                break
+            continue
+        x = x0 + np.dot(HiAt[:, idx], lam)
+        slack = np.dot(A, x) - floor
+        worst = int(np.argmin(slack))
+        if slack[worst] >= -_SLACK_M_S:
+            return x, idx, True
+        if worst in active:
+            break
+        active.append(worst)
+    if (floor > 0.0).any():
+        return x0, np.array(active, dtype=np.intp), False
+    approach = np.dot(A, x)
+    over = approach < floor - _SLACK_M_S
+    c = 1.0 if not over.any() else max(0.0, float(np.min(floor[over] / approach[over])))
+    return x * c, np.array(active, dtype=np.intp), True
+
+
+__all__ = ["CLEARANCE_OVER_ACCELERATION", "ClearanceGuard", "ClearanceLimit", "ClearanceReport",
+           "METRIC_FLOOR"]
