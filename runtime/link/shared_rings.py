@@ -47,7 +47,7 @@ from collections import Counter
 from .protocol import MAX_MESSAGE_BYTES
 
 SLOTS = 8                     # frames a ring holds; lockstep has at most 2–3 in flight
-BUSY_S = 2e-4                 # a waiting reader polls the count without yielding this long
+BUSY_S = 5e-5                 # a waiting reader polls the count without yielding this long
 SPIN_S = 0.002                # … and yielding its core between looks until this long
 NAP_S = 0.002                 # a sleeping reader looks again at least this often
 _LENGTH = struct.Struct("<I")
