@@ -15,11 +15,11 @@ from hypothesis import strategies as st
 
 from runtime.errors import ModelMismatch, ProtocolError
 from runtime.arm.model import load_arm
-from runtime.link.protocol import (FIELDS, KINDS, MAX_JOINTS, MAX_MESSAGE_BYTES, PROTOCOL_VERSION,
-                              REASONS, Hello, LatenessFilter, Rates, Refuse, RoundTripMeter,
-                              SequenceGate, State,
-                              StateFreshness, Twist, check_hello, decode, encode,
-                              geometry_digest, hello_for)
+from runtime.link.protocol import (FIELDS, KINDS, MAX_CONTACTS, MAX_JOINTS, MAX_MESSAGE_BYTES,
+                              PROTOCOL_VERSION, REASONS, CellHello, Contact, Hello,
+                              LatenessFilter, Rates, Refuse, RoundTripMeter, SequenceGate,
+                              State, StateFreshness, Twist, check_hello, decode, encode,
+                              geometry_digest, hello_for, to_map)
 
 DOC = Path(__file__).resolve().parents[3] / "docs" / "PROTOCOL.md"
 FUZZ = settings(max_examples=200, deadline=None,
@@ -39,11 +39,14 @@ def examples() -> list:
             State(1042, 1234567990000, (0.5, 1.0, -0.5), (0.1, -0.25, 0.0), 42, 1234567890123,
                   "tracking", False),
             Refuse("busy", "another runtime is commanding this arm"),
-            Twist(7, 1234567000000, (0.05, 0, 0, 0, 0, 0.1), "tool", True)]
+            Twist(7, 1234567000000, (0.05, 0, 0, 0, 0, 0.1), "tool", True),
+            CellHello("bench", "5d0c2c3f8a7e9b14"),
+            Contact(1042, 1234567990000, ("tool", "link_3"), ("fixture", "bench"),
+                    (0.0021, 0.0004), 2)]
 
 
 def valid_map(kind: str) -> dict:
-    msg = {m.__class__.__name__.lower(): m for m in examples()}[kind]
+    msg = {to_map(m)["kind"]: m for m in examples()}[kind]
     return msgpack.unpackb(encode(msg))
 
 
@@ -126,6 +129,14 @@ def mutated(message_kind: str, **changes) -> bytes:
     (mutated("hello", stale_after_s=0.0), "range"),
     (mutated("twist", twist=[0.0] * 5), "length"),
     (mutated("twist", frame="world"), "range"),
+    (mutated("contact", depth_m=[0.001]), "length"),      # a, b, depth_m differ in length
+    (mutated("contact", depth_m=[0.001, -0.001]), "range"),
+    (mutated("contact", total=1), "range"),                # fewer in all than listed
+    (mutated("contact", a=[], b=[], depth_m=[]), "length"),
+    (mutated("contact", a=["tool"] * (MAX_CONTACTS + 1), b=["bench"] * (MAX_CONTACTS + 1),
+             depth_m=[0.0] * (MAX_CONTACTS + 1), total=99), "length"),
+    (mutated("contact", b=["bench", ""]), "range"),        # names are not empty
+    (mutated("cell", digest=7), "type"),
     (msgpack.packb(msgpack.ExtType(1, b"")), "type"),       # no ext values
     (msgpack.packb(msgpack.ExtType(1, b"abc")), "type"),
 ])
