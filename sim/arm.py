@@ -35,6 +35,7 @@ from runtime.link.protocol import hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
 from .arm_side import ArmSession, Reading, guard_rates
+from .cell_bodies import CellBodies, SimCell, read_contacts
 from .endpoint import ArmEndpoint, StopFlag
 from .urdf import arm_to_urdf
 
@@ -43,6 +44,7 @@ GRAVITY_M_S2 = 9.81
 # inertias need under gravity (so velocity tracking is stiff), our round numbers.
 DEFAULT_EFFORT = {"revolute": 500.0, "prismatic": 2000.0}   # N·m, N
 TCP_LINK = "tcp"
+OBJECTS_IN_VIEW_M = 0.4     # a snapshot shows workcell objects this far beyond the arm
 
 log = logging.getLogger("jogwire.arm")
 
@@ -52,11 +54,16 @@ class SimulatedArm:
 
     Joint order and names are the model's; q in rad (revolute) or m (prismatic), rates per
     second. DIRECT (headless) unless gui=True. Deterministic for a given command sequence.
+
+    cell: a workcell to hold: its objects become static bodies, the arm's links collide
+    with the workcell's collision model of the arm (and the tool, on the flange) instead of
+    the URDF sketch's, and every step reads the contacts PyBullet found (`read_state`).
     """
 
     def __init__(self, arm: Arm, *, step_s: float = 1e-3, gui: bool = False,
-                 q0: np.ndarray | None = None) -> None:
+                 q0: np.ndarray | None = None, cell: SimCell | None = None) -> None:
         self.arm = arm
+        self.cell = cell
         self.step_s = float(step_s)
         self.client = pb.connect(pb.GUI if gui else pb.DIRECT)
         if self.client < 0:
@@ -64,11 +71,14 @@ class SimulatedArm:
                                                               "DIRECT session"))
         try:
             self.body = self._load(arm)
+            self.objects = CellBodies.add(self.client, cell.objects, arm.base) \
+                if cell is not None else CellBodies(self.client, {})
         except Exception:
             pb.disconnect(physicsClientId=self.client)
             raise
         names = {pb.getJointInfo(self.body, i, physicsClientId=self.client)[1].decode(): i
                  for i in range(pb.getNumJoints(self.body, physicsClientId=self.client))}
+        self.parts = self._parts() if cell is not None else {}
         self.joint_ids = [names[name] for name in arm.joint_names]
         self.tcp_link = next(i for i in range(pb.getNumJoints(self.body,
                                                               physicsClientId=self.client))
@@ -82,12 +92,34 @@ class SimulatedArm:
 
     def _load(self, arm: Arm) -> int:
         fd, path = tempfile.mkstemp(suffix=".urdf", prefix=f"jogwire-{arm.name}-")
+        collisions = None if self.cell is None else self.cell.collisions()
+        # With a workcell the arm's links collide with each other too, except a link and
+        # its parent (PyBullet's exclusion; the workcell's own list is added in _parts).
+        flags = 0 if self.cell is None else \
+            pb.URDF_USE_SELF_COLLISION | pb.URDF_USE_SELF_COLLISION_EXCLUDE_PARENT
         try:
             with os.fdopen(fd, "w", encoding="utf-8") as f:
-                f.write(arm_to_urdf(arm))
-            return pb.loadURDF(path, useFixedBase=True, physicsClientId=self.client)
+                f.write(arm_to_urdf(arm, collisions=collisions))
+            return pb.loadURDF(path, useFixedBase=True, flags=flags,
+                               physicsClientId=self.client)
         finally:
             os.unlink(path)
+
+    def _parts(self) -> dict[int, str]:
+        """PyBullet link index → part name for every link of the collision model; pairs the
+        workcell ignores are taken out of PyBullet's collision detection as well."""
+        c = self.client
+        index = {pb.getJointInfo(self.body, i, physicsClientId=c)[12].decode(): i
+                 for i in range(pb.getNumJoints(self.body, physicsClientId=c))}
+        index[pb.getBodyInfo(self.body, physicsClientId=c)[0].decode()] = -1
+        parts = {index[link]: part for link, (part, _) in self.cell.links.items()
+                 if link in index}
+        for ia, a in parts.items():
+            for ib, b in parts.items():
+                if ia < ib and frozenset((a, b)) in self.cell.ignored:
+                    pb.setCollisionFilterPair(self.body, self.body, ia, ib, 0,
+                                              physicsClientId=c)
+        return parts
 
     def reset(self, q: np.ndarray) -> None:
         """Put the joints at q (rad or m) at rest; time restarts at 0."""
@@ -98,6 +130,7 @@ class SimulatedArm:
         self.request = np.zeros(self.arm.n)
         self.command = np.zeros(self.arm.n)
         self.limited = False
+        self.contacts: tuple[tuple[str, str, float], ...] = ()
         self._read()
 
     def set_rates(self, qd: np.ndarray) -> None:
@@ -117,6 +150,9 @@ class SimulatedArm:
         pb.stepSimulation(physicsClientId=self.client)
         self.t_s += self.step_s
         self._read()
+        if self.cell is not None:
+            self.contacts = read_contacts(self.client, self.body, self.parts,
+                                          self.objects.names)
 
     def _read(self) -> None:
         states = pb.getJointStates(self.body, self.joint_ids, physicsClientId=self.client)
@@ -125,7 +161,7 @@ class SimulatedArm:
 
     def read_state(self) -> Reading:
         return Reading(self.t_s, self.q.copy(), self.qd.copy(), self.command.copy(),
-                       self.limited)
+                       self.limited, self.contacts)
 
     def tcp_pose(self) -> np.ndarray:
         """The TCP frame in the world (4×4), as PyBullet computes it (link frame, not COM)."""
@@ -143,8 +179,9 @@ class SimulatedArm:
                  for i in range(-1, pb.getNumJoints(self.body, physicsClientId=c))]
         lo = np.minimum.reduce([np.array(b[0]) for b in boxes] + [np.array([0.0, 0.0, 0.0])])
         hi = np.maximum.reduce([np.array(b[1]) for b in boxes])
+        lo, hi = self._with_objects(lo, hi)
         centre, size = 0.5 * (lo + hi), max(float(np.max(hi - lo)), 0.3)
-        props = self._add_props(size)
+        props = self._add_props(size) if self.cell is None else []
         try:
             fov_deg = 40.0
             distance = 0.75 * size / math.tan(math.radians(fov_deg / 2.0))
@@ -160,6 +197,19 @@ class SimulatedArm:
             for body in props:
                 pb.removeBody(body, physicsClientId=c)
         return np.asarray(rgba, dtype=np.uint8).reshape(height, width, 4)
+
+    def _with_objects(self, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The view's bounds grown to the workcell's objects near the arm (an object's
+        box is clipped to OBJECTS_IN_VIEW_M around the arm; a half-space is left out)."""
+        near_lo, near_hi = lo - OBJECTS_IN_VIEW_M, hi + OBJECTS_IN_VIEW_M
+        for body in self.objects.names:
+            if pb.getCollisionShapeData(body, -1, physicsClientId=self.client)[0][2] \
+                    == pb.GEOM_PLANE:
+                continue
+            b_lo, b_hi = (np.array(v) for v in pb.getAABB(body, physicsClientId=self.client))
+            lo = np.minimum(lo, np.clip(b_lo, near_lo, near_hi))
+            hi = np.maximum(hi, np.clip(b_hi, near_lo, near_hi))
+        return lo, hi
 
     def _add_props(self, size: float) -> list[int]:
         """Visual-only floor plate at z = 0 and, for a raised base, a column under it."""

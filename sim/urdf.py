@@ -23,12 +23,16 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
+from typing import TYPE_CHECKING
 from xml.sax.saxutils import quoteattr
 
 import numpy as np
 
 from runtime.arm.model import Arm
 from runtime.arm.transforms import Mat4, rotation_aligning_z
+
+if TYPE_CHECKING:
+    from .cell_bodies import Solid
 
 LINK_RADIUS_M = 0.035
 LINK_MASS_PER_M_KG = 2.5
@@ -88,28 +92,56 @@ def _inertial(mass: float, com: np.ndarray, R: np.ndarray, ixx: float, iyy: floa
             "   </inertial>"]
 
 
-def _link(name: str, offset: np.ndarray | None) -> list[str]:
-    """A link whose next joint sits at `offset` (m, link frame); None for flange and tcp."""
+def _solid_geometry(solid: "Solid") -> str:
+    s = [_num(v) for v in solid.sizes]
+    if solid.kind == "box":
+        return f'<box size="{" ".join(_num(2.0 * v) for v in solid.sizes)}"/>'
+    if solid.kind in ("cylinder", "capsule"):
+        return f'<{solid.kind} radius="{s[0]}" length="{s[1]}"/>'
+    if solid.kind == "sphere":
+        return f'<sphere radius="{s[0]}"/>'
+    raise ValueError(f"a {solid.kind} cannot be part of a link")
+
+
+def _solids(solids: "list[Solid]", *, visual: bool) -> list[str]:
+    """Collision elements (and, for the tool, visual ones) for solids in the link frame."""
+    out: list[str] = []
+    for solid in solids:
+        geometry = _solid_geometry(solid)
+        out += _shape("collision", _origin_tag(solid.pose), geometry, "")
+        if visual:
+            out += _shape("visual", _origin_tag(solid.pose), geometry, "tool")
+    return out
+
+
+def _link(name: str, offset: np.ndarray | None,
+          collisions: "list[Solid] | None" = None) -> list[str]:
+    """A link whose next joint sits at `offset` (m, link frame); None for flange and tcp.
+
+    collisions: the link's collision shapes (link frame) instead of the sketch's; on the
+    flange (offset None) they are the tool, and are drawn too."""
     if offset is None:  # tiny but present: no 1 kg default mass in PyBullet
         i = TINY_MASS_KG * 1e-4
-        return [f'  <link name="{name}">', *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3),
-                                                      i, i, i), "  </link>"]
+        return [f'  <link name="{name}">', *_solids(collisions or [], visual=True),
+                *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3), i, i, i), "  </link>"]
     body: list[str] = []
+    sketch = ("visual", "collision") if collisions is None else ("visual",)
     housing = (f'<cylinder radius="{_num(LINK_RADIUS_M * 1.2)}" '
                f'length="{_num(HOUSING_LENGTH_M)}"/>')
-    for kind in ("visual", "collision"):
+    for kind in sketch:
         body += _shape(kind, _origin_tag(np.eye(4)), housing, "housing")
     length = float(np.linalg.norm(offset))
     mass, com, R = HOUSING_MASS_KG, np.zeros(3), np.eye(3)
     if length > 1e-6:
         R = rotation_aligning_z(offset / length)
         tube = f'<cylinder radius="{_num(LINK_RADIUS_M)}" length="{_num(length)}"/>'
-        for kind in ("visual", "collision"):
+        for kind in sketch:
             body += _shape(kind, _pose_tag(offset / 2.0, R), tube, "tube")
         tube_mass = LINK_MASS_PER_M_KG * length
         # The housing sits at the link origin, the tube's centre halfway to the next joint.
         com = offset / 2.0 * tube_mass / (tube_mass + HOUSING_MASS_KG)
         mass += tube_mass
+    body += _solids(collisions or [], visual=False)
     body += _inertial(mass, com, R,
                       *_cylinder_inertia(mass, LINK_RADIUS_M, max(length, HOUSING_LENGTH_M)))
     return [f'  <link name="{name}">', *body, "  </link>"]
@@ -130,23 +162,32 @@ def _joint(name: str, kind: str, parent: str, child: str, T: Mat4,
             *(f"   {e}" for e in extra), "  </joint>"]
 
 
-def arm_to_urdf(arm: Arm, *, name: str | None = None) -> str:
-    """The URDF text of `arm` (see the module docstring for the layout)."""
+def arm_to_urdf(arm: Arm, *, name: str | None = None,
+                collisions: "dict[str, list[Solid]] | None" = None) -> str:
+    """The URDF text of `arm` (see the module docstring for the layout).
+
+    collisions: link name → its collision shapes in the link's frame (the arm's collision
+    model and, on "flange", the tool), replacing the sketch's cylinders on every link;
+    None keeps the sketch."""
+    def shapes(link: str) -> "list[Solid] | None":
+        return None if collisions is None else collisions.get(link, [])
+
     out = ['<?xml version="1.0"?>',
            "<!-- written by jogwire from an arm model; geometry and inertias are a sketch -->",
            f"<robot name={quoteattr(name or arm.name)}>",
            '  <material name="housing"><color rgba="0.25 0.27 0.3 1"/></material>',
-           '  <material name="tube"><color rgba="0.85 0.55 0.15 1"/></material>']
+           '  <material name="tube"><color rgba="0.85 0.55 0.15 1"/></material>',
+           '  <material name="tool"><color rgba="0.2 0.45 0.75 1"/></material>']
     taken = set(arm.joint_names)
     if not np.array_equal(arm.base, np.eye(4)):
-        out += [*_link("world", arm.base[:3, 3]),  # a pedestal up to the arm's base
+        out += [*_link("world", arm.base[:3, 3], shapes("world")),  # a pedestal to the base
                 *_joint(_unique("world_joint", taken), "fixed", "world", "base_link",
                         arm.base)]
     links = ["base_link"] + [f"link_{i + 1}" for i in range(arm.n)]
     # Each link's next joint sits at the next origin (after the last joint: the flange).
     offsets = [j.origin[:3, 3] for j in arm.joints] + [arm.flange[:3, 3]]
     for link, offset in zip(links, offsets):
-        out += _link(link, offset)
+        out += _link(link, offset, shapes(link))
     for i, joint in enumerate(arm.joints):
         unlimited = not (math.isfinite(joint.lower) and math.isfinite(joint.upper))
         kind = "continuous" if joint.is_revolute and unlimited else joint.kind
@@ -156,7 +197,7 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None) -> str:
         out += _joint(joint.name, kind, links[i], links[i + 1], joint.origin,
                       ('<axis xyz="0 0 1"/>',
                        f'<limit {limit}effort="{effort}" velocity="{_num(joint.max_speed)}"/>'))
-    out += _link("flange", None) + _link("tcp", None)
+    out += _link("flange", None, shapes("flange")) + _link("tcp", None)
     out += _joint(_unique("flange_joint", taken), "fixed", links[-1], "flange", arm.flange)
     out += _joint(_unique("tcp_joint", taken), "fixed", "flange", "tcp", arm.tool)
     out.append("</robot>")
