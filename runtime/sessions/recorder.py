@@ -114,6 +114,9 @@ class CycleRecord:
     state_age_s: float | None = None    # age of q when used (s); None: no arm state yet
     overrun_streak: int = 0             # consecutive overrunning cycles before this one
     safety_state: str = ""              # the safety gate's state name
+    # With a workcell (None without one): the nearest pair at the measured pose q.
+    min_clearance_m: float | None = None  # its distance, m (negative: overlapping)
+    clearance_pair: tuple[str, str] | None = None  # (part of the arm, object or part)
 
     def to_wire(self) -> dict[str, Any]:
         """The msgpack map of this record (plain Python values only)."""
@@ -144,6 +147,10 @@ class CycleRecord:
             "state_age_s": None if self.state_age_s is None else float(self.state_age_s),
             "overrun_streak": int(self.overrun_streak),
             "safety_state": str(self.safety_state),
+            "min_clearance_m": None if self.min_clearance_m is None
+            else float(self.min_clearance_m),
+            "clearance_pair": None if self.clearance_pair is None
+            else [str(v) for v in self.clearance_pair],
         }
 
     @classmethod
@@ -182,6 +189,13 @@ class CycleRecord:
             values[key] = int(m.get(key, 0))
             key = "safety_state"
             values[key] = _as_str(m.get(key, ""))
+            key = "min_clearance_m"
+            values[key] = None if m.get(key) is None else _as_float(m[key])
+            key = "clearance_pair"
+            pair = m.get(key)
+            if pair is not None and not (isinstance(pair, list) and len(pair) == 2):
+                raise TypeError(f"{pair!r} is not a pair of names")
+            values[key] = None if pair is None else (_as_str(pair[0]), _as_str(pair[1]))
         except KeyError:
             raise LogError(f"cycle record has no {key!r}") from None
         except (TypeError, ValueError, AttributeError) as exc:
