@@ -66,8 +66,8 @@ from ..control.loop import FixedRateLoop, Tick, TimingStats
 from ..control.mapping import DirectCommand, InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle, CycleOutput
-from ..link.protocol import FLAG_REDUCED_SPEED, Hello, Rates, RoundTripMeter, State, \
-    StateFreshness, encode, hello_differences, hello_for
+from ..link.protocol import FLAG_REDUCED_SPEED, CellHello, Contact, Hello, Rates, \
+    RoundTripMeter, State, StateFreshness, encode, hello_differences, hello_for
 from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
 from ..control.safety import SafetySettings
 from ..link.transport import ArmClient, check_endpoint, load_client_keys
@@ -78,6 +78,7 @@ SCRIPT_TAIL_S = 0.5               # after a script's last segment: watch the arm
 SETTLE_TIMEOUT_S = 1.0            # ending: longest wait for the arm to be measured at rest
 REST_SPEED = 1e-3                 # |q̇| at or below this (rad/s or m/s) counts as at rest
 REFUSAL_HOLD_S = 0.5              # motion held this long after the arm side refused us
+CONTACT_SHOWN_S = 0.5             # a contact report stays on the screen at least this long
 HANDSHAKE_TIMEOUT_S = 10.0
 STATS_REFRESH_S = 0.25            # how often the main thread recomputes timing percentiles
 SNAPSHOT_HZ = 60.0                # status snapshots per second published by the loop
@@ -294,6 +295,10 @@ class RunStats:
         self.state_age = LogHistogram()                # age of q when a cycle uses it
         self.arm_limited = 0                           # states in which the arm side limited
         self.states = 0
+        self.min_clearance_m: float | None = None      # nearest pair over the session
+        self.min_clearance_pair: tuple[str, str] | None = None
+        self.min_clearance_t_s: float | None = None
+        self.contacts: dict[tuple[str, str], list[float]] = {}  # pair → [first t, depth, steps]
 
     def add_cycle(self, out: CycleOutput) -> None:
         self.gate_cycles[out.verdict.state] += 1
@@ -318,6 +323,20 @@ class RunStats:
             self.round_trip_over += level_s > limit_s
             self.round_trip_worst_s = max(level_s, self.round_trip_worst_s or 0.0)
 
+    def add_clearance(self, distance_m: float | None, pair: tuple[str, str] | None,
+                      t_s: float) -> None:
+        if distance_m is not None and (self.min_clearance_m is None or
+                                       distance_m < self.min_clearance_m):
+            self.min_clearance_m, self.min_clearance_pair = distance_m, pair
+            self.min_clearance_t_s = t_s
+
+    def add_contact(self, contact: Contact, t_s: float) -> None:
+        """One step's contact report from the arm side (docs/PROTOCOL.md §5a)."""
+        for a, b, depth in contact.pairs:
+            c = self.contacts.setdefault((a, b), [t_s, 0.0, 0])
+            c[1] = max(c[1], depth)
+            c[2] += 1
+
     def add_state(self, state: State, qd: np.ndarray) -> None:
         self.states += 1
         self.arm_limited += state.limited
@@ -338,8 +357,12 @@ class DriveSession:
     def __init__(self, *, arm: Arm, cycle: ControlCycle, source: Any, client: ArmClient,
                  recorder: SessionRecorder | None, clock: Callable[[], float],
                  stale_after_s: float, duration_s: float | None, same_clock: bool,
-                 target: str, rate_hz: float, lockstep: bool = False) -> None:
+                 target: str, rate_hz: float, lockstep: bool = False,
+                 cell_hello: CellHello | None = None, outlines: Any = None) -> None:
         self.arm = arm
+        self.cell_hello = cell_hello           # our workcell, sent after every hello exchange
+        self.cell_name = None if cell_hello is None else cell_hello.name
+        self.outlines = outlines               # the workcell in the window's views
         self.cycle = cycle
         self.source = source
         self.client = client
@@ -360,6 +383,8 @@ class DriveSession:
         self.state_stamp_s: float | None = None      # when q was measured/received
         self.state_received_s: float | None = None
         self.arm_status = ""
+        self.arm_cell: CellHello | None = None       # the arm side's answer to our workcell
+        self.recent_contacts: tuple[tuple[tuple[str, str], ...], float] = ((), -math.inf)
         self.seq = 0
         self.cycles = 0
         self.latest = None                           # StatusSnapshot, replaced whole
@@ -413,6 +438,11 @@ class DriveSession:
 
     def _receive(self, now: float, timeout_s: float = 0.0) -> None:
         inbox = self.client.receive(timeout_s)
+        if inbox.cell is not None:
+            self.arm_cell = inbox.cell
+        for contact in inbox.contacts:
+            self.stats.add_contact(contact, now - (self.t0 or now))
+            self.recent_contacts = (tuple((a, b) for a, b, _ in contact.pairs), now)
         if inbox.refuse is not None and inbox.refuse.code != "no_hello":
             self._refused = (f"the arm side refused us ({inbox.refuse.code}): "
                              f"{inbox.refuse.reason}", now)
@@ -431,6 +461,8 @@ class DriveSession:
         self._mismatch = None
         self.freshness.reset()
         self._applied_seen, self._applied_seen_at_s = 0, None
+        if self.cell_hello is not None:        # a new exchange: ask for contacts again
+            self.client.send(self.cell_hello)
 
     def _await_applied(self, seq: int, until: float) -> None:
         """Lockstep (docs/PROTOCOL.md §6): wait for the state of the step that applied
@@ -569,7 +601,14 @@ class DriveSession:
             reduced=intent.reduced, joint=intent.joint, sigma_min=sigma,
             manipulability=manip, damping=damping, binding_limit=binding, target=self.target,
             connected=connected, state_age_s=age, stale_after_s=self.stale_after_s,
-            rtt_s=self.round_trip.level_s, elapsed_s=now - self.t0, note=self._note(now))
+            rtt_s=self.round_trip.level_s, elapsed_s=now - self.t0, note=self._note(now),
+            cell=self.outlines, contacts=self._contacts_shown(now),
+            **clearance_fields(out))
+
+    def _contacts_shown(self, now: float) -> tuple[tuple[str, str], ...]:
+        """The pairs of the newest contact report, for CONTACT_SHOWN_S after it came."""
+        pairs, at = self.recent_contacts
+        return pairs if now - at <= CONTACT_SHOWN_S else ()
 
     def _note(self, now: float) -> str:
         notes = []
@@ -639,6 +678,9 @@ def status_line(snap: Any, timing: TimingStats | None) -> str:
     if snap.rtt_s is not None:
         link += f" rtt {snap.rtt_s * 1e3:.1f} ms"
     parts.append(link)
+    if snap.cell is not None:
+        from ..operator.status_window import clearance_text
+        parts.append(clearance_text(snap) + (" (LIMITING)" if snap.clearance_binds else ""))
     if timing is not None and timing.cycles:
         parts.append(f"loop p99 {timing.period_p99_s * 1e3:.2f} ms, "
                      f"{timing.overruns} overruns")
@@ -683,6 +725,13 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
         "tcp_peak_rad_s": s.tcp_peak_rad_s, "tcp_cap_rad_s": arm.tcp_max_angular_rad_s,
         "limits": {k: {"cycles": c, "episodes": e} for k, (c, e) in
                    sorted(s.limits.items(), key=lambda kv: -kv[1][0])},
+        "cell": drive.cell_name,
+        "min_clearance_m": s.min_clearance_m,
+        "clearance_pair": None if s.min_clearance_pair is None else list(s.min_clearance_pair),
+        "min_clearance_t_s": s.min_clearance_t_s,
+        "contacts_measured": drive.arm_cell is not None and bool(drive.arm_cell.name),
+        "contacts": [{"a": a, "b": b, "t_s": t, "depth_m": d, "steps": n}
+                     for (a, b), (t, d, n) in s.contacts.items()],
         "session": None if session_path is None else {
             "path": str(session_path), "written": recorder_stats.written,
             "dropped": recorder_stats.dropped, "lost": recorder_stats.lost,
@@ -737,6 +786,8 @@ def format_summary(m: dict[str, Any]) -> str:
     limits = ", ".join(f"{k} {v['cycles']} cycles in {v['episodes']} episodes"
                        for k, v in m["limits"].items()) or "no limit bound"
     out.append(f"  limits    {limits}")
+    if m["cell"] is not None:
+        out.append(f"  clearance {format_clearance(m)}")
     out.append(f"  stop      {m['stop']}")
     if m["arm_side"]:
         out.append(f"  arm side  {m['arm_side']}")
@@ -749,6 +800,23 @@ def format_summary(m: dict[str, Any]) -> str:
             state += f"; recording FAILED: {ses['failed']}"
         out.append(f"  session   {ses['path']} ({state}); see `jogwire inspect {ses['path']}`")
     return "\n".join(out)
+
+
+def format_clearance(m: dict[str, Any]) -> str:
+    """The summary's workcell line: the nearest approach and what the arm side reported."""
+    if m["min_clearance_m"] is None:
+        text = f"workcell {m['cell']}: no distance measured"
+    else:
+        a, b = m["clearance_pair"]
+        text = (f"workcell {m['cell']}: nearest {a}–{b} {m['min_clearance_m'] * 1e3:.1f} mm "
+                f"at {m['min_clearance_t_s']:.1f} s")
+    if not m["contacts_measured"]:
+        return text + "; the arm side reports no contacts"
+    if not m["contacts"]:
+        return text + "; no contact"
+    return text + "; CONTACT " + ", ".join(
+        f"{c['a']}–{c['b']} from {c['t_s']:.1f} s, {c['depth_m'] * 1e3:.1f} mm deep"
+        for c in m["contacts"])
 
 
 def _json_safe(value: Any) -> Any:
