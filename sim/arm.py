@@ -71,7 +71,7 @@ class SimulatedArm:
                                                               "DIRECT session"))
         try:
             self.body = self._load(arm)
-            self.objects = CellBodies.add(self.client, cell.objects, arm.base) \
+            self.objects = CellBodies.add(self.client, cell.objects) \
                 if cell is not None else CellBodies(self.client, {})
         except Exception:
             pb.disconnect(physicsClientId=self.client)
@@ -92,33 +92,38 @@ class SimulatedArm:
 
     def _load(self, arm: Arm) -> int:
         fd, path = tempfile.mkstemp(suffix=".urdf", prefix=f"jogwire-{arm.name}-")
-        collisions = None if self.cell is None else self.cell.collisions()
-        # With a workcell the arm's links collide with each other too, except a link and
-        # its parent (PyBullet's exclusion; the workcell's own list is added in _parts).
-        flags = 0 if self.cell is None else \
-            pb.URDF_USE_SELF_COLLISION | pb.URDF_USE_SELF_COLLISION_EXCLUDE_PARENT
+        parts = None if self.cell is None else self.cell.parts
+        # With a workcell the arm's parts collide with each other too; _parts switches off
+        # the pairs the workcell does not check.
+        flags = 0 if self.cell is None else pb.URDF_USE_SELF_COLLISION
         try:
             with os.fdopen(fd, "w", encoding="utf-8") as f:
-                f.write(arm_to_urdf(arm, collisions=collisions))
+                f.write(arm_to_urdf(arm, parts=parts))
             return pb.loadURDF(path, useFixedBase=True, flags=flags,
                                physicsClientId=self.client)
         finally:
             os.unlink(path)
 
     def _parts(self) -> dict[int, str]:
-        """PyBullet link index → part name for every link of the collision model; pairs the
-        workcell ignores are taken out of PyBullet's collision detection as well."""
-        c = self.client
-        index = {pb.getJointInfo(self.body, i, physicsClientId=c)[12].decode(): i
+        """PyBullet link index → part name for every part of the collision model. Pairs the
+        workcell does not check (neighbours, the mount, excluded pairs) are taken out of
+        PyBullet's collision detection, so every contact read is a pair the runtime
+        keeps clear of; every other link has no collision shape at all."""
+        c, cell = self.client, self.cell
+        links = {pb.getJointInfo(self.body, i, physicsClientId=c)[12].decode(): i
                  for i in range(pb.getNumJoints(self.body, physicsClientId=c))}
-        index[pb.getBodyInfo(self.body, physicsClientId=c)[0].decode()] = -1
-        parts = {index[link]: part for link, (part, _) in self.cell.links.items()
-                 if link in index}
-        for ia, a in parts.items():
-            for ib, b in parts.items():
-                if ia < ib and frozenset((a, b)) in self.cell.ignored:
+        parts = {links[link]: name for link, name in cell.part_names.items()}
+        every = [-1, *links.values()]
+        for ia in every:
+            for ib in every:
+                if ia < ib and (parts.get(ia) is None or parts.get(ib) is None or
+                                frozenset((parts[ia], parts[ib])) not in cell.checked):
                     pb.setCollisionFilterPair(self.body, self.body, ia, ib, 0,
                                               physicsClientId=c)
+        for body, name in self.objects.names.items():
+            for link in every:
+                if parts.get(link) is None or frozenset((parts[link], name)) not in cell.checked:
+                    pb.setCollisionFilterPair(self.body, body, link, -1, 0, physicsClientId=c)
         return parts
 
     def reset(self, q: np.ndarray) -> None:

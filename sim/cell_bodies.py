@@ -8,65 +8,30 @@ code: PyBullet's own narrow phase, read back with `getContactPoints` after each 
 The contact points of a step are those of its collision pass, which runs before the
 step's integration: a report lags the pose by at most one physics step.
 
-Every shape is first turned into a `Solid` (name, kind, pose in the arm's base frame,
-sizes), in `solids_of_cell` and `solids_of_parts`: the only place that knows the
-workcell's dataclasses. The world frame of the simulation is the arm's base frame moved by
+Every shape comes as a `runtime.arm.solids.Solid` (name, kind, pose, sizes). The world
+frame of the simulation is the arm's base frame moved by
 the arm's base transform, so a solid sits at base · pose.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import pybullet as pb
 
+from runtime.arm.cell import Cell
+from runtime.arm.model import Arm
+from runtime.arm.solids import Solid, capsule, cell_solids
+from runtime.link.protocol import cell_digest
+
 from .urdf import matrix_to_rpy_exact
 
-KINDS = ("box", "cylinder", "sphere", "capsule", "halfspace")
 # A half-space is infinite for collision; it is drawn as a square plate this wide (m).
 HALFSPACE_DRAWN_M = 3.0
-OBJECT_RGBA = (0.55, 0.62, 0.70, 1.0)     # workcell objects in snapshots (see palette note)
-TOOL_RGBA = (0.20, 0.45, 0.75, 1.0)
-
-
-@dataclass(frozen=True, eq=False)
-class Solid:
-    """One collision shape, as PyBullet takes it.
-
-    pose: 4×4 in the arm's base frame (box, cylinder, capsule: centred at the origin, axis
-    along z; half-space: the plane through the origin, its z axis the outward normal, the
-    solid side below). sizes (m): box (hx, hy, hz) half extents; cylinder (radius,
-    length); sphere (radius,); capsule (radius, length of the segment between the two
-    sphere centres); half-space ().
-    """
-
-    name: str
-    kind: str
-    pose: np.ndarray
-    sizes: tuple[float, ...] = ()
-    rgba: tuple[float, float, float, float] = field(default=OBJECT_RGBA)
-
-
-def capsule_solid(name: str, p0: np.ndarray, p1: np.ndarray, radius: float,
-                  rgba: tuple[float, float, float, float] = TOOL_RGBA) -> Solid:
-    """A capsule around the segment p0–p1 (m, one frame) as a `Solid` in that frame."""
-    p0, p1 = np.asarray(p0, dtype=float), np.asarray(p1, dtype=float)
-    axis = p1 - p0
-    length = float(np.linalg.norm(axis))
-    T = np.eye(4)
-    T[:3, 3] = (p0 + p1) / 2.0
-    if length > 1e-12:
-        T[:3, :3] = _rotation_to(axis / length)
-    return Solid(name, "capsule", T, (float(radius), length), rgba)
-
-
-def _rotation_to(z: np.ndarray) -> np.ndarray:
-    """A rotation whose third column is the unit vector z."""
-    helper = np.array([1.0, 0.0, 0.0]) if abs(z[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    x = np.cross(helper, z)
-    x /= np.linalg.norm(x)
-    return np.column_stack((x, np.cross(z, x), z))
+# Workcell objects in snapshots. The shared palette (runtime/palette.py, CELL_OBJECT) takes
+# over here when it lands.
+OBJECT_RGBA = (0.55, 0.60, 0.70, 1.0)
 
 
 def pose_of(T: np.ndarray) -> tuple[list[float], list[float]]:
@@ -84,7 +49,7 @@ def collision_shape(solid: Solid, client: int, frame: np.ndarray | None = None) 
     return pb.createCollisionShape(physicsClientId=client, **kw)
 
 
-def visual_shape(solid: Solid, client: int) -> int:
+def visual_shape(solid: Solid, client: int, rgba=OBJECT_RGBA) -> int:
     kw = _geometry(solid)
     if solid.kind == "halfspace":   # drawn as a thin plate just under the plane
         kw = {"shapeType": pb.GEOM_BOX,
@@ -92,7 +57,7 @@ def visual_shape(solid: Solid, client: int) -> int:
               "visualFramePosition": [0.0, 0.0, -0.002]}
     if kw["shapeType"] in (pb.GEOM_CYLINDER, pb.GEOM_CAPSULE):
         kw["length"] = kw.pop("height")     # visual shapes call it length
-    return pb.createVisualShape(rgbaColor=list(solid.rgba), physicsClientId=client, **kw)
+    return pb.createVisualShape(rgbaColor=list(rgba), physicsClientId=client, **kw)
 
 
 def _geometry(solid: Solid) -> dict:
@@ -118,11 +83,11 @@ class CellBodies:
     names: dict[int, str]
 
     @classmethod
-    def add(cls, client: int, solids: list[Solid], base: np.ndarray) -> "CellBodies":
-        """A static body (mass 0) per solid, placed at base · pose."""
+    def add(cls, client: int, solids: list[Solid]) -> "CellBodies":
+        """A static body (mass 0) per solid, at its pose."""
         names = {}
         for solid in solids:
-            position, orientation = pose_of(np.asarray(base) @ solid.pose)
+            position, orientation = pose_of(solid.pose)
             body = pb.createMultiBody(
                 baseMass=0.0, baseCollisionShapeIndex=collision_shape(solid, client),
                 baseVisualShapeIndex=visual_shape(solid, client), basePosition=position,
@@ -159,19 +124,45 @@ def read_contacts(client: int, arm_body: int, parts: dict[int, str],
 
 @dataclass(frozen=True, eq=False)
 class SimCell:
-    """A workcell as the simulated arm holds it.
+    """A workcell as the simulated arm holds it (`sim_cell`).
 
-    objects: the static objects (base frame); links: URDF link name → (the part's name in
-    contact reports, its collision shapes in the link's frame), the arm's collision model
-    and the tool (on "flange"); ignored: pairs of part names never reported (adjacent
-    links and the pairs the workcell lists); hello: what the arm side answers to `cell`.
+    objects   the static objects (base frame)
+    parts     the arm's collision model: (parent URDF link, part link, shape in the
+              parent's frame, drawn?) — one link per capsule, named after it, so a contact
+              names the very capsule the runtime's distance code names
+    checked   the pairs of names the runtime checks (arm part with object, or arm part
+              with arm part); PyBullet's collision detection is switched off for the rest
+              (neighbouring links, the arm's mount, the workcell's excluded pairs)
     """
 
     name: str
     objects: list[Solid]
-    links: dict[str, tuple[str, list[Solid]]]
-    ignored: frozenset[frozenset[str]] = frozenset()
+    parts: list[tuple[str, str, Solid, bool]]
+    checked: frozenset[frozenset[str]]
     digest: str = ""
 
-    def collisions(self) -> dict[str, list[Solid]]:
-        return {link: shapes for link, (_, shapes) in self.links.items()}
+    @property
+    def part_names(self) -> dict[str, str]:
+        """Part link name → the part's name in contact reports."""
+        return {link: solid.name for _, link, solid, _ in self.parts}
+
+
+PART_PREFIX = "part_"
+
+
+def sim_cell(arm: Arm, cell: Cell) -> SimCell:
+    """The workcell and the arm's collision model (runtime/arm/collision.py) for PyBullet."""
+    from runtime.arm.distance import collision_model
+    model = collision_model(arm, cell)
+    caps = model.capsules
+    root = "base_link" if np.array_equal(arm.base, np.eye(4)) else "world"
+    tool = {c.name for c in cell.tool} or {"tool"}
+    parts = []
+    for k, name in enumerate(caps.names):
+        frame = int(caps.frame[k])
+        parent = root if frame < 0 else f"link_{frame + 1}"
+        parts.append((parent, PART_PREFIX + name,
+                      capsule(name, caps.start[k], caps.end[k], float(caps.radius[k])),
+                      name in tool))
+    checked = frozenset(frozenset(pair) for pair in model.pair_names)
+    return SimCell(cell.name, cell_solids(cell), parts, checked, cell_digest(cell))

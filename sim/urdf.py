@@ -32,7 +32,7 @@ from runtime.arm.model import Arm
 from runtime.arm.transforms import Mat4, rotation_aligning_z
 
 if TYPE_CHECKING:
-    from .cell_bodies import Solid
+    from runtime.arm.solids import Solid
 
 LINK_RADIUS_M = 0.035
 LINK_MASS_PER_M_KG = 2.5
@@ -103,29 +103,26 @@ def _solid_geometry(solid: "Solid") -> str:
     raise ValueError(f"a {solid.kind} cannot be part of a link")
 
 
-def _solids(solids: "list[Solid]", *, visual: bool) -> list[str]:
-    """Collision elements (and, for the tool, visual ones) for solids in the link frame."""
-    out: list[str] = []
-    for solid in solids:
-        geometry = _solid_geometry(solid)
-        out += _shape("collision", _origin_tag(solid.pose), geometry, "")
-        if visual:
-            out += _shape("visual", _origin_tag(solid.pose), geometry, "tool")
-    return out
+def _part_link(name: str, solid: "Solid", drawn: bool) -> list[str]:
+    """A massless-ish link holding one collision shape of the arm's collision model."""
+    i = TINY_MASS_KG * 1e-4
+    geometry = _solid_geometry(solid)
+    body = _shape("collision", _origin_tag(solid.pose), geometry, "")
+    if drawn:
+        body += _shape("visual", _origin_tag(solid.pose), geometry, "tool")
+    return [f'  <link name={quoteattr(name)}>', *body,
+            *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3), i, i, i), "  </link>"]
 
 
-def _link(name: str, offset: np.ndarray | None,
-          collisions: "list[Solid] | None" = None) -> list[str]:
+def _link(name: str, offset: np.ndarray | None, sketch_collides: bool = True) -> list[str]:
     """A link whose next joint sits at `offset` (m, link frame); None for flange and tcp.
-
-    collisions: the link's collision shapes (link frame) instead of the sketch's; on the
-    flange (offset None) they are the tool, and are drawn too."""
+    sketch_collides: its sketch shapes are collision shapes too (not with `parts`)."""
     if offset is None:  # tiny but present: no 1 kg default mass in PyBullet
         i = TINY_MASS_KG * 1e-4
-        return [f'  <link name="{name}">', *_solids(collisions or [], visual=True),
-                *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3), i, i, i), "  </link>"]
+        return [f'  <link name="{name}">', *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3),
+                                                      i, i, i), "  </link>"]
     body: list[str] = []
-    sketch = ("visual", "collision") if collisions is None else ("visual",)
+    sketch = ("visual", "collision") if sketch_collides else ("visual",)
     housing = (f'<cylinder radius="{_num(LINK_RADIUS_M * 1.2)}" '
                f'length="{_num(HOUSING_LENGTH_M)}"/>')
     for kind in sketch:
@@ -141,7 +138,6 @@ def _link(name: str, offset: np.ndarray | None,
         # The housing sits at the link origin, the tube's centre halfway to the next joint.
         com = offset / 2.0 * tube_mass / (tube_mass + HOUSING_MASS_KG)
         mass += tube_mass
-    body += _solids(collisions or [], visual=False)
     body += _inertial(mass, com, R,
                       *_cylinder_inertia(mass, LINK_RADIUS_M, max(length, HOUSING_LENGTH_M)))
     return [f'  <link name="{name}">', *body, "  </link>"]
@@ -163,14 +159,13 @@ def _joint(name: str, kind: str, parent: str, child: str, T: Mat4,
 
 
 def arm_to_urdf(arm: Arm, *, name: str | None = None,
-                collisions: "dict[str, list[Solid]] | None" = None) -> str:
+                parts: "list[tuple[str, str, Solid, bool]] | None" = None) -> str:
     """The URDF text of `arm` (see the module docstring for the layout).
 
-    collisions: link name → its collision shapes in the link's frame (the arm's collision
-    model and, on "flange", the tool), replacing the sketch's cylinders on every link;
-    None keeps the sketch."""
-    def shapes(link: str) -> "list[Solid] | None":
-        return None if collisions is None else collisions.get(link, [])
+    parts: the arm's collision model instead of the sketch's collision shapes, as
+    (parent link, part link name, its shape in the parent's frame, drawn?): each part is a
+    link of its own on a fixed joint, so a contact names the very part it touched."""
+    collides = parts is None
 
     out = ['<?xml version="1.0"?>',
            "<!-- written by jogwire from an arm model; geometry and inertias are a sketch -->",
@@ -180,14 +175,14 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None,
            '  <material name="tool"><color rgba="0.2 0.45 0.75 1"/></material>']
     taken = set(arm.joint_names)
     if not np.array_equal(arm.base, np.eye(4)):
-        out += [*_link("world", arm.base[:3, 3], shapes("world")),  # a pedestal to the base
+        out += [*_link("world", arm.base[:3, 3], collides),  # a pedestal up to the arm's base
                 *_joint(_unique("world_joint", taken), "fixed", "world", "base_link",
                         arm.base)]
     links = ["base_link"] + [f"link_{i + 1}" for i in range(arm.n)]
     # Each link's next joint sits at the next origin (after the last joint: the flange).
     offsets = [j.origin[:3, 3] for j in arm.joints] + [arm.flange[:3, 3]]
     for link, offset in zip(links, offsets):
-        out += _link(link, offset, shapes(link))
+        out += _link(link, offset, collides)
     for i, joint in enumerate(arm.joints):
         unlimited = not (math.isfinite(joint.lower) and math.isfinite(joint.upper))
         kind = "continuous" if joint.is_revolute and unlimited else joint.kind
@@ -197,9 +192,12 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None,
         out += _joint(joint.name, kind, links[i], links[i + 1], joint.origin,
                       ('<axis xyz="0 0 1"/>',
                        f'<limit {limit}effort="{effort}" velocity="{_num(joint.max_speed)}"/>'))
-    out += _link("flange", None, shapes("flange")) + _link("tcp", None)
+    out += _link("flange", None) + _link("tcp", None)
     out += _joint(_unique("flange_joint", taken), "fixed", links[-1], "flange", arm.flange)
     out += _joint(_unique("tcp_joint", taken), "fixed", "flange", "tcp", arm.tool)
+    for parent, link, solid, drawn in parts or ():
+        out += _part_link(link, solid, drawn)
+        out += _joint(_unique(f"{link}_joint", taken), "fixed", parent, link, np.eye(4))
     out.append("</robot>")
     return "\n".join(out) + "\n"
 

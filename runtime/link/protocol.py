@@ -38,7 +38,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import ModelMismatch, ProtocolError
+from ..arm.cell import Cell
 from ..arm.model import Arm, limits_digest
+from ..arm.solids import cell_solids, solid_of, tool_solids
 
 PROTOCOL_VERSION = 1
 MAX_MESSAGE_BYTES = 16384   # a hello for MAX_JOINTS joints with long names stays well below
@@ -462,6 +464,34 @@ def geometry_digest(arm: Arm) -> str:
         lines.append(f"{joint.kind} {numbers(T[:3, 3])} {numbers(T[:3, 2])}")
     lines.append(f"tcp {numbers((T @ arm.tip)[:3, :4].ravel())}")
     return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
+
+
+def _numbers(values) -> str:
+    return " ".join(f"{round(float(x), 6) + 0.0:.6f}" for x in np.ravel(values))
+
+
+def cell_digest(cell: Cell) -> str:
+    """A short hash of what a workcell holds, for the `cell` message (PROTOCOL.md §5a).
+
+    One line per object in the file's order, "<name> <kind> <pose> <sizes>" (the object as
+    a `runtime.arm.solids.Solid`: the 12 numbers of its pose's top three rows, row-major,
+    then its sizes in m); then one line per tool capsule, "tool <name> capsule …" in the
+    flange frame; then "keep_in box …" if there is one. Numbers rounded to 1e-6 and printed
+    "%.6f" (−0 as 0); lines joined by "\n"; SHA-256 of the UTF-8 text, first 16 hex digits.
+    """
+    def line(prefix: str, solid) -> str:
+        return f"{prefix}{solid.kind} {_numbers(solid.pose[:3, :4])} {_numbers(solid.sizes)}"
+    lines = [line(f"{s.name} ", s) for s in cell_solids(cell)]
+    lines += [line(f"tool {s.name} ", s) for s in tool_solids(cell.tool)]
+    if cell.keep_in is not None:
+        lines.append(line("keep_in ", solid_of(cell.keep_in)))
+    return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
+
+
+def cell_hello(cell: Cell | None) -> CellHello:
+    """Our `cell` message for `cell` (name and digest; both "" for none)."""
+    return CellHello("", "") if cell is None else CellHello(cell.name[:MAX_NAME_CHARS],
+                                                            cell_digest(cell))
 
 
 def hello_for(arm: Arm, role: str, *, stale_after_s: float) -> Hello:

@@ -18,23 +18,13 @@ from typing import Iterable
 import numpy as np
 from numpy.typing import NDArray
 
+from ..arm.cell import Cell
+from ..arm.solids import Solid, cell_solids, solid_of
+
 Axes = tuple[int, int]
 VIEWS: tuple[Axes, ...] = ((0, 1), (0, 2))
 CIRCLE_POINTS = 32
 EDGE_ON = 0.5            # |normal · view direction| below this: the plane is seen edge-on
-
-
-@dataclass(frozen=True)
-class Shape:
-    """What the views need of one object: name, kind (box, cylinder, sphere, capsule,
-    halfspace), pose (4×4, base frame; axis along z; a half-space's z axis is its outward
-    normal, its origin on the plane) and sizes in m (box: half extents; cylinder and
-    capsule: radius, length; sphere: radius)."""
-
-    name: str
-    kind: str
-    pose: NDArray[np.float64]
-    sizes: tuple[float, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)
@@ -51,7 +41,14 @@ class CellOutlines:
     influence_m: float = 0.0     # d_i: amber inside it (the velocity damper acts)
 
     @classmethod
-    def of(cls, name: str, shapes: Iterable[Shape], keep_in: Shape | None = None, *,
+    def of_cell(cls, cell: Cell) -> "CellOutlines":
+        c = cell.clearance
+        return cls.of(cell.name, cell_solids(cell),
+                      None if cell.keep_in is None else solid_of(cell.keep_in),
+                      safety_m=c.safety_distance_m, influence_m=c.influence_distance_m)
+
+    @classmethod
+    def of(cls, name: str, shapes: Iterable[Solid], keep_in: Solid | None = None, *,
            safety_m: float = 0.0, influence_m: float = 0.0) -> "CellOutlines":
         shapes = list(shapes)
         polygons, halfplanes = {}, {}
@@ -66,7 +63,7 @@ class CellOutlines:
         return cls(name, polygons, halfplanes, box, safety_m, influence_m)
 
 
-def solid_points(s: Shape) -> NDArray[np.float64]:
+def solid_points(s: Solid) -> NDArray[np.float64]:
     """Points whose convex hull is the solid (its silhouette from any direction, for a
     sphere and a capsule: circles in the three coordinate planes), base frame (k, 3)."""
     T = np.asarray(s.pose, dtype=float)

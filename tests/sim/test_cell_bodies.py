@@ -16,7 +16,8 @@ from runtime.link.protocol import CellHello, Rates, hello_for
 from runtime.link.transport import ArmClient, ArmServer
 from sim.arm import SimulatedArm
 from sim.arm_side import ArmSession
-from sim.cell_bodies import SimCell, Solid, capsule_solid
+from runtime.arm.solids import Solid, capsule
+from sim.cell_bodies import SimCell
 from sim.endpoint import ArmEndpoint
 
 pytestmark = pytest.mark.sim
@@ -35,10 +36,11 @@ def flange_pose(arm, q) -> np.ndarray:
 
 
 def tool_cell(objects: list[Solid]) -> SimCell:
-    """A tool capsule along the flange's z axis, from the flange out TOOL_LENGTH_M."""
-    tool = capsule_solid("tool", np.zeros(3), np.array([0.0, 0.0, TOOL_LENGTH_M]),
-                         TOOL_RADIUS_M)
-    return SimCell("test", objects, {"flange": ("tool", [tool])})
+    """A tool capsule along the flange's z axis, from the flange out TOOL_LENGTH_M, checked
+    against every object."""
+    tool = capsule("tool", np.zeros(3), np.array([0.0, 0.0, TOOL_LENGTH_M]), TOOL_RADIUS_M)
+    return SimCell("test", objects, [("flange", "part_tool", tool, True)],
+                   frozenset(frozenset(("tool", o.name)) for o in objects))
 
 
 def at(point) -> np.ndarray:

@@ -9,7 +9,8 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.operator.cell_outlines import CellOutlines, Shape, edge_on, hull
+from runtime.arm.solids import Solid as Shape
+from runtime.operator.cell_outlines import CellOutlines, edge_on, hull
 
 
 def at(p, R=np.eye(3)) -> np.ndarray:
