@@ -1,7 +1,7 @@
 """The simulated arm: PyBullet, built from the arm model's URDF export, behind the wire.
 
     python -m sim.arm ARM [--endpoint E] [--lockstep] [--step-hz HZ] [--gui] …   (= jogwire sim)
-    python -m sim.arm ARM --snapshot arm.png [--q …] [--deg]
+    python -m sim.arm ARM --snapshot arm.png [--q …] [--deg] [--cell C]
 
 `SimulatedArm` is usable in-process with no sockets (set_rates, step, read_state), so a
 preflight run can step the pipeline and the arm in one process; `main` serves it on the
@@ -29,13 +29,14 @@ import numpy as np
 import pybullet as pb
 
 from runtime.errors import ConfigError, JogwireError
+from runtime.arm.cell import load_cell
 from runtime.arm.model import Arm, load_arm
 from runtime.link.pipes import PipeServer, parse_link_spec
-from runtime.link.protocol import hello_for
+from runtime.link.protocol import CellHello, hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
 from .arm_side import ArmSession, Reading, guard_rates
-from .cell_bodies import CellBodies, SimCell, read_contacts
+from .cell_bodies import CellBodies, SimCell, read_contacts, sim_cell
 from .endpoint import ArmEndpoint, StopFlag
 from .urdf import arm_to_urdf
 
@@ -300,6 +301,10 @@ def build_parser() -> argparse.ArgumentParser:
                         "first is negative. Default: the arm's home pose")
     p.add_argument("--deg", action="store_true", help="--q revolute values are in degrees")
     p.add_argument("--size", default="800x600", help="--snapshot image size (default 800x600)")
+    p.add_argument("--cell", metavar="NAME|FILE",
+                   help="a workcell (shipped name or .toml): its objects become static bodies, "
+                        "the arm collides as its collision model, contacts are reported to "
+                        "runtimes that ask (docs/PROTOCOL.md §5a)")
     return p
 
 
@@ -329,12 +334,13 @@ def _parse_size(text: str) -> tuple[int, int]:
     return w, h
 
 
-def snapshot(arm: Arm, path: str, q: np.ndarray, size: tuple[int, int]) -> Path:
-    with SimulatedArm(arm, q0=q) as sim:
+def snapshot(arm: Arm, path: str, q: np.ndarray, size: tuple[int, int],
+             cell: SimCell | None = None) -> Path:
+    with SimulatedArm(arm, q0=q, cell=cell) as sim:
         return write_png(path, sim.render(*size))
 
 
-def serve(args: argparse.Namespace, arm: Arm) -> int:
+def serve(args: argparse.Namespace, arm: Arm, cell: SimCell | None = None) -> int:
     if not (1.0 <= args.step_hz <= 20000.0):
         raise ConfigError("--step-hz must be between 1 and 20000", field="step-hz")
     if not args.stale_after > 0:
@@ -352,15 +358,20 @@ def serve(args: argparse.Namespace, arm: Arm) -> int:
         raise ConfigError(f"--q is outside the joint limits of {arm.name}", field="q")
     keys = load_server_keys(args.keys) if args.keys else None
     with StopFlag(args.duration) as stop, \
-            SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui, q0=q0) as sim, \
+            SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui, q0=q0,
+                         cell=cell) as sim, \
             _server(args, arm, keys) as server:
+        # It measures contact with or without a workcell: without one it answers `cell`
+        # with an empty name (nothing to touch).
+        ours = CellHello("", "") if cell is None else CellHello(cell.name, cell.digest)
         session = ArmSession(hello_for(arm, "sim", stale_after_s=args.stale_after),
-                             stale_after_s=args.stale_after, in_order=args.lockstep)
+                             stale_after_s=args.stale_after, in_order=args.lockstep,
+                             cell=ours)
         endpoint = ArmEndpoint(server, sim, session, substeps=args.substeps)
         mode = "lockstep" if args.lockstep else "paced"
         print(f"jogwire sim ready: arm={arm.name} joints={arm.n} endpoint={server.endpoint} "
               f"step_s={sim.step_s:g} mode={mode} stale_after_s={args.stale_after:g} "
-              f"substeps={args.substeps}", flush=True)
+              f"substeps={args.substeps} cell={cell.name if cell else '-'}", flush=True)
         if args.lockstep:
             endpoint.serve_lockstep(stop)
         else:
@@ -380,12 +391,13 @@ def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.INFO, format="jogwire sim: %(message)s", stream=sys.stderr)
     try:
         arm = load_arm(args.arm)
+        cell = sim_cell(arm, load_cell(args.cell, arm)) if args.cell else None
         if args.snapshot:
             path = snapshot(arm, args.snapshot, _parse_q(arm, args.q, args.deg),
-                            _parse_size(args.size))
+                            _parse_size(args.size), cell)
             print(f"wrote {path}")
             return 0
-        return serve(args, arm)
+        return serve(args, arm, cell)
     except JogwireError as exc:
         print(f"jogwire sim: {exc}", file=sys.stderr)
         return 2

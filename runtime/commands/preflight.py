@@ -18,6 +18,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
 import time
 from dataclasses import dataclass, replace
 from datetime import datetime
@@ -33,7 +34,12 @@ from ..sessions.lockstep import STATE_LAGS, LockstepSim, run_closed_loop, subste
 from ..control.mapping import InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle
-from ..sessions.preflight import Finding, PreflightResult, TraceBuilder, evaluate
+from ..arm.cell import Cell, load_cell
+from ..errors import TransportError
+from ..link.arm_process import snapshot_png
+from ..link.protocol import CellHello, cell_digest, cell_hello
+from ..sessions.cell_check import evaluate_cell, with_cell
+from ..sessions.preflight import Finding, PreflightResult, Trace, TraceBuilder, evaluate
 from ..operator.progress import Progress
 from ..sessions.recorder import SESSION_SUFFIX, SessionRecorder, cycle_record, read_session
 from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
@@ -71,6 +77,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print the summary as one JSON object (SI units) instead of text")
     parser.add_argument("--no-report", action="store_true",
                         help="skip the HTML report and its plots (faster; JSON and log only)")
+    parser.add_argument("--cell", metavar="NAME|FILE",
+                        help="a workcell (shipped name or .toml): the simulated arm holds its "
+                             "objects and reports contacts; any contact or a clearance below "
+                             "its safety distance fails the run")
+    parser.add_argument("--no-clearance", action="store_true",
+                        help="with --cell: leave the velocity damper out of the solve, to see "
+                             "what the motion does without it")
 
 
 @dataclass(frozen=True)
@@ -123,6 +136,9 @@ def _session_profile(path: Path, arm: Arm, rate_hz: float) -> Profile:
 def run(args: argparse.Namespace) -> int:
     substeps_for(args.rate, args.step_hz)        # a bad rate is an error before anything starts
     arm = load_arm(args.arm)
+    if args.no_clearance and not args.cell:
+        raise ConfigError("--no-clearance needs --cell", field="no-clearance")
+    cell = load_cell(args.cell, arm) if args.cell else None
     profile = load_profile(args.profile, arm, args.rate)
     out_dir = Path(args.out)
     try:
@@ -134,7 +150,9 @@ def run(args: argparse.Namespace) -> int:
     reduced = bool(args.reduced or profile.reduced_locked)
     run_info = run_preflight(args.arm, arm, profile, rate_hz=args.rate, step_hz=args.step_hz,
                              reduced=reduced, log_path=out_dir / f"{stem}{SESSION_SUFFIX}",
-                             state_lag=args.state_lag)
+                             state_lag=args.state_lag,
+                             cell=None if cell is None else CellRun(cell, args.cell,
+                                                                    not args.no_clearance))
     result = run_info.result
     paths = {"session_log": str(run_info.log_path), "summary": str(out_dir / f"{stem}.json")}
     if not args.no_report:
@@ -142,7 +160,8 @@ def run(args: argparse.Namespace) -> int:
         paths["report"] = str(write_report(out_dir / f"{stem}.html", result, ReportContext(
             arm=arm, profile=profile.name, profile_source=profile.source, rate_hz=args.rate,
             step_hz=args.step_hz, started_at=run_info.started_at, wall_s=run_info.wall_s,
-            session_log=str(run_info.log_path))))
+            session_log=str(run_info.log_path),
+            closest_picture=closest_picture(args.arm, args.cell, result))))
     summary = _summary(result, arm, profile, args, run_info, paths)
     try:
         Path(paths["summary"]).write_text(json.dumps(_json_safe(summary), indent=2) + "\n",
@@ -158,6 +177,30 @@ def run(args: argparse.Namespace) -> int:
 
 
 @dataclass(frozen=True)
+class CellRun:
+    """The workcell of a run: the model, what the simulated arm loads (name or file), and
+    whether the velocity damper is in the solve."""
+
+    cell: Cell
+    spec: str
+    clearance: bool = True
+
+
+def closest_picture(arm_spec: str, cell_spec: str | None, result: PreflightResult
+                    ) -> bytes | None:
+    """The simulated arm in its workcell at the closest approach, or None (no workcell, or
+    the picture could not be made: the report says the rest)."""
+    if result.cell is None or result.cell.closest_q is None:
+        return None
+    try:
+        return snapshot_png(arm_spec, result.cell.closest_q, cell=cell_spec)
+    except TransportError as exc:
+        print(f"jogwire preflight: no picture of the closest approach ({exc})",
+              file=sys.stderr)
+        return None
+
+
+@dataclass(frozen=True)
 class PreflightRun:
     result: PreflightResult
     log_path: Path
@@ -169,10 +212,13 @@ class PreflightRun:
 
 def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                   step_hz: float, reduced: bool, log_path: Path, state_lag: int = 1,
-                  progress: Progress | None = None) -> PreflightRun:
+                  progress: Progress | None = None, cell: CellRun | None = None
+                  ) -> PreflightRun:
     """Run `profile` on the simulated arm in lockstep, record it, evaluate it.
 
-    state_lag: cycles the measured pose lags behind the arm (`lockstep.run_closed_loop`)."""
+    state_lag: cycles the measured pose lags behind the arm (`lockstep.run_closed_loop`).
+    cell: the workcell the arm works in: the simulated arm holds it and reports contacts,
+    and the verdict adds contacts and clearance (`runtime.sessions.cell_check`)."""
     safety = SafetySettings()
     pad = load_pad(profile.pad_source) if Path(profile.pad_source).exists() \
         else load_pad(profile.pad_name)
@@ -182,7 +228,9 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                        "stale_after_s": safety.stale_after_s,
                        "overrun_limit": safety.overrun_limit, "target": "sim child, lockstep",
                        "target_kind": "sim child", "clock": "simulated (t = cycle / rate)",
-                       "state_lag_cycles": state_lag}
+                       "state_lag_cycles": state_lag,
+                       "cell": None if cell is None else cell.spec,
+                       "clearance": cell is not None and cell.clearance}
     cycle = ControlCycle(arm, pad, rate_hz=rate_hz, safety=safety, reduced_locked=reduced)
     dt = cycle.dt_s
     n_cycles = int(math.ceil((profile.duration_s + TAIL_S) * rate_hz - 1e-9))
@@ -191,8 +239,10 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
         Progress(f"preflight {arm.name} {profile.name}", n_cycles * dt)
     computes = np.zeros(n_cycles)
     wall0 = time.perf_counter()
+    contacts: list[tuple[float, str, str, float]] = []
     with LockstepSim(arm_spec, arm, rate_hz=rate_hz, step_hz=step_hz,
-                     start_q=profile.start_q) as sim, \
+                     start_q=profile.start_q, cell_spec=None if cell is None else cell.spec,
+                     cell=None if cell is None else cell_hello(cell.cell)) as sim, \
             SessionRecorder.start(log_path, arm, cycle_settings_, started_at=started_at,
                                   queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)
@@ -211,10 +261,15 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
         for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles,
                                  state_lag=state_lag, prepare=prepare):
             trace.add_state(c.after.q, c.after.qd, c.after.limited, cycle=c.k)
+            contacts += [(c.t_s, a, b, depth) for a, b, depth in c.after.contacts]
             bar.update((c.k + 1) * dt)
         bar.close()
+        arm_cell = sim.arm_cell
     wall = time.perf_counter() - wall0
-    result = evaluate(arm, trace.build(), rate_hz=rate_hz, reduced=reduced)
+    built = trace.build()
+    result = evaluate(arm, built, rate_hz=rate_hz, reduced=reduced)
+    if cell is not None:
+        result = with_cell(result, *judge_cell(arm, cell.cell, built, contacts, arm_cell))
     logged = recorder.stats()
     if logged.failed or logged.dropped or logged.lost:
         result = replace(result, notes=result.notes + (
@@ -226,6 +281,19 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
             f"the profile log is damaged: {profile.damage}; the rest was not proven"))
     return PreflightRun(result, log_path, started_at.isoformat(timespec="seconds"), wall,
                         n_cycles, float(np.median(computes)) if n_cycles else 0.0)
+
+
+def judge_cell(arm: Arm, cell: Cell, trace: Trace, contacts, arm_cell: CellHello | None):
+    """The workcell's verdict on a run: jogwire's distances at the measured poses, the
+    simulated arm's contacts, and whether it confirmed holding the same workcell."""
+    from ..arm.distance import clearances_at, collision_model
+    model = collision_model(arm, cell)
+    c = cell.clearance
+    confirmed = arm_cell is not None and arm_cell.digest == cell_digest(cell)
+    return evaluate_cell(trace.t, trace.q, cell=cell.name, pairs=model.pair_names,
+                         distances=lambda q: clearances_at(model, q).distances,
+                         safety_m=c.safety_distance_m, influence_m=c.influence_distance_m,
+                         contacts=contacts, contacts_measured=confirmed)
 
 
 def _add_finding(result: PreflightResult, finding: Finding) -> PreflightResult:
@@ -296,6 +364,8 @@ def format_text(r: PreflightResult, arm: Arm, profile: str, run_info: PreflightR
     if r.tcp_peak_speed_reduced is not None and not r.reduced:
         lines.append(f"          in reduced-speed segments peak {r.tcp_peak_speed_reduced:.3f} "
                      f"m/s commanded (cap {min(REDUCED_SPEED_M_S, r.tcp_cap_normal):.3f} m/s)")
+    if r.cell is not None:
+        lines.append(format_cell(r.cell))
     if r.findings:
         lines += ["", "reasons"] + [f"  - {f.message}" for f in r.findings]
     if r.notes:
@@ -304,6 +374,18 @@ def format_text(r: PreflightResult, arm: Arm, profile: str, run_info: PreflightR
                      (("report", paths.get("report")), ("summary", paths["summary"]),
                       ("session log", paths["session_log"])) if path]
     return "\n".join(lines)
+
+
+def format_cell(c: Any) -> str:
+    """The text verdict's workcell line: the closest approach and the contacts."""
+    text = f"workcell  {c.cell}: "
+    if c.min_clearance_m is not None:
+        text += (f"nearest {c.pair[0]}–{c.pair[1]} {1e3 * c.min_clearance_m:.1f} mm at "
+                 f"t = {c.min_clearance_t_s:.2f} s (safety {1e3 * c.safety_m:.0f} mm); ")
+    if not c.contacts_measured:
+        return text + "contacts NOT measured"
+    return text + ("no contact" if not c.contacts else
+                   "CONTACT " + ", ".join(f"{e.pair} at t = {e.t_s:.2f} s" for e in c.contacts))
 
 
 def _pct(value: float, of: float) -> str:
