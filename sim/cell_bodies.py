@@ -21,6 +21,7 @@ import numpy as np
 import pybullet as pb
 
 from runtime.arm.cell import Cell
+from runtime.arm.distance import collision_model
 from runtime.arm.model import Arm
 from runtime.arm.solids import Solid, capsule, cell_solids
 from runtime.link.protocol import cell_digest
@@ -32,6 +33,7 @@ HALFSPACE_DRAWN_M = 3.0
 # Workcell objects in snapshots. The shared palette (runtime/palette.py, CELL_OBJECT) takes
 # over here when it lands.
 OBJECT_RGBA = (0.55, 0.60, 0.70, 1.0)
+HALFSPACE_RGBA = (0.80, 0.82, 0.86, 1.0)    # floors and walls: lighter, behind the objects
 
 
 def pose_of(T: np.ndarray) -> tuple[list[float], list[float]]:
@@ -52,6 +54,7 @@ def collision_shape(solid: Solid, client: int, frame: np.ndarray | None = None) 
 def visual_shape(solid: Solid, client: int, rgba=OBJECT_RGBA) -> int:
     kw = _geometry(solid)
     if solid.kind == "halfspace":   # drawn as a thin plate just under the plane
+        rgba = HALFSPACE_RGBA
         kw = {"shapeType": pb.GEOM_BOX,
               "halfExtents": [HALFSPACE_DRAWN_M / 2, HALFSPACE_DRAWN_M / 2, 0.002],
               "visualFramePosition": [0.0, 0.0, -0.002]}
@@ -152,7 +155,6 @@ PART_PREFIX = "part_"
 
 def sim_cell(arm: Arm, cell: Cell) -> SimCell:
     """The workcell and the arm's collision model (runtime/arm/collision.py) for PyBullet."""
-    from runtime.arm.distance import collision_model
     model = collision_model(arm, cell)
     caps = model.capsules
     root = "base_link" if np.array_equal(arm.base, np.eye(4)) else "world"

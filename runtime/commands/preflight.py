@@ -35,6 +35,7 @@ from ..control.mapping import InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle
 from ..arm.cell import Cell, load_cell
+from ..arm.distance import clearances_at, collision_model
 from ..errors import TransportError
 from ..link.arm_process import snapshot_png
 from ..link.protocol import CellHello, cell_digest, cell_hello
@@ -286,7 +287,6 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
 def judge_cell(arm: Arm, cell: Cell, trace: Trace, contacts, arm_cell: CellHello | None):
     """The workcell's verdict on a run: jogwire's distances at the measured poses, the
     simulated arm's contacts, and whether it confirmed holding the same workcell."""
-    from ..arm.distance import clearances_at, collision_model
     model = collision_model(arm, cell)
     c = cell.clearance
     confirmed = arm_cell is not None and arm_cell.digest == cell_digest(cell)

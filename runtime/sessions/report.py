@@ -257,7 +257,7 @@ def _plot_clearance(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     ax.set_ylabel("distance (mm)")
     ax.set_title(f"Clearance in workcell {c.cell}: the nearest pairs (measured pose)",
                  fontsize=10, loc="left")
-    ax.legend(fontsize=7, loc="upper right", ncol=2)
+    ax.legend(fontsize=7, loc="lower left", ncol=2)
 
 
 def _low(values: NDArray[np.float64]) -> float:
