@@ -66,13 +66,16 @@ from ..control.loop import FixedRateLoop, Tick, TimingStats
 from ..control.mapping import DirectCommand, InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle, CycleOutput
+from ..arm.cell import Cell, load_cell
 from ..link.protocol import FLAG_REDUCED_SPEED, CellHello, Contact, Hello, Rates, \
-    RoundTripMeter, State, StateFreshness, encode, hello_differences, hello_for
+    RoundTripMeter, State, StateFreshness, cell_hello, encode, hello_differences, hello_for
+from ..operator.cell_outlines import CellOutlines
 from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
 from ..control.safety import SafetySettings
 from ..link.transport import ArmClient, check_endpoint, load_client_keys
 
 DEMO_SCRIPT = "square"            # configs/profiles/square.toml: a 10 cm square at 5 cm/s
+DEMO_ARM, DEMO_CELL = "elbow6", "bench"   # the demo arm works in the demo workcell
 DEFAULT_PADS = {"gamepad": "twinstick", "keyboard": "keyboard"}
 SCRIPT_TAIL_S = 0.5               # after a script's last segment: watch the arm stop, then end
 SETTLE_TIMEOUT_S = 1.0            # ending: longest wait for the arm to be measured at rest
@@ -100,7 +103,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "Drive an arm's tool by hand. With no arguments: start the simulated demo arm, open "
         "the status window and take the first gamepad (or the keyboard). Without a display "
         "and a pad: play the demo script headless and print a summary.")
-    parser.add_argument("--arm", default="elbow6",
+    parser.add_argument("--arm", default=DEMO_ARM,
                         help="shipped arm name, arm .toml or .urdf (default elbow6)")
     parser.add_argument("--pad", metavar="PAD",
                         help="pad mapping: shipped name (twinstick, twinstick_sdl, keyboard) "
@@ -147,6 +150,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="save the status window to a PNG once, after --screenshot-after")
     parser.add_argument("--screenshot-after", type=float, metavar="S",
                         help="when to take --screenshot (default: half of --duration, else 3 s)")
+    parser.add_argument("--cell", metavar="NAME|FILE",
+                        help="the workcell around the arm (shipped name or .toml); clearance "
+                             "keeps the arm out of it, the simulated arm holds it and reports "
+                             "contacts. Default: the demo workcell `bench` for the built-in "
+                             f"demo arm ({DEMO_ARM}), none otherwise; `none` for none")
     parser.add_argument("--summary-json", metavar="FILE",
                         help="also write the end-of-session summary as JSON (SI units)")
 
@@ -1013,9 +1021,21 @@ def _arm_side_log(file: Any) -> str:
     return lines[-1].removeprefix("jogwire sim: ") if lines else ""
 
 
+def cell_for(args: argparse.Namespace, arm: Arm) -> tuple[Cell | None, str | None]:
+    """The workcell of the session and what the simulated arm loads: --cell, or the demo
+    workcell for the demo arm on the built-in simulated arm."""
+    spec = args.cell
+    if spec is None and args.arm == DEMO_ARM and args.target is None:
+        spec = DEMO_CELL
+    if spec is None or spec == "none":
+        return None, None
+    return load_cell(spec, arm), spec
+
+
 def run(args: argparse.Namespace) -> int:
     _check_options(args)
     arm = load_arm(args.arm)
+    cell, cell_spec = cell_for(args, arm)
     keys = load_client_keys(args.keys) if args.keys else None
     if args.target is not None:
         check_endpoint(args.target, keys, action="connect to")   # refused before anything runs
@@ -1058,6 +1078,8 @@ def run(args: argparse.Namespace) -> int:
                 options += ["--lockstep", "--step-hz", f"{args.rate:g}"]
             if args.duration is not None:  # a bound even if we are killed
                 options += ["--duration", f"{args.duration + 60:g}"]
+            if cell_spec is not None:
+                options += ["--cell", cell_spec]
             child = ArmProcess("sim", args.arm, options, stderr=sim_log, new_session=True)
             stack.callback(child.stop)
             endpoint = child.endpoint
@@ -1084,7 +1106,8 @@ def run(args: argparse.Namespace) -> int:
                     "max_round_trip_s": safety.round_trip_limit_s, "target": endpoint,
                     "target_kind": theirs.role if child is None else
                     "sim child, lockstep" if args.lockstep else "sim child, paced",
-                    "target_arm": theirs.arm, "duration_s": args.duration}
+                    "target_arm": theirs.arm, "duration_s": args.duration,
+                    "cell": cell_spec}
         # Real-time priority from here on: the recorder's writer, the control loop and the
         # window are created after this and inherit it; the simulated arm, started before,
         # does not. All of our threads have it, so none can be preempted by other programs
@@ -1107,13 +1130,18 @@ def run(args: argparse.Namespace) -> int:
         drive = DriveSession(arm=arm, cycle=cycle, source=source, client=client,
                              recorder=recorder, clock=clock, stale_after_s=args.stale_after,
                              duration_s=args.duration, same_clock=same_clock,
-                             target=link_label, rate_hz=args.rate, lockstep=args.lockstep)
+                             target=link_label, rate_hz=args.rate, lockstep=args.lockstep,
+                             cell_hello=None if cell is None else cell_hello(cell),
+                             outlines=None if cell is None else CellOutlines.of_cell(cell))
+        if drive.cell_hello is not None:   # ask the arm side for contact reports (§5a)
+            client.send(drive.cell_hello)
         warm_up(arm, pad, np.asarray(first_state.q), args.rate)
         drive.offer_state(first_state, clock())
         window_s = min(max(args.duration or 10.0, 10.0) + 1.0, 60.0)
         loop = FixedRateLoop(args.rate, clock=clock, window_s=window_s)
         say(out, f"jogwire drive: {arm.name} via {target}; input {source.name}; "
             f"{args.rate:g} Hz" + (", reduced speed" if args.reduced else "")
+            + (f"; workcell {cell.name}" if cell is not None else "")
             + (f"; recording to {session_path}" if session_path else "")
             + ("; Ctrl-C stops" if not plan.window else ""))
 
