@@ -67,8 +67,10 @@ from ..control.mapping import DirectCommand, InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle, CycleOutput
 from ..arm.cell import Cell, load_cell
+from ..arm.distance import cell_distances
 from ..link.protocol import FLAG_REDUCED_SPEED, CellHello, Contact, Hello, Rates, \
-    RoundTripMeter, State, StateFreshness, cell_hello, encode, hello_differences, hello_for
+    RoundTripMeter, State, StateFreshness, encode, hello_differences, hello_for
+from ..link.protocol import cell_hello as cell_hello_of
 from ..operator.cell_outlines import CellOutlines
 from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
 from ..control.safety import SafetySettings
@@ -331,11 +333,13 @@ class RunStats:
             self.round_trip_over += level_s > limit_s
             self.round_trip_worst_s = max(level_s, self.round_trip_worst_s or 0.0)
 
-    def add_clearance(self, distance_m: float | None, pair: tuple[str, str] | None,
-                      t_s: float) -> None:
-        if distance_m is not None and (self.min_clearance_m is None or
-                                       distance_m < self.min_clearance_m):
-            self.min_clearance_m, self.min_clearance_pair = distance_m, pair
+    def add_clearance(self, out: CycleOutput, t_s: float) -> None:
+        """The nearest pair the cycle's solve measured (with a workcell), session low."""
+        report = None if out.solution is None else out.solution.clearance
+        if report is not None and (self.min_clearance_m is None or
+                                   report.min_distance_m < self.min_clearance_m):
+            self.min_clearance_m = report.min_distance_m
+            self.min_clearance_pair = report.nearest_pair
             self.min_clearance_t_s = t_s
 
     def add_contact(self, contact: Contact, t_s: float) -> None:
@@ -366,10 +370,11 @@ class DriveSession:
                  recorder: SessionRecorder | None, clock: Callable[[], float],
                  stale_after_s: float, duration_s: float | None, same_clock: bool,
                  target: str, rate_hz: float, lockstep: bool = False,
-                 cell_hello: CellHello | None = None, outlines: Any = None) -> None:
+                 cell: Cell | None = None, outlines: CellOutlines | None = None) -> None:
         self.arm = arm
-        self.cell_hello = cell_hello           # our workcell, sent after every hello exchange
-        self.cell_name = None if cell_hello is None else cell_hello.name
+        self.cell = cell
+        self.cell_hello = None if cell is None else cell_hello_of(cell)  # sent after hellos
+        self.cell_name = None if cell is None else cell.name
         self.outlines = outlines               # the workcell in the window's views
         self.cycle = cycle
         self.source = source
@@ -501,6 +506,7 @@ class DriveSession:
             self._ending_first_seq = self.seq
         self.stats.read_to_send.add(sent - now)
         self.stats.add_cycle(out)
+        self.stats.add_clearance(out, now - self.t0)
         # (a state that came in after `now` was read has a stamp a little after it)
         age = None if self.state_stamp_s is None else max(now - self.state_stamp_s, 0.0)
         if age is not None:
@@ -611,7 +617,20 @@ class DriveSession:
             connected=connected, state_age_s=age, stale_after_s=self.stale_after_s,
             rtt_s=self.round_trip.level_s, elapsed_s=now - self.t0, note=self._note(now),
             cell=self.outlines, contacts=self._contacts_shown(now),
-            **clearance_fields(out))
+            **self._clearance(sol))
+
+    def _clearance(self, sol: Any) -> dict[str, Any]:
+        """The nearest pair for the window: the solve's, or (motion not allowed, no solve)
+        measured here at the arm's pose, as the figures above do for σ_min."""
+        if self.cell is None or self.q is None:
+            return {}
+        found = sol.clearance.distances if sol is not None and sol.clearance is not None \
+            else cell_distances(self.arm, self.cell, self.q)
+        i = found.nearest()
+        if i is None:
+            return {}
+        return {"clearance_m": float(found.distances[i]), "clearance_pair": found.pairs[i],
+                "clearance_points": np.array([found.points_arm[i], found.points_other[i]])}
 
     def _contacts_shown(self, now: float) -> tuple[tuple[str, str], ...]:
         """The pairs of the newest contact report, for CONTACT_SHOWN_S after it came."""
@@ -1131,7 +1150,7 @@ def run(args: argparse.Namespace) -> int:
                              recorder=recorder, clock=clock, stale_after_s=args.stale_after,
                              duration_s=args.duration, same_clock=same_clock,
                              target=link_label, rate_hz=args.rate, lockstep=args.lockstep,
-                             cell_hello=None if cell is None else cell_hello(cell),
+                             cell=cell,
                              outlines=None if cell is None else CellOutlines.of_cell(cell))
         if drive.cell_hello is not None:   # ask the arm side for contact reports (§5a)
             client.send(drive.cell_hello)

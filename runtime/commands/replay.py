@@ -43,6 +43,8 @@ import numpy as np
 
 from ..link.arm_process import ArmProcess
 from ..errors import ConfigError, LogError, TransportError
+from ..arm.cell import Cell, load_cell
+from ..link.protocol import cell_hello
 from ..sessions.lockstep import LockstepSim, arm_file_for, run_closed_loop
 from ..arm.model import Arm, load_arm
 from ..operator.progress import Progress
@@ -85,6 +87,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="send even if the target is not at the recorded start pose")
     parser.add_argument("--step-hz", type=float, default=1000.0, metavar="HZ",
                         help="physics step rate of the simulated arm (default 1000)")
+    parser.add_argument("--cell", metavar="NAME|FILE",
+                        help="with --rerun: the workcell to re-run in (default: the one the "
+                             "session recorded, if any; `none` for none)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -107,6 +112,9 @@ def run(args: argparse.Namespace) -> int:
 def _check_options(args: argparse.Namespace) -> None:
     if args.closed_loop and not args.rerun:
         raise ConfigError("--closed-loop goes with --rerun", field="--closed-loop")
+    if args.cell is not None and not args.rerun:
+        raise ConfigError("--cell goes with --rerun (sending replays recorded rates)",
+                          field="--cell")
     if args.rerun and (args.target or args.speed != 1.0 or args.from_here):
         raise ConfigError("--target, --speed and --from-here are for sending; a re-run "
                           "moves no arm", field="--rerun")
@@ -143,15 +151,17 @@ def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRe
            arm: Arm) -> int:
     where = str(args.log)
     settings = cycle_settings(session.header.settings, where=where)
+    cell_spec = rerun_cell(args.cell, session.header.settings)
+    cell = None if cell_spec is None else load_cell(cell_spec, arm)
     frames = inputs_of(records, where)
     if args.closed_loop:
-        result = _rerun_closed(args, settings, records, frames, arm)
+        result = _rerun_closed(args, settings, records, frames, arm, cell, cell_spec)
     else:
-        cycle = settings.control_cycle(arm)
+        cycle = settings.control_cycle(arm, cell)
         diff = rerun_open_loop(cycle, records, frames)
         result = {"mode": "open loop", **diff.as_dict()}
     result.update({"log": where, "arm": arm.name, "recorded_arm": session.header.arm.name,
-                   "tolerance": args.tolerance})
+                   "cell": cell_spec, "tolerance": args.tolerance})
     same = result["largest_difference"] <= args.tolerance
     result["identical"] = same
     if args.json:
@@ -161,9 +171,16 @@ def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRe
     return 0 if same else 1
 
 
+def rerun_cell(option: str | None, recorded: Any) -> str | None:
+    """The workcell a re-run uses: --cell, else the one the session recorded; "none": none."""
+    spec = option if option is not None else recorded.get("cell")
+    return None if spec in (None, "", "none") else str(spec)
+
+
 def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRecord],
-                  frames, arm: Arm) -> dict[str, Any]:
-    cycle = settings.control_cycle(arm)
+                  frames, arm: Arm, cell: Cell | None, cell_spec: str | None
+                  ) -> dict[str, Any]:
+    cycle = settings.control_cycle(arm, cell)
     inputs = RecordedInputs(records, frames, cycle.dt_s)
     n_cycles = len(records)
     recorded = np.array([r.rates for r in records])
@@ -174,7 +191,8 @@ def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRec
     bar = Progress(f"re-run {Path(args.log).name}", n_cycles * cycle.dt_s)
     start_q = recorded_q[0] if records[0].q else None
     with LockstepSim(spec, arm, rate_hz=settings.rate_hz, step_hz=args.step_hz,
-                     start_q=start_q) as sim:
+                     start_q=start_q, cell_spec=cell_spec,
+                     cell=None if cell is None else cell_hello(cell)) as sim:
         for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
                                  state_lag=settings.state_lag_cycles):
             rates[c.k] = c.out.rates

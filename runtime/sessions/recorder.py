@@ -1021,6 +1021,8 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
     """The log record of one `ControlCycle.step` (drive, preflight and re-runs share it)."""
     sol, intent = out.solution, out.intent
     nan = float("nan")
+    # With a workcell the solve reports its clearance (runtime/control/clearance.py).
+    clearance = None if sol is None else sol.clearance
     return CycleRecord(
         cycle=cycle, t_s=t_s, axes=tuple(frame.axes),
         buttons=frame.button_flags(_BUTTONS_LOGGED), enabled=out.verdict.allowed,
@@ -1036,4 +1038,6 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
         binding_limit=None if sol is None else sol.binding_limit,
         period_s=period_s, compute_s=compute_s, overrun=overrun, reduced=intent.reduced,
         input=frame_to_wire(frame), state_age_s=state_age_s, overrun_streak=overrun_streak,
-        safety_state=out.verdict.state)
+        safety_state=out.verdict.state,
+        min_clearance_m=None if clearance is None else clearance.min_distance_m,
+        clearance_pair=None if clearance is None else clearance.nearest_pair)
