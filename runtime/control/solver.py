@@ -51,6 +51,7 @@ from ..arm.kinematics import jacobian_from_frames, joint_frames, tool_frame_jaco
 from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
                      pushing_into_limits)
 from ..arm.model import TASK_AXES, Arm
+from .clearance import ClearanceGuard, ClearanceLimit, ClearanceReport
 
 Vector = NDArray[np.float64]
 
@@ -127,6 +128,7 @@ class Solution:
     scales            every limit factor in [0, 1] by name (limits.SCALE_NAMES)
     binding_limit     the name of the smallest factor below 1, or None
     saturated_joints  joints taken out of the solve because they sit at a position limit
+    clearance         distances to the cell and the damper's effect (None without a cell)
     """
 
     rates: Vector
@@ -141,6 +143,7 @@ class Solution:
     scales: dict[str, float] = field(default_factory=dict)
     binding_limit: str | None = None
     saturated_joints: tuple[str, ...] = ()
+    clearance: ClearanceReport | None = None
 
     @property
     def scale(self) -> float:
@@ -149,7 +152,7 @@ class Solution:
 
     def as_dict(self) -> dict[str, Any]:
         """Plain JSON/msgpack-ready values (lists and floats)."""
-        return {
+        out = {
             "rates": self.rates.tolist(),
             "damping": self.damping,
             "sigma_min": self.sigma_min,
@@ -164,6 +167,9 @@ class Solution:
             "binding_limit": self.binding_limit,
             "saturated_joints": list(self.saturated_joints),
         }
+        if self.clearance is not None:
+            out["clearance"] = self.clearance.as_dict()
+        return out
 
 
 # ----------------------------------------------------------------------------------------
@@ -332,7 +338,8 @@ def _lock_index(locked: tuple[str, ...]) -> NDArray[np.intp]:
 
 def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
-          prev_rates: Vector | None = None, dt_s: float = 0.002) -> Solution:
+          prev_rates: Vector | None = None, dt_s: float = 0.002,
+          clearance: ClearanceLimit | None = None) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
     q           measured joint positions (n,), rad or m
@@ -342,6 +349,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     reduced     reduced-speed mode: TCP linear speed ≤ 0.25 m/s (ISO 10218-1)
     prev_rates  the rates sent last cycle (acceleration limit); None skips that limit
     dt_s        control period, s
+    clearance   the arm's collision model in a cell: the velocity damper keeps every pair
+                clear (runtime.control.clearance); None: no cell
 
     Never raises or returns NaN for finite inputs of the right shapes (exact singularities
     and zero twists included). Wrong shapes, non-finite values, an unknown frame or axis
@@ -378,8 +387,14 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     if moving and not clear:
         rates, damping, free = _resolve_at_limits(arm, q, Jt, vt, z, rates, damping, dt_s)
 
+    guard = None
+    if clearance is not None:  # the velocity damper, around the other limits
+        guard = ClearanceGuard(clearance, frames, T, Jt, damping, rates)
+        rates = guard.rates
     limited = apply_limits(arm, q, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
                            clear=clear)
+    if guard is not None:
+        limited = guard.settle(limited)
     # Tracking error over the task rows; norms are the same in base and tool axes.
     e_lin = e_ang = 0.0
     for is_task, is_linear, a, c in zip(consts.task_axes, _IS_LINEAR, limited.twist.tolist(),
@@ -397,7 +412,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         achieved_twist=limited.twist, tracking_error=math.sqrt(e_lin + e_ang),
         tracking_error_linear=math.sqrt(e_lin), tracking_error_angular=math.sqrt(e_ang),
         scales=limited.scales, binding_limit=binding_limit(limited.scales),
-        saturated_joints=saturated)
+        saturated_joints=saturated, clearance=None if guard is None else guard.report)
 
 
 def _checked(n: int, q: Vector, twist: Vector, frame: str, prev_rates: Vector | None,
