@@ -665,11 +665,12 @@ def enter_realtime(priority: int) -> str:
     return f"real-time SCHED_FIFO {priority}"
 
 
-def warm_up(arm: Arm, pad: Any, q: np.ndarray, rate_hz: float) -> None:
+def warm_up(arm: Arm, pad: Any, q: np.ndarray, rate_hz: float, cell: Cell | None = None
+            ) -> None:
     """Run every piece of a cycle a few times on a throwaway ControlCycle, so the first real
     cycles do not pay for first calls (imports, caches, numpy's first dispatch)."""
     from ..operator.status_window import StatusSnapshot
-    cycle = ControlCycle(arm, pad, rate_hz=rate_hz)
+    cycle = ControlCycle(arm, pad, rate_hz=rate_hz, cell=cell)
     frames = [InputFrame("warm-up", True, command=DirectCommand(enable=False))] + \
         [InputFrame("warm-up", True, command=DirectCommand(twist=(0.01, 0, 0, 0, 0, 0)))] * 3
     for k, frame in enumerate(frames):
@@ -1145,7 +1146,7 @@ def run(args: argparse.Namespace) -> int:
             stack.callback(recorder.close)
 
         cycle = ControlCycle(arm, pad, rate_hz=args.rate, reduced_locked=args.reduced,
-                             safety=safety)
+                             safety=safety, cell=cell)
         drive = DriveSession(arm=arm, cycle=cycle, source=source, client=client,
                              recorder=recorder, clock=clock, stale_after_s=args.stale_after,
                              duration_s=args.duration, same_clock=same_clock,
@@ -1154,7 +1155,7 @@ def run(args: argparse.Namespace) -> int:
                              outlines=None if cell is None else CellOutlines.of_cell(cell))
         if drive.cell_hello is not None:   # ask the arm side for contact reports (§5a)
             client.send(drive.cell_hello)
-        warm_up(arm, pad, np.asarray(first_state.q), args.rate)
+        warm_up(arm, pad, np.asarray(first_state.q), args.rate, cell)
         drive.offer_state(first_state, clock())
         window_s = min(max(args.duration or 10.0, 10.0) + 1.0, 60.0)
         loop = FixedRateLoop(args.rate, clock=clock, window_s=window_s)

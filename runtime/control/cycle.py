@@ -22,7 +22,9 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from ..arm.cell import Cell
 from ..arm.kinematics import analyse_pose
+from .clearance import ClearanceLimit
 from .limits import apply_limits, binding_limit
 from .mapping import DirectCommand, InputFrame, Intent, Mapper, PadMapping
 from ..arm.model import Arm
@@ -51,8 +53,10 @@ class ControlCycle:
 
     def __init__(self, arm: Arm, pad: PadMapping, *, rate_hz: float,
                  safety: SafetySettings = SafetySettings(), reduced_locked: bool = False,
-                 locked: tuple[str, ...] = ()) -> None:
+                 locked: tuple[str, ...] = (), cell: Cell | None = None) -> None:
         self.arm = arm
+        # With a workcell the velocity damper keeps every pair clear (control/clearance.py).
+        self.clearance = None if cell is None else ClearanceLimit.of(arm, cell)
         self.dt_s = 1.0 / rate_hz
         self.locked = locked
         self.mapper = Mapper(pad, arm, reduced_locked=reduced_locked)
@@ -83,7 +87,8 @@ class ControlCycle:
         else:
             solution = solve(self.arm, q, intent.twist, frame=intent.frame,
                              locked=self.locked, reduced=intent.reduced,
-                             prev_rates=self.prev_rates, dt_s=self.dt_s)
+                             prev_rates=self.prev_rates, dt_s=self.dt_s,
+                             clearance=self.clearance)
         self.prev_rates = solution.rates
         return CycleOutput(solution.rates, intent, verdict, solution)
 

@@ -31,6 +31,7 @@ from numpy.typing import NDArray
 from ..errors import ConfigError, LogError
 from ..control.mapping import InputFrame, PadMapping, load_pad
 from ..arm.model import Arm
+from ..arm.cell import Cell
 from ..control.cycle import STATE_LAGS, ControlCycle, frame_from_wire
 from .recorder import BAD_RECORD, CORRUPT, GAP, CycleRecord, Session
 from ..control.safety import BLOCKED, SafetySettings
@@ -55,10 +56,13 @@ class CycleSettings:
     locked: tuple[str, ...] = ()
     safety: SafetySettings = SafetySettings()
     state_lag_cycles: int = 1      # closed loop: cycles the pose lags (runtime.sessions.lockstep)
+    clearance: bool = True         # with a workcell: the velocity damper was in the solve
 
-    def control_cycle(self, arm: Arm) -> ControlCycle:
+    def control_cycle(self, arm: Arm, cell: Cell | None = None) -> ControlCycle:
+        """The session's control cycle; in `cell` with the damper if the session had it."""
         return ControlCycle(arm, self.pad, rate_hz=self.rate_hz, safety=self.safety,
-                            reduced_locked=self.reduced_locked, locked=self.locked)
+                            reduced_locked=self.reduced_locked, locked=self.locked,
+                            cell=cell if self.clearance else None)
 
 
 def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> CycleSettings:
@@ -87,10 +91,14 @@ def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> Cy
         lag = settings.get("state_lag_cycles", 1)
         if isinstance(lag, bool) or lag not in STATE_LAGS:
             raise ValueError(f"state_lag_cycles is {lag!r}, not one of {STATE_LAGS}")
+        clearance = settings.get("clearance", True)    # preflight --no-clearance: False
+        if not isinstance(clearance, bool):
+            raise TypeError(f"clearance is {clearance!r}")
     except (TypeError, ValueError) as exc:
         raise LogError(f"{where}: the header settings are malformed ({exc})") from None
     return CycleSettings(rate_hz=float(rate), pad=_pad(settings), reduced_locked=reduced,
-                         locked=locked, safety=safety, state_lag_cycles=lag)
+                         locked=locked, safety=safety, state_lag_cycles=lag,
+                         clearance=clearance)
 
 
 def _pad(settings: Mapping[str, Any]) -> PadMapping:
