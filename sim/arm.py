@@ -95,7 +95,9 @@ class SimulatedArm:
         fd, path = tempfile.mkstemp(suffix=".urdf", prefix=f"jogwire-{arm.name}-")
         parts = None if self.cell is None else self.cell.parts
         # With a workcell the arm's parts collide with each other too; _parts switches off
-        # the pairs the workcell does not check.
+        # the pairs the workcell does not check, and the sketch's own shapes altogether
+        # (they stay in the file: PyBullet computes the links' inertia from them, so the
+        # arm moves exactly as it does without a workcell).
         flags = 0 if self.cell is None else pb.URDF_USE_SELF_COLLISION
         try:
             with os.fdopen(fd, "w", encoding="utf-8") as f:
@@ -109,7 +111,7 @@ class SimulatedArm:
         """PyBullet link index → part name for every part of the collision model. Pairs the
         workcell does not check (neighbours, the mount, excluded pairs) are taken out of
         PyBullet's collision detection, so every contact read is a pair the runtime
-        keeps clear of; every other link has no collision shape at all."""
+        keeps clear of; the sketch's links collide with nothing."""
         c, cell = self.client, self.cell
         links = {pb.getJointInfo(self.body, i, physicsClientId=c)[12].decode(): i
                  for i in range(pb.getNumJoints(self.body, physicsClientId=c))}

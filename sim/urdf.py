@@ -114,15 +114,14 @@ def _part_link(name: str, solid: "Solid", drawn: bool) -> list[str]:
             *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3), i, i, i), "  </link>"]
 
 
-def _link(name: str, offset: np.ndarray | None, sketch_collides: bool = True) -> list[str]:
-    """A link whose next joint sits at `offset` (m, link frame); None for flange and tcp.
-    sketch_collides: its sketch shapes are collision shapes too (not with `parts`)."""
+def _link(name: str, offset: np.ndarray | None) -> list[str]:
+    """A link whose next joint sits at `offset` (m, link frame); None for flange and tcp."""
     if offset is None:  # tiny but present: no 1 kg default mass in PyBullet
         i = TINY_MASS_KG * 1e-4
         return [f'  <link name="{name}">', *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3),
                                                       i, i, i), "  </link>"]
     body: list[str] = []
-    sketch = ("visual", "collision") if sketch_collides else ("visual",)
+    sketch = ("visual", "collision")
     housing = (f'<cylinder radius="{_num(LINK_RADIUS_M * 1.2)}" '
                f'length="{_num(HOUSING_LENGTH_M)}"/>')
     for kind in sketch:
@@ -162,10 +161,10 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None,
                 parts: "list[tuple[str, str, Solid, bool]] | None" = None) -> str:
     """The URDF text of `arm` (see the module docstring for the layout).
 
-    parts: the arm's collision model instead of the sketch's collision shapes, as
-    (parent link, part link name, its shape in the parent's frame, drawn?): each part is a
-    link of its own on a fixed joint, so a contact names the very part it touched."""
-    collides = parts is None
+    parts: the arm's collision model besides the sketch, as (parent link, part link name,
+    its shape in the parent's frame, drawn?): each part is a link of its own on a fixed
+    joint, so a contact names the very part it touched (the simulator decides which
+    shapes may collide)."""
 
     out = ['<?xml version="1.0"?>',
            "<!-- written by jogwire from an arm model; geometry and inertias are a sketch -->",
@@ -175,14 +174,14 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None,
            '  <material name="tool"><color rgba="0.2 0.45 0.75 1"/></material>']
     taken = set(arm.joint_names)
     if not np.array_equal(arm.base, np.eye(4)):
-        out += [*_link("world", arm.base[:3, 3], collides),  # a pedestal up to the arm's base
+        out += [*_link("world", arm.base[:3, 3]),  # a pedestal up to the arm's base
                 *_joint(_unique("world_joint", taken), "fixed", "world", "base_link",
                         arm.base)]
     links = ["base_link"] + [f"link_{i + 1}" for i in range(arm.n)]
     # Each link's next joint sits at the next origin (after the last joint: the flange).
     offsets = [j.origin[:3, 3] for j in arm.joints] + [arm.flange[:3, 3]]
     for link, offset in zip(links, offsets):
-        out += _link(link, offset, collides)
+        out += _link(link, offset)
     for i, joint in enumerate(arm.joints):
         unlimited = not (math.isfinite(joint.lower) and math.isfinite(joint.upper))
         kind = "continuous" if joint.is_revolute and unlimited else joint.kind
