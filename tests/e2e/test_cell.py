@@ -7,12 +7,17 @@ safety distance and PyBullet reports no contact."""
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 
 import pytest
 
 from runtime.arm.cell import load_cell
 from runtime.arm.model import load_arm
 from runtime.cli import main
+from runtime.sessions.cell_check import CLEARANCE_ALLOWANCE_M
+from runtime.sessions.recorder import read_session
+from runtime.link.arm_process import child_env
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]
 
@@ -40,3 +45,31 @@ def test_without_clearance_preflight_fails_naming_the_pair_and_time(bench, tmp_p
         contact["message"]
     clearance = next(f for f in summary["findings"] if f["code"] == "clearance")
     assert clearance["limit"] == d_s and clearance["t_s"] < contact["t_s"]
+
+
+def test_with_clearance_drive_stops_above_the_safety_distance_without_contact(bench,
+                                                                              tmp_path):
+    # 100 Hz: the real-time loop keeps its deadlines on a busy two-core machine; the damper
+    # needs gain·dt < 1 (5/s · 0.01 s), as runtime/control/clearance.py states.
+    done = subprocess.run(
+        [sys.executable, "-m", "runtime.cli", "drive", "--headless", "--input",
+         "script:bench_plunge", "--cell", "bench", "--rate", "100", "--sessions",
+         str(tmp_path / "sessions"), "--summary-json", str(tmp_path / "summary.json")],
+        cwd=tmp_path, env={**child_env(), "SDL_VIDEODRIVER": "dummy",
+                           "SDL_AUDIODRIVER": "dummy", "DISPLAY": ""},
+        capture_output=True, text=True, timeout=90)
+    assert done.returncode == 0, done.stdout + done.stderr
+    summary = json.loads((tmp_path / "summary.json").read_text(encoding="utf-8"))
+    d_s = bench.clearance.safety_distance_m
+    assert summary["cell"] == "bench" and summary["contacts_measured"]
+    assert summary["contacts"] == []                       # PyBullet saw no contact
+    assert summary["min_clearance_m"] >= d_s - CLEARANCE_ALLOWANCE_M
+    assert summary["clearance_pair"] == ["gripper", "bench"]
+    assert summary["limits"]["clearance"]["cycles"] > 0    # the damper did the stopping
+    assert "clearance workcell bench: nearest gripper–bench" in done.stdout
+    # The log has the nearest pair of every cycle that solved (new keys, format version 1).
+    session = read_session(summary["session"]["path"])
+    logged = [r.min_clearance_m for r in session.records if r.min_clearance_m is not None]
+    assert logged and min(logged) == pytest.approx(summary["min_clearance_m"])
+    assert {r.clearance_pair for r in session.records if r.clearance_pair} >= \
+        {("gripper", "bench")}
