@@ -620,11 +620,13 @@ class DriveSession:
             **self._clearance(sol))
 
     def _clearance(self, sol: Any) -> dict[str, Any]:
-        """The nearest pair for the window: the solve's, or (motion not allowed, no solve)
-        measured here at the arm's pose, as the figures above do for σ_min."""
+        """The nearest pair for the window: the solve's, or (no solve, or nothing within the
+        influence distance) measured here at the arm's pose, as _snapshot does for σ_min."""
         if self.cell is None or self.q is None:
             return {}
-        found = sol.clearance.distances if sol is not None and sol.clearance is not None \
+        report = None if sol is None else sol.clearance
+        # The solve names the nearest pair only within d_i (beyond, it culls): then measure.
+        found = report.distances if report is not None and report.nearest_pair is not None \
             else cell_distances(self.arm, self.cell, self.q)
         i = found.nearest()
         if i is None:
