@@ -836,6 +836,9 @@ def format_clearance(m: dict[str, Any]) -> str:
     """The summary's workcell line: the nearest approach and what the arm side reported."""
     if m["min_clearance_m"] is None:
         text = f"workcell {m['cell']}: no distance measured"
+    elif m["clearance_pair"] is None:     # the solve names pairs within d_i only
+        text = (f"workcell {m['cell']}: nothing came within the influence distance (nearest "
+                f"≥ {m['min_clearance_m'] * 1e3:.0f} mm)")
     else:
         a, b = m["clearance_pair"]
         text = (f"workcell {m['cell']}: nearest {a}–{b} {m['min_clearance_m'] * 1e3:.1f} mm "
