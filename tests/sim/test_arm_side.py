@@ -290,20 +290,24 @@ def test_cell_is_answered_and_its_sender_gets_contact_reports(arm) -> None:
     assert session.contact(reading, session.state(reading, 778)) is None
 
 
-def test_a_step_without_contact_sends_no_report(arm) -> None:
+@pytest.fixture
+def reading_contacts(arm) -> ArmSession:
+    """A session whose controller asked for contact reports."""
     session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
                          cell=OURS)
     session.on_message(RUNTIME, runtime_hello(arm), 0)
     session.on_message(RUNTIME, OURS, 0)
+    return session
+
+
+def test_a_step_without_contact_sends_no_report(reading_contacts, arm) -> None:
+    session = reading_contacts
     reading = Reading(0.001, arm.home(), np.zeros(7), np.zeros(7))
     assert session.contact(reading, session.state(reading, 1)) is None
 
 
-def test_contact_report_lists_the_deepest_and_counts_all(arm) -> None:
-    session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
-                         cell=OURS)
-    session.on_message(RUNTIME, runtime_hello(arm), 0)
-    session.on_message(RUNTIME, OURS, 0)
+def test_contact_report_lists_the_deepest_and_counts_all(reading_contacts, arm) -> None:
+    session = reading_contacts
     many = tuple((f"link_{i}", "wall", 0.01 - 1e-4 * i) for i in range(MAX_CONTACTS + 5))
     reading = Reading(0.0, arm.home(), np.zeros(7), np.zeros(7), contacts=many)
     contact = session.contact(reading, session.state(reading, 1))
