@@ -36,7 +36,7 @@ from runtime.link.protocol import CellHello, hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
 from .arm_side import ArmSession, Reading, guard_rates
-from .cell_bodies import CellBodies, SimCell, read_contacts, sim_cell
+from .cell_bodies import SimCell, add_static_bodies, read_contacts, sim_cell
 from .endpoint import ArmEndpoint, StopFlag
 from .urdf import arm_to_urdf
 
@@ -72,8 +72,8 @@ class SimulatedArm:
                                                               "DIRECT session"))
         try:
             self.body = self._load(arm)
-            self.objects = CellBodies.add(self.client, cell.objects) \
-                if cell is not None else CellBodies(self.client, {})
+            # static body id → object name
+            self.objects = add_static_bodies(self.client, cell.objects) if cell else {}
         except Exception:
             pb.disconnect(physicsClientId=self.client)
             raise
@@ -123,7 +123,7 @@ class SimulatedArm:
                                 frozenset((parts[ia], parts[ib])) not in cell.checked):
                     pb.setCollisionFilterPair(self.body, self.body, ia, ib, 0,
                                               physicsClientId=c)
-        for body, name in self.objects.names.items():
+        for body, name in self.objects.items():
             for link in every:
                 if parts.get(link) is None or frozenset((parts[link], name)) not in cell.checked:
                     pb.setCollisionFilterPair(self.body, body, link, -1, 0, physicsClientId=c)
@@ -160,7 +160,7 @@ class SimulatedArm:
         self._read()
         if self.cell is not None:
             self.contacts = read_contacts(self.client, self.body, self.parts,
-                                          self.objects.names)
+                                          self.objects)
 
     def _read(self) -> None:
         states = pb.getJointStates(self.body, self.joint_ids, physicsClientId=self.client)
@@ -210,7 +210,7 @@ class SimulatedArm:
         """The view's bounds grown to the workcell's objects near the arm (an object's
         box is clipped to OBJECTS_IN_VIEW_M around the arm; a half-space is left out)."""
         near_lo, near_hi = lo - OBJECTS_IN_VIEW_M, hi + OBJECTS_IN_VIEW_M
-        for body in self.objects.names:
+        for body in self.objects:
             if pb.getCollisionShapeData(body, -1, physicsClientId=self.client)[0][2] \
                     == pb.GEOM_PLANE:
                 continue

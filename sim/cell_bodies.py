@@ -8,9 +8,11 @@ code: PyBullet's own narrow phase, read back with `getContactPoints` after each 
 The contact points of a step are those of its collision pass, which runs before the
 step's integration: a report lags the pose by at most one physics step.
 
-Every shape comes as a `runtime.arm.solids.Solid` (name, kind, pose, sizes). The world
-frame of the simulation is the arm's base frame moved by
-the arm's base transform, so a solid sits at base · pose.
+Every shape comes as a `runtime.arm.solids.Solid` (name, kind, pose, sizes), posed in the
+frame the kinematics works in (runtime/arm/kinematics.py, the arm's base transform
+included), which is the simulation's world frame. Cylinders are true cylinders here; the
+runtime's distance code takes their enclosing capsules (conservative), so a contact here
+always means a negative distance there.
 """
 
 from __future__ import annotations
@@ -30,8 +32,8 @@ from .urdf import matrix_to_rpy_exact
 
 # A half-space is infinite for collision; it is drawn as a square plate this wide (m).
 HALFSPACE_DRAWN_M = 3.0
-# Workcell objects in snapshots. The shared palette (runtime/palette.py, CELL_OBJECT) takes
-# over here when it lands.
+# Workcell objects in snapshots: the one place to take the shared palette's CELL_OBJECT and
+# CELL_FLOOR (runtime/palette.py) once it is merged with this.
 OBJECT_RGBA = (0.55, 0.60, 0.70, 1.0)
 HALFSPACE_RGBA = (0.80, 0.82, 0.86, 1.0)    # floors and walls: lighter, behind the objects
 
@@ -42,17 +44,8 @@ def pose_of(T: np.ndarray) -> tuple[list[float], list[float]]:
             list(pb.getQuaternionFromEuler(matrix_to_rpy_exact(T[:3, :3]))))
 
 
-def collision_shape(solid: Solid, client: int, frame: np.ndarray | None = None) -> int:
-    """A PyBullet collision shape for `solid`; `frame` (4×4) places it in a link's frame
-    (for a shape that is part of a multibody), else it sits at the body's origin."""
-    kw = _geometry(solid)
-    if frame is not None:
-        kw["collisionFramePosition"], kw["collisionFrameOrientation"] = pose_of(frame)
-    return pb.createCollisionShape(physicsClientId=client, **kw)
-
-
-def visual_shape(solid: Solid, client: int, rgba=OBJECT_RGBA) -> int:
-    kw = _geometry(solid)
+def visual_shape(solid: Solid, client: int) -> int:
+    kw, rgba = _geometry(solid), OBJECT_RGBA
     if solid.kind == "halfspace":   # drawn as a thin plate just under the plane
         rgba = HALFSPACE_RGBA
         kw = {"shapeType": pb.GEOM_BOX,
@@ -78,25 +71,19 @@ def _geometry(solid: Solid) -> dict:
     raise ValueError(f"unknown solid kind {solid.kind!r}")
 
 
-@dataclass
-class CellBodies:
-    """The static bodies of one workcell in one PyBullet client: body id → object name."""
-
-    client: int
-    names: dict[int, str]
-
-    @classmethod
-    def add(cls, client: int, solids: list[Solid]) -> "CellBodies":
-        """A static body (mass 0) per solid, at its pose."""
-        names = {}
-        for solid in solids:
-            position, orientation = pose_of(solid.pose)
-            body = pb.createMultiBody(
-                baseMass=0.0, baseCollisionShapeIndex=collision_shape(solid, client),
-                baseVisualShapeIndex=visual_shape(solid, client), basePosition=position,
-                baseOrientation=orientation, physicsClientId=client)
-            names[body] = solid.name
-        return cls(client, names)
+def add_static_bodies(client: int, solids: list[Solid]) -> dict[int, str]:
+    """A static body (mass 0) per solid, at its pose; returns body id → object name."""
+    names = {}
+    for solid in solids:
+        position, orientation = pose_of(solid.pose)
+        body = pb.createMultiBody(
+            baseMass=0.0,
+            baseCollisionShapeIndex=pb.createCollisionShape(physicsClientId=client,
+                                                            **_geometry(solid)),
+            baseVisualShapeIndex=visual_shape(solid, client), basePosition=position,
+            baseOrientation=orientation, physicsClientId=client)
+        names[body] = solid.name
+    return names
 
 
 def read_contacts(client: int, arm_body: int, parts: dict[int, str],
