@@ -56,9 +56,10 @@ class SimulatedArm:
     Joint order and names are the model's; q in rad (revolute) or m (prismatic), rates per
     second. DIRECT (headless) unless gui=True. Deterministic for a given command sequence.
 
-    cell: a workcell to hold: its objects become static bodies, the arm's links collide
-    with the workcell's collision model of the arm (and the tool, on the flange) instead of
-    the URDF sketch's, and every step reads the contacts PyBullet found (`read_state`).
+    cell: a workcell to hold: its objects become static bodies, the arm's collision model
+    (runtime/arm/collision.py: a capsule per link, the tool's capsules) is added as one
+    link per capsule, only the pairs the runtime checks may collide, and every step reads
+    the contacts PyBullet found (`read_state`).
     """
 
     def __init__(self, arm: Arm, *, step_s: float = 1e-3, gui: bool = False,
@@ -363,8 +364,7 @@ def serve(args: argparse.Namespace, arm: Arm, cell: SimCell | None = None) -> in
             SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui, q0=q0,
                          cell=cell) as sim, \
             _server(args, arm, keys) as server:
-        # It measures contact with or without a workcell: without one it answers `cell`
-        # with an empty name (nothing to touch).
+        # Without a workcell it answers `cell` with an empty name: it measures no contact.
         ours = CellHello("", "") if cell is None else CellHello(cell.name, cell.digest)
         session = ArmSession(hello_for(arm, "sim", stale_after_s=args.stale_after),
                              stale_after_s=args.stale_after, in_order=args.lockstep,
