@@ -69,8 +69,8 @@ from ..control.cycle import ControlCycle, CycleOutput
 from ..arm.cell import Cell, load_cell
 from ..arm.distance import cell_distances
 from ..link.protocol import FLAG_REDUCED_SPEED, CellHello, Contact, Hello, Rates, \
-    RoundTripMeter, State, StateFreshness, encode, hello_differences, hello_for
-from ..link.protocol import cell_hello as cell_hello_of
+    RoundTripMeter, State, StateFreshness, cell_hello_for, encode, hello_differences, \
+    hello_for
 from ..operator.cell_outlines import CellOutlines
 from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
 from ..control.safety import SafetySettings
@@ -373,7 +373,7 @@ class DriveSession:
                  cell: Cell | None = None, outlines: CellOutlines | None = None) -> None:
         self.arm = arm
         self.cell = cell
-        self.cell_hello = None if cell is None else cell_hello_of(cell)  # sent after hellos
+        self.cell_hello = None if cell is None else cell_hello_for(cell)  # sent after hellos
         self.cell_name = None if cell is None else cell.name
         self.outlines = outlines               # the workcell in the window's views
         self.cycle = cycle
@@ -759,7 +759,9 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
         "min_clearance_m": s.min_clearance_m,
         "clearance_pair": None if s.min_clearance_pair is None else list(s.min_clearance_pair),
         "min_clearance_t_s": s.min_clearance_t_s,
-        "contacts_measured": drive.arm_cell is not None and bool(drive.arm_cell.name),
+        # The arm side answered our workcell with the same one: its contacts are checked.
+        "contacts_measured": drive.arm_cell is not None and drive.cell_hello is not None
+        and drive.arm_cell.digest == drive.cell_hello.digest,
         "contacts": [{"a": a, "b": b, "t_s": t, "depth_m": d, "steps": n}
                      for (a, b), (t, d, n) in s.contacts.items()],
         "session": None if session_path is None else {
@@ -844,7 +846,7 @@ def format_clearance(m: dict[str, Any]) -> str:
         text = (f"workcell {m['cell']}: nearest {a}–{b} {m['min_clearance_m'] * 1e3:.1f} mm "
                 f"at {m['min_clearance_t_s']:.1f} s")
     if not m["contacts_measured"]:
-        return text + "; the arm side reports no contacts"
+        return text + "; the arm side did not confirm this workcell: no contact check"
     if not m["contacts"]:
         return text + "; no contact"
     return text + "; CONTACT " + ", ".join(

@@ -38,7 +38,7 @@ from ..arm.cell import Cell, load_cell
 from ..arm.distance import clearances_at, collision_model
 from ..errors import TransportError
 from ..link.arm_process import snapshot_png
-from ..link.protocol import CellHello, cell_digest, cell_hello
+from ..link.protocol import CellHello, cell_digest, cell_hello_for
 from ..sessions.cell_check import evaluate_cell, with_cell
 from ..sessions.preflight import Finding, PreflightResult, Trace, TraceBuilder, evaluate
 from ..operator.progress import Progress
@@ -244,7 +244,7 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
     contacts: list[tuple[float, str, str, float]] = []
     with LockstepSim(arm_spec, arm, rate_hz=rate_hz, step_hz=step_hz,
                      start_q=profile.start_q, cell_spec=None if cell is None else cell.spec,
-                     cell=None if cell is None else cell_hello(cell.cell)) as sim, \
+                     cell=None if cell is None else cell_hello_for(cell.cell)) as sim, \
             SessionRecorder.start(log_path, arm, cycle_settings_, started_at=started_at,
                                   queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)

@@ -44,7 +44,7 @@ import numpy as np
 from ..link.arm_process import ArmProcess
 from ..errors import ConfigError, LogError, TransportError
 from ..arm.cell import Cell, load_cell
-from ..link.protocol import cell_hello
+from ..link.protocol import cell_hello_for
 from ..sessions.lockstep import LockstepSim, arm_file_for, run_closed_loop
 from ..arm.model import Arm, load_arm
 from ..operator.progress import Progress
@@ -192,7 +192,7 @@ def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRec
     start_q = recorded_q[0] if records[0].q else None
     with LockstepSim(spec, arm, rate_hz=settings.rate_hz, step_hz=args.step_hz,
                      start_q=start_q, cell_spec=cell_spec,
-                     cell=None if cell is None else cell_hello(cell)) as sim:
+                     cell=None if cell is None else cell_hello_for(cell)) as sim:
         for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
                                  state_lag=settings.state_lag_cycles):
             rates[c.k] = c.out.rates

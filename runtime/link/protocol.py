@@ -488,7 +488,7 @@ def cell_digest(cell: Cell) -> str:
     return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
 
 
-def cell_hello(cell: Cell | None) -> CellHello:
+def cell_hello_for(cell: Cell | None) -> CellHello:
     """Our `cell` message for `cell` (name and digest; both "" for none)."""
     return CellHello("", "") if cell is None else CellHello(cell.name[:MAX_NAME_CHARS],
                                                             cell_digest(cell))

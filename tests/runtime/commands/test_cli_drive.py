@@ -19,7 +19,7 @@ from runtime.control.loop import FixedRateLoop
 from runtime.control.mapping import load_pad
 from runtime.arm.model import load_arm
 from runtime.control.cycle import ControlCycle
-from runtime.link.protocol import CellHello, Contact, State, cell_hello
+from runtime.link.protocol import CellHello, Contact, State, cell_hello_for
 from runtime.link.transport import Inbox
 from runtime.operator.cell_outlines import CellOutlines
 
@@ -230,7 +230,7 @@ class ArmInCell(IdealArm):
         inbox = super().receive(timeout_s)
         if self.asked and not getattr(self, "answered", False):
             self.answered = True
-            inbox.cell = CellHello("bench", cell_hello(self.cell).digest)
+            inbox.cell = CellHello("bench", cell_hello_for(self.cell).digest)
         if inbox.state is not None and self.clock() >= self.touch_at and \
                 not getattr(self, "touched", False):
             self.touched = True
