@@ -232,17 +232,29 @@ def chain_from_dh(rows: list[DHRow], kinds: list[str], modified: bool
 # TOML loading
 # ----------------------------------------------------------------------------------------
 
-def resolve_arm_path(name_or_path: str | Path) -> Path:
-    """A shipped arm name (`elbow6`) or a path to a .toml / .urdf file."""
+def resolve_shipped(kind: str, name_or_path: str | Path, suffixes: tuple[str, ...] = (".toml",)
+                    ) -> Path:
+    """A shipped config name (`elbow6` under configs/arms/, for kind "arm") or a file path.
+
+    A name with one of `suffixes`, or any existing path, is taken as a path; otherwise the
+    name is looked up as configs/<kind>s/<name>.toml and an unknown name lists the shipped
+    ones.
+    """
     p = Path(name_or_path)
-    if p.suffix in (".toml", ".urdf") or p.exists():
+    if p.suffix in suffixes or p.exists():
         return p
-    shipped = configs_dir() / "arms" / f"{name_or_path}.toml"
+    folder = configs_dir() / f"{kind}s"
+    shipped = folder / f"{name_or_path}.toml"
     if shipped.exists():
         return shipped
-    names = sorted(f.stem for f in (configs_dir() / "arms").glob("*.toml"))
-    raise ConfigError(f"no arm named {str(name_or_path)!r}; shipped arms: {', '.join(names)}",
-                      field="arm")
+    names = sorted(f.stem for f in folder.glob("*.toml"))
+    raise ConfigError(f"no {kind} named {str(name_or_path)!r}; shipped {kind}s: "
+                      f"{', '.join(names)}", field=kind)
+
+
+def resolve_arm_path(name_or_path: str | Path) -> Path:
+    """A shipped arm name (`elbow6`) or a path to a .toml / .urdf file."""
+    return resolve_shipped("arm", name_or_path, (".toml", ".urdf"))
 
 
 def load_arm(name_or_path: str | Path, *, base_link: str | None = None,
