@@ -143,9 +143,40 @@ def resolve_cell_path(name_or_path: str | Path) -> Path:
 
 
 def load_cell(name_or_path: str | Path, arm: Arm) -> Cell:
-    """Load a workcell for `arm` from a shipped name or a TOML file."""
+    """Load a workcell for `arm` from a shipped name or a TOML file, and check it against
+    the arm: names in excluded_pairs exist, and the arm at its home pose is clear."""
     data, src = read_toml(resolve_cell_path(name_or_path), "cell")
-    return cell_from_toml(data, src)
+    cell = cell_from_toml(data, src)
+    check_against_arm(cell, arm, src)
+    return cell
+
+
+def check_against_arm(cell: Cell, arm: Arm, src: TomlSource) -> None:
+    """Refuse unknown names in excluded_pairs, an object that the arm (or its tool) already
+    overlaps at its home pose, and a keep-in box the TCP starts outside of."""
+    # The collision model and the distance core are built on this module's shapes.
+    from .collision import BASE, ArmCapsules
+    from .distance import cell_distances
+
+    known = set(ArmCapsules.of(arm, cell).names) | {o.name for o in cell.objects} | {BASE}
+    for pair in sorted(cell.excluded_pairs, key=sorted):
+        for name in sorted(pair - known):
+            raise src.error(f"no link, tool capsule or object named {name!r}; the links of "
+                            f"{arm.name}: {', '.join(ArmCapsules.of(arm, cell).names)}",
+                            "excluded_pairs", None, None, "excluded_pairs")
+    result = cell_distances(arm, cell, arm.home())
+    objects = [o.name for o in cell.objects]
+    for (a, b), d in zip(result.pairs, result.distances.tolist()):
+        if d > 0.0:
+            continue
+        if b == "keep_in":
+            raise src.error(f"the TCP of {arm.name} at its home pose is outside the keep-in "
+                            f"box", "keep_in", "keep_in", None, None)
+        if b in objects:
+            i = objects.index(b)
+            raise src.error(f"{b!r} overlaps {a!r} of {arm.name} at its home pose (distance "
+                            f"{d * 1000:.1f} mm); move it, or list the pair in excluded_pairs",
+                            f"objects[{i}]", "objects", i, None)
 
 
 def cell_from_toml(data: dict[str, Any], src: TomlSource) -> Cell:
@@ -337,4 +368,4 @@ def _vec3(values: Any) -> Vec3:
 
 
 __all__ = ["Box", "Cell", "ClearanceSettings", "Cylinder", "HalfSpace", "SHAPES", "Shape",
-           "Sphere", "ToolCapsule", "cell_from_toml", "load_cell", "resolve_cell_path"]
+           "Sphere", "ToolCapsule", "cell_from_toml", "check_against_arm", "load_cell", "resolve_cell_path"]

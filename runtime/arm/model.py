@@ -34,6 +34,8 @@ TASK_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
 JOINT_KINDS = ("revolute", "prismatic")
 ANGLE_UNITS = {"deg": math.pi / 180.0, "rad": 1.0}
 LENGTH_UNITS = {"m": 1.0, "mm": 1e-3}
+DEFAULT_LINK_RADIUS_M = 0.04
+"""Radius of a link's capsule (runtime.arm.collision) when the arm file gives none."""
 
 
 def configs_dir() -> Path:
@@ -47,7 +49,8 @@ class Joint:
     """One actuated joint. Units: rad (revolute) or m (prismatic), per second, per second².
 
     `max_speed`/`max_accel` are what jogwire commands (software limits); `rated_speed`/
-    `rated_accel` are the hardware's ratings that preflight proves against.
+    `rated_accel` are the hardware's ratings that preflight proves against. `link_radius_m`
+    is the radius of the capsule around the link this joint moves (runtime.arm.collision).
     """
 
     name: str
@@ -60,6 +63,7 @@ class Joint:
     rated_accel: float
     effort: float | None
     origin: Mat4 = field(repr=False)
+    link_radius_m: float = DEFAULT_LINK_RADIUS_M
 
     @property
     def is_revolute(self) -> bool:
@@ -305,7 +309,7 @@ def _frame(src: _Source, data: dict, table: str, length: float, angle: float) ->
 
 
 _JOINT_KEYS = {"name", "type", "d", "a", "alpha", "theta", "lower", "upper", "max_speed",
-               "max_accel", "rated_speed", "rated_accel", "effort"}
+               "max_accel", "rated_speed", "rated_accel", "effort", "link_radius"}
 
 
 def _joint_limits(src: _Source, spec: dict, i: int, scale: float, name: str) -> dict[str, Any]:
@@ -341,6 +345,17 @@ def _joint_limits(src: _Source, spec: dict, i: int, scale: float, name: str) -> 
                         "joints", i, "effort")
     out["effort"] = effort
     return out
+
+
+def _link_radius(src: _Source, spec: dict, i: int, length: float) -> float:
+    """The optional `link_radius` of joint i (length unit), positive; m."""
+    if "link_radius" not in spec:
+        return DEFAULT_LINK_RADIUS_M
+    r = _number(src, spec["link_radius"], f"joints[{i}].link_radius", "joints", i, "link_radius")
+    if r <= 0:
+        raise src.error(f"must be positive, got {spec['link_radius']}",
+                        f"joints[{i}].link_radius", "joints", i, "link_radius")
+    return r * length
 
 
 def arm_from_toml(data: dict, src: _Source) -> Arm:
@@ -390,7 +405,8 @@ def arm_from_toml(data: dict, src: _Source) -> Arm:
                           theta=dh["theta"] * angle))
         kinds.append(kind)
         names.append(name)
-        limits.append(_joint_limits(src, spec, i, angle if kind == "revolute" else length, name))
+        limits.append(_joint_limits(src, spec, i, angle if kind == "revolute" else length, name)
+                      | {"link_radius_m": _link_radius(src, spec, i, length)})
     origins, flange = chain_from_dh(rows, kinds, modified=(convention == "mdh"))
     joints = tuple(Joint(name=nm, kind=k, origin=o, **lim)
                    for nm, k, o, lim in zip(names, kinds, origins, limits))
