@@ -24,9 +24,9 @@ Kernels (exact unless stated):
 - capsule–box: the squared distance from a point moving along the segment to the box is a
   convex piecewise quadratic in the segment parameter, with breaks where the point crosses a
   face plane (at most 6). Each piece is minimised in closed form; the smallest wins. When
-  the segment passes through the box, the distance is −(depth of that point below the
-  nearest face) − radius, with that face's normal: not the exact penetration depth, but a
-  direction that leads out.
+  the segment passes through the box, the distance is −(depth below its nearest face of the
+  segment's deepest point) − radius, with that face's normal: not always the exact
+  penetration depth, but a direction that leads out.
 - capsule–half-space: the nearer end point, (n·p − offset) − radius.
 - TCP–keep-in box: the TCP point against each face, as half-spaces whose free side is the
   inside.
@@ -180,21 +180,38 @@ def segment_box(p: Array, q: Array, pose: Array, half: Array
     x = x0 + t[:, None] * dx
     on_box = np.clip(x, -half, half)
     n_local, gap = _unit_or(x - on_box, np.zeros(3))
-    # Through the box: the nearest face gives the depth and the way out.
-    depth = half - np.abs(x)
-    axis = np.argmin(depth, axis=1)
     inside = gap <= 1e-12
     if inside.any():
         rows = np.flatnonzero(inside)
-        k = axis[rows]
-        sign = np.where(x[rows, k] < 0.0, -1.0, 1.0)
-        n_local[rows] = 0.0
-        n_local[rows, k] = sign
-        on_box[rows, k] = sign * half[rows, k]
-        gap = np.where(inside, -depth[np.arange(m), axis], gap)
+        x[rows], on_box[rows], n_local[rows], gap[rows] = _deepest(
+            x0[rows], dx[rows], half[rows], knots[rows])
     n = np.einsum("pij,pj->pi", R, n_local)
     return (gap, np.einsum("pij,pj->pi", R, x) + centre, np.einsum("pij,pj->pi", R, on_box)
             + centre, n)
+
+
+def _deepest(x0: Array, dx: Array, half: Array, knots: Array
+             ) -> tuple[Array, Array, Array, Array]:
+    """For segments through their box (box frame): the point of greatest depth below the
+    nearest face among the candidates where that depth, a concave piecewise-linear function
+    of t, can peak (face crossings, end points, coordinate zero crossings, the point nearest
+    the centre), its projection on that face, the face normal and −depth."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        zero = -x0 / dx
+        centre = -_dot(x0, dx) / _dot(dx, dx)
+    candidates = np.concatenate((knots, zero, centre[:, None]), axis=1)
+    candidates = np.where(np.isfinite(candidates), np.clip(candidates, 0.0, 1.0), 0.0)
+    points = x0[:, None, :] + candidates[..., None] * dx[:, None, :]
+    depth = np.min(half[:, None, :] - np.abs(points), axis=2)
+    rows = np.arange(len(x0))
+    x = points[rows, np.argmax(depth, axis=1)]
+    axis = np.argmin(half - np.abs(x), axis=1)
+    sign = np.where(x[rows, axis] < 0.0, -1.0, 1.0)
+    normal = np.zeros_like(x)
+    normal[rows, axis] = sign
+    on_face = x.copy()
+    on_face[rows, axis] = sign * half[rows, axis]
+    return x, on_face, normal, -(half[rows, axis] - np.abs(x[rows, axis]))
 
 
 def segment_plane(p: Array, q: Array, normal: Array, offset: Array
