@@ -34,6 +34,7 @@ Kernels (exact unless stated):
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from functools import lru_cache
 from typing import Any
@@ -49,6 +50,7 @@ from .model import Arm
 Array = NDArray[np.float64]
 
 _EPS = 1e-12  # squared lengths below this are points (m²)
+_NONE = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3)))  # no pairs
 
 
 @dataclass(frozen=True, eq=False)
@@ -62,6 +64,9 @@ class Clearances:
     points_other  (p, 3) witness points on the other side
     normals       (p, 3) unit normals from the other side toward the arm side
     rate_rows     (p, n) ḋ = rate_rows @ q̇ (m/s per rad/s or m/s)
+    index         (p,) each pair's position in the model's `pair_names`
+    beyond_m      a lower bound of the distance of every pair not measured (inf: none left
+                  out; see `clearances`)
     """
 
     pairs: tuple[tuple[str, str], ...]
@@ -70,6 +75,8 @@ class Clearances:
     points_other: Array
     normals: Array
     rate_rows: Array
+    index: NDArray[np.intp]
+    beyond_m: float = math.inf
 
     def nearest(self) -> int | None:
         """Index of the smallest distance, or None without pairs."""
@@ -231,72 +238,112 @@ def segment_plane(p: Array, q: Array, normal: Array, offset: Array
 
 @dataclass(frozen=True, eq=False)
 class _Layout:
-    """Per-pair constants of a model: capsule rows, radii and the Jacobian masks."""
+    """Per-pair constants of a model, by kind (capsule pairs, box pairs, plane pairs): table
+    rows, radii, what the cull needs, and the Jacobian masks (all pairs, in model order)."""
 
     cap_a: NDArray[np.intp]
     cap_b: NDArray[np.intp]
     cap_r_arm: Array
     cap_r_other: Array
+    cap_reach: Array   # half-lengths and radii of both: |m_a − m_b| − reach ≤ distance
     box_a: NDArray[np.intp]
     box_r: Array
+    box_reach: Array   # half-length and radius of the capsule
+    box_pose: Array
+    box_R_T: Array     # (p, 3, 3) box axes transposed
+    box_centre: Array
+    box_half: Array
     plane_a: NDArray[np.intp]
     plane_r: Array
+    plane_normal: Array
+    plane_offset: Array
     mask_arm: Array    # (p, n) 1 where joint j moves the arm side's body
     mask_other: Array  # (p, n) the same for the other side (0 for static objects)
-    any_other: bool
 
 
 @lru_cache(maxsize=32)
 def _layout(model: CollisionModel) -> _Layout:
     caps = model.capsules
     n = model.arm.n
-    radius = np.concatenate((caps.radius, model.static_radius))
     # The capsule table: arm capsules, capsule-like objects (static), the TCP point (a
     # capsule of no length and no radius on the last joint frame).
     frame = np.concatenate((caps.frame, np.full(len(model.static_radius), -1), [n - 1]))
-    radius = np.concatenate((radius, [0.0]))
+    radius = np.concatenate((caps.radius, model.static_radius, [0.0]))
+    half_length = 0.5 * np.concatenate((caps.lengths, np.linalg.norm(
+        model.static_end - model.static_start, axis=1), [0.0]))
     cp, bp, hp = model.capsule_pairs, model.box_pairs, model.plane_pairs
     arm_frames = np.concatenate((frame[cp[:, 0]], frame[bp[:, 0]], frame[hp[:, 0]]))
     other_frames = np.concatenate((frame[cp[:, 1]], np.full(len(bp) + len(hp), -1)))
     joints = np.arange(n)
-    mask_arm = (joints[None, :] <= arm_frames[:, None]).astype(float)
-    mask_other = (joints[None, :] <= other_frames[:, None]).astype(float)
-    return _Layout(cap_a=cp[:, 0], cap_b=cp[:, 1], cap_r_arm=radius[cp[:, 0]],
-                   cap_r_other=radius[cp[:, 1]],
-                   box_a=bp[:, 0], box_r=radius[bp[:, 0]], plane_a=hp[:, 0],
-                   plane_r=radius[hp[:, 0]], mask_arm=mask_arm, mask_other=mask_other,
-                   any_other=bool(mask_other.any()))
+    box_pose = model.box_pose[bp[:, 1]]
+    reach = half_length + radius
+    return _Layout(
+        cap_a=cp[:, 0], cap_b=cp[:, 1], cap_r_arm=radius[cp[:, 0]], cap_r_other=radius[cp[:, 1]],
+        cap_reach=reach[cp[:, 0]] + reach[cp[:, 1]],
+        box_a=bp[:, 0], box_r=radius[bp[:, 0]], box_reach=reach[bp[:, 0]], box_pose=box_pose,
+        box_R_T=np.ascontiguousarray(box_pose[:, :3, :3].transpose(0, 2, 1)),
+        box_centre=box_pose[:, :3, 3].copy(), box_half=model.box_half[bp[:, 1]],
+        plane_a=hp[:, 0], plane_r=radius[hp[:, 0]], plane_normal=model.plane_normal[hp[:, 1]],
+        plane_offset=model.plane_offset[hp[:, 1]],
+        mask_arm=(joints[None, :] <= arm_frames[:, None]).astype(float),
+        mask_other=(joints[None, :] <= other_frames[:, None]).astype(float))
 
 
-def clearances(model: CollisionModel, frames: Array, T_tcp: Array) -> Clearances:
-    """Every pair of `model` at the pose given by `kinematics.joint_frames` (frames, T_tcp)."""
+def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
+               within_m: float = math.inf) -> Clearances:
+    """The pairs of `model` at the pose given by `kinematics.joint_frames` (frames, T_tcp).
+
+    With `within_m`, only pairs that may be closer than that are measured: a cheap lower
+    bound of every pair's distance (centre distance minus half-lengths and radii; for a box,
+    the capsule centre's distance to the box) culls the rest, and `beyond_m` is the smallest
+    bound among those left out (a distance never overstated). The control cycle measures
+    exactly what the damper needs this way; probe and preflight measure every pair.
+    """
     lay = _layout(model)
     start, end = model.capsules.placed(frames)
-    start = np.concatenate((start, model.static_start, T_tcp[None, :3, 3]))
-    end = np.concatenate((end, model.static_end, T_tcp[None, :3, 3]))
-    a, b = lay.cap_a, lay.cap_b
-    dist1, pa1, pb1, n1 = capsule_capsule(start[a], end[a], lay.cap_r_arm, start[b], end[b],
-                                          lay.cap_r_other)
-    ba, bp = lay.box_a, model.box_pairs[:, 1]
-    gap2, seg2, box2, n2 = segment_box(start[ba], end[ba], model.box_pose[bp],
-                                       model.box_half[bp])
-    dist2 = gap2 - lay.box_r
-    pa2 = seg2 - lay.box_r[:, None] * n2
-    ha, hp = lay.plane_a, model.plane_pairs[:, 1]
-    n3 = model.plane_normal[hp]
-    gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, model.plane_offset[hp])
+    tcp = T_tcp[None, :3, 3]
+    start = np.concatenate((start, model.static_start, tcp))
+    end = np.concatenate((end, model.static_end, tcp))
+    ca, cb, ba, ha = lay.cap_a, lay.cap_b, lay.box_a, lay.plane_a
+    # Half-spaces are as cheap as their bound: measured exactly, every time.
+    gap3, end3, plane3 = segment_plane(start[ha], end[ha], lay.plane_normal, lay.plane_offset)
     dist3 = gap3 - lay.plane_r
-    pa3 = end3 - lay.plane_r[:, None] * n3
-
+    if within_m < math.inf:
+        mid = 0.5 * (start + end)
+        gap_mid = mid[ca] - mid[cb]
+        bound1 = np.sqrt(_dot(gap_mid, gap_mid)) - lay.cap_reach
+        local = np.einsum("pij,pj->pi", lay.box_R_T, mid[ba] - lay.box_centre)
+        outside = np.maximum(np.abs(local) - lay.box_half, 0.0)
+        bound2 = np.sqrt(_dot(outside, outside)) - lay.box_reach
+        keep1, keep2, keep3 = bound1 < within_m, bound2 < within_m, dist3 < within_m
+        beyond = np.concatenate((bound1[~keep1], bound2[~keep2], dist3[~keep3]))
+        beyond_m = float(beyond.min()) if len(beyond) else math.inf
+        ca, cb, ba, ha = ca[keep1], cb[keep1], ba[keep2], ha[keep3]
+        k1, k2 = np.flatnonzero(keep1), np.flatnonzero(keep2)
+        k3 = np.flatnonzero(keep3)
+    else:
+        beyond_m = math.inf
+        k1, k2, k3 = (np.arange(len(ca)), np.arange(len(ba)), np.arange(len(ha)))
+    # Each kernel costs tens of numpy calls whatever its size: skip the empty ones.
+    dist1, pa1, pb1, n1 = capsule_capsule(start[ca], end[ca], lay.cap_r_arm[k1], start[cb],
+                                          end[cb], lay.cap_r_other[k1]) if len(k1) else _NONE
+    gap2, seg2, box2, n2 = segment_box(start[ba], end[ba], lay.box_pose[k2],
+                                       lay.box_half[k2]) if len(k2) else _NONE
+    r2 = lay.box_r[k2]
+    n3, r3 = lay.plane_normal[k3], lay.plane_r[k3]
+    index = np.concatenate((k1, k2 + len(lay.cap_a), k3 + len(lay.cap_a) + len(lay.box_a)))
     normals = np.concatenate((n1, n2, n3))
-    points_arm = np.concatenate((pa1, pa2, pa3))
-    points_other = np.concatenate((pb1, box2, plane3))
-    rows = _rate_rows(model.arm, frames, points_arm, normals) * lay.mask_arm
-    if lay.any_other:
-        rows -= _rate_rows(model.arm, frames, points_other, normals) * lay.mask_other
-    return Clearances(pairs=model.pair_names, distances=np.concatenate((dist1, dist2, dist3)),
+    points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3[k3] - r3[:, None] * n3))
+    points_other = np.concatenate((pb1, box2, plane3[k3]))
+    rows = _rate_rows(model.arm, frames, points_arm, normals) * lay.mask_arm[index]
+    if len(k1):
+        other = lay.mask_other[k1]
+        rows[:len(k1)] -= _rate_rows(model.arm, frames, points_other[:len(k1)], n1) * other
+    names = model.pair_names
+    return Clearances(pairs=tuple(names[i] for i in index.tolist()),
+                      distances=np.concatenate((dist1, gap2 - r2, dist3[k3])),
                       points_arm=points_arm, points_other=points_other, normals=normals,
-                      rate_rows=rows)
+                      rate_rows=rows, index=index, beyond_m=beyond_m)
 
 
 def _rate_rows(arm: Arm, frames: Array, points: Array, normals: Array) -> Array:

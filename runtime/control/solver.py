@@ -51,6 +51,7 @@ from ..arm.kinematics import pose_and_jacobian, tool_frame_jacobian, twist_to_ba
 from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
                      pushing_into_limits, start_pose)
 from ..arm.model import TASK_AXES, Arm
+from .clearance import ClearanceGuard, ClearanceLimit, ClearanceReport
 
 Vector = NDArray[np.float64]
 
@@ -128,6 +129,7 @@ class Solution:
     binding_limit     the name of the smallest factor below 1, or None
     saturated_joints  joints taken out of the solve because they sit at a position limit
     conflicts         bounds that had to give way to another this cycle (limits.CONFLICTS)
+    clearance         distances to the cell and the damper's effect (None without a cell)
     """
 
     rates: Vector
@@ -143,6 +145,7 @@ class Solution:
     binding_limit: str | None = None
     saturated_joints: tuple[str, ...] = ()
     conflicts: tuple[str, ...] = ()
+    clearance: ClearanceReport | None = None
 
     @property
     def scale(self) -> float:
@@ -151,7 +154,7 @@ class Solution:
 
     def as_dict(self) -> dict[str, Any]:
         """Plain JSON/msgpack-ready values (lists and floats)."""
-        return {
+        out = {
             "rates": self.rates.tolist(),
             "damping": self.damping,
             "sigma_min": self.sigma_min,
@@ -166,6 +169,9 @@ class Solution:
             "binding_limit": self.binding_limit,
             "saturated_joints": list(self.saturated_joints),
         }
+        if self.clearance is not None:
+            out["clearance"] = self.clearance.as_dict()
+        return out
 
 
 # ----------------------------------------------------------------------------------------
@@ -335,7 +341,8 @@ def _lock_index(locked: tuple[str, ...]) -> NDArray[np.intp]:
 def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
           prev_rates: Vector | None = None, dt_s: float = 0.002,
-          state_lag_cycles: int = 1) -> Solution:
+          state_lag_cycles: int = 1,
+          clearance: ClearanceLimit | None = None) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
     q           measured joint positions (n,), rad or m
@@ -347,6 +354,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     dt_s        control period, s
     state_lag_cycles  how many periods q lags the arm (0 or 1): the position limits are
                 judged from where the arm will be when these rates act (`start_pose`)
+    clearance   the arm's collision model in a cell: the velocity damper keeps every pair
+                clear (runtime.control.clearance); None: no cell
 
     Never raises or returns NaN for finite inputs of the right shapes (exact singularities
     and zero twists included). Wrong shapes, non-finite values, an unknown frame or axis
@@ -384,8 +393,14 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         rates, damping, free = _resolve_at_limits(arm, q_start, Jt, vt, z, rates, damping,
                                                   dt_s)
 
+    guard = None
+    if clearance is not None:  # the velocity damper, around the other limits
+        guard = ClearanceGuard(clearance, frames, T, Jt, damping, rates)
+        rates = guard.rates
     limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
                            clear=clear)
+    if guard is not None:
+        limited = guard.settle(limited)
     # Tracking error over the task rows; norms are the same in base and tool axes.
     e_lin = e_ang = 0.0
     for is_task, is_linear, a, c in zip(consts.task_axes, _IS_LINEAR, limited.twist.tolist(),
@@ -403,7 +418,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         achieved_twist=limited.twist, tracking_error=math.sqrt(e_lin + e_ang),
         tracking_error_linear=math.sqrt(e_lin), tracking_error_angular=math.sqrt(e_ang),
         scales=limited.scales, binding_limit=binding_limit(limited.scales),
-        saturated_joints=saturated, conflicts=limited.conflicts)
+        saturated_joints=saturated, conflicts=limited.conflicts,
+        clearance=None if guard is None else guard.report)
 
 
 def _checked(n: int, q: Vector, twist: Vector, frame: str, prev_rates: Vector | None,

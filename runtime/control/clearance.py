@@ -1,0 +1,235 @@
+"""Clearance as a limit: the velocity damper in the solve (pure: no I/O, no clock).
+
+Velocity damper (B. Faverjon & P. Tournassoud, ICRA 1987; REFERENCES §11): for every pair
+closer than the influence distance d_i, the distance may shrink at most at
+
+    ḋ ≥ −gain·(d − d_s),   gain·(d_i − d_s) = ξ, the approach speed allowed at d_i,
+
+so it decays toward the safety distance d_s and never crosses it (in discrete time, with
+control period Δt, while gain·Δt < 1). Inside d_s the bound becomes ḋ ≥ 0: a pose that
+starts too close may move away or along, never closer, and is not pushed out on its own (a
+jog moves only when asked). Moving away is never limited. The TCP keep-in box enters the
+same way, one row per face. ḋ = row·q̇ with the rows from `runtime.arm.distance`.
+
+Formulation: a small bounded least-squares problem after the damped solve,
+
+    q̇ = argmin ½ (q̇ − q̇₀)ᵀ H (q̇ − q̇₀)   subject to  row_i·q̇ ≥ −b_i,
+    H = J_tᵀ J_t + μ I,   μ = max(λ², μ_min),
+
+where q̇₀ is the solver's unconstrained answer and J_t the task Jacobian. Why this and not
+extra rows in the damped solve: rows in a least-squares solve are soft (they trade against
+the task, and a pair could still close in); as hard constraints of a least-squares problem
+they hold exactly, and the metric H makes the correction cost as little *task* motion as
+possible, so the component of the command along a surface survives: a diagonal jog into the
+bench slides along it instead of freezing, and a redundant arm first spends its null space
+(cost μ) to keep clear. q̇ = 0 always satisfies the rows (b_i ≥ 0), so the problem is always
+feasible. It is solved by an active set on its dual (few rows bind at once: one to three in
+practice): x = q̇₀ + H⁻¹Aᵀλ, λ ≥ 0 for the binding rows.
+
+The other limits then act on the result. Uniform scaling (joint speed, position brake, TCP
+caps) keeps every row satisfied because b_i ≥ 0; the acceleration ramp steps from last
+cycle's rates, which were clear at last cycle's pose and may not be at this one. So after
+the limits the rows are checked once more and the rates scaled down if needed: clearance
+outranks the ramp, as the TCP caps do.
+
+The reported factor is the share of the commanded task motion kept along its direction,
+(J_t q̇ · J_t q̇₀)/‖J_t q̇₀‖², in [0, 1]; the binding pair is the closest pair among the
+binding rows.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..arm.cell import Cell, ClearanceSettings
+from ..arm.collision import CollisionModel
+from ..arm.distance import Clearances, clearances
+from ..arm.model import Arm
+from .limits import Limited
+
+Vector = NDArray[np.float64]
+
+METRIC_FLOOR = 1e-3
+"""μ_min: the smallest weight of plain joint motion in H (same units as JᵀJ). It keeps H
+invertible for a redundant arm and makes the null space cheap, not free."""
+
+WATCH_FACTOR = 2.0
+"""Pairs are measured exactly while they may be closer than WATCH_FACTOR·d_i; beyond that
+the report carries a lower bound of the distance and no pair (runtime.arm.distance)."""
+
+CLEARANCE_OVER_ACCELERATION = "clearance_over_acceleration"
+"""Named in the solution's conflicts (as limits.CONFLICTS) when the rates had to drop faster
+than max_accel to keep a pair from approaching faster than the damper allows."""
+
+_SLACK_M_S = 1e-9  # a row counts as met within this (m/s)
+
+
+@dataclass(frozen=True, eq=False)
+class ClearanceLimit:
+    """An arm's collision model in one cell, with the damper settings: built once, passed to
+    every `solve`."""
+
+    model: CollisionModel
+    settings: ClearanceSettings
+
+    @staticmethod
+    def of(arm: Arm, cell: Cell) -> "ClearanceLimit":
+        return ClearanceLimit(CollisionModel.build(arm, cell), cell.clearance)
+
+
+@dataclass(frozen=True, eq=False)
+class ClearanceReport:
+    """Clearance at one solve.
+
+    min_distance_m  the smallest distance over all pairs (m; negative: overlap); exact
+                    within WATCH_FACTOR·d_i, a lower bound beyond
+    nearest_pair    the pair at that distance (None beyond WATCH_FACTOR·d_i)
+    binding_pair    the pair whose row bound the motion this cycle, or None
+    factor          share of the commanded task motion kept (1.0: clearance did not bind)
+    distances       every pair (runtime.arm.distance.Clearances)
+    """
+
+    min_distance_m: float
+    nearest_pair: tuple[str, str] | None
+    binding_pair: tuple[str, str] | None
+    factor: float
+    distances: Clearances = field(repr=False)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"min_distance_m": self.min_distance_m,
+                "nearest_pair": None if self.nearest_pair is None else list(self.nearest_pair),
+                "binding_pair": None if self.binding_pair is None else list(self.binding_pair),
+                "factor": self.factor}
+
+
+class _Rows:
+    """The damper's rows at one pose: row·q̇ ≥ floor for the pairs inside d_i."""
+
+    def __init__(self, limit: ClearanceLimit, found: Clearances) -> None:
+        s = limit.settings
+        near = np.flatnonzero(found.distances < s.influence_distance_m)
+        self.index = near
+        self.A = found.rate_rows[near]
+        self.floor = -s.gain_per_s * np.maximum(found.distances[near] - s.safety_distance_m, 0.0)
+
+    def violated(self, rates: Vector) -> bool:
+        return bool(len(self.index)) and bool((np.dot(self.A, rates) < self.floor
+                                               - _SLACK_M_S).any())
+
+    def scale_into(self, rates: Vector) -> float:
+        """Largest c ≤ 1 with every row met by c·rates (floors ≤ 0: c = 0 always works)."""
+        approach = np.dot(self.A, rates)
+        over = approach < self.floor - _SLACK_M_S
+        if not over.any():
+            return 1.0
+        return float(max(0.0, np.min(self.floor[over] / approach[over])))
+
+
+class ClearanceGuard:
+    """The damper around the other limits, for one solve:
+
+        guard = ClearanceGuard(limit, frames, T_tcp, Jt, damping, rates)  # restrict
+        limited = guard.settle(apply_limits(arm, q, guard.rates, ...))     # re-check
+
+    `rates` is the solver's unconstrained answer, `Jt` its task Jacobian and `damping` its λ.
+    After `settle`, `report` holds the clearance of this solve."""
+
+    def __init__(self, limit: ClearanceLimit, frames: NDArray[np.float64],
+                 T_tcp: NDArray[np.float64], Jt: NDArray[np.float64], damping: float,
+                 rates: Vector) -> None:
+        found = clearances(limit.model, frames, T_tcp,
+                           WATCH_FACTOR * limit.settings.influence_distance_m)
+        self._rows = rows = _Rows(limit, found)
+        self._Jt, self._commanded = Jt, rates
+        binding: tuple[str, str] | None = None
+        self.rates = rates
+        if rows.violated(rates):
+            mu = max(damping * damping, METRIC_FLOOR)
+            H = np.dot(Jt.T, Jt) + mu * np.eye(len(rates))
+            self.rates, active = _project(rates, rows.A, rows.floor, H)
+            if len(active):
+                pairs = rows.index[active]
+                binding = found.pairs[int(pairs[np.argmin(found.distances[pairs])])]
+        i = found.nearest()
+        nearest = found.beyond_m if i is None else min(float(found.distances[i]), found.beyond_m)
+        self.report = ClearanceReport(
+            min_distance_m=nearest,
+            nearest_pair=None if i is None or nearest < found.distances[i] else found.pairs[i],
+            binding_pair=binding,
+            factor=_kept(Jt, rates, self.rates), distances=found)
+
+    def settle(self, limited: Limited) -> Limited:
+        """The limited rates, scaled down if the acceleration ramp left a row unmet, with the
+        clearance factor added to the scales."""
+        rates, twist, report = limited.rates, limited.twist, self.report
+        c = self._rows.scale_into(rates)
+        if c < 1.0:
+            binding = report.binding_pair
+            if binding is None:
+                margin = np.dot(self._rows.A, rates) - self._rows.floor
+                binding = report.distances.pairs[int(self._rows.index[int(np.argmin(margin))])]
+            rates, twist = rates * c, twist * c
+            report = ClearanceReport(report.min_distance_m, report.nearest_pair, binding,
+                                     min(report.factor, _kept(self._Jt, self._commanded, rates)),
+                                     report.distances)
+            self.report = report
+            conflicts = limited.conflicts + (CLEARANCE_OVER_ACCELERATION,)
+            return Limited(rates, twist, {**limited.scales, "clearance": report.factor},
+                           conflicts)
+        return limited._replace(scales={**limited.scales, "clearance": report.factor})
+
+
+def _kept(Jt: NDArray[np.float64], before: Vector, after: Vector) -> float:
+    """(J·after · J·before)/‖J·before‖² in [0, 1]; 1 when nothing was commanded or changed."""
+    if after is before:
+        return 1.0
+    v0 = np.dot(Jt, before)
+    size = float(np.dot(v0, v0))
+    if size <= 0.0:
+        return 1.0
+    return min(1.0, max(0.0, float(np.dot(np.dot(Jt, after), v0)) / size))
+
+
+def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.float64]
+             ) -> tuple[Vector, NDArray[np.intp]]:
+    """argmin ½(x − x0)ᵀH(x − x0) subject to A·x ≥ floor (floor ≤ 0), by an active set on
+    the dual: x = x0 + H⁻¹Aᵀλ with λ ≥ 0 on the active rows. Returns x and the active rows.
+
+    Rows join while violated and leave when their multiplier turns negative; if that does
+    not settle within a few rounds (degenerate rows), the last x is scaled into the rows,
+    which is feasible though not closest."""
+    HiAt = np.linalg.solve(H, A.T)           # (n, m)
+    W = np.dot(A, HiAt)                      # (m, m), positive semi-definite
+    slack0 = np.dot(A, x0) - floor
+    active = [int(np.argmin(slack0))]
+    x = x0
+    for _ in range(2 * len(floor) + 2):
+        idx = np.array(active)
+        Waa = W[np.ix_(idx, idx)]
+        ridge = 1e-12 * (float(np.trace(Waa)) + 1e-30) * np.eye(len(idx))  # parallel rows
+        lam = np.linalg.solve(Waa + ridge, -slack0[idx])
+        if (lam < 0.0).any():
+            active.pop(int(np.argmin(lam)))
+            if not active:
+                break
+            continue
+        x = x0 + np.dot(HiAt[:, idx], lam)
+        slack = np.dot(A, x) - floor
+        worst = int(np.argmin(slack))
+        if slack[worst] >= -_SLACK_M_S:
+            return x, idx
+        if worst in active:
+            break
+        active.append(worst)
+    approach = np.dot(A, x)
+    over = approach < floor - _SLACK_M_S
+    c = 1.0 if not over.any() else max(0.0, float(np.min(floor[over] / approach[over])))
+    return x * c, np.array(active, dtype=np.intp)
+
+
+__all__ = ["CLEARANCE_OVER_ACCELERATION", "ClearanceGuard", "ClearanceLimit", "ClearanceReport", "METRIC_FLOOR", "WATCH_FACTOR"]
