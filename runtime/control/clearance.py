@@ -6,10 +6,12 @@ closer than the influence distance d_i, the distance may shrink at most at
     ḋ ≥ −gain·(d − d_s),   gain·(d_i − d_s) = ξ, the approach speed allowed at d_i,
 
 so it decays toward the safety distance d_s and never crosses it (in discrete time, with
-control period Δt, while gain·Δt < 1). Inside d_s the bound becomes ḋ ≥ 0: a pose that
-starts too close may move away or along, never closer, and is not pushed out on its own (a
-jog moves only when asked). Moving away is never limited. The TCP keep-in box enters the
-same way, one row per face. ḋ = row·q̇ with the rows from `runtime.arm.distance`.
+control period Δt, while gain·Δt < 1). Moving away is never limited. Inside d_s the same
+bound asks ḋ ≥ gain·(d_s − d) > 0: a pose that starts too close, or that a slide along a
+curved path has carried a little below d_s (the rows are linear, the motion is not), moves
+back out while the operator commands motion; with no command the arm holds still (a jog
+moves only when asked). Where two such rows conflict, they fall back to ḋ ≥ 0. The TCP
+keep-in box enters the same way, one row per face. ḋ = row·q̇ with the rows from `runtime.arm.distance`.
 
 Formulation: a small bounded least-squares problem after the damped solve,
 
@@ -22,15 +24,16 @@ the task, and a pair could still close in); as hard constraints of a least-squar
 they hold exactly, and the metric H makes the correction cost as little *task* motion as
 possible, so the component of the command along a surface survives: a diagonal jog into the
 bench slides along it instead of freezing, and a redundant arm first spends its null space
-(cost μ) to keep clear. q̇ = 0 always satisfies the rows (b_i ≥ 0), so the problem is always
+(cost μ) to keep clear. Outside d_s, q̇ = 0 satisfies every row, so the problem is
 feasible. It is solved by an active set on its dual (few rows bind at once: one to three in
 practice): x = q̇₀ + H⁻¹Aᵀλ, λ ≥ 0 for the binding rows.
 
 The other limits then act on the result. Uniform scaling (joint speed, position brake, TCP
-caps) keeps every row satisfied because b_i ≥ 0; the acceleration ramp steps from last
-cycle's rates, which were clear at last cycle's pose and may not be at this one. So after
-the limits the rows are checked once more and the rates scaled down if needed: clearance
-outranks the ramp, as the TCP caps do.
+caps) keeps every row with b_i ≥ 0 satisfied (outside d_s); the acceleration ramp steps
+from last cycle's rates, which were clear at last cycle's pose and may not be at this one.
+So after the limits every row is checked once more as ḋ ≥ min(−b_i, 0), and the rates are
+scaled down if needed: clearance outranks the ramp, as the TCP caps do. (Scaled-down
+motion may then push out of d_s more slowly than asked: never closer.)
 
 The reported factor is the share of the commanded task motion kept along its direction,
 (J_t q̇ · J_t q̇₀)/‖J_t q̇₀‖², in [0, 1]; the binding pair is the closest pair among the
@@ -67,6 +70,7 @@ CLEARANCE_OVER_ACCELERATION = "clearance_over_acceleration"
 than max_accel to keep a pair from approaching faster than the damper allows."""
 
 _SLACK_M_S = 1e-9  # a row counts as met within this (m/s)
+_MOVABLE = 1e-12   # rows with a smaller squared norm: the joints cannot change that distance
 
 
 @dataclass(frozen=True, eq=False)
@@ -108,26 +112,37 @@ class ClearanceReport:
 
 
 class _Rows:
-    """The damper's rows at one pose: row·q̇ ≥ floor for the pairs inside d_i."""
+    """The damper's rows at one pose, row·q̇ ≥ floor, for the pairs inside d_i whose
+    distance the joints can change at all.
+
+    floor = −gain·(d − d_s): negative outside d_s (approach allowed, slower and slower),
+    positive inside it (any commanded motion also carries the pair back out). `stop` is the
+    same with the floors clamped at 0 (no approach, nothing more), which the zero motion
+    always meets."""
 
     def __init__(self, limit: ClearanceLimit, found: Clearances) -> None:
         s = limit.settings
-        near = np.flatnonzero(found.distances < s.influence_distance_m)
-        self.index = near
-        self.A = found.rate_rows[near]
-        self.floor = -s.gain_per_s * np.maximum(found.distances[near] - s.safety_distance_m, 0.0)
+        near = found.distances < s.influence_distance_m
+        if near.any():
+            near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
+        self.index = np.flatnonzero(near)
+        self.A = found.rate_rows[self.index]
+        self.floor = -s.gain_per_s * (found.distances[self.index] - s.safety_distance_m)
+        self.stop = np.minimum(self.floor, 0.0)
 
-    def violated(self, rates: Vector) -> bool:
-        return bool(len(self.index)) and bool((np.dot(self.A, rates) < self.floor
+    def violated(self, rates: Vector, floor: Vector) -> bool:
+        return bool(len(self.index)) and bool((np.dot(self.A, rates) < floor
                                                - _SLACK_M_S).any())
 
     def scale_into(self, rates: Vector) -> float:
-        """Largest c ≤ 1 with every row met by c·rates (floors ≤ 0: c = 0 always works)."""
+        """Largest c ≤ 1 with c·rates meeting the `stop` rows (c = 0 always does)."""
+        if not len(self.index):
+            return 1.0
         approach = np.dot(self.A, rates)
-        over = approach < self.floor - _SLACK_M_S
+        over = approach < self.stop - _SLACK_M_S
         if not over.any():
             return 1.0
-        return float(max(0.0, np.min(self.floor[over] / approach[over])))
+        return float(max(0.0, np.min(self.stop[over] / approach[over])))
 
 
 class ClearanceGuard:
@@ -137,6 +152,7 @@ class ClearanceGuard:
         limited = guard.settle(apply_limits(arm, q, guard.rates, ...))     # re-check
 
     `rates` is the solver's unconstrained answer, `Jt` its task Jacobian and `damping` its λ.
+    With no motion commanded (rates all zero) the arm holds still, whatever the distances.
     After `settle`, `report` holds the clearance of this solve."""
 
     def __init__(self, limit: ClearanceLimit, frames: NDArray[np.float64],
@@ -148,10 +164,15 @@ class ClearanceGuard:
         self._Jt, self._commanded = Jt, rates
         binding: tuple[str, str] | None = None
         self.rates = rates
-        if rows.violated(rates):
+        if rows.violated(rates, rows.floor) and bool(rates.any()):
             mu = max(damping * damping, METRIC_FLOOR)
             H = np.dot(Jt.T, Jt) + mu * np.eye(len(rates))
-            self.rates, active = _project(rates, rows.A, rows.floor, H)
+            # Pairs inside d_s pinched from two sides can make the push-out rows conflict:
+            # then only approach is refused.
+            for floor in (rows.floor, rows.stop):
+                self.rates, active, met = _project(rates, rows.A, floor, H)
+                if met:
+                    break
             if len(active):
                 pairs = rows.index[active]
                 binding = found.pairs[int(pairs[np.argmin(found.distances[pairs])])]
@@ -160,18 +181,17 @@ class ClearanceGuard:
         self.report = ClearanceReport(
             min_distance_m=nearest,
             nearest_pair=None if i is None or nearest < found.distances[i] else found.pairs[i],
-            binding_pair=binding,
-            factor=_kept(Jt, rates, self.rates), distances=found)
+            binding_pair=binding, factor=_kept(Jt, rates, self.rates), distances=found)
 
     def settle(self, limited: Limited) -> Limited:
-        """The limited rates, scaled down if the acceleration ramp left a row unmet, with the
-        clearance factor added to the scales."""
+        """The limited rates, scaled down if the acceleration ramp left an approach faster
+        than a row allows, with the clearance factor added to the scales."""
         rates, twist, report = limited.rates, limited.twist, self.report
         c = self._rows.scale_into(rates)
         if c < 1.0:
             binding = report.binding_pair
             if binding is None:
-                margin = np.dot(self._rows.A, rates) - self._rows.floor
+                margin = np.dot(self._rows.A, rates) - self._rows.stop
                 binding = report.distances.pairs[int(self._rows.index[int(np.argmin(margin))])]
             rates, twist = rates * c, twist * c
             report = ClearanceReport(report.min_distance_m, report.nearest_pair, binding,
@@ -196,13 +216,15 @@ def _kept(Jt: NDArray[np.float64], before: Vector, after: Vector) -> float:
 
 
 def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.float64]
-             ) -> tuple[Vector, NDArray[np.intp]]:
-    """argmin ½(x − x0)ᵀH(x − x0) subject to A·x ≥ floor (floor ≤ 0), by an active set on
-    the dual: x = x0 + H⁻¹Aᵀλ with λ ≥ 0 on the active rows. Returns x and the active rows.
+             ) -> tuple[Vector, NDArray[np.intp], bool]:
+    """argmin ½(x − x0)ᵀH(x − x0) subject to A·x ≥ floor, by an active set on the dual:
+    x = x0 + H⁻¹Aᵀλ with λ ≥ 0 on the active rows. Returns x, the active rows and whether
+    every row is met.
 
-    Rows join while violated and leave when their multiplier turns negative; if that does
-    not settle within a few rounds (degenerate rows), the last x is scaled into the rows,
-    which is feasible though not closest."""
+    Rows join while violated and leave when their multiplier turns negative. If that does
+    not settle within a few rounds (conflicting or degenerate rows), the last x is scaled
+    toward zero as far as that meets the rows: feasible though not closest when every
+    floor is ≤ 0, and reported as not met otherwise."""
     HiAt = np.linalg.solve(H, A.T)           # (n, m)
     W = np.dot(A, HiAt)                      # (m, m), positive semi-definite
     slack0 = np.dot(A, x0) - floor
@@ -222,14 +244,16 @@ def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.fl
         slack = np.dot(A, x) - floor
         worst = int(np.argmin(slack))
         if slack[worst] >= -_SLACK_M_S:
-            return x, idx
+            return x, idx, True
         if worst in active:
             break
         active.append(worst)
+    if (floor > 0.0).any():
+        return x0, np.array(active, dtype=np.intp), False
     approach = np.dot(A, x)
     over = approach < floor - _SLACK_M_S
     c = 1.0 if not over.any() else max(0.0, float(np.min(floor[over] / approach[over])))
-    return x * c, np.array(active, dtype=np.intp)
+    return x * c, np.array(active, dtype=np.intp), True
 
 
 __all__ = ["CLEARANCE_OVER_ACCELERATION", "ClearanceGuard", "ClearanceLimit", "ClearanceReport", "METRIC_FLOOR", "WATCH_FACTOR"]
