@@ -1,8 +1,10 @@
-"""`jogwire probe ARM [--q v1,v2,…] [--twist vx,vy,vz,wx,wy,wz]`: kinematics at one pose.
+"""`jogwire probe ARM [--q v1,v2,…] [--twist vx,vy,vz,wx,wy,wz] [--cell C]`: kinematics at one pose.
 
 Prints the TCP pose, the geometric Jacobian (base frame, TCP reference point), its singular
 values, Yoshikawa manipulability and condition number, as a table or as one JSON object;
-with --twist also the joint rates one control cycle would send (`runtime.control.solver.solve`).
+with --twist also the joint rates one control cycle would send (`runtime.control.solver.solve`);
+with --cell the distance of every checked pair of the arm in that workcell (docs/CELLS.md),
+and a twist solve then keeps clear of it.
 
 The JSON keys are stable (other tools read them); `probe_report` builds that object, and
 further options add keys to it (e.g. a twist solve adds joint rates and scale factors).
@@ -18,8 +20,11 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
+from ..arm.cell import Cell, load_cell
+from ..arm.distance import Clearances, cell_distances
 from ..arm.kinematics import KinematicsReport, analyse_pose
 from ..arm.model import TASK_AXES, Arm, load_arm
+from ..control.clearance import ClearanceLimit
 from ..control.solver import Solution, parse_axes, solve
 from ..arm.transforms import matrix_to_rpy
 
@@ -39,6 +44,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print one JSON object (SI units whatever --deg says)")
     parser.add_argument("--base", metavar="LINK", help="URDF only: the link the chain starts at")
     parser.add_argument("--tip", metavar="LINK", help="URDF only: the link the chain ends at")
+    parser.add_argument("--cell", metavar="CELL",
+                        help="a shipped workcell name (e.g. bench) or a cell .toml: adds the "
+                             "clearance of every checked pair (docs/CELLS.md)")
     twist = parser.add_argument_group("twist solve (what jogging would send at this pose)")
     twist.add_argument("--twist", metavar="V", nargs="+",
                        help="TCP twist vx,vy,vz,wx,wy,wz in m/s and rad/s (SI whatever --deg "
@@ -106,7 +114,32 @@ def twist_report(solution: Solution) -> dict[str, Any]:
         "scales": dict(solution.scales),
         "binding_limit": solution.binding_limit,
         "saturated_joints": list(solution.saturated_joints),
+        **({} if solution.clearance is None else {"clearance": solution.clearance.as_dict()}),
     }
+
+
+def clearance_report(cell: Cell, found: Clearances) -> dict[str, Any]:
+    """The keys --cell adds: cell (its name) and clearances, every checked pair nearest first,
+    each with pair (arm side, other side), distance_m (negative: overlap), point_arm_m and
+    point_other_m (witness points, base frame) and normal (unit, from the other side toward
+    the arm side)."""
+    return {"cell": cell.name, "clearances": found.as_list()}
+
+
+def format_clearance_report(cell: Cell, found: Clearances, shown: int = 8) -> str:
+    """The nearest pairs as a table (distances in mm)."""
+    d_s, d_i = cell.clearance.safety_distance_m, cell.clearance.influence_distance_m
+    out = [f"Clearance in cell {cell.name} (safety {d_s * 1000:.0f} mm, influence "
+           f"{d_i * 1000:.0f} mm; nearest {min(shown, len(found.pairs))} of "
+           f"{len(found.pairs)} pairs)"]
+    width = max([10] + [len(f"{a} / {b}") for a, b in found.pairs])
+    for item in found.as_list()[:shown]:
+        a, b = item["pair"]
+        d = item["distance_m"]
+        note = "  overlap" if d < 0 else "  inside safety" if d < d_s else \
+            "  inside influence" if d < d_i else ""
+        out.append(f"  {a + ' / ' + b:<{width}}  {d * 1000:9.1f} mm{note}")
+    return "\n".join(out)
 
 
 def format_twist_report(arm: Arm, solution: Solution, *, degrees: bool = False) -> str:
@@ -124,6 +157,8 @@ def format_twist_report(arm: Arm, solution: Solution, *, degrees: bool = False) 
         out.append("  factors    " + ", ".join(slowed))
     if solution.saturated_joints:
         out.append("  at a limit " + ", ".join(solution.saturated_joints))
+    if solution.clearance is not None and solution.clearance.binding_pair is not None:
+        out.append("  clearance  binds on " + " / ".join(solution.clearance.binding_pair))
     out.append(f"  {'joint':<{width}}  {'rate':>10}  unit")
     for j, rate in zip(arm.joints, solution.rates):
         if j.is_revolute:
@@ -206,18 +241,25 @@ def run(args: argparse.Namespace) -> int:
     arm = load_arm(args.arm, base_link=args.base, tip_link=args.tip)
     q = arm.home() if args.q is None else parse_q(args.q, arm, degrees=args.deg)
     report = analyse_pose(arm, q)
+    cell = None if args.cell is None else load_cell(args.cell, arm)
     solution = None
     if args.twist is not None:
         solution = solve(arm, q, parse_twist(args.twist), frame=args.frame,
                          locked=parse_axes(args.lock, field_name="--lock"), reduced=args.reduced,
-                         dt_s=1.0 / args.rate)
+                         dt_s=1.0 / args.rate,
+                         clearance=None if cell is None else ClearanceLimit.of(arm, cell))
+    found = None if cell is None else cell_distances(arm, cell, q)
     if args.json:
         data = probe_report(arm, q, report)
         if solution is not None:
             data.update(twist_report(solution))
+        if cell is not None and found is not None:
+            data.update(clearance_report(cell, found))
         print(json.dumps(data, allow_nan=False))
     else:
         text = format_report(arm, report, degrees=args.deg)
+        if cell is not None and found is not None:
+            text += "\n\n" + format_clearance_report(cell, found)
         if solution is not None:
             text += "\n\n" + format_twist_report(arm, solution, degrees=args.deg)
         print(text)

@@ -125,3 +125,38 @@ def test_subprocess_json() -> None:
     arm = load_arm("elbow6")
     assert out["q"] == arm.home().tolist()
     assert out["jacobian"] == analyse_pose(arm, arm.home()).jacobian.tolist()
+
+
+def test_cell_adds_every_pair_nearest_first(capsys) -> None:
+    out = probe_json(capsys, "elbow6", "--cell", "bench")
+    assert out["cell"] == "bench"
+    pairs = out["clearances"]
+    distances = [p["distance_m"] for p in pairs]
+    assert distances == sorted(distances) and len(pairs) > 20
+    first = pairs[0]
+    assert set(first) == {"pair", "distance_m", "point_arm_m", "point_other_m", "normal"}
+    # the witness points lie `distance` apart along the unit normal (other side → arm side)
+    gap = np.subtract(first["point_arm_m"], first["point_other_m"])
+    np.testing.assert_allclose(gap, first["distance_m"] * np.array(first["normal"]), atol=1e-12)
+    # elbow6 at home: the shoulder link (radius 0.04) starts 0.33 m above the bench top
+    shoulder = next(p for p in pairs if p["pair"] == ["shoulder", "bench"])
+    assert shoulder["distance_m"] == pytest.approx(0.29, abs=1e-12)
+
+
+def test_cell_twist_solve_reports_clearance_and_bad_cells_exit_2(capsys, tmp_path) -> None:
+    # the gripper 53 mm above the bench top, straight down at 0.3 m/s: the velocity damper
+    # (Faverjon & Tournassoud 1987) allows an approach of gain·(d − d_s) = 5·0.023 m/s
+    out = probe_json(capsys, "elbow6", "--cell", "bench", "--twist=0,0,-0.3,0,0,0",
+                     "--q=0,-0.9618,-1.6899,0,0.0325,0")
+    nearest = out["clearances"][0]
+    assert nearest["pair"] == ["gripper", "bench"] and nearest["normal"] == [0.0, 0.0, 1.0]
+    d = nearest["distance_m"]
+    assert out["clearance"]["min_distance_m"] == d
+    assert out["binding_limit"] == "clearance"
+    assert out["clearance"]["binding_pair"] == ["gripper", "bench"]
+    # the gripper turns a little with the wrist: its vz equals the TCP's to about 1 mm/s
+    assert out["achieved_twist"][2] == pytest.approx(-5.0 * (d - 0.03), abs=2e-3)
+    assert main(["probe", "planar3", "--cell", "bench"]) == 2
+    assert "overlaps 'j2' of planar3" in capsys.readouterr().err
+    assert main(["probe", "elbow6", "--cell", "nowhere"]) == 2
+    assert "no cell named 'nowhere'" in capsys.readouterr().err
