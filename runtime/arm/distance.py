@@ -46,6 +46,7 @@ from .cell import Cell
 from .collision import CollisionModel
 from .kinematics import joint_frames
 from .model import Arm
+from .transforms import rotation_aligning_z
 
 Array = NDArray[np.float64]
 
@@ -238,25 +239,44 @@ def segment_plane(p: Array, q: Array, normal: Array, offset: Array
 
 @dataclass(frozen=True, eq=False)
 class _Layout:
-    """Per-pair constants of a model, by kind (capsule pairs, box pairs, plane pairs): table
-    rows, radii, what the cull needs, and the Jacobian masks (all pairs, in model order)."""
+    """Per-pair constants of a model, precomputed so that one evaluation costs few numpy calls.
 
-    cap_a: NDArray[np.intp]
-    cap_b: NDArray[np.intp]
+    The point table of a pose stacks: every arm capsule's start, every arm capsule's end (both
+    placed by the joint frames), the static capsule-like objects' starts and ends, the TCP.
+    `start`/`end` index it per row of the capsule table (arm capsules, static capsules, TCP).
+    Capsule and box pairs share one cull: the distance |max(|Rᵀ(m_a − c)| − h, 0)| of a
+    capsule's centre m_a to a box (centre c, axes R, half extents h) or to another capsule's
+    segment (a box of half extents (0, 0, half-length) along its axis), minus the first
+    capsule's half-length and both radii, is a lower bound of the pair's distance.
+    """
+
+    n_cap: int         # capsule pairs come first, then box pairs, then plane pairs
+    n_box: int
+    frame_of_point: NDArray[np.intp]   # (2k,) joint frame + 1 of each placed point
+    local_points: Array                # (2k, 4) homogeneous, in that frame
+    static_points: Array               # (2s, 3) static starts then ends, base frame
+    start: NDArray[np.intp]            # (k + s + 1,) rows of the point table
+    end: NDArray[np.intp]
+    cull_a: NDArray[np.intp]           # capsule + box pairs: the arm capsule
+    cull_b: NDArray[np.intp]           # capsule pairs: the other capsule (box pairs: -1)
+    cull_centre: Array                 # box centres for box pairs (0 for capsule pairs)
+    cull_frame_b: NDArray[np.intp]     # capsule pairs: joint frame + 1 of the other capsule
+    cull_align_b: Array                # capsule pairs: (3, 3) its axis as z, in that frame
+    cull_box_axes_T: Array             # box pairs: (3, 3) Rᵀ
+    cull_half: Array                   # (p, 3) h
+    cull_reach: Array                  # (p,) the first capsule's half-length, both radii
     cap_r_arm: Array
     cap_r_other: Array
-    cap_reach: Array   # half-lengths and radii of both: |m_a − m_b| − reach ≤ distance
-    box_a: NDArray[np.intp]
     box_r: Array
-    box_reach: Array   # half-length and radius of the capsule
     box_pose: Array
-    box_R_T: Array     # (p, 3, 3) box axes transposed
-    box_centre: Array
     box_half: Array
     plane_a: NDArray[np.intp]
     plane_r: Array
     plane_normal: Array
     plane_offset: Array
+    plane_normals_T: Array             # (3, h) every plane's normal, once
+    plane_start_flat: NDArray[np.intp]  # into (point table × planes), per plane pair
+    plane_end_flat: NDArray[np.intp]
     mask_arm: Array    # (p, n) 1 where joint j moves the arm side's body
     mask_other: Array  # (p, n) the same for the other side (0 for static objects)
 
@@ -264,27 +284,47 @@ class _Layout:
 @lru_cache(maxsize=32)
 def _layout(model: CollisionModel) -> _Layout:
     caps = model.capsules
-    n = model.arm.n
-    # The capsule table: arm capsules, capsule-like objects (static), the TCP point (a
-    # capsule of no length and no radius on the last joint frame).
-    frame = np.concatenate((caps.frame, np.full(len(model.static_radius), -1), [n - 1]))
+    n, k, s = model.arm.n, len(caps.names), len(model.static_radius)
+    frame = np.concatenate((caps.frame, np.full(s, -1), [n - 1]))
     radius = np.concatenate((caps.radius, model.static_radius, [0.0]))
     half_length = 0.5 * np.concatenate((caps.lengths, np.linalg.norm(
         model.static_end - model.static_start, axis=1), [0.0]))
+    reach = half_length + radius
+    table_start = np.concatenate((caps.start, model.static_start, [np.zeros(3)]))
+    table_end = np.concatenate((caps.end, model.static_end, [np.zeros(3)]))
     cp, bp, hp = model.capsule_pairs, model.box_pairs, model.plane_pairs
     arm_frames = np.concatenate((frame[cp[:, 0]], frame[bp[:, 0]], frame[hp[:, 0]]))
     other_frames = np.concatenate((frame[cp[:, 1]], np.full(len(bp) + len(hp), -1)))
     joints = np.arange(n)
     box_pose = model.box_pose[bp[:, 1]]
-    reach = half_length + radius
+    local = np.concatenate((caps.start, caps.end))
+    statics = 2 * k + np.arange(s)
+    table_start_row = np.concatenate((np.arange(k), statics, [2 * k + 2 * s]))
+    table_end_row = np.concatenate((k + np.arange(k), statics + s, [2 * k + 2 * s]))
     return _Layout(
-        cap_a=cp[:, 0], cap_b=cp[:, 1], cap_r_arm=radius[cp[:, 0]], cap_r_other=radius[cp[:, 1]],
-        cap_reach=reach[cp[:, 0]] + reach[cp[:, 1]],
-        box_a=bp[:, 0], box_r=radius[bp[:, 0]], box_reach=reach[bp[:, 0]], box_pose=box_pose,
-        box_R_T=np.ascontiguousarray(box_pose[:, :3, :3].transpose(0, 2, 1)),
-        box_centre=box_pose[:, :3, 3].copy(), box_half=model.box_half[bp[:, 1]],
+        n_cap=len(cp), n_box=len(bp),
+        frame_of_point=np.concatenate((caps.frame, caps.frame)) + 1,
+        local_points=np.concatenate((local, np.ones((2 * k, 1))), axis=1),
+        static_points=np.concatenate((model.static_start, model.static_end)),
+        start=table_start_row, end=table_end_row,
+        cull_a=np.concatenate((cp[:, 0], bp[:, 0])), cull_b=cp[:, 1],
+        cull_centre=np.concatenate((np.zeros((len(cp), 3)), box_pose[:, :3, 3])),
+        cull_frame_b=frame[cp[:, 1]] + 1,
+        cull_align_b=np.array([rotation_aligning_z(table_end[b] - table_start[b])
+                               if half_length[b] > 0.0 else np.eye(3)
+                               for b in cp[:, 1]]).reshape(-1, 3, 3),
+        cull_box_axes_T=box_pose[:, :3, :3].transpose(0, 2, 1).copy(),
+        cull_half=np.concatenate((np.stack((np.zeros(len(cp)), np.zeros(len(cp)),
+                                            half_length[cp[:, 1]]), axis=1).reshape(-1, 3),
+                                  model.box_half[bp[:, 1]])),
+        cull_reach=np.concatenate((reach[cp[:, 0]] + radius[cp[:, 1]], reach[bp[:, 0]])),
+        cap_r_arm=radius[cp[:, 0]], cap_r_other=radius[cp[:, 1]], box_r=radius[bp[:, 0]],
+        box_pose=box_pose, box_half=model.box_half[bp[:, 1]],
         plane_a=hp[:, 0], plane_r=radius[hp[:, 0]], plane_normal=model.plane_normal[hp[:, 1]],
         plane_offset=model.plane_offset[hp[:, 1]],
+        plane_normals_T=model.plane_normal.T.copy(),
+        plane_start_flat=table_start_row[hp[:, 0]] * len(model.plane_offset) + hp[:, 1],
+        plane_end_flat=table_end_row[hp[:, 0]] * len(model.plane_offset) + hp[:, 1],
         mask_arm=(joints[None, :] <= arm_frames[:, None]).astype(float),
         mask_other=(joints[None, :] <= other_frames[:, None]).astype(float))
 
@@ -294,36 +334,40 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
     """The pairs of `model` at the pose given by `kinematics.joint_frames` (frames, T_tcp).
 
     With `within_m`, only pairs that may be closer than that are measured: a cheap lower
-    bound of every pair's distance (centre distance minus half-lengths and radii; for a box,
-    the capsule centre's distance to the box) culls the rest, and `beyond_m` is the smallest
-    bound among those left out (a distance never overstated). The control cycle measures
-    exactly what the damper needs this way; probe and preflight measure every pair.
+    bound of every pair's distance (see `_Layout`) culls the rest, and `beyond_m` is the
+    smallest bound among those left out (a distance never overstated). The control cycle
+    measures exactly what the damper needs this way; probe and preflight measure every pair.
     """
     lay = _layout(model)
-    start, end = model.capsules.placed(frames)
-    tcp = T_tcp[None, :3, 3]
-    start = np.concatenate((start, model.static_start, tcp))
-    end = np.concatenate((end, model.static_end, tcp))
-    ca, cb, ba, ha = lay.cap_a, lay.cap_b, lay.box_a, lay.plane_a
-    # Half-spaces are as cheap as their bound: measured exactly, every time.
-    gap3, end3, plane3 = segment_plane(start[ha], end[ha], lay.plane_normal, lay.plane_offset)
-    dist3 = gap3 - lay.plane_r
+    frames_0 = np.concatenate((_EYE4, frames))  # index 0: the base frame (static parts)
+    placed = np.einsum("kij,kj->ki", frames_0[lay.frame_of_point, :3], lay.local_points)
+    points = np.concatenate((placed, lay.static_points, T_tcp[None, :3, 3]))
+    start, end = points[lay.start], points[lay.end]
+    # Half-spaces are as cheap as a bound: every point against every plane in one product.
+    heights = np.dot(points, lay.plane_normals_T)
+    dist3 = np.minimum(heights.take(lay.plane_start_flat), heights.take(lay.plane_end_flat)) \
+        - lay.plane_offset - lay.plane_r
+    ha = lay.plane_a
+    n_cap = lay.n_cap
     if within_m < math.inf:
         mid = 0.5 * (start + end)
-        gap_mid = mid[ca] - mid[cb]
-        bound1 = np.sqrt(_dot(gap_mid, gap_mid)) - lay.cap_reach
-        local = np.einsum("pij,pj->pi", lay.box_R_T, mid[ba] - lay.box_centre)
-        outside = np.maximum(np.abs(local) - lay.box_half, 0.0)
-        bound2 = np.sqrt(_dot(outside, outside)) - lay.box_reach
-        keep1, keep2, keep3 = bound1 < within_m, bound2 < within_m, dist3 < within_m
-        beyond = np.concatenate((bound1[~keep1], bound2[~keep2], dist3[~keep3]))
-        beyond_m = float(beyond.min()) if len(beyond) else math.inf
-        ca, cb, ba, ha = ca[keep1], cb[keep1], ba[keep2], ha[keep3]
-        k1, k2 = np.flatnonzero(keep1), np.flatnonzero(keep2)
-        k3 = np.flatnonzero(keep3)
+        centre = lay.cull_centre.copy()
+        centre[:n_cap] = mid[lay.cull_b]
+        axes = np.einsum("pij,pjk->pik", frames_0[lay.cull_frame_b, :3, :3], lay.cull_align_b)
+        axes_T = np.concatenate((axes.transpose(0, 2, 1), lay.cull_box_axes_T))
+        local = np.einsum("pij,pj->pi", axes_T, mid[lay.cull_a] - centre)
+        outside = np.maximum(np.abs(local) - lay.cull_half, 0.0)
+        bound = np.sqrt(np.einsum("ij,ij->i", outside, outside)) - lay.cull_reach
+        keep, keep3 = bound < within_m, dist3 < within_m
+        beyond = min(bound[~keep].min(initial=math.inf), dist3[~keep3].min(initial=math.inf))
+        kept = np.flatnonzero(keep)
+        k1, k2, k3 = kept[kept < n_cap], kept[kept >= n_cap] - n_cap, np.flatnonzero(keep3)
     else:
-        beyond_m = math.inf
-        k1, k2, k3 = (np.arange(len(ca)), np.arange(len(ba)), np.arange(len(ha)))
+        beyond = math.inf
+        k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(ha))
+    if not (len(k1) or len(k2) or len(k3)):
+        return _nothing_near(model.arm.n, beyond)
+    ca, cb, ba, ha = lay.cull_a[k1], lay.cull_b[k1], lay.cull_a[n_cap + k2], ha[k3]
     # Each kernel costs tens of numpy calls whatever its size: skip the empty ones.
     dist1, pa1, pb1, n1 = capsule_capsule(start[ca], end[ca], lay.cap_r_arm[k1], start[cb],
                                           end[cb], lay.cap_r_other[k1]) if len(k1) else _NONE
@@ -331,19 +375,30 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
                                        lay.box_half[k2]) if len(k2) else _NONE
     r2 = lay.box_r[k2]
     n3, r3 = lay.plane_normal[k3], lay.plane_r[k3]
-    index = np.concatenate((k1, k2 + len(lay.cap_a), k3 + len(lay.cap_a) + len(lay.box_a)))
+    gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, lay.plane_offset[k3])
+    index = np.concatenate((k1, k2 + n_cap, k3 + n_cap + lay.n_box))
     normals = np.concatenate((n1, n2, n3))
-    points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3[k3] - r3[:, None] * n3))
-    points_other = np.concatenate((pb1, box2, plane3[k3]))
+    points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3 - r3[:, None] * n3))
+    points_other = np.concatenate((pb1, box2, plane3))
     rows = _rate_rows(model.arm, frames, points_arm, normals) * lay.mask_arm[index]
     if len(k1):
         other = lay.mask_other[k1]
         rows[:len(k1)] -= _rate_rows(model.arm, frames, points_other[:len(k1)], n1) * other
     names = model.pair_names
     return Clearances(pairs=tuple(names[i] for i in index.tolist()),
-                      distances=np.concatenate((dist1, gap2 - r2, dist3[k3])),
+                      distances=np.concatenate((dist1, gap2 - r2, gap3 - r3)),
                       points_arm=points_arm, points_other=points_other, normals=normals,
-                      rate_rows=rows, index=index, beyond_m=beyond_m)
+                      rate_rows=rows, index=index, beyond_m=beyond)
+
+
+_EYE4 = np.eye(4)[None]
+
+
+def _nothing_near(n: int, beyond_m: float) -> Clearances:
+    empty = np.zeros((0, 3))
+    return Clearances(pairs=(), distances=np.zeros(0), points_arm=empty, points_other=empty,
+                      normals=empty, rate_rows=np.zeros((0, n)), index=np.zeros(0, np.intp),
+                      beyond_m=beyond_m)
 
 
 def _rate_rows(arm: Arm, frames: Array, points: Array, normals: Array) -> Array:

@@ -61,10 +61,6 @@ METRIC_FLOOR = 1e-3
 """μ_min: the smallest weight of plain joint motion in H (same units as JᵀJ). It keeps H
 invertible for a redundant arm and makes the null space cheap, not free."""
 
-WATCH_FACTOR = 2.0
-"""Pairs are measured exactly while they may be closer than WATCH_FACTOR·d_i; beyond that
-the report carries a lower bound of the distance and no pair (runtime.arm.distance)."""
-
 CLEARANCE_OVER_ACCELERATION = "clearance_over_acceleration"
 """Named in the solution's conflicts (as limits.CONFLICTS) when the rates had to drop faster
 than max_accel to keep a pair from approaching faster than the damper allows."""
@@ -91,8 +87,8 @@ class ClearanceReport:
     """Clearance at one solve.
 
     min_distance_m  the smallest distance over all pairs (m; negative: overlap); exact
-                    within WATCH_FACTOR·d_i, a lower bound beyond
-    nearest_pair    the pair at that distance (None beyond WATCH_FACTOR·d_i)
+                    inside the influence distance d_i, a lower bound beyond it
+    nearest_pair    the pair at that distance (None beyond d_i)
     binding_pair    the pair whose row bound the motion this cycle, or None
     factor          share of the commanded task motion kept (1.0: clearance did not bind)
     distances       every pair (runtime.arm.distance.Clearances)
@@ -123,7 +119,7 @@ class _Rows:
     def __init__(self, limit: ClearanceLimit, found: Clearances) -> None:
         s = limit.settings
         near = found.distances < s.influence_distance_m
-        if near.any():
+        if len(near):
             near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
         self.index = np.flatnonzero(near)
         self.A = found.rate_rows[self.index]
@@ -158,8 +154,9 @@ class ClearanceGuard:
     def __init__(self, limit: ClearanceLimit, frames: NDArray[np.float64],
                  T_tcp: NDArray[np.float64], Jt: NDArray[np.float64], damping: float,
                  rates: Vector) -> None:
-        found = clearances(limit.model, frames, T_tcp,
-                           WATCH_FACTOR * limit.settings.influence_distance_m)
+        # Only pairs within d_i can bind: the rest are culled by a lower bound of their
+        # distance, which then stands in for the nearest distance (never overstated).
+        found = clearances(limit.model, frames, T_tcp, limit.settings.influence_distance_m)
         self._rows = rows = _Rows(limit, found)
         self._Jt, self._commanded = Jt, rates
         binding: tuple[str, str] | None = None
@@ -256,4 +253,5 @@ def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.fl
     return x * c, np.array(active, dtype=np.intp), True
 
 
-__all__ = ["CLEARANCE_OVER_ACCELERATION", "ClearanceGuard", "ClearanceLimit", "ClearanceReport", "METRIC_FLOOR", "WATCH_FACTOR"]
+__all__ = ["CLEARANCE_OVER_ACCELERATION", "ClearanceGuard", "ClearanceLimit", "ClearanceReport",
+           "METRIC_FLOOR"]

@@ -188,3 +188,26 @@ def test_tcp_outside_keep_in_and_unknown_excluded_name(tmp_path: Path) -> None:
     path = write_cell(tmp_path, 'excluded_pairs = [["shoulder", "tabel"]]\n')
     with pytest.raises(ConfigError, match="no link, tool capsule or object named 'tabel'"):
         load_cell(path, arm)
+
+
+def test_cull_keeps_every_pair_within_reach_and_bounds_the_rest(arm_in_bench) -> None:
+    """The control cycle's cull (runtime.arm.distance.clearances with within_m) measures
+    the same as the full pass for every pair it keeps, keeps every pair closer than
+    within_m, and reports a lower bound for the rest."""
+    from runtime.arm.distance import clearances, collision_model
+    from runtime.arm.kinematics import joint_frames
+    arm, cell = arm_in_bench
+    model = collision_model(arm, cell)
+    rng = np.random.default_rng(9)
+    for _ in range(40):
+        q = arm.home() + rng.uniform(-1.0, 1.0, arm.n)
+        frames, T = joint_frames(arm, q)
+        full = clearances(model, frames, T)
+        part = clearances(model, frames, T, within_m=0.15)
+        # the same arithmetic on fewer rows: equal to round-off
+        np.testing.assert_allclose(full.distances[part.index], part.distances, atol=1e-15)
+        np.testing.assert_allclose(full.rate_rows[part.index], part.rate_rows, atol=1e-15)
+        left_out = np.setdiff1d(np.arange(len(full.pairs)), part.index)
+        assert (full.distances[left_out] >= 0.15).all()
+        if len(left_out):
+            assert part.beyond_m <= full.distances[left_out].min() + 1e-12
