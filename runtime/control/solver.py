@@ -395,7 +395,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
 
     guard = None
     if clearance is not None:  # the velocity damper, around the other limits
-        guard = ClearanceGuard(clearance, frames, T, Jt, damping, rates)
+        guard = ClearanceGuard(clearance, q, Jt, damping, rates)
         rates = guard.rates
     limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
                            clear=clear)
