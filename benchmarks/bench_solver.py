@@ -31,7 +31,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runtime.arm.kinematics import geometric_jacobian, jacobian_from_frames, joint_frames  # noqa: E402
+from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian  # noqa: E402
 from runtime.control.limits import JointBounds, clear_of_limits  # noqa: E402
 from runtime.arm.model import Arm, load_arm  # noqa: E402
 from runtime.control.solver import _eigvalsh, _solve, solve  # noqa: E402
@@ -104,7 +104,7 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
         t1 = clock()
         reference(q, v)
         t2 = clock()
-        jacobian_from_frames(arm, *joint_frames(arm, q))
+        pose_and_jacobian(arm, q)
         t3 = clock()
         ours[k], theirs[k], kinematics[k] = t1 - t0, t2 - t1, t3 - t2
         binding[str(sol.binding_limit)] = binding.get(str(sol.binding_limit), 0) + 1

@@ -22,6 +22,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "replay": ("runtime.commands.replay", "send a recorded session to a target, or re-run it through today's pipeline"),
     "sim": ("runtime.commands.sim", "run the PyBullet simulated arm (the arm side of the wire)"),
     "bridge": ("runtime.commands.bridge", "run the hardware bridge stub around a Driver"),
+    "pads": ("runtime.commands.pads", "the gamepads connected; check one against a pad file live, or teach jogwire a new one"),
     "keys": ("runtime.commands.keys", "make CURVE key pairs for a link off this machine"),
     "relay": ("runtime.commands.relay", "a perturbing relay on the arm link: delay, loss, garbage, stalls"),
 }

@@ -54,3 +54,7 @@ class TransportError(JogwireError):
 
 class LogError(JogwireError):
     """A session log could not be read (fully)."""
+
+
+class DeviceError(JogwireError):
+    """An input device did not give what was needed (no pad plugged in, a step timed out)."""

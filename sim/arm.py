@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 import pybullet as pb
 
+from runtime import palette
 from runtime.errors import ConfigError, JogwireError
 from runtime.arm.cell import load_cell
 from runtime.arm.model import Arm, load_arm
@@ -46,6 +47,9 @@ GRAVITY_M_S2 = 9.81
 DEFAULT_EFFORT = {"revolute": 500.0, "prismatic": 2000.0}   # N·m, N
 TCP_LINK = "tcp"
 OBJECTS_IN_VIEW_M = 0.4     # a snapshot shows workcell objects this far beyond the arm
+# The PyBullet window's ground in jogwire's palette (options its GUI connect takes).
+_GUI_BACKGROUND = " ".join(f"--background_color_{c}={v:.3f}" for c, v in
+                           zip(("red", "green", "blue"), palette.unit(palette.GROUND)))
 
 log = logging.getLogger("jogwire.arm")
 
@@ -67,7 +71,8 @@ class SimulatedArm:
         self.arm = arm
         self.cell = cell
         self.step_s = float(step_s)
-        self.client = pb.connect(pb.GUI if gui else pb.DIRECT)
+        self.client = pb.connect(pb.GUI, options=_GUI_BACKGROUND) if gui else \
+            pb.connect(pb.DIRECT)
         if self.client < 0:
             raise ConfigError("PyBullet could not open a " + ("GUI window" if gui else
                                                               "DIRECT session"))
@@ -182,7 +187,8 @@ class SimulatedArm:
         return T
 
     def render(self, width: int = 800, height: int = 600) -> np.ndarray:
-        """The arm in its current pose as an RGBA image (height, width, 4), TinyRenderer."""
+        """The arm in its current pose as an RGBA image (height, width, 4), TinyRenderer,
+        on the palette's ground (every pixel no body covers, from the segmentation mask)."""
         c = self.client
         boxes = [pb.getAABB(self.body, i, physicsClientId=c)
                  for i in range(-1, pb.getNumJoints(self.body, physicsClientId=c))]
@@ -199,13 +205,15 @@ class SimulatedArm:
                 pitch=-20.0, roll=0.0, upAxisIndex=2)
             proj = pb.computeProjectionMatrixFOV(fov=fov_deg, aspect=width / height,
                                                  nearVal=0.01, farVal=10.0 * distance)
-            _, _, rgba, _, _ = pb.getCameraImage(
+            _, _, rgba, _, seg = pb.getCameraImage(
                 width, height, view, proj, renderer=pb.ER_TINY_RENDERER,
                 lightDirection=[1.0, -0.6, 2.0], shadow=1, physicsClientId=c)
         finally:
             for body in props:
                 pb.removeBody(body, physicsClientId=c)
-        return np.asarray(rgba, dtype=np.uint8).reshape(height, width, 4)
+        image = np.array(rgba, dtype=np.uint8).reshape(height, width, 4)
+        image[np.asarray(seg).reshape(height, width) < 0] = (*palette.GROUND, 255)
+        return image
 
     def _with_objects(self, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """The view's bounds grown to the workcell's objects near the arm (an object's
@@ -221,17 +229,20 @@ class SimulatedArm:
         return lo, hi
 
     def _add_props(self, size: float) -> list[int]:
-        """Visual-only floor plate at z = 0 and, for a raised base, a column under it."""
+        """Visual-only floor plate at z = 0 and, for a raised base, a column under it (the
+        workcell's, so in the palette's cell colours)."""
         c = self.client
         base = self.arm.base[:3, 3]
         plate = pb.createVisualShape(pb.GEOM_BOX, halfExtents=[0.8 * size, 0.8 * size, 0.002],
-                                     rgbaColor=[0.80, 0.82, 0.85, 1.0], physicsClientId=c)
+                                     rgbaColor=palette.unit(palette.CELL_FLOOR),
+                                     physicsClientId=c)
         bodies = [pb.createMultiBody(baseMass=0.0, baseVisualShapeIndex=plate,
                                      basePosition=[float(base[0]), float(base[1]), -0.002],
                                      physicsClientId=c)]
         if base[2] > 0.05:
             column = pb.createVisualShape(pb.GEOM_CYLINDER, radius=0.06, length=float(base[2]),
-                                          rgbaColor=[0.35, 0.37, 0.40, 1.0], physicsClientId=c)
+                                          rgbaColor=palette.unit(palette.CELL_OBJECT),
+                                          physicsClientId=c)
             bodies.append(pb.createMultiBody(
                 baseMass=0.0, baseVisualShapeIndex=column,
                 basePosition=[float(base[0]), float(base[1]), float(base[2]) / 2.0],

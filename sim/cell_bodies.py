@@ -22,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 import pybullet as pb
 
+from runtime import palette
 from runtime.arm.cell import Cell
 from runtime.arm.distance import collision_model
 from runtime.arm.model import Arm
@@ -32,10 +33,9 @@ from .urdf import matrix_to_rpy_exact
 
 # A half-space is infinite for collision; it is drawn as a square plate this wide (m).
 HALFSPACE_DRAWN_M = 3.0
-# Workcell objects in snapshots: the one place to take the shared palette's CELL_OBJECT and
-# CELL_FLOOR (runtime/palette.py) once it is merged with this.
-OBJECT_RGBA = (0.55, 0.60, 0.70, 1.0)
-HALFSPACE_RGBA = (0.80, 0.82, 0.86, 1.0)    # floors and walls: lighter, behind the objects
+# Workcell objects in jogwire's palette: objects, and floors and walls (half-spaces).
+OBJECT_RGBA = palette.unit(palette.CELL_OBJECT)
+HALFSPACE_RGBA = palette.unit(palette.CELL_FLOOR)
 
 
 def pose_of(T: np.ndarray) -> tuple[list[float], list[float]]:

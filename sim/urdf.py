@@ -13,10 +13,13 @@ and links have different names, so a library that keeps joints and links in one 
 of frames (pin does) finds the `tcp` frame by its name alone.
 
 The geometry is only a sketch for the viewer and for collisions: a cylinder from each
-link's frame to the next joint's origin and a short housing around each joint axis. Masses
-follow link length (a hollow aluminium tube of ~2.5 kg/m plus a 0.4 kg joint housing, our
-round numbers), with solid-cylinder inertias about the centre of mass. The `flange` and
-`tcp` links have a tiny inertial so PyBullet does not give them its 1 kg default.
+link's frame to the next joint's origin and a short housing around each joint axis; the
+tool (a plate on the flange, a rod to the TCP and a ball at the TCP) is drawn but has no
+collision shape. Colours are jogwire's palette (`runtime.palette`): light links, darker
+housings, the accent for the tool. Masses follow link length (a hollow aluminium tube of
+~2.5 kg/m plus a 0.4 kg joint housing, our round numbers), with solid-cylinder inertias
+about the centre of mass. The `flange` and `tcp` links have a tiny inertial so PyBullet
+does not give them its 1 kg default.
 """
 
 from __future__ import annotations
@@ -28,6 +31,7 @@ from xml.sax.saxutils import quoteattr
 
 import numpy as np
 
+from runtime import palette
 from runtime.arm.model import Arm
 from runtime.arm.transforms import Mat4, rotation_aligning_z
 
@@ -39,6 +43,10 @@ LINK_MASS_PER_M_KG = 2.5
 HOUSING_MASS_KG = 0.4
 HOUSING_LENGTH_M = 0.08
 TINY_MASS_KG = 1e-3  # flange and tcp: present, but negligible for dynamics
+TOOL_RADIUS_M = 0.012
+TOOL_PLATE_M = 0.012     # thickness of the tool plate on the flange
+TCP_BALL_RADIUS_M = 0.018
+MATERIALS = {"tube": palette.ARM_LINK, "housing": palette.ARM_HOUSING, "tool": palette.TOOL}
 
 
 def matrix_to_rpy_exact(R: np.ndarray) -> tuple[float, float, float]:
@@ -104,34 +112,54 @@ def _solid_geometry(solid: "Solid") -> str:
 
 
 def _part_link(name: str, solid: "Solid", drawn: bool) -> list[str]:
-    """A massless-ish link holding one collision shape of the arm's collision model."""
-    i = TINY_MASS_KG * 1e-4
+    """A link holding one collision shape of the arm's collision model (drawn: the tool's)."""
     geometry = _solid_geometry(solid)
     body = _shape("collision", _origin_tag(solid.pose), geometry, "")
     if drawn:
         body += _shape("visual", _origin_tag(solid.pose), geometry, "tool")
-    return [f'  <link name={quoteattr(name)}>', *body,
+    return _tool_link(name, body)
+
+
+def _material(name: str, rgb: palette.RGB) -> str:
+    rgba = " ".join(f"{v:.4f}" for v in palette.unit(rgb))
+    return f'  <material name="{name}"><color rgba="{rgba}"/></material>'
+
+
+def _tool_link(name: str, visual: list[str]) -> list[str]:
+    """Flange or tcp: drawn, no collision shape, and a tiny but present inertial (so
+    PyBullet does not give it its 1 kg default)."""
+    i = TINY_MASS_KG * 1e-4
+    return [f'  <link name="{name}">', *visual,
             *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3), i, i, i), "  </link>"]
 
 
-def _link(name: str, offset: np.ndarray | None) -> list[str]:
-    """A link whose next joint sits at `offset` (m, link frame); None for flange and tcp."""
-    if offset is None:  # tiny but present: no 1 kg default mass in PyBullet
-        i = TINY_MASS_KG * 1e-4
-        return [f'  <link name="{name}">', *_inertial(TINY_MASS_KG, np.zeros(3), np.eye(3),
-                                                      i, i, i), "  </link>"]
+def _tool(offset: np.ndarray) -> list[str]:
+    """The tool: a plate on the flange and a rod to the TCP at `offset` (m, flange frame)."""
+    plate = (f'<cylinder radius="{_num(LINK_RADIUS_M * 1.2)}" '
+             f'length="{_num(TOOL_PLATE_M)}"/>')
+    shapes = _shape("visual", _pose_tag(np.array([0.0, 0.0, TOOL_PLATE_M / 2.0]), np.eye(3)),
+                    plate, "tool")
+    length = float(np.linalg.norm(offset))
+    if length > 1e-6:
+        rod = f'<cylinder radius="{_num(TOOL_RADIUS_M)}" length="{_num(length)}"/>'
+        shapes += _shape("visual", _pose_tag(offset / 2.0, rotation_aligning_z(offset / length)),
+                         rod, "tool")
+    return shapes
+
+
+def _link(name: str, offset: np.ndarray) -> list[str]:
+    """A link whose next joint sits at `offset` (m, link frame)."""
     body: list[str] = []
-    sketch = ("visual", "collision")
     housing = (f'<cylinder radius="{_num(LINK_RADIUS_M * 1.2)}" '
                f'length="{_num(HOUSING_LENGTH_M)}"/>')
-    for kind in sketch:
+    for kind in ("visual", "collision"):
         body += _shape(kind, _origin_tag(np.eye(4)), housing, "housing")
     length = float(np.linalg.norm(offset))
     mass, com, R = HOUSING_MASS_KG, np.zeros(3), np.eye(3)
     if length > 1e-6:
         R = rotation_aligning_z(offset / length)
         tube = f'<cylinder radius="{_num(LINK_RADIUS_M)}" length="{_num(length)}"/>'
-        for kind in sketch:
+        for kind in ("visual", "collision"):
             body += _shape(kind, _pose_tag(offset / 2.0, R), tube, "tube")
         tube_mass = LINK_MASS_PER_M_KG * length
         # The housing sits at the link origin, the tube's centre halfway to the next joint.
@@ -165,13 +193,10 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None,
     its shape in the parent's frame, drawn?): each part is a link of its own on a fixed
     joint, so a contact names the very part it touched (the simulator decides which
     shapes may collide)."""
-
     out = ['<?xml version="1.0"?>',
            "<!-- written by jogwire from an arm model; geometry and inertias are a sketch -->",
            f"<robot name={quoteattr(name or arm.name)}>",
-           '  <material name="housing"><color rgba="0.25 0.27 0.3 1"/></material>',
-           '  <material name="tube"><color rgba="0.85 0.55 0.15 1"/></material>',
-           '  <material name="tool"><color rgba="0.2 0.45 0.75 1"/></material>']
+           *(_material(m, rgb) for m, rgb in MATERIALS.items())]
     taken = set(arm.joint_names)
     if not np.array_equal(arm.base, np.eye(4)):
         out += [*_link("world", arm.base[:3, 3]),  # a pedestal up to the arm's base
@@ -191,7 +216,11 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None,
         out += _joint(joint.name, kind, links[i], links[i + 1], joint.origin,
                       ('<axis xyz="0 0 1"/>',
                        f'<limit {limit}effort="{effort}" velocity="{_num(joint.max_speed)}"/>'))
-    out += _link("flange", None) + _link("tcp", None)
+    # Without a tool offset the ball sits on the last tube's end: make it stand out of it.
+    radius = TCP_BALL_RADIUS_M if np.any(arm.tool[:3, 3]) else 1.3 * LINK_RADIUS_M
+    ball = f'<sphere radius="{_num(radius)}"/>'
+    out += _tool_link("flange", _tool(arm.tool[:3, 3]))
+    out += _tool_link("tcp", _shape("visual", _origin_tag(np.eye(4)), ball, "tool"))
     out += _joint(_unique("flange_joint", taken), "fixed", links[-1], "flange", arm.flange)
     out += _joint(_unique("tcp_joint", taken), "fixed", "flange", "tcp", arm.tool)
     for parent, link, solid, drawn in parts or ():

@@ -18,3 +18,28 @@ def headless_sdl() -> None:
     """No window and no sound device in tests, unless the environment asks otherwise."""
     for key, value in HEADLESS_ENV.items():
         os.environ.setdefault(key, value)
+
+
+@pytest.fixture
+def virtual_pads():
+    """Make virtual pads in this process (tests/virtual_pad.py): `virtual_pads(**kwargs)`
+    returns a plugged-in `VirtualPad`. All are unplugged and pygame's event queue cleared at
+    the end, so no device outlives its test."""
+    from virtual_pad import VirtualPad
+
+    from runtime.operator.inputs.pygame_init import init_events, pygame
+    init_events()
+    pygame.event.clear()
+    made: list[VirtualPad] = []
+
+    def make(**kwargs) -> VirtualPad:
+        pad = VirtualPad(**kwargs)
+        pad.plug()
+        made.append(pad)
+        return pad
+
+    yield make
+    for pad in made:
+        pad.unplug()
+    init_events()              # (a window closed in the test quits SDL's video and events)
+    pygame.event.clear()

@@ -15,10 +15,10 @@ The folders and what each may import from the rest of ``runtime``:
 - ``commands`` → anything except other commands
 - ``sim``      → ``runtime.arm`` and ``runtime.link`` only
 
-``errors`` and ``tomlsource`` are shared by all. Pure modules (the arm, the control cycle
-but its loop, the wire protocol, the relay's schedule, preflight's judgement) import no
-device, socket, clock, thread, process or plotting library, directly or through another
-runtime module.
+``errors``, ``tomlsource`` and ``palette`` are shared by all. Pure modules (the arm, the
+control cycle but its loop, the wire protocol, the relay's schedule, preflight's judgement,
+the palette) import no device, socket, clock, thread, process or plotting library, directly
+or through another runtime module.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 
-SHARED = {"runtime", "runtime.errors", "runtime.tomlsource"}
+SHARED = {"runtime", "runtime.errors", "runtime.tomlsource", "runtime.palette"}
 ALLOWED = {
     "arm": {"arm"},
     "control": {"arm", "control"},
@@ -39,8 +39,9 @@ ALLOWED = {
     "sessions": {"arm", "control", "link", "operator", "sessions"},
 }
 PURE_FOLDERS = ["runtime/arm", "runtime/control"]
-PURE_MODULES = ["runtime/errors.py", "runtime/tomlsource.py", "runtime/link/protocol.py",
-                "runtime/link/relay.py", "runtime/sessions/preflight.py"]
+PURE_MODULES = ["runtime/errors.py", "runtime/tomlsource.py", "runtime/palette.py",
+                "runtime/link/protocol.py", "runtime/link/relay.py",
+                "runtime/sessions/preflight.py"]
 NOT_PURE = {"runtime/control/loop.py"}
 FORBIDDEN_IN_PURE = {"zmq", "pygame", "pybullet", "matplotlib", "time", "threading", "socket",
                      "subprocess", "sim", "multiprocessing", "asyncio"}

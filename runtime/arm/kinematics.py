@@ -11,6 +11,11 @@ Rows are (vx, vy, vz, wx, wy, wz) in m/s and rad/s per unit joint rate.
 
 Example: planar 2R, a1 = 0.4 m, a2 = 0.3 m, q = (30°, 60°) →
     Jv(xy) = [[−0.5, −0.3], [0.34641, 0]], det = a1·a2·sin q2 = 0.103923.
+
+The hot path (`pose_and_jacobian`, every control cycle) multiplies 7×7 matrices that carry
+each frame's Plücker moment, with revolute joints in pairs (runtime/arm/chain_terms.py), so
+it makes about 25 numpy calls for seven joints; `jacobian_from_frames` computes the same
+Jacobian from any given frames with the cross products above.
 """
 
 from __future__ import annotations
@@ -20,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from .chain_terms import ChainTerms
 from .model import Arm
 from .transforms import Mat4
 
@@ -42,26 +48,46 @@ def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     return L
 
 
+def _chain(c: ChainTerms, q: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Every frame and the TCP as 7×7 augmented matrices, transposed and stacked: rows
+    7i … 7i + 6 are frame i's Xᵀ, the last seven the TCP's (runtime/arm/chain_terms.py).
+
+    About one microsecond per numpy call whatever the array size, so it makes few: one sine
+    for every joint's terms, one matrix product for every pair's local products, then one
+    product per pair along the chain.
+    """
+    s = np.sin(c.angles.dot(q) + c.phases)
+    if c.with_q:
+        s = np.concatenate((s, q))
+    local = c.matrix.dot(s).reshape(-1, 7)
+    chain = local.copy()                      # the first group's products are already final
+    for rows, before in c.steps:              # the chain product is sequential by nature
+        local[rows].dot(chain[before], out=chain[rows])
+    return chain
+
+
 def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
     """All joint frames in the base frame, (n, 4, 4), after each joint's motion, and T_tcp.
 
-    Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3].
-
-    This is the hot path (every control cycle), written to keep the count of numpy calls
-    low, since each costs about a microsecond whatever the array size: all link transforms
-    come from one matrix product with `arm.motion_terms` (base folded into joint 0), and the
-    chain product is one matrix product per joint, written straight into `frames`.
+    Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3]. Both are
+    views into the one array of the chain product (not contiguous).
     """
-    offset, matrix = arm.motion_terms
-    dot = np.dot  # np.dot has less call overhead than the @ operator on small arrays
-    L = dot(matrix, np.concatenate((np.cos(q), np.sin(q), q)))
-    L += offset
-    L = L.reshape(-1, 4, 4)
-    frames = np.empty_like(L)
-    T = frames[0] = L[0]
-    for i in range(1, len(L)):  # the chain product is sequential by nature
-        T = dot(T, L[i], out=frames[i])
-    return frames, dot(T, arm.tip)
+    chain = _chain(arm.chain_terms, q)
+    return chain.reshape(-1, 7, 7)[:-1, :4, :4].transpose(0, 2, 1), chain[-7:-3, :4].T
+
+
+def pose_and_jacobian(arm: Arm, q: NDArray[np.float64]) -> tuple[Mat4, Jacobian]:
+    """T_tcp and the geometric Jacobian at q (base frame, TCP reference point), in one pass
+    for the solver: the Jacobian is read off the moments the chain carries, J = S(p)·Wᵀ.
+
+    W stacks column 2 (revolute: z, 0, o × z) or column 6 (prismatic: 0, 0, z) of each
+    joint's augmented matrix, and S(p) = [−p̂ 0 I; I 0 0] moves the reference point to the
+    TCP at p: z × (p − o) = o × z − p × z.
+    """
+    c = arm.chain_terms
+    chain = _chain(c, q)
+    J = _SHIFT.dot(chain[c.tcp_row, :4]).reshape(6, 7).dot(chain[c.axis_rows].T)
+    return chain[-7:-3, :4].T, J
 
 
 def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:
@@ -75,6 +101,17 @@ _LEVI_CIVITA = np.zeros((3, 9))
 for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
     _LEVI_CIVITA[_k, 3 * _i + _j] = 1.0
     _LEVI_CIVITA[_k, 3 * _j + _i] = -1.0
+
+
+# S(p) of `pose_and_jacobian` as a linear map of (p, 1): S = _SHIFT·(p, 1), (42, 4).
+_SHIFT = np.zeros((6, 7, 4))
+for _a in range(3):
+    _SHIFT[3 + _a, _a, 3] = 1.0                 # ω rows: z
+    _SHIFT[_a, 4 + _a, 3] = 1.0                 # v rows: + o × z
+for _k, _i, _j in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
+    _SHIFT[_i, _j, _k] = 1.0                    # v rows: − p̂ z, −p̂[i, j] = −ε_ikj p_k
+    _SHIFT[_j, _i, _k] = -1.0
+_SHIFT = _SHIFT.reshape(42, 4)
 
 
 def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> Jacobian:
@@ -92,8 +129,7 @@ def jacobian_from_frames(arm: Arm, frames: NDArray[np.float64], T_tcp: Mat4) -> 
 
 def geometric_jacobian(arm: Arm, q: NDArray[np.float64]) -> Jacobian:
     """Geometric Jacobian at q in the base frame, reference point the TCP."""
-    frames, T = joint_frames(arm, q)
-    return jacobian_from_frames(arm, frames, T)
+    return pose_and_jacobian(arm, q)[1]
 
 
 def tool_frame_jacobian(J_base: Jacobian, T_tcp: Mat4) -> Jacobian:
@@ -144,8 +180,7 @@ def analyse_pose(arm: Arm, q: NDArray[np.float64]) -> KinematicsReport:
     so manipulability and condition number then report the rank deficiency honestly.
     """
     q = np.asarray(q, dtype=float)
-    frames, T = joint_frames(arm, q)
-    J = jacobian_from_frames(arm, frames, T)
+    T, J = pose_and_jacobian(arm, q)
     Jt = task_rows(J, arm.task_mask)
     sv = np.linalg.svd(Jt, compute_uv=False)
     m = Jt.shape[0]

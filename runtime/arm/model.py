@@ -27,6 +27,7 @@ from numpy.typing import NDArray
 
 from ..errors import ConfigError
 from ..tomlsource import TomlSource as _Source, read_toml
+from .chain_terms import ChainTerms, build_chain_terms
 from .transforms import Mat4, make_transform, rot4, rotx, rotz, trans
 
 TASK_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
@@ -159,34 +160,10 @@ class Arm:
         return np.array(self.task_axes)
 
     @cached_property
-    def motion_terms(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        """The link transforms as one affine map of u = [cos q; sin q; q] (length 3n):
-
-            vec(L) = offset + matrix · u,   shapes (16n,) and (16n, 3n),
-
-        where L_0 = base·origin_0·Motion_0(q_0), L_i = origin_i·Motion_i(q_i), each 4×4
-        flattened row by row. This holds because Motion_z(q) is K0 + cos q·Kc + sin q·Ks for
-        a rotation and I + q·Kd for a translation (constant K's), so the kinematics builds
-        every link transform with one matrix product instead of per-joint work.
-        """
-        n = self.n
-        K = np.zeros((4, 4, 4))   # Rot_z(q) = K[0] + cos q·K[1] + sin q·K[2]
-        K[0, 2, 2] = K[0, 3, 3] = 1.0
-        K[1, 0, 0] = K[1, 1, 1] = 1.0
-        K[2, 1, 0], K[2, 0, 1] = 1.0, -1.0
-        P = np.zeros((4, 4, 4))   # Trans_z(q) = P[0] + q·P[3]
-        P[0] = np.eye(4)
-        P[3, 2, 3] = 1.0
-        origins = self.origins.copy()
-        origins[0] = self.base @ origins[0]
-        offset = np.empty((n, 16))
-        matrix = np.zeros((n, 16, 3, n))
-        for i, (origin, joint) in enumerate(zip(origins, self.joints)):
-            basis = K if joint.is_revolute else P
-            offset[i] = (origin @ basis[0]).ravel()
-            for k in range(3):  # the columns multiplying cos q_i, sin q_i and q_i
-                matrix[i, :, k, i] = (origin @ basis[k + 1]).ravel()
-        return offset.ravel(), matrix.reshape(16 * n, 3 * n)
+    def chain_terms(self) -> ChainTerms:
+        """The constant part of the forward kinematics (runtime/arm/chain_terms.py)."""
+        return build_chain_terms(self.origins, [j.is_revolute for j in self.joints],
+                                 self.base, self.tip)
 
     @cached_property
     def prismatic_index(self) -> NDArray[np.intp]:

@@ -109,7 +109,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="shipped arm name, arm .toml or .urdf (default elbow6)")
     parser.add_argument("--pad", metavar="PAD",
                         help="pad mapping: shipped name (twinstick, twinstick_sdl, keyboard) "
-                             "or a .toml (default twinstick for a pad, keyboard for keys)")
+                             "or a .toml (default for a pad: the shipped file SDL's layout "
+                             "of it fits, else twinstick; see `jogwire pads`; keyboard for "
+                             "keys)")
     parser.add_argument("--input", metavar="SPEC",
                         help="gamepad | keyboard | script:FILE | network:ENDPOINT (default: "
                              "a gamepad if one is plugged in, else the keyboard when a window "
@@ -1076,15 +1078,20 @@ def run(args: argparse.Namespace) -> int:
     display, pads = _probe_display_and_pads(args.headless, need_pads)
     plan = plan_input(args.input, headless=args.headless, display=display, pads=pads)
     kind, _ = parse_input_spec(plan.spec)
-    pad = load_pad(args.pad or DEFAULT_PADS.get(kind, "keyboard"))
+    pad_name, pad_note = args.pad or DEFAULT_PADS.get(kind, "keyboard"), ""
+    if args.pad is None and kind == "gamepad":    # the shipped file SDL says the pad fits
+        from ..operator.pad_check import pad_file_for_first_pad
+        pad_name, pad_note = pad_file_for_first_pad(pad_name)
+    pad = load_pad(pad_name)
     screenshot = None
     if args.screenshot:
         after = args.screenshot_after if args.screenshot_after is not None else \
             (args.duration / 2 if args.duration else 3.0)
         screenshot = (Path(args.screenshot), after)
     out = sys.stdout
-    if plan.note:
-        say(out, f"jogwire drive: {plan.note}")
+    for note in (plan.note, pad_note):
+        if note:
+            say(out, f"jogwire drive: {note}")
 
     clock = time.perf_counter
     with contextlib.ExitStack() as stack:

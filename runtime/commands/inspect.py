@@ -28,6 +28,7 @@ import numpy as np
 from ..errors import ConfigError
 from ..arm.model import Arm
 from ..sessions.recorder import CycleRecord, SessionHeader, SessionReader
+from ..sessions.stats import MotionStats
 
 TWIST_AXES = ("vx", "vy", "vz", "wx", "wy", "wz")
 _CHUNK = 4096      # records turned into arrays at a time
@@ -49,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
         raise ConfigError("--csv - and --json both want standard output; give --csv a file",
                           field="--csv")
     with SessionReader(args.log) as reader:
-        stats = SessionStats(reader.header.arm)
+        stats = SessionStats(reader.header.arm, reader.header.settings.get("rate_hz"))
         for chunk in _chunks(reader, _CHUNK):
             stats.add(chunk)
         summary = stats.summary(reader)
@@ -83,19 +84,21 @@ def _chunks(records: Iterable[CycleRecord], size: int) -> Iterator[list[CycleRec
 class SessionStats:
     """Running peaks and counts over a session's cycle records (fed in order, in chunks)."""
 
-    def __init__(self, arm: Arm) -> None:
+    def __init__(self, arm: Arm, rate_hz: float | None = None) -> None:
+        """rate_hz: the session's nominal loop rate (header settings); accelerations are
+        per nominal cycle (runtime.sessions.stats). Without it, the first chunk's median
+        period stands in."""
         n = arm.n
         self.arm = arm
+        self.rate_hz = rate_hz if isinstance(rate_hz, (int, float)) and \
+            not isinstance(rate_hz, bool) and math.isfinite(rate_hz) and rate_hz > 0 else None
+        self.motion: MotionStats | None = None
         self.cycles = 0
         self.t_first: float | None = None
         self.t_last: float | None = None
         self.time_enabled_s = 0.0
         self.time_reduced_s = 0.0
         self.time_damped_s = 0.0
-        self.peak_speed = np.full(n, -math.inf)      # -inf: no value yet
-        self.peak_speed_t = np.full(n, math.nan)
-        self.peak_accel = np.full(n, -math.inf)
-        self.peak_accel_t = np.full(n, math.nan)
         self.min_limit_distance = np.full(n, math.inf)
         self.tcp_peak = (-math.inf, math.nan)        # (m/s, t_s)
         self.tcp_peak_reduced: tuple[float, float] | None = None
@@ -108,7 +111,6 @@ class SessionStats:
         self.scale_names: set[str] = set()
         self.n_axes = 0
         self.n_buttons = 0
-        self._last: tuple[int, float, np.ndarray] | None = None   # (cycle, t_s, rates)
         self._last_binding: str | None = None
 
     def add(self, records: list[CycleRecord]) -> None:
@@ -136,9 +138,11 @@ class SessionStats:
         self.computes.extend(r.compute_s for r in records)
         self.overruns += sum(r.overrun for r in records)
 
-        speed = np.abs(rates)
-        self._update_peaks(self.peak_speed, self.peak_speed_t, speed, t)
-        self._add_accel(cycle, t, rates)
+        if self.motion is None:
+            rate = self.rate_hz or 1.0 / float(np.median(period))
+            self.motion = MotionStats(self.arm.joint_names, self.arm.max_accel, rate)
+        self.motion.add(cycle, t, rates, enabled, [r.enable_reason for r in records],
+                        np.linalg.norm(achieved[:, :3], axis=1))
         distance = np.minimum(q - self.arm.lower, self.arm.upper - q).min(axis=0)
         self.min_limit_distance = np.minimum(self.min_limit_distance, distance)
 
@@ -167,31 +171,6 @@ class SessionStats:
             self.n_axes = max(self.n_axes, len(r.axes))
             self.n_buttons = max(self.n_buttons, len(r.buttons))
 
-    def _add_accel(self, cycle: np.ndarray, t: np.ndarray, rates: np.ndarray) -> None:
-        """Peak |Δrate/Δt| between successive cycles; no pair across missing records."""
-        if self._last is not None:
-            cycle = np.concatenate(([self._last[0]], cycle))
-            t = np.concatenate(([self._last[1]], t))
-            rates = np.vstack((self._last[2], rates))
-        self._last = (int(cycle[-1]), float(t[-1]), rates[-1].copy())
-        if len(t) < 2:
-            return
-        dt = np.diff(t)
-        ok = (np.diff(cycle) == 1) & (dt > 0)
-        if not ok.any():
-            return
-        accel = np.abs(np.diff(rates, axis=0)[ok]) / dt[ok, None]
-        self._update_peaks(self.peak_accel, self.peak_accel_t, accel, t[1:][ok])
-
-    @staticmethod
-    def _update_peaks(peak: np.ndarray, peak_t: np.ndarray, values: np.ndarray,
-                      t: np.ndarray) -> None:
-        i = np.argmax(values, axis=0)
-        best = values[i, np.arange(values.shape[1])]
-        better = best > peak
-        peak[better] = best[better]
-        peak_t[better] = t[i][better]
-
     def summary(self, reader: SessionReader) -> dict[str, Any]:
         """The summary object (the JSON of `inspect --json`); call after the last add."""
         h: SessionHeader = reader.header
@@ -201,15 +180,16 @@ class SessionStats:
         periods = np.frombuffer(self.periods, dtype=float) if has else np.zeros(0)
         computes = np.frombuffer(self.computes, dtype=float) if has else np.zeros(0)
         joints = []
+        m = self.motion
         for k, j in enumerate(arm.joints):
-            peak_speed = _value(self.peak_speed[k])
-            peak_accel = _value(self.peak_accel[k])
+            peak_speed = float(m.peak_speed[k]) if m else None
+            peak_accel = float(m.peak_accel[k]) if m else None
             joints.append({
                 "name": j.name, "kind": j.kind,
                 "unit": "rad" if j.is_revolute else "m",
-                "peak_speed": peak_speed, "peak_speed_t_s": _t(self.peak_speed_t[k]),
+                "peak_speed": peak_speed, "peak_speed_t_s": _t(m.peak_speed_t[k]) if m else None,
                 "max_speed": j.max_speed, "rated_speed": j.rated_speed,
-                "peak_accel": peak_accel, "peak_accel_t_s": _t(self.peak_accel_t[k]),
+                "peak_accel": peak_accel, "peak_accel_t_s": _t(m.peak_accel_t[k]) if m else None,
                 "max_accel": j.max_accel, "rated_accel": j.rated_accel,
                 "min_limit_distance": float(self.min_limit_distance[k]) if has else None,
                 "over_max_speed": _over(peak_speed, j.max_speed),
@@ -244,6 +224,7 @@ class SessionStats:
             "min_sigma": self.min_sigma[0] if has else None,
             "min_sigma_t_s": _t(self.min_sigma[1]),
             "time_damped_s": self.time_damped_s,
+            "stops": [stop.as_dict() for stop in m.stops] if m else [],
             "limit_events": [{"limit": name, "cycles": c, "episodes": e}
                              for name, (c, e) in sorted(self.limits.items(),
                                                         key=lambda kv: (-kv[1][0], kv[0]))],
@@ -445,6 +426,14 @@ def format_summary(s: dict[str, Any], *, degrees: bool = False) -> str:
                              for e in s["limit_events"]])
     else:
         out += ["", "limits    no limit bound"]
+    stops = s["stops"]
+    if stops:
+        out += ["", f"stops     {len(stops)} while moving: zero sent at once, the arm side "
+                    f"brakes (not counted as commanded accelerations)"]
+        out += [f"  t = {st['t_s']:.2f} s from {st['tcp_speed'] * 1e3:.1f} mm/s "
+                f"({st['reason']})" for st in stops[:10]]
+        if len(stops) > 10:
+            out.append(f"  … and {len(stops) - 10} more (--json lists all)")
 
     loop = s["loop"]
     out += ["",

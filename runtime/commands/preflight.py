@@ -233,6 +233,7 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                        "cell": None if cell is None else cell.spec,
                        "clearance": cell is not None and cell.clearance}
     cycle = ControlCycle(arm, pad, rate_hz=rate_hz, safety=safety, reduced_locked=reduced,
+                         state_lag_cycles=state_lag,
                          cell=cell.cell if cell is not None and cell.clearance else None)
     dt = cycle.dt_s
     n_cycles = int(math.ceil((profile.duration_s + TAIL_S) * rate_hz - 1e-9))

@@ -55,6 +55,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                        help="axes the twist is given in (default base)")
     twist.add_argument("--reduced", action="store_true",
                        help="reduced-speed mode: TCP linear speed at most 0.25 m/s")
+    twist.add_argument("--rate", type=float, default=500.0, metavar="HZ",
+                       help="control rate the braking and acceleration limits are judged at "
+                            "(default 500)")
     twist.add_argument("--lock", metavar="AXES", default="",
                        help="axes held still, e.g. wx,wy,wz to translate only")
 
@@ -243,6 +246,7 @@ def run(args: argparse.Namespace) -> int:
     if args.twist is not None:
         solution = solve(arm, q, parse_twist(args.twist), frame=args.frame,
                          locked=parse_axes(args.lock, field_name="--lock"), reduced=args.reduced,
+                         dt_s=1.0 / args.rate,
                          clearance=None if cell is None else ClearanceLimit.of(arm, cell))
     found = None if cell is None else cell_distances(arm, cell, q)
     if args.json:

@@ -25,7 +25,7 @@ from numpy.typing import NDArray
 from ..arm.cell import Cell
 from ..arm.kinematics import analyse_pose
 from .clearance import ClearanceLimit
-from .limits import apply_limits, binding_limit
+from .limits import apply_limits, binding_limit, start_pose
 from .mapping import DirectCommand, InputFrame, Intent, Mapper, PadMapping
 from ..arm.model import Arm
 from .safety import SafetyGate, SafetySettings, Verdict
@@ -53,11 +53,13 @@ class ControlCycle:
 
     def __init__(self, arm: Arm, pad: PadMapping, *, rate_hz: float,
                  safety: SafetySettings = SafetySettings(), reduced_locked: bool = False,
-                 locked: tuple[str, ...] = (), cell: Cell | None = None) -> None:
+                 locked: tuple[str, ...] = (), state_lag_cycles: int = 1,
+                 cell: Cell | None = None) -> None:
         self.arm = arm
         # With a workcell the velocity damper keeps every pair clear (control/clearance.py).
         self.clearance = None if cell is None else ClearanceLimit.of(arm, cell)
         self.dt_s = 1.0 / rate_hz
+        self.state_lag_cycles = state_lag_cycles  # how far q lags the arm (limits.start_pose)
         self.locked = locked
         self.mapper = Mapper(pad, arm, reduced_locked=reduced_locked)
         self.gate = SafetyGate(safety)
@@ -88,6 +90,7 @@ class ControlCycle:
             solution = solve(self.arm, q, intent.twist, frame=intent.frame,
                              locked=self.locked, reduced=intent.reduced,
                              prev_rates=self.prev_rates, dt_s=self.dt_s,
+                             state_lag_cycles=self.state_lag_cycles,
                              clearance=self.clearance)
         self.prev_rates = solution.rates
         return CycleOutput(solution.rates, intent, verdict, solution)
@@ -97,14 +100,16 @@ class ControlCycle:
         rates = np.zeros(self.arm.n)
         rates[intent.joint] = intent.joint_rate
         pose = analyse_pose(self.arm, q)
-        limited = apply_limits(self.arm, q, rates, pose.jacobian, reduced=intent.reduced,
+        q_start = start_pose(q, self.prev_rates, self.dt_s, self.state_lag_cycles)
+        limited = apply_limits(self.arm, q_start, rates, pose.jacobian, reduced=intent.reduced,
                                prev_rates=self.prev_rates, dt_s=self.dt_s)
         return Solution(
             rates=limited.rates, damping=0.0, sigma_min=float(pose.singular_values[-1]),
             manipulability=pose.manipulability, commanded_twist=pose.jacobian @ rates,
             achieved_twist=limited.twist, tracking_error=0.0, tracking_error_linear=0.0,
             tracking_error_angular=0.0, scales=limited.scales,
-            binding_limit=binding_limit(limited.scales), saturated_joints=())
+            binding_limit=binding_limit(limited.scales), saturated_joints=(),
+            conflicts=limited.conflicts)
 
 
 # ----------------------------------------------------------------------------------------

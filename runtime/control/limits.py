@@ -4,9 +4,12 @@ Each limit acts on the whole joint-rate vector with one factor in [0, 1], so the
 moving in the commanded direction, only slower. Each factor is reported by name:
 
     joint_speed      |q̇_i| ≤ max_speed_i
-    position_brake   a joint heading for a position limit can still stop before it
-                     (|q̇_i| ≤ √(2·a_i·d_i), one-period-latency form, REFERENCES §5)
-    acceleration     |q̇_k − q̇_{k−1}| ≤ max_accel_i·dt (the fraction of the step taken)
+    position_brake   a joint heading for a position limit can still stop before it, slowing
+                     by at most max_accel_i·dt a period (`braking_speed`: the curve exact for
+                     a sampled controller, → √(2·a_i·d_i) as dt → 0), judged from the pose
+                     where the rates start to act (`start_pose`, one cycle of state lag)
+    acceleration     |q̇_k − q̇_{k−1}| ≤ max_accel_i·dt per control period (the fraction of
+                     the step taken)
     tcp_linear       ‖v_tcp‖ ≤ arm.tcp_max_linear_m_s
     tcp_angular      ‖ω_tcp‖ ≤ arm.tcp_max_angular_rad_s
     reduced_speed    ‖v_tcp‖ ≤ REDUCED_SPEED_M_S when reduced speed is on (ISO 10218-1)
@@ -18,6 +21,22 @@ step taken, not a scaling of the target. Capping the target first means a steady
 a cap never tugs against the ramp. After the step the speed and position bounds still hold
 (by construction), and the TCP caps are checked once more: the previous rates may be over a
 cap at this pose (reduced speed switched on while moving), and the cap outranks the ramp.
+
+Every bound at once. Against an arm that follows the rates (the one cycle of lag included),
+all of them hold on every cycle together: the target is within the speed, braking and TCP
+bounds; last cycle's rates slowed by a·dt are within this cycle's braking bound (the curve's
+recursion, `braking_speed`); so a step of at most a·dt per joint from last cycle's rates
+toward the target exists inside every bound, and `acceleration_step` takes it.
+tests/runtime/control/test_bounds_property.py checks this on random arms. Two cases cannot
+keep both, and the cycle names them (`CONFLICTS`, in `Limited.conflicts` and the solution's
+report): a TCP cap against the ramp (reduced speed switched on while moving fast: the cap
+wins, because the cap is the operator's protection and the ramp only the drive's comfort)
+and a position limit against the ramp (the arm ran further than commanded: the position
+wins, because a joint past its soft limit is closer to a hard stop).
+
+The acceleration bound is per control period (nominal dt): the change between two
+consecutive commands, over dt. An arm that applies each command for one period sees exactly
+that; the statistics (runtime/sessions/stats.py) judge commanded accelerations the same way.
 
 Small vectors (n ≤ ~10) make numpy's per-call overhead (~1 µs) the cost, so the per-joint
 loops and reductions below run on Python floats; the vector arithmetic stays in numpy.
@@ -85,21 +104,38 @@ class JointBounds:
     def braking_zone(self, dt_s: float) -> tuple[list[float], list[float]]:
         """(low + r, high − r): a joint strictly between them cannot meet a limit this cycle.
 
-        r_i = max_speed_i·(dt + T/2), T = max_j max_speed_j/max_accel_j, bounds the distance
-        joint i covers while the whole speed-limited vector brakes as one (`braking_factor`),
+        r_i = max_speed_i·(dt + T/2) + max_accel_i·dt², T = max_j max_speed_j/max_accel_j,
+        bounds the distance joint i covers while the whole speed-limited vector brakes as one
+        (`braking_factor`: S ≤ v²/(2a) + v·dt/2 + a·dt²/8 for the sampled stop),
         so the brake, the joint-limit re-solve and the position part of the acceleration
         limit can be skipped for a pose clear of every bound: the common case.
         """
-        reach = self.speed * (dt_s + 0.5 * float((self.speed / self.accel).max()))
+        reach = self.speed * (dt_s + 0.5 * float((self.speed / self.accel).max())) + \
+            self.accel * (dt_s * dt_s)
         return (self.low + reach).tolist(), (self.high - reach).tolist()
 
 
 class Limited(NamedTuple):
-    """Output of `apply_limits`: the rates, their TCP twist J·q̇ and every factor by name."""
+    """Output of `apply_limits`: the rates, their TCP twist J·q̇, every factor by name, and
+    the names of the bounds that had to give way this cycle (`CONFLICTS`), usually none."""
 
     rates: Vector
     twist: Vector
     scales: dict[str, float]
+    conflicts: tuple[str, ...] = ()
+
+
+CONFLICTS = ("tcp_cap_over_acceleration", "position_over_acceleration")
+"""When two bounds cannot both hold, which one wins (see the module docstring):
+
+tcp_cap_over_acceleration   the arm moves faster than a TCP cap allows at this pose (reduced
+                            speed switched on while moving fast): the cap wins, the rates
+                            drop faster than max_accel.
+position_over_acceleration  a joint is closer to its limit than its braking curve allows
+                            (the arm did not move as commanded, or a late cycle let it run
+                            on): the position limit wins, the joint slows faster than
+                            max_accel. Never happens against an arm that follows the rates.
+"""
 
 
 # ----------------------------------------------------------------------------------------
@@ -107,25 +143,81 @@ class Limited(NamedTuple):
 # ----------------------------------------------------------------------------------------
 
 def braking_speed(accel: Vector | float, distance: Vector | float, dt_s: float) -> Vector:
-    """Largest speed toward a limit `distance` away that still stops before it.
+    """Largest rate from which a sampled controller can still stop within `distance`.
 
-    Constant deceleration `accel` and one control period of latency (the rate commanded now
-    is held for dt before braking can start): v·dt + v²/(2a) ≤ d, hence
-    v = −a·dt + √((a·dt)² + 2·a·d), written as 2d / (dt + √(dt² + 2d/a)) to avoid
-    cancellation. 0 when d ≤ 0; very large (not inf) for an unlimited joint (d = inf).
-    With dt = 0 it is the textbook √(2·a·d).
+    The controller holds each commanded rate for one period dt (zero-order hold) and may
+    change it by at most a·dt per period. The rate v commanded now is held for dt, then the
+    fastest stop is v − a·dt, v − 2a·dt, … (each held for dt) until it reaches zero, which
+    covers
 
-    REFERENCES §5: a = 5 rad/s², d = 0.05 rad → 0.707107 rad/s (dt = 0) and 0.687390 rad/s
-    (dt = 4 ms).
+        S(v) = dt · Σ_{j=0}^{m} (v − j·a·dt),  m = ⌈v/(a·dt)⌉ − 1,
+
+    a continuous, increasing, piecewise-linear function of v. With u = a·dt and
+    D = d/(a·dt²), S(v) ≤ d holds up to the v on the segment m for which
+    m(m+1)/2 < D ≤ (m+1)(m+2)/2:
+
+        v = d/((m+1)·dt) + u·m/2.
+
+    Derived here for the discrete-time case, in the manner of A. Del Prete, "Joint position
+    and velocity bounds in discrete-time acceleration/torque control of robot manipulators",
+    IEEE RA-L 3(1), 2018 (REFERENCES §5); checked against a brute-force simulation of the
+    stop in tests/runtime/control/test_limits.py. Why it is exact for the cycle, and the
+    continuous √(2ad) is not: S(v) = v·dt + S(v − a·dt), so if v fits in d then v − a·dt
+    fits in d − v·dt, the distance left one period later. A joint that follows this curve
+    therefore never needs to slow by more than a·dt in a period, and stops at the limit,
+    never past it. As dt → 0 (m ≈ √(2D)) it tends to √(2·a·d).
+
+    `distance` is measured from where the rate starts to act (`start_pose`). 0 when d ≤ 0;
+    very large (not inf) for an unlimited joint. With dt = 0 it is the textbook √(2·a·d).
+    REFERENCES §5: a = 5 rad/s², d = 0.05 rad → 0.707107 rad/s (dt = 0).
     """
     d = np.minimum(np.maximum(distance, 0.0), _FAR)
-    return 2.0 * d / (dt_s + np.sqrt(dt_s * dt_s + 2.0 * d / accel))
+    if dt_s == 0.0:
+        return np.sqrt(2.0 * np.multiply(accel, d))
+    step = np.multiply(accel, dt_s)                     # u = a·dt, rad/s per period
+    big_d = d / (step * dt_s)                           # D = d/(a·dt²), periods²
+    m = np.maximum(0.0, np.ceil(np.sqrt(2.0 * big_d + 0.25) - 1.5))
+    # one step either way repairs the rounding of the square root
+    m = np.where((m + 1.0) * (m + 2.0) * 0.5 < big_d, m + 1.0, m)
+    m = np.where((m > 0.0) & (m * (m + 1.0) * 0.5 >= big_d), m - 1.0, m)
+    return d / ((m + 1.0) * dt_s) + step * m * 0.5
 
 
 def _braking_speed_1(accel: float, distance: float, dt_s: float) -> float:
     """`braking_speed` for one joint, on Python floats."""
     d = min(max(distance, 0.0), _FAR)
-    return 2.0 * d / (dt_s + math.sqrt(dt_s * dt_s + 2.0 * d / accel))
+    if dt_s == 0.0:
+        return math.sqrt(2.0 * accel * d)
+    step = accel * dt_s
+    big_d = d / (step * dt_s)
+    m = max(0.0, math.ceil(math.sqrt(2.0 * big_d + 0.25) - 1.5))
+    if (m + 1.0) * (m + 2.0) * 0.5 < big_d:
+        m += 1.0
+    elif m > 0.0 and m * (m + 1.0) * 0.5 >= big_d:
+        m -= 1.0
+    return d / ((m + 1.0) * dt_s) + step * m * 0.5
+
+
+def stopping_distance(accel: float, rate: float, dt_s: float) -> float:
+    """S(v): the distance covered from rate v (held one period, then slowed by a·dt a
+    period) until it stops; the inverse of `braking_speed`."""
+    v, step = abs(rate), accel * dt_s
+    m = max(0.0, math.ceil(v / step) - 1.0)
+    return dt_s * ((m + 1.0) * v - step * m * (m + 1.0) * 0.5)
+
+
+def start_pose(q: Vector, prev_rates: Vector | None, dt_s: float, state_lag_cycles: int
+               ) -> Vector:
+    """Where the arm is when this cycle's rates begin to act (rad or m).
+
+    The measured pose lags the arm by `state_lag_cycles` periods: with one cycle of lag the
+    arm is still carrying out last cycle's rates while this cycle is computed, so it will be
+    prev·dt further on. (Only 0 and 1 are used; with one cycle of lag only the last rates
+    are in flight.)
+    """
+    if state_lag_cycles and prev_rates is not None:
+        return q + prev_rates * dt_s
+    return q
 
 
 def _ahead(bounds: JointBounds, q: list[float], rates: list[float]) -> list[float]:
@@ -169,14 +261,15 @@ def speed_factor(bounds: JointBounds, rates: Vector) -> float:
 
 def braking_factor(bounds: JointBounds, q: Vector, rates: Vector, dt_s: float) -> float:
     """Largest c ≤ 1 such that the whole vector c·q̇ can brake to a stop, keeping its direction,
-    before any joint passes its limit.
+    before any joint passes its limit (q: the pose where the rates start to act).
 
-    Braking the vector as one: its scale c can fall at most at 1/T per second with
-    T = max_j |q̇_j|/a_j (the slowest joint to stop sets the pace), so joint i brakes at
-    a_eff,i = |q̇_i|/T ≤ a_i. With τ_i = d_i/|q̇_i| (time to the limit at the current rate),
-    the latency form of `braking_speed` for c becomes c·dt + c²·T/2 ≤ τ_i, so
-    c_i = 2τ_i / (dt + √(dt² + 2·T·τ_i)). Each joint then meets |q̇_i| ≤ braking_speed(a_i, d_i),
-    and the acceleration limit can follow the braking ramp without conflict.
+    Braking the vector as one: its scale c can fall by at most dt/T a period with
+    T = max_j |q̇_j|/a_j (the slowest joint to stop sets the pace), so joint i slows by at
+    most a_i·dt. With τ_i = d_i/|q̇_i| (time to the limit at the current rate), c is the
+    sampled braking curve of a scalar with deceleration 1/T: c_i = braking_speed(1/T, τ_i, dt).
+    Joint i then covers |q̇_i|·S(c) = S_i(c·|q̇_i|) ≤ d_i, and follows its own braking curve
+    (its effective deceleration |q̇_i|/T ≤ a_i), so the acceleration limit can follow the
+    braking ramp without conflict.
     """
     r = rates.tolist()
     T = max(map(mul, map(abs, r), bounds.inv_accel))
@@ -187,9 +280,9 @@ def braking_factor(bounds: JointBounds, q: Vector, rates: Vector, dt_s: float) -
               default=math.inf)
     if tau <= 0.0:
         return 0.0
-    if tau >= dt_s + 0.5 * T:  # c = 1 already satisfies c·dt + c²·T/2 ≤ τ
+    if tau >= dt_s + 0.5 * T + 0.125 * dt_s * dt_s / T:  # S(1) ≤ τ: c = 1 stops in time
         return 1.0
-    return 2.0 * tau / (dt_s + math.sqrt(dt_s * dt_s + 2.0 * T * tau))
+    return min(1.0, _braking_speed_1(1.0 / T, tau, dt_s))
 
 
 def rate_bounds(bounds: JointBounds, q: Vector, dt_s: float) -> tuple[Vector, Vector]:
@@ -295,10 +388,12 @@ def tcp_caps(arm: Arm, twist: Vector, reduced: bool) -> tuple[float, float, floa
 def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                  reduced: bool = False, prev_rates: Vector | None = None,
                  dt_s: float = 0.002, clear: bool | None = None) -> Limited:
-    """Bring `rates` (the solver's joint rates) within every limit of `arm` at pose q.
+    """Bring `rates` (the solver's joint rates) within every limit of `arm`.
 
-    J is the 6×n geometric Jacobian at q (TCP reference point; only norms of J·q̇ are used,
-    so any axes do). `prev_rates` are the rates sent last cycle; None means no history (a
+    q is the pose where the rates start to act (`start_pose`: the measured pose moved on by
+    the rates still in flight); the position limits are judged from it. J is the 6×n
+    geometric Jacobian at the measured pose (TCP reference point; only norms of J·q̇ are
+    used, so any axes do): the TCP caps hold at the pose the controller knows. `prev_rates` are the rates sent last cycle; None means no history (a
     one-off query such as `jogwire probe`) and skips the acceleration limit; the control
     loop starts from zeros. Returns the limited rates, their TCP twist and the factor of each
     limit (1.0 when it did not bind), named as in SCALE_NAMES. `clear` is
@@ -319,6 +414,7 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
         r = r * c
         twist = twist * c
     f_acc = 1.0
+    conflicts: tuple[str, ...] = ()
     if prev_rates is not None:
         prev = prev_rates  # within the speed limits if it is what we sent; clip otherwise
         if _worst_ratio(prev, b.inv_speed) > 1.0:
@@ -339,9 +435,15 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                 r = r * g
                 twist = twist * g
                 f_lin, f_ang, f_red = f_lin * g_lin, f_ang * g_ang, f_red * g_red
+            # 1e-9: distances to a limit are differences of positions of a few rad, so the
+            # braking curve carries round-off of ~1e-12 relative to a·dt near the limit
+            if _worst_ratio(r - prev, b.inv_accel) > dt_s * (1.0 + 1e-9):
+                capped = start < 1.0 or g < 1.0
+                conflicts = ("tcp_cap_over_acceleration" if capped else
+                             "position_over_acceleration",)
     scales = {"joint_speed": f_speed, "position_brake": f_brake, "acceleration": f_acc,
               "tcp_linear": f_lin, "tcp_angular": f_ang, "reduced_speed": f_red}
-    return Limited(r, twist, scales)
+    return Limited(r, twist, scales, conflicts)
 
 
 def binding_limit(scales: dict[str, float]) -> str | None:

@@ -47,9 +47,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import ConfigError
-from ..arm.kinematics import jacobian_from_frames, joint_frames, tool_frame_jacobian, twist_to_base
+from ..arm.kinematics import pose_and_jacobian, tool_frame_jacobian, twist_to_base
 from .limits import (SCALE_NAMES, JointBounds, apply_limits, binding_limit, clear_of_limits,
-                     pushing_into_limits)
+                     pushing_into_limits, start_pose)
 from ..arm.model import TASK_AXES, Arm
 from .clearance import ClearanceGuard, ClearanceLimit, ClearanceReport
 
@@ -128,6 +128,7 @@ class Solution:
     scales            every limit factor in [0, 1] by name (limits.SCALE_NAMES)
     binding_limit     the name of the smallest factor below 1, or None
     saturated_joints  joints taken out of the solve because they sit at a position limit
+    conflicts         bounds that had to give way to another this cycle (limits.CONFLICTS)
     clearance         distances to the cell and the damper's effect (None without a cell)
     """
 
@@ -143,6 +144,7 @@ class Solution:
     scales: dict[str, float] = field(default_factory=dict)
     binding_limit: str | None = None
     saturated_joints: tuple[str, ...] = ()
+    conflicts: tuple[str, ...] = ()
     clearance: ClearanceReport | None = None
 
     @property
@@ -339,6 +341,7 @@ def _lock_index(locked: tuple[str, ...]) -> NDArray[np.intp]:
 def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
           prev_rates: Vector | None = None, dt_s: float = 0.002,
+          state_lag_cycles: int = 1,
           clearance: ClearanceLimit | None = None) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
@@ -349,6 +352,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     reduced     reduced-speed mode: TCP linear speed ≤ 0.25 m/s (ISO 10218-1)
     prev_rates  the rates sent last cycle (acceleration limit); None skips that limit
     dt_s        control period, s
+    state_lag_cycles  how many periods q lags the arm (0 or 1): the position limits are
+                judged from where the arm will be when these rates act (`start_pose`)
     clearance   the arm's collision model in a cell: the velocity damper keeps every pair
                 clear (runtime.control.clearance); None: no cell
 
@@ -368,8 +373,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         v *= MAX_TWIST / size
         size = MAX_TWIST
 
-    frames, T = joint_frames(arm, q)
-    J = jacobian_from_frames(arm, frames, T)
+    T, J = pose_and_jacobian(arm, q)
     v_base = twist_to_base(v, T) if frame == "tool" else v
     if consts.full_task:
         Jt, vt = (tool_frame_jacobian(J, T) if frame == "tool" else J), v
@@ -377,7 +381,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         Jt, vt = J[arm.task_mask], v_base[arm.task_mask]
     moving = size > 0.0 and (consts.full_task or bool(vt.any()))
 
-    clear = clear_of_limits(consts.bounds, q, dt_s)
+    q_start = start_pose(q, prev_rates, dt_s, state_lag_cycles)
+    clear = clear_of_limits(consts.bounds, q_start, dt_s)
     z = None
     if moving and consts.nullspace and Jt.shape[0] < consts.n:  # z = k∇w (Siciliano 2009)
         inside = q if clear else np.minimum(np.maximum(q, consts.lower), consts.upper)
@@ -385,13 +390,14 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
     first = DampedSolve(Jt, vt, z, consts.threshold, consts.damping_max)
     rates, damping, free = first.rates, first.damping, None
     if moving and not clear:
-        rates, damping, free = _resolve_at_limits(arm, q, Jt, vt, z, rates, damping, dt_s)
+        rates, damping, free = _resolve_at_limits(arm, q_start, Jt, vt, z, rates, damping,
+                                                  dt_s)
 
     guard = None
     if clearance is not None:  # the velocity damper, around the other limits
-        guard = ClearanceGuard(clearance, frames, T, Jt, damping, rates)
+        guard = ClearanceGuard(clearance, q, Jt, damping, rates)
         rates = guard.rates
-    limited = apply_limits(arm, q, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
+    limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates, dt_s=dt_s,
                            clear=clear)
     if guard is not None:
         limited = guard.settle(limited)
@@ -412,7 +418,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         achieved_twist=limited.twist, tracking_error=math.sqrt(e_lin + e_ang),
         tracking_error_linear=math.sqrt(e_lin), tracking_error_angular=math.sqrt(e_ang),
         scales=limited.scales, binding_limit=binding_limit(limited.scales),
-        saturated_joints=saturated, clearance=None if guard is None else guard.report)
+        saturated_joints=saturated, conflicts=limited.conflicts,
+        clearance=None if guard is None else guard.report)
 
 
 def _checked(n: int, q: Vector, twist: Vector, frame: str, prev_rates: Vector | None,

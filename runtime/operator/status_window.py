@@ -30,6 +30,7 @@ from pathlib import Path
 import numpy as np
 from numpy.typing import NDArray
 
+from .. import palette
 from .cell_outlines import CellOutlines
 from .inputs.pygame_init import init_events, init_fonts, pygame
 from ..arm.kinematics import joint_frames
@@ -38,33 +39,15 @@ from ..arm.model import Arm
 
 SIZE = (1120, 720)
 
-# Colours (RGB): a dark slate ground, pale text, one hue per gate state.
-GROUND = (20, 24, 31)
-PANEL = (31, 37, 48)
-TRACK = (48, 56, 71)
-LINE = (72, 82, 100)
-TEXT = (226, 231, 239)
-MUTED = (142, 152, 168)
-STATE_COLOURS = {
-    "moving": (46, 176, 134),
-    "ready": (84, 128, 204),
-    "rearm": (222, 164, 52),
-    "blocked": (226, 112, 56),
-    "stopped": (214, 64, 72),
-}
-GOOD = (46, 176, 134)
-WARN = (222, 164, 52)
-BAD = (214, 64, 72)
-ARM_LINK = (170, 196, 232)
-ARM_JOINT = (236, 240, 246)
-TOOL = (236, 120, 200)
-# The workcell. These names are the shared palette's (runtime/palette.py): when it lands,
-# take these five from there and delete the values here.
-CELL_OBJECT = (92, 104, 128)      # objects: a muted slate between LINE and MUTED
-CELL_FLOOR = TRACK                # half-spaces (floor, walls)
-CLEARANCE_LINE = MUTED            # the nearest pair while it is clear
-CLEARANCE_WARN = WARN             # nearer than the influence distance: the damper acts
-CLEARANCE_STOP = BAD              # at or below the safety distance, or touching
+# Colours: jogwire's palette (runtime/palette.py), shared with the sim, URDF and report.
+GROUND, PANEL, TRACK, LINE = palette.GROUND, palette.PANEL, palette.TRACK, palette.LINE
+TEXT, MUTED = palette.TEXT, palette.MUTED
+GOOD, WARN, BAD = palette.GOOD, palette.WARN, palette.BAD
+STATE_COLOURS = palette.STATE_COLOURS
+CELL_OBJECT, CELL_FLOOR = palette.CELL_OBJECT, palette.CELL_FLOOR
+CLEARANCE_LINE, CLEARANCE_WARN, CLEARANCE_STOP = (palette.CLEARANCE_LINE,
+                                                  palette.CLEARANCE_WARN,
+                                                  palette.CLEARANCE_STOP)
 
 
 @dataclass(frozen=True, eq=False)
@@ -424,7 +407,7 @@ def _joints(surf: pygame.Surface, s: StatusSnapshot, L: _Layout,
             margin = float(s.arm.limit_margin[i])
             near = min(qi - j.lower, j.upper - qi) < 3 * margin
             mx = pos.x + int(min(max((qi - j.lower) / span, 0.0), 1.0) * pos.w)
-            pygame.draw.rect(surf, WARN if near else ARM_JOINT,
+            pygame.draw.rect(surf, WARN if near else TEXT,
                              (mx - 3, pos.y - 3, 6, pos.h + 6), border_radius=2)
             _text(surf, _fmt_joint(qi, j.is_revolute), (inner.right, row.y + 4), 19,
                   WARN if near else TEXT, anchor="topright")
@@ -472,12 +455,15 @@ def _draw_chain(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
 
         surf.set_clip(rect)
         screen = [px(p) for p in pts]
-        pygame.draw.lines(surf, ARM_LINK, False, screen, 4)
+        # As the simulated arm looks: light links, dark housings, the tool in the accent.
+        pygame.draw.rect(surf, palette.ARM_HOUSING, (screen[0][0] - 9, screen[0][1] - 5, 18, 10),
+                         border_radius=2)
+        pygame.draw.lines(surf, palette.ARM_LINK, False, screen, 4)
         for p in screen[1:-1]:
-            pygame.draw.circle(surf, ARM_JOINT, p, 5)
-        pygame.draw.rect(surf, MUTED, (screen[0][0] - 8, screen[0][1] - 4, 16, 8))
-        pygame.draw.line(surf, TOOL, screen[-1], px(tool_end), 3)
-        pygame.draw.circle(surf, TOOL, screen[-1], 6)
+            pygame.draw.circle(surf, palette.ARM_HOUSING, p, 6)
+            pygame.draw.circle(surf, palette.ARM_LINK, p, 6, 2)
+        pygame.draw.line(surf, palette.TOOL, screen[-1], px(tool_end), 3)
+        pygame.draw.circle(surf, palette.TOOL, screen[-1], 6)
     surf.set_clip(clip)
     p = T[:3, 3]
     _text(surf, f"TCP  x {p[0]:+.3f}  y {p[1]:+.3f}  z {p[2]:+.3f} m",

@@ -13,6 +13,10 @@ Fails (each gives a reason naming the joint, the value, the limit and the time):
   rated_accel     |Δq̇_i|/dt above the rated acceleration, commanded or measured; a stop
                   (enable released, safety gate) is not a commanded acceleration: jogwire
                   sends zero at once and the arm side brakes (stops are listed instead)
+  software_speed  jogwire itself commanded a joint rate above the arm's software max_speed,
+  software_accel  or a change of rate per cycle above its max_accel (stops aside): a defect
+                  of jogwire's limit layer, never of the motion, reported on its own so that
+                  it cannot hide behind a rating set higher than the software limit
   position_limit  a joint came within its margin of a position limit (the arm's
                   limit_margin, plus 5 % of it for the brake's stopping precision): the
                   motion asks for more travel than the joint has
@@ -49,6 +53,7 @@ from numpy.typing import NDArray
 from ..arm.kinematics import geometric_jacobian, tcp_pose, twist_to_base
 from ..control.limits import REDUCED_SPEED_M_S
 from ..arm.model import Arm
+from .stats import MotionStats, Stop
 
 Vector = NDArray[np.float64]
 
@@ -69,8 +74,9 @@ LIMIT_CONTACT_FRACTION = 0.05
 REST_SPEED = 1e-3
 """|q̇| (rad/s or m/s) below which a joint counts as at rest (end of a stop)."""
 
-FAIL_CODES = ("rated_speed", "rated_accel", "position_limit", "tcp_speed", "no_motion",
-              "damaged_profile", "contact", "clearance", "contact_unchecked")
+FAIL_CODES = ("rated_speed", "rated_accel", "software_speed", "software_accel",
+              "position_limit", "tcp_speed", "no_motion", "damaged_profile", "contact",
+              "clearance", "contact_unchecked")
 
 
 # ----------------------------------------------------------------------------------------
@@ -246,15 +252,6 @@ class LimitEpisode:
     cycles: int
 
 
-@dataclass(frozen=True)
-class Stop:
-    """Motion stopped by the safety gate while the arm moved."""
-
-    t_s: float
-    tcp_speed: float          # commanded TCP linear speed just before (m/s)
-    reason: str
-
-
 @dataclass(frozen=True, eq=False)
 class Series:
     """Time series for the plots (N cycles; per-joint arrays (N, n)). Speeds and
@@ -355,7 +352,7 @@ class PreflightResult:
             "limit_events": [{"limit": name, "cycles": c, "episodes": e, "time_s": s}
                              for name, (c, e, s) in episodes.items()],
             "limit_episodes": [vars(e) for e in self.limit_episodes],
-            "stops": [vars(s) for s in self.stops],
+            "stops": [s.as_dict() for s in self.stops],
             "limited_cycles": self.limited_cycles,
             "cycles": self.cycles,
             "duration_s": self.duration_s,
@@ -375,11 +372,13 @@ def evaluate(arm: Arm, trace: Trace, *, rate_hz: float, reduced: bool = False,
     (the cap is then 0.25 m/s throughout; cycles flagged reduced get it anyway)."""
     dt = 1.0 / rate_hz
     t = trace.t
-    stops, stop_cycle, window = _stops(trace)
     speed_cmd, speed_meas = np.abs(trace.rates), np.abs(trace.qd)
-    accel_cmd = _accel(trace.rates, np.zeros(arm.n), dt)
+    motion = MotionStats(arm.joint_names, arm.max_accel, rate_hz)
+    accel_cmd = motion.add(np.arange(len(t)), t, trace.rates, trace.allowed, trace.reasons,
+                           np.linalg.norm(trace.twist_rates[:, :3], axis=1))
+    stops = tuple(motion.stops)
+    window = _stop_windows(trace, stops)
     accel_meas = _accel(trace.qd, trace.qd0, dt)
-    accel_cmd[stop_cycle] = math.nan
     accel_meas[window] = math.nan
     distance, side = _limit_distance(arm, trace.q)
     reduced_cap = min(REDUCED_SPEED_M_S, arm.tcp_max_linear_m_s)
@@ -434,26 +433,21 @@ def _accel(rates: NDArray[np.float64], before: Vector, dt: float) -> NDArray[np.
     return np.abs(np.diff(np.vstack((before, rates)), axis=0)) / dt
 
 
-def _stops(trace: Trace) -> tuple[tuple[Stop, ...], NDArray[np.bool_], NDArray[np.bool_]]:
-    """Cycles where the gate stopped a moving arm; and each stop's window: from the stop
-    until the arm is measured at rest (or motion is allowed again)."""
+def _stop_windows(trace: Trace, stops: tuple[Stop, ...]) -> NDArray[np.bool_]:
+    """Each stop's window: from the stop until the arm is measured at rest (or motion is
+    allowed again). The measured accelerations there are the arm side's braking."""
     n = trace.n_cycles
-    prev_moving = np.concatenate(([False], np.any(trace.rates[:-1] != 0.0, axis=1))) \
-        if n else np.zeros(0, dtype=bool)
-    stop_cycle = ~trace.allowed & prev_moving
-    window = stop_cycle.copy()
+    window = np.zeros(n, dtype=bool)
     at_rest = np.all(np.abs(trace.qd) < REST_SPEED, axis=1)
-    stops = []
-    for k in np.flatnonzero(stop_cycle).tolist():
+    starts = np.searchsorted(trace.t, [stop.t_s for stop in stops])
+    for k in starts.tolist():
         j = k
         while j < n and not trace.allowed[j]:
             window[j] = True
             if at_rest[j]:
                 break
             j += 1
-        speed = float(np.linalg.norm(trace.twist_rates[k - 1, :3]))
-        stops.append(Stop(t_s=float(trace.t[k]), tcp_speed=speed, reason=trace.reasons[k]))
-    return tuple(stops), stop_cycle, window
+    return window
 
 
 def _limit_distance(arm: Arm, q: NDArray[np.float64]
@@ -517,6 +511,11 @@ def _joint_findings(arm: Arm, joints: tuple[JointReport, ...], speed_meas, accel
             code = f"rated_{what}"
             noun = "speed" if what == "speed" else "acceleration"
             per = "/s" if what == "speed" else "/s²"
+            if cmd > soft * (1.0 + ROUNDING):
+                out.append(Finding(f"software_{what}", j.name, cmd, soft, cmd_t, "commanded",
+                                   f"{j.name}: jogwire exceeded its own limit: commanded "
+                                   f"{noun} {fmt(cmd, j.kind, per)} is above the software "
+                                   f"max {fmt(soft, j.kind, per)} at t = {cmd_t:.2f} s"))
             if cmd > rated * (1.0 + ROUNDING):
                 why = (f" (its software max {fmt(soft, j.kind, per)} is above the rating)"
                        if soft > rated else "")
@@ -618,9 +617,12 @@ def _with_notes(arm: Arm, r: PreflightResult) -> PreflightResult:
         notes.append("limits that bound: " + ", ".join(
             f"{name} {cycles / r.rate_hz:.2f} s" for name, cycles in
             sorted(bound.items(), key=lambda kv: -kv[1])))
+    kinds = dict(zip(arm.joint_names, (j.kind for j in arm.joints)))
     for s in r.stops:
-        notes.append(f"stop at t = {s.t_s:.2f} s from {s.tcp_speed:.3f} m/s ({s.reason}); "
-                     f"its deceleration is the arm side's and is not counted above")
+        notes.append(f"stop at t = {s.t_s:.2f} s from {s.tcp_speed:.3f} m/s ({s.reason}): "
+                     f"zero at once asks {s.joint} for "
+                     f"{fmt(s.asked_decel, kinds.get(s.joint, 'revolute'), '/s²')} in one "
+                     f"cycle; the arm side brakes at its own rate, not counted above")
     if r.limited_cycles:
         notes.append(f"the arm side reduced the rates at its own limits on "
                      f"{r.limited_cycles} steps")

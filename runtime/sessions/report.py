@@ -25,13 +25,14 @@ import base64
 import html
 import io
 import math
+import string
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
+from .. import palette
 from ..arm.model import Arm
 from .preflight import PreflightResult, Series
 
@@ -41,7 +42,12 @@ DPI = 100
 PLOT_NAMES = ("clearance", "speeds", "accelerations", "limits", "tcp", "sigma", "tracking",
               "timeline")
 
-_PASS, _FAIL = "#1b7f3b", "#b3261e"
+# Colours from jogwire's palette, in the variants made for white paper.
+_PASS, _FAIL = palette.hex_code(palette.PASS_ON_PAPER), palette.hex_code(palette.FAIL_ON_PAPER)
+_SERIES = [palette.hex_code(c) for c in palette.SERIES]
+_ALLOWED = palette.hex_code(palette.ACCENT)
+_COMMANDED, _MEASURED, _SIGMA, _ANGULAR = _SERIES[1], _SERIES[2], _SERIES[3], _SERIES[4]
+_DAMPING = palette.hex_code(palette.INK_MUTED)
 _CMD_STYLE = {"linewidth": 1.2}
 _MEAS_STYLE = {"linewidth": 0.8, "linestyle": (0, (2, 2)), "alpha": 0.9}
 _LIMIT_STYLE = {"color": _FAIL, "linewidth": 1.0, "linestyle": "--"}
@@ -105,10 +111,8 @@ def render_plots(result: PreflightResult, arm: Arm) -> dict[str, bytes]:
     return out
 
 
-def _joint_colors(n: int) -> list[Any]:
-    import matplotlib
-    cmap = matplotlib.colormaps["tab10"]
-    return [cmap(i % 10) for i in range(n)]
+def _joint_colors(n: int) -> list[str]:
+    return [_SERIES[i % len(_SERIES)] for i in range(n)]
 
 
 def _percent_plot(ax, s: Series, cmd: NDArray[np.float64], meas: NDArray[np.float64],
@@ -169,8 +173,8 @@ def _plot_tcp(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     t1, c = reduce_series(s.t, s.tcp_cmd)
     _, m = reduce_series(s.t, s.tcp_meas)
     _, cap = reduce_series(s.t, s.tcp_cap, how=np.fmin)
-    ax.plot(t1, c, color="#1f5fa8", label="commanded", **_CMD_STYLE)
-    ax.plot(t1, m, color="#e08a00", label="measured", **_MEAS_STYLE)
+    ax.plot(t1, c, color=_COMMANDED, label="commanded", **_CMD_STYLE)
+    ax.plot(t1, m, color=_MEASURED, label="measured", **_MEAS_STYLE)
     ax.step(t1, cap, where="post", label="cap", **_LIMIT_STYLE)
     top = max(_peak(c, m, cap), 1e-3) * 1.12      # the cap always in view: "against" it
     ax.set_ylim(0.0, top)
@@ -182,14 +186,14 @@ def _plot_tcp(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
 def _plot_sigma(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     t1, sig = reduce_series(s.t, s.sigma_min, how=np.fmin)
     _, lam = reduce_series(s.t, s.damping)
-    ax.plot(t1, sig, color="#5b3fa0", label="σ_min", **_CMD_STYLE)
-    ax.axhline(r.damping_threshold, color="#5b3fa0", linewidth=0.8, linestyle=":",
+    ax.plot(t1, sig, color=_SIGMA, label="σ_min", **_CMD_STYLE)
+    ax.axhline(r.damping_threshold, color=_SIGMA, linewidth=0.8, linestyle=":",
                label=f"damping starts ({r.damping_threshold:g})")
-    _shade(ax, t1, np.nan_to_num(lam) > 0.0, "#5b3fa0", 0.08)
+    _shade(ax, t1, np.nan_to_num(lam) > 0.0, _SIGMA, 0.08)
     ax.set_ylim(bottom=0.0)
     ax.set_ylabel("σ_min")
     twin = ax.twinx()
-    twin.plot(t1, lam, color="#8a8a8a", linewidth=0.9, label="damping λ")
+    twin.plot(t1, lam, color=_DAMPING, linewidth=0.9, label="damping λ")
     twin.set_ylim(0.0, max(arm.solver.damping_max, 1e-6) * 1.1)
     twin.set_ylabel("damping λ")
     lines = ax.get_legend_handles_labels()
@@ -202,13 +206,13 @@ def _plot_sigma(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
 def _plot_tracking(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
     t1, lin = reduce_series(s.t, 1e3 * s.tracking_linear)
     _, ang = reduce_series(s.t, np.degrees(s.tracking_angular))
-    ax.plot(t1, lin, color="#1f5fa8", label="linear (mm/s)", **_CMD_STYLE)
+    ax.plot(t1, lin, color=_COMMANDED, label="linear (mm/s)", **_CMD_STYLE)
     ax.set_ylabel("linear error (mm/s)")
     # Axes reach at least 1 % of the arm's caps, so the simulator's tiny velocity error
     # does not fill the plot.
     ax.set_ylim(bottom=0.0, top=max(_peak(lin), 10.0 * arm.tcp_max_linear_m_s) * 1.12)
     twin = ax.twinx()
-    twin.plot(t1, ang, color="#c2185b", linewidth=0.9, label="angular (deg/s)")
+    twin.plot(t1, ang, color=_ANGULAR, linewidth=0.9, label="angular (deg/s)")
     twin.set_ylabel("angular error (deg/s)")
     twin.set_ylim(bottom=0.0,
                   top=max(_peak(ang), 0.01 * math.degrees(arm.tcp_max_angular_rad_s)) * 1.12)
@@ -220,8 +224,8 @@ def _plot_tracking(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
 
 
 def _plot_timeline(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
-    rows = [("motion allowed", s.allowed, "#9e9e9e"),
-            ("damping active", s.damping > 0.0, "#5b3fa0")]
+    rows = [("motion allowed", s.allowed, _ALLOWED),
+            ("damping active", s.damping > 0.0, _SIGMA)]
     colors = _joint_colors(len(s.binding_names) + 1)
     rows += [(name, s.binding == k, colors[k + 1]) for k, name in enumerate(s.binding_names)]
     dt = 1.0 / r.rate_hz
@@ -287,24 +291,26 @@ def _shade(ax, t: NDArray[np.float64], mask: NDArray[np.bool_], color: str, alph
 # HTML
 # ----------------------------------------------------------------------------------------
 
-_CSS = """
+_CSS = string.Template("""
 body { font: 14px/1.45 system-ui, sans-serif; margin: 24px auto; max-width: 980px;
-       color: #202124; padding: 0 16px; }
+       color: $ink; padding: 0 16px; }
 h1 { font-size: 22px; margin: 0 0 4px; } h2 { font-size: 17px; margin: 28px 0 8px; }
 .verdict { display: inline-block; padding: 4px 14px; border-radius: 4px; color: #fff;
            font-weight: 600; letter-spacing: .04em; }
-.meta { color: #5f6368; font-size: 13px; }
+.meta { color: $muted; font-size: 13px; }
 table { border-collapse: collapse; font-size: 13px; margin: 6px 0; }
 th, td { padding: 3px 10px; border-bottom: 1px solid #e0e0e0; text-align: right; }
 th { background: #f4f5f7; font-weight: 600; }
 td:first-child, th:first-child { text-align: left; }
-td.over { color: #b3261e; font-weight: 600; }
+td.over { color: $fail; font-weight: 600; }
 ul { margin: 4px 0 4px 20px; padding: 0; } li { margin: 2px 0; }
-.reasons li { color: #b3261e; }
+.reasons li { color: $fail; }
 img { display: block; max-width: 100%; margin: 6px 0 18px; border: 1px solid #eee; }
 .caution { margin-top: 32px; padding: 10px 14px; background: #fff8e1; font-size: 13px;
-           border-left: 4px solid #f0b400; }
-"""
+           border-left: 4px solid $warn; }
+""").substitute(
+    ink=palette.hex_code(palette.INK), muted=palette.hex_code(palette.INK_MUTED), fail=_FAIL,
+    warn=palette.hex_code(palette.WARN))
 
 
 def write_report(path: str | Path, result: PreflightResult, ctx: ReportContext) -> Path:

@@ -62,6 +62,7 @@ class CycleSettings:
         """The session's control cycle; in `cell` with the damper if the session had it."""
         return ControlCycle(arm, self.pad, rate_hz=self.rate_hz, safety=self.safety,
                             reduced_locked=self.reduced_locked, locked=self.locked,
+                            state_lag_cycles=self.state_lag_cycles,
                             cell=cell if self.clearance else None)
 
 

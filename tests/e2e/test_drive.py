@@ -142,6 +142,20 @@ def test_arm_stops_when_the_script_releases_enable(request, run):
     assert np.max(np.linalg.norm(np.diff(p, axis=0), axis=1) / dt[:, 0]) < 1e-3   # m/s
 
 
+def test_inspect_of_a_driven_session_finds_no_acceleration_and_lists_the_stop(paced_run,
+                                                                          capsys):
+    """The release at the end steps the rates to zero in one cycle: a stop, listed on its
+    own, never a commanded acceleration beyond max or rated (runtime.sessions.stats)."""
+    from runtime.cli import main
+    _, summary, _ = paced_run[:3]
+    assert main(["inspect", summary["session"]["path"], "--json"]) == 0
+    inspected = json.loads(capsys.readouterr().out)
+    for j in inspected["joints"]:
+        assert not j["over_max_accel"] and not j["over_rated_accel"], j["name"]
+        assert j["peak_accel"] <= j["max_accel"] * (1 + 1e-9)
+    assert len(inspected["stops"]) == 1 and inspected["stops"][0]["tcp_speed"] > 0.04
+
+
 def test_status_window_renders_a_real_drive_snapshot(paced_run):
     """The PNG of the status window, drawn from the live snapshot taken at 1.2 s."""
     from runtime.operator.inputs.pygame_init import pygame

@@ -157,6 +157,19 @@ def test_rerun_of_the_preflight_log_reproduces_its_rates(gentle, capsys):
     assert result["cycles"] == summary["cycles"]
 
 
+def test_inspect_and_preflight_of_the_same_log_agree_on_every_peak(gentle, capsys):
+    """One analysis of commanded motion (runtime.sessions.stats) behind both."""
+    _, summary, _ = gentle
+    assert main(["inspect", summary["files"]["session_log"], "--json"]) == 0
+    inspected = json.loads(capsys.readouterr().out)
+    for mine, theirs in zip(summary["joints"], inspected["joints"]):
+        assert mine["name"] == theirs["name"]
+        for key in ("peak_speed", "peak_speed_t_s", "peak_accel", "peak_accel_t_s"):
+            assert mine[key] == theirs[key], (mine["name"], key)
+    assert summary["stops"] == inspected["stops"]
+    assert summary["tcp_peak_speed"] == inspected["tcp_peak_speed"]
+
+
 def test_limit_profile_fails_naming_the_joint(tmp_path, capsys):
     code, summary = preflight(capsys, "elbow6", "wrist_limit", "--out", str(tmp_path),
                               "--no-report")
@@ -168,6 +181,56 @@ def test_limit_profile_fails_naming_the_joint(tmp_path, capsys):
     wrist = next(j for j in summary["joints"] if j["name"] == "wrist_pitch")
     # Braked onto its soft limit: 1° margin from the hard limit, never past it.
     assert wrist["min_limit_distance"] == pytest.approx(math.radians(1.0), abs=math.radians(0.05))
+    # ... decelerating at no more than its software max_accel on every cycle, and jogwire
+    # kept to its own limits (no software_* finding): the position limit is the only one.
+    assert wrist["peak_accel"] <= wrist["max_accel"] * (1 + 1e-9)
+    assert codes == {("position_limit", "wrist_pitch")}
+
+
+# An invented two-joint URDF arm, a turntable and a slide, whose ratings equal its limits
+# (a URDF has no separate ratings: runtime/arm/urdf.py), so jogwire has no headroom to hide
+# an overshoot of its own limits in.
+TABLE_SLIDE_URDF = """<?xml version="1.0"?>
+<robot name="table_slide">
+  <link name="base"/>
+  <link name="table"><inertial><mass value="1"/><inertia ixx="0.01" iyy="0.01" izz="0.01"
+    ixy="0" ixz="0" iyz="0"/></inertial></link>
+  <link name="carriage"><inertial><mass value="0.5"/><inertia ixx="0.01" iyy="0.01"
+    izz="0.01" ixy="0" ixz="0" iyz="0"/></inertial></link>
+  <link name="tool"/>
+  <joint name="turn" type="revolute"><parent link="base"/><child link="table"/>
+    <origin xyz="0 0 0.2"/><axis xyz="0 0 1"/>
+    <limit lower="-1.0" upper="1.0" velocity="1.2" effort="50"/></joint>
+  <joint name="slide" type="prismatic"><parent link="table"/><child link="carriage"/>
+    <origin xyz="0.1 0 0.05"/><axis xyz="1 0 0"/>
+    <limit lower="0.0" upper="0.3" velocity="0.25" effort="200"/></joint>
+  <joint name="flange" type="fixed"><parent link="carriage"/><child link="tool"/>
+    <origin xyz="0.05 0 0"/></joint>
+</robot>
+"""
+
+
+@pytest.mark.parametrize("joint, rate", [("turn", 0.9), ("slide", 0.2)])
+def test_a_jog_into_a_limit_with_no_headroom_finds_only_the_position_limit(
+        joint, rate, tmp_path, capsys):
+    # The jog asks for 2 s at `rate`: more travel than the joint has from mid-range.
+    urdf = tmp_path / "table_slide.urdf"
+    urdf.write_text(TABLE_SLIDE_URDF)
+    profile = tmp_path / "jog.toml"
+    profile.write_text(f"""name = "jog"
+angle_unit = "rad"
+lead_in_s = 0.2
+[[segment]]
+duration_s = 2.0
+joint = "{joint}"
+joint_rate = {rate}
+[[segment]]
+duration_s = 0.3
+""")
+    code, summary = preflight(capsys, str(urdf), str(profile), "--out", str(tmp_path),
+                              "--no-report")
+    assert code == 1
+    assert {(f["code"], f["joint"]) for f in summary["findings"]} == {("position_limit", joint)}
 
 
 @pytest.fixture(scope="module")

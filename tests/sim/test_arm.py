@@ -13,6 +13,7 @@ import numpy as np
 import pybullet as pb
 import pytest
 
+from runtime import palette
 from runtime.arm.kinematics import tcp_pose
 from runtime.arm.model import load_arm
 from runtime.link.protocol import Rates, hello_for
@@ -178,9 +179,11 @@ def test_snapshot_png_shows_the_arm(tmp_path: Path, reach7) -> None:
                  "--q", "0,20,0,-60,0,40,0", "--deg"]) == 0
     image = matplotlib.image.imread(path)          # an independent PNG decoder
     assert image.shape == (120, 160, 4)
-    rgb = (image[..., :3] * 255).astype(int)
-    orange = (rgb[..., 0] > 150) & (rgb[..., 1] > 70) & (rgb[..., 1] < 170) & (rgb[..., 2] < 90)
-    assert orange.sum() > 100                      # the arm's tubes are in the picture
+    rgb = (image[..., :3] * 255).round().astype(int)
+    link = np.array(palette.ARM_LINK)            # shaded: within 0.5–1 of the link colour
+    lit = np.all((rgb >= 0.5 * link - 2) & (rgb <= link + 2), axis=-1) & (rgb.min(axis=-1) > 90)
+    assert lit.sum() > 100                         # the arm's links are in the picture
+    assert tuple(rgb[0, 0]) == palette.GROUND      # on the window's ground
     assert len(np.unique(rgb.reshape(-1, 3), axis=0)) > 50   # shaded, not a flat image
 
 

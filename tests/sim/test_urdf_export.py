@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from runtime import palette
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
 from runtime.arm.model import load_arm
 from runtime.arm.transforms import make_transform, rpy_to_matrix
@@ -117,3 +118,20 @@ def test_reserved_names_do_not_clash_with_joint_names(tmp_path: Path) -> None:
     assert len(names) == len(set(names))
     back = load_urdf_arm(write_urdf(arm, tmp_path / "p.urdf"))
     assert back.joint_names == ("flange_joint", "tcp_joint", "j3")
+
+
+@pytest.mark.parametrize("name", DEMO_ARMS)
+def test_materials_are_the_palette_colours(name: str) -> None:
+    root = ET.fromstring(arm_to_urdf(load_arm(name)))
+    colours = {m.get("name"): [float(v) for v in m.find("color").get("rgba").split()]
+               for m in root.findall("material")}
+    expected = {"tube": palette.ARM_LINK, "housing": palette.ARM_HOUSING, "tool": palette.TOOL}
+    assert colours.keys() == expected.keys()
+    for material, rgb in expected.items():
+        # four decimals in the file: within 1e-4 of the 8-bit palette value, a fifth of a level
+        np.testing.assert_allclose(colours[material], palette.unit(rgb), rtol=0, atol=1e-4)
+    used = {m.get("name") for m in root.iter("material") if m.find("color") is None}
+    assert used == set(expected)          # every visual names one of them, none is unused
+    tool = [v for link in root.findall("link") if link.get("name") in ("flange", "tcp")
+            for v in link.findall("visual")]
+    assert tool and all(v.find("material").get("name") == "tool" for v in tool)

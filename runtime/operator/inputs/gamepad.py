@@ -5,19 +5,31 @@ instance id: pygame's device index is not unique once pads come and go (REFERENC
 
 - JOYDEVICEADDED (device_index): the pad is opened; the first one becomes the active pad,
   with its axes and buttons read at once, so a button already held when it is plugged in
-  shows as held (and the safety gate makes the operator release it first).
+  shows as held (and the safety gate makes the operator release it first). It counts as
+  present only `SETTLE_S` after the first `read` that sees it: a pad's first input reports
+  can arrive just after it is opened, and a button held through the plug-in must reach the
+  gate as held at appearance, never as a fresh press.
 - JOYDEVICEREMOVED (instance_id): if it was the active pad, the next `read` reports
   present=False exactly once even if another pad takes over, so the mapping and the
-  safety gate always see the loss; a pad that comes back is a new device.
+  safety gate always see the loss; a pad that comes back is a new device. While no pad is
+  there the source's name says which one was unplugged; a pad that takes over later says
+  how many were unplugged this session.
 - Axis values are clamped to [−1, 1]: pygame scales events by 1/32767, so −32768 arrives
   as −1.0000305. Hats become the buttons "hat<N>:up|down|left|right".
+
+How fast an unplug stops motion: the event reaches this source at the next event pump
+(every 4 ms headless; the status window pumps every 4 ms between frames, so a frame being
+drawn adds its drawing time), and the next control cycle after that reads present=False:
+the gate commands zero within one pump period and one control period of the unplug
+(tests/e2e/test_drive_pad.py measures it headless).
 
 Threads: `handle_event` runs on the thread that owns pygame's event queue (the main
 thread), `read` on the control thread; a lock keeps their view consistent.
 
 Tests and tools without a physical pad call `attach(instance_id, ...)` to adopt a device
 that pygame does not know; events posted to pygame's queue with that instance id then flow
-through the same path as a real pad's.
+through the same path as a real pad's. (tests/virtual_pad.py goes further: a pad made by
+SDL itself, which this source opens like any other.)
 """
 
 from __future__ import annotations
@@ -27,6 +39,8 @@ from dataclasses import dataclass, field
 
 from ...control.mapping import Button, InputFrame, clamp_unit
 from .pygame_init import init_events, pygame
+
+SETTLE_S = 0.1   # a newly opened pad counts as present this long after it is first read (s)
 
 # (k, v, name): the hat value (x, y) points `name` when its k-th component is v
 _HAT_DIRECTIONS = ((1, 1, "up"), (1, -1, "down"), (0, -1, "left"), (0, 1, "right"))
@@ -43,6 +57,9 @@ class _Pad:
     name: str
     axes: list[float]
     pressed: set[Button] = field(default_factory=set)
+    settle_s: float = 0.0          # present this long after the first read sees it (s)
+    present_from_s: float | None = None
+    buttons: int = 0               # how many buttons the device has
 
 
 class GamepadSource:
@@ -55,6 +72,7 @@ class GamepadSource:
         self._joysticks: dict[int, pygame.joystick.JoystickType] = {}  # open, by instance id
         self._active: _Pad | None = None
         self._lost_pending = False
+        self.unplugged = 0                 # active pads unplugged this session
         self.events_handled = 0
         if open_present:
             for index in range(pygame.joystick.get_count()):
@@ -122,8 +140,18 @@ class GamepadSource:
             pad = self._active
             if pad is None:
                 return InputFrame(device=self.name, present=False)
+            if pad.present_from_s is None:
+                pad.present_from_s = now_s + pad.settle_s
+            if now_s < pad.present_from_s:
+                return InputFrame(device=self.name, present=False)
             return InputFrame(device=self.name, present=True, axes=tuple(pad.axes),
                               pressed=frozenset(pad.pressed))
+
+    @property
+    def button_count(self) -> int:
+        """Buttons of the active pad (0 without one)."""
+        with self._lock:
+            return 0 if self._active is None else self._active.buttons
 
     @property
     def device_name(self) -> str | None:
@@ -158,8 +186,11 @@ class GamepadSource:
         for h in range(js.get_numhats()):
             pressed |= hat_buttons(h, js.get_hat(h))
         axes = [clamp_unit(js.get_axis(a)) for a in range(js.get_numaxes())]
-        self._active = _Pad(iid, js.get_name(), axes, pressed)
+        self._active = _Pad(iid, js.get_name(), axes, pressed, settle_s=SETTLE_S,
+                            buttons=js.get_numbuttons())
         self.name = f"pad {js.get_name()!r} #{iid}"
+        if self.unplugged:
+            self.name += f" ({self.unplugged} unplugged before)"
 
     def _remove(self, instance_id: int) -> None:
         with self._lock:
@@ -168,9 +199,10 @@ class GamepadSource:
                 js.quit()
             if self._active is None or self._active.instance_id != instance_id:
                 return
+            self.unplugged += 1
+            self.name = f"no pad: {self._active.name!r} #{instance_id} unplugged"
             self._active = None
             self._lost_pending = True
-            self.name = "gamepad"
             if self._joysticks:  # another pad is plugged in: it takes over
                 iid, other = next(iter(self._joysticks.items()))
                 self._activate(iid, other)

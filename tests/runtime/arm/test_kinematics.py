@@ -12,8 +12,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from runtime.arm.kinematics import (analyse_pose, condition_number, geometric_jacobian,
-                                jacobian_from_frames, joint_frames, link_transforms, tcp_pose,
-                                tool_frame_jacobian, twist_to_base, yoshikawa_manipulability)
+                                    jacobian_from_frames, joint_frames, link_transforms,
+                                    pose_and_jacobian, tcp_pose, tool_frame_jacobian,
+                                    twist_to_base, yoshikawa_manipulability)
 from runtime.arm.model import Arm, DHRow, Joint, chain_from_dh, load_arm
 from runtime.arm.transforms import make_transform, trans
 
@@ -248,6 +249,35 @@ def test_frames_match_the_chain_of_link_transforms(name: str) -> None:
     got_frames, got_T = joint_frames(arm, q)
     np.testing.assert_allclose(got_frames, frames, atol=1e-15)
     np.testing.assert_allclose(got_T, T @ arm.flange @ arm.tool, atol=1e-15)
+
+
+@pytest.mark.parametrize("kinds", ["R", "P", "RR", "RP", "PR", "RRR", "PPR", "RPRRPR", "RRRRRRRR",
+                                   "RRPRRRPRR"])
+def test_paired_chain_equals_the_plain_product_on_random_chains(kinds: str) -> None:
+    """Joints taken in pairs with fitted trigonometric terms (runtime/arm/chain_terms.py)
+    give the plain product of link transforms and the cross-product Jacobian
+    (Siciliano et al. 2009, eq. 3.30) on random chains, any mix and count of joint kinds."""
+    rng = np.random.default_rng(len(kinds))
+    for _ in range(5):
+        rows = [tuple(rng.uniform(-0.5, 0.5, 2)) + tuple(rng.uniform(-np.pi, np.pi, 2))
+                for _ in kinds]
+        arm = dh_arm(rows, kinds, modified=bool(rng.integers(2)),
+                     tool=make_transform(rng.uniform(-0.2, 0.2, 3), rng.uniform(-3, 3, 3)),
+                     base=make_transform(rng.uniform(-1, 1, 3), rng.uniform(-3, 3, 3)))
+        q = rng.uniform(-6.0, 6.0, arm.n)
+        T = arm.base
+        frames = []
+        for L in link_transforms(arm, q):
+            T = T @ L
+            frames.append(T)
+        T = T @ arm.tip
+        got_frames, got_T = joint_frames(arm, q)
+        np.testing.assert_allclose(got_frames, frames, rtol=0, atol=1e-13)
+        np.testing.assert_allclose(got_T, T, rtol=0, atol=1e-13)
+        T_again, J = pose_and_jacobian(arm, q)
+        np.testing.assert_array_equal(T_again, got_T)
+        np.testing.assert_allclose(J, jacobian_from_frames(arm, np.array(frames), T), rtol=0,
+                                   atol=1e-13)
 
 
 def test_reach7_manipulability_is_sqrt_det_j_jt() -> None:

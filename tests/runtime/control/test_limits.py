@@ -1,8 +1,9 @@
 """Joint-rate limits: braking toward position limits, speed, acceleration, TCP caps and
 reduced speed, each a uniform scaling of the whole vector.
 
-Sources: REFERENCES §5 (braking: elementary kinematics, Flacco et al. 2015, the one-period
-latency form derived there), §4 (ISO 10218-1 reduced speed, 250 mm/s).
+Sources: REFERENCES §5 (braking: elementary kinematics, Flacco et al. 2015, Del Prete 2018
+for the discrete-time setting; the sampled curve is checked against a brute-force simulation
+of the stop), §4 (ISO 10218-1 reduced speed, 250 mm/s).
 """
 
 from __future__ import annotations
@@ -17,7 +18,8 @@ from hypothesis import strategies as st
 from runtime.arm.kinematics import geometric_jacobian
 from runtime.control.limits import (REDUCED_SPEED_M_S, SCALE_NAMES, JointBounds, acceleration_step,
                             apply_limits, binding_limit, braking_factor, braking_speed,
-                            cap_factor, clear_of_limits, distance_ahead, speed_factor)
+                            cap_factor, clear_of_limits, distance_ahead, speed_factor,
+                            start_pose, stopping_distance)
 from runtime.arm.model import load_arm
 from runtime.control.solver import solve
 
@@ -31,10 +33,14 @@ TOL = 1e-9  # relative slack for round-off in the bound checks
 
 def test_braking_speed_check_values() -> None:
     # REFERENCES §5 (elementary kinematics, d = v²/(2a)): v = 1, a = 5 → d_stop = 0.1;
-    # d = 0.05, a = 5 → √(2ad) = 0.707107; one period of latency Δt = 4 ms → 0.687390.
+    # d = 0.05, a = 5 → √(2ad) = 0.707107 (the dt → 0 limit of the sampled curve).
     assert braking_speed(5.0, 0.1, 0.0) == pytest.approx(1.0, rel=1e-12)
     assert braking_speed(5.0, 0.05, 0.0) == pytest.approx(0.707107, abs=5e-7)
-    assert braking_speed(5.0, 0.05, 0.004) == pytest.approx(0.687390, abs=5e-7)
+    # Sampled, dt = 4 ms (u = a·dt = 0.02 rad/s): the stop from v covers
+    # dt·(v + (v−u) + (v−2u) + …); by hand, v = 0.697143 gives 34 terms of 0.004·… = 0.05.
+    assert braking_speed(5.0, 0.05, 0.004) == pytest.approx(0.6971428571, abs=1e-9)
+    # less than one period's travel left: stop within it (v·dt = d)
+    assert braking_speed(5.0, 1e-5, 0.002) == pytest.approx(0.005, rel=1e-12)
     # at or past the limit (minus margin): no motion toward it
     assert braking_speed(5.0, 0.0, 0.002) == 0.0
     assert braking_speed(5.0, -0.3, 0.002) == 0.0
@@ -42,12 +48,58 @@ def test_braking_speed_check_values() -> None:
     assert 1e10 < braking_speed(5.0, math.inf, 0.002) < math.inf
 
 
-@settings(max_examples=100, deadline=None)
-@given(a=st.floats(0.01, 1e4), d=st.floats(0.0, 10.0), dt=st.floats(1e-5, 0.05))
-def test_braking_speed_stops_in_time_with_latency(a: float, d: float, dt: float) -> None:
-    # v·Δt + v²/(2a) ≤ d (REFERENCES §5, one-period latency), with equality.
+def brute_force_stop(a: float, v: float, dt: float) -> float:
+    """Distance covered from rate v held one period, then slowed by exactly a·dt a period
+    (simulated cycle by cycle, no formula): the outside reference for the sampled curve."""
+    travelled = 0.0
+    while v > 0.0:
+        travelled += v * dt
+        v -= a * dt
+    return travelled
+
+
+def brute_force_braking_speed(a: float, d: float, dt: float) -> float:
+    """Largest v whose simulated stop stays within d, by bisection on the simulation."""
+    lo, hi = 0.0, d / dt + a * dt + 1.0
+    for _ in range(100):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if brute_force_stop(a, mid, dt) <= d else (lo, mid)
+    return lo
+
+
+@settings(max_examples=150, deadline=None)
+@given(a=st.floats(0.1, 100.0), d=st.floats(0.0, 0.5), dt=st.floats(2e-4, 0.02))
+def test_braking_speed_matches_a_brute_force_stop(a: float, d: float, dt: float) -> None:
+    # Outside-the-formula reference: the simulated stop (at most a few thousand periods).
     v = float(braking_speed(a, d, dt))
-    assert v * dt + v * v / (2 * a) == pytest.approx(d, rel=1e-9, abs=1e-15)
+    assert v == pytest.approx(brute_force_braking_speed(a, d, dt), rel=1e-9, abs=1e-12)
+    assert brute_force_stop(a, v, dt) <= d * (1 + 1e-12) + 1e-15
+    assert stopping_distance(a, v, dt) == pytest.approx(brute_force_stop(a, v, dt), rel=1e-9,
+                                                        abs=1e-15)
+
+
+@settings(max_examples=100, deadline=None)
+@given(a=st.floats(0.01, 1e4), d=st.floats(1e-6, 10.0), dt=st.floats(1e-5, 0.05))
+def test_following_the_curve_never_asks_more_than_max_accel(a: float, d: float,
+                                                            dt: float) -> None:
+    # The recursion that makes the curve exact for a sampled controller: one period on, the
+    # rate allowed at the distance left is never below this one's minus a·dt.
+    v = float(braking_speed(a, d, dt))
+    v_next = float(braking_speed(a, d - v * dt, dt))
+    assert v - v_next <= a * dt * (1 + 1e-9) + 1e-12
+
+
+def test_braking_speed_tends_to_the_continuous_curve() -> None:
+    # √(2ad) (REFERENCES §5) as dt → 0
+    for dt in (1e-4, 1e-6, 1e-8):
+        assert braking_speed(5.0, 0.05, dt) == pytest.approx(math.sqrt(0.5), rel=3 * dt ** 0.5)
+
+
+def test_start_pose_moves_on_by_the_rates_in_flight() -> None:
+    q, prev = np.array([0.1, -0.2]), np.array([1.0, -2.0])
+    np.testing.assert_array_equal(start_pose(q, prev, 0.002, 1), q + prev * 0.002)
+    np.testing.assert_array_equal(start_pose(q, prev, 0.002, 0), q)
+    np.testing.assert_array_equal(start_pose(q, None, 0.002, 1), q)
 
 
 def test_speed_factor() -> None:
@@ -137,9 +189,10 @@ def test_reduced_speed_switched_on_while_moving_caps_at_once() -> None:
     # already at ≤ 0.25 m/s at the TCP.
     arm = ARMS["elbow6"]
     q = arm.home()
-    fast = solve(arm, q, [0.5, 0, 0, 0, 0, 0])
+    fast = solve(arm, q, [0.5, 0, 0, 0, 0, 0], dt_s=0.002)
     assert np.linalg.norm(fast.achieved_twist[:3]) == pytest.approx(0.5, rel=1e-9)
-    s = solve(arm, q, [0.5, 0, 0, 0, 0, 0], reduced=True, prev_rates=fast.rates)
+    s = solve(arm, q, [0.5, 0, 0, 0, 0, 0], reduced=True, prev_rates=fast.rates, dt_s=0.002)
+    assert s.conflicts == ("tcp_cap_over_acceleration",)  # named: the cap won
     assert np.linalg.norm(s.achieved_twist[:3]) <= REDUCED_SPEED_M_S * (1 + TOL)
     assert s.scales["reduced_speed"] <= 0.5 * (1 + TOL)
 
@@ -184,7 +237,7 @@ def check_cycle(arm, q, s, prev, dt, reduced) -> None:
     assert all(0.0 <= f <= 1.0 for f in s.scales.values())
     # joint speed
     assert (np.abs(r) <= b.speed * (1 + TOL)).all()
-    # braking toward position limits, one-period latency form (REFERENCES §5)
+    # braking toward position limits, the sampled curve (REFERENCES §5)
     allowed = braking_speed(b.accel, distance_ahead(b, q, r), dt)
     assert (np.abs(r) <= allowed * (1 + TOL) + 1e-12).all()
     # acceleration per cycle
@@ -207,11 +260,12 @@ def test_every_limit_holds_on_every_cycle(session) -> None:
     b = JointBounds.of(arm)
     q, prev = q0.copy(), np.zeros(arm.n)
     check_cycle(arm, q, solve(arm, q, segments[0], frame=frame, reduced=reduced,
-                              locked=locked, dt_s=dt), None, dt, reduced)  # no history
+                              locked=locked, dt_s=dt, state_lag_cycles=0),
+                None, dt, reduced)  # no history
     for twist in segments:
         for _ in range(15):
             s = solve(arm, q, twist, frame=frame, reduced=reduced, locked=locked,
-                      prev_rates=prev, dt_s=dt)
+                      prev_rates=prev, dt_s=dt, state_lag_cycles=0)  # q += q̇·dt: no lag
             check_cycle(arm, q, s, prev, dt, reduced)
             q = q + s.rates * dt
             prev = s.rates

@@ -127,6 +127,8 @@ def test_a_stop_is_not_counted_as_a_commanded_deceleration(arm):
     assert result.verdict == "pass"
     assert len(result.stops) == 1 and result.stops[0].t_s == pytest.approx(cut * DT)
     assert result.stops[0].reason == "hold enable to move"
+    # the step to zero, listed with what it asks of an arm that followed it literally
+    assert (result.stops[0].joint, result.stops[0].asked_decel) == ("j1", pytest.approx(v / DT))
     assert result.joints[0].peak_accel == pytest.approx(math.radians(300.0), rel=1e-9)
     assert math.isnan(result.series.accel_cmd[cut, 0])
 
@@ -135,7 +137,11 @@ def test_an_acceleration_above_the_rating_fails(arm):
     a = 1.5 * arm.joints[0].rated_accel
     result = evaluate(arm, run_joint1(arm, trapezoid(math.radians(60.0), a, 0.2)),
                       rate_hz=RATE_HZ)
-    assert [(f.code, f.joint) for f in result.findings] == [("rated_accel", "j1")]
+    # a trace no limit layer would command: above the software max_accel too, and that is
+    # its own finding (jogwire exceeded its own limit), apart from the rated one
+    assert a > arm.joints[0].max_accel
+    assert [(f.code, f.joint) for f in result.findings] == [("software_accel", "j1"),
+                                                            ("rated_accel", "j1")]
     assert result.joints[0].peak_accel == pytest.approx(a, rel=1e-9)
 
 

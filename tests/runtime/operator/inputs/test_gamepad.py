@@ -14,7 +14,7 @@ os.environ.setdefault("SDL_AUDIODRIVER", "dummy")
 import numpy as np  # noqa: E402
 import pytest  # noqa: E402
 
-from runtime.operator.inputs.gamepad import GamepadSource, hat_buttons, pygame  # noqa: E402
+from runtime.operator.inputs.gamepad import SETTLE_S, GamepadSource, hat_buttons, pygame  # noqa: E402
 from runtime.operator.inputs.pygame_init import display_available  # noqa: E402
 from runtime.control.mapping import Mapper, load_pad  # noqa: E402
 from runtime.arm.model import load_arm  # noqa: E402
@@ -133,8 +133,10 @@ def test_a_removal_is_seen_even_if_another_pad_takes_over_at_once(source):
     post("JOYDEVICEREMOVED", instance_id=PAD_ID)
     source.pump()
     assert source.read(0.0).present is False     # the loss is reported once …
-    frame = source.read(0.002)
-    assert frame.present and frame.pressed == {4}  # … then the other pad, its state read at once
+    assert source.read(0.002).present is False   # … the other pad settles (SETTLE_S) …
+    frame = source.read(0.002 + SETTLE_S)
+    assert frame.present and frame.pressed == {4}  # … with its state read when it was opened
+    assert frame.device == "pad 'second pad' #999 (1 unplugged before)"
 
 
 def test_an_unopenable_device_index_is_ignored(source):
