@@ -14,14 +14,21 @@ on the poses of a simulated jog (q += q̇·dt at 500 Hz; WORKLOADS below), so th
 load hits all alike and the jogwire path sees damping and limits as they come in use;
 medians are also given per path (clear of limits and singularities, near a position limit,
 damped). Also times the candidate ways of getting σ_min (the choice made
-in runtime/control/solver.py). Run from the repository root:
+in runtime/control/solver.py).
 
-    python benchmarks/bench_solver.py [--cycles N] [--arm reach7]
+Clearance (--cell, default the demo cell `bench`): the same solve with and without the
+velocity damper (runtime/control/clearance.py), interleaved at each pose of a jog that
+drives into the cell's objects under the damper (3 s gestures at 0.3 m/s, mostly downward
+and sideways, from home); the added time per cycle, in all cycles and in those with a pair
+inside the influence distance. Run from the repository root:
+
+    python benchmarks/bench_solver.py [--cycles N] [--arm reach7] [--cell bench]
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import tempfile
 import time
@@ -31,7 +38,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from runtime.arm.cell import load_cell  # noqa: E402
 from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian  # noqa: E402
+from runtime.control.clearance import ClearanceLimit  # noqa: E402
 from runtime.control.limits import JointBounds, clear_of_limits  # noqa: E402
 from runtime.arm.model import Arm, load_arm  # noqa: E402
 from runtime.control.solver import _eigvalsh, _solve, solve  # noqa: E402
@@ -144,12 +153,47 @@ def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
     return {name: float(np.median(t)) * 1e6 for name, t in times.items()}
 
 
+def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
+                   ) -> dict[str, np.ndarray]:
+    """Per cycle: solve time without and with the cell, and whether a pair was inside d_i."""
+    cell = load_cell(cell_name, arm)
+    limit = ClearanceLimit.of(arm, cell)
+    rng = np.random.default_rng(seed)
+    hold = int(3.0 / DT_S)
+    plain, guarded = np.empty(cycles), np.empty(cycles)
+    near = np.zeros(cycles, dtype=bool)
+    q, prev = arm.home(), np.zeros(arm.n)
+    for v in jog_twists(200):  # warm-up
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
+    clock = time.perf_counter
+    for k in range(cycles):
+        if k % hold == 0:  # a new gesture from home: 0.3 m/s, mostly down and sideways
+            q, prev = arm.home(), np.zeros(arm.n)
+            d = rng.normal(size=3) * (1.0, 1.0, 0.5) - (0.0, 0.0, 1.0)
+            v = np.concatenate((0.3 * d / np.linalg.norm(d), rng.normal(size=3) * 0.2))
+        t0 = clock()
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
+        t1 = clock()
+        sol = solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
+        t2 = clock()
+        plain[k], guarded[k] = t1 - t0, t2 - t1
+        near[k] = sol.clearance.min_distance_m < cell.clearance.influence_distance_m
+        prev = sol.rates
+        q = q + prev * DT_S
+    return {"plain": plain, "guarded": guarded, "near": near}
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--cycles", type=int, default=20000, help="timed cycles")
     parser.add_argument("--arm", default="reach7", help="shipped arm name")
+    parser.add_argument("--cell", default="bench", help="shipped cell name for the clearance "
+                                                         "figures")
     args = parser.parse_args(argv)
     arm = load_arm(args.arm)
+    print(f"load average at the start {os.getloadavg()[0]:.2f} (figures under load ≥ 1 are "
+          f"not results)")
     with tempfile.TemporaryDirectory() as tmp:
         urdf = write_urdf(arm, Path(tmp) / f"{arm.name}.urdf")
         results = {w: run(arm, urdf, args.cycles, w) for w in WORKLOADS}
@@ -177,6 +221,17 @@ def main(argv: list[str] | None = None) -> int:
     print("σ_min options on 6×n Jacobians (median µs):")
     for name, t in sigma_min_options(arm, 5000).items():
         print(f"  {name:<48} {t:6.1f}")
+    cost = clearance_cost(arm, args.cell, args.cycles)
+    plain, guarded, near = cost["plain"] * us, cost["guarded"] * us, cost["near"]
+    print(f"Clearance in cell {args.cell} ({args.cycles} cycles; a pair inside d_i in "
+          f"{near.mean():.0%} of them):")
+    for name, chosen in (("all cycles", np.ones_like(near)), ("a pair inside d_i", near),
+                         ("nothing inside d_i", ~near)):
+        if chosen.any():
+            print(f"  {name:<20} solve median {np.median(plain[chosen]):6.1f} µs, with the "
+                  f"cell {np.median(guarded[chosen]):6.1f} µs, added (median of per-cycle "
+                  f"differences) {np.median(guarded[chosen] - plain[chosen]):6.1f} µs")
+    print(f"load average at the end {os.getloadavg()[0]:.2f}")
     return 0
 
 

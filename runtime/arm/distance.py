@@ -241,9 +241,10 @@ def segment_plane(p: Array, q: Array, normal: Array, offset: Array
 class _Layout:
     """Per-pair constants of a model, precomputed so that one evaluation costs few numpy calls.
 
-    The point table of a pose stacks: every arm capsule's start, every arm capsule's end (both
-    placed by the joint frames), the static capsule-like objects' starts and ends, the TCP.
-    `start`/`end` index it per row of the capsule table (arm capsules, static capsules, TCP).
+    The point table of a pose stacks: every arm capsule's start, end and centre (placed by the
+    joint frames), the static capsule-like objects' starts, ends and centres, the TCP.
+    `start`/`end`/`mid` index it per row of the capsule table (arm capsules, static
+    capsules, TCP).
     Capsule and box pairs share one cull: the distance |max(|Rᵀ(m_a − c)| − h, 0)| of a
     capsule's centre m_a to a box (centre c, axes R, half extents h) or to another capsule's
     segment (a box of half extents (0, 0, half-length) along its axis), minus the first
@@ -252,14 +253,16 @@ class _Layout:
 
     n_cap: int         # capsule pairs come first, then box pairs, then plane pairs
     n_box: int
-    frame_of_point: NDArray[np.intp]   # (2k,) joint frame + 1 of each placed point
-    local_points: Array                # (2k, 4) homogeneous, in that frame
-    static_points: Array               # (2s, 3) static starts then ends, base frame
+    frame_of_point: NDArray[np.intp]   # (3k,) joint frame + 1 of each placed point
+    local_points: Array                # (3k, 4) homogeneous, in that frame
+    static_points: Array               # (3s, 3) static starts, ends, centres, base frame
     start: NDArray[np.intp]            # (k + s + 1,) rows of the point table
     end: NDArray[np.intp]
+    mid: NDArray[np.intp]
     cull_a: NDArray[np.intp]           # capsule + box pairs: the arm capsule
     cull_b: NDArray[np.intp]           # capsule pairs: the other capsule (box pairs: -1)
-    cull_centre: Array                 # box centres for box pairs (0 for capsule pairs)
+    cull_centre_row: NDArray[np.intp]  # per pair: its other centre in (mid rows, box centres)
+    box_centres: Array                 # (b, 3) per box pair
     cull_frame_b: NDArray[np.intp]     # capsule pairs: joint frame + 1 of the other capsule
     cull_align_b: Array                # capsule pairs: (3, 3) its axis as z, in that frame
     cull_box_axes_T: Array             # box pairs: (3, 3) Rᵀ
@@ -297,18 +300,23 @@ def _layout(model: CollisionModel) -> _Layout:
     other_frames = np.concatenate((frame[cp[:, 1]], np.full(len(bp) + len(hp), -1)))
     joints = np.arange(n)
     box_pose = model.box_pose[bp[:, 1]]
-    local = np.concatenate((caps.start, caps.end))
-    statics = 2 * k + np.arange(s)
-    table_start_row = np.concatenate((np.arange(k), statics, [2 * k + 2 * s]))
-    table_end_row = np.concatenate((k + np.arange(k), statics + s, [2 * k + 2 * s]))
+    local = np.concatenate((caps.start, caps.end, 0.5 * (caps.start + caps.end)))
+    statics = 3 * k + np.arange(s)
+    tcp_row = 3 * k + 3 * s
+    table_start_row = np.concatenate((np.arange(k), statics, [tcp_row]))
+    table_end_row = np.concatenate((k + np.arange(k), statics + s, [tcp_row]))
+    table_mid_row = np.concatenate((2 * k + np.arange(k), statics + 2 * s, [tcp_row]))
+    rows = k + s + 1
     return _Layout(
         n_cap=len(cp), n_box=len(bp),
-        frame_of_point=np.concatenate((caps.frame, caps.frame)) + 1,
-        local_points=np.concatenate((local, np.ones((2 * k, 1))), axis=1),
-        static_points=np.concatenate((model.static_start, model.static_end)),
-        start=table_start_row, end=table_end_row,
+        frame_of_point=np.concatenate((caps.frame, caps.frame, caps.frame)) + 1,
+        local_points=np.concatenate((local, np.ones((3 * k, 1))), axis=1),
+        static_points=np.concatenate((model.static_start, model.static_end,
+                                      0.5 * (model.static_start + model.static_end))),
+        start=table_start_row, end=table_end_row, mid=table_mid_row,
         cull_a=np.concatenate((cp[:, 0], bp[:, 0])), cull_b=cp[:, 1],
-        cull_centre=np.concatenate((np.zeros((len(cp), 3)), box_pose[:, :3, 3])),
+        cull_centre_row=np.concatenate((cp[:, 1], rows + np.arange(len(bp)))),
+        box_centres=box_pose[:, :3, 3].copy(),
         cull_frame_b=frame[cp[:, 1]] + 1,
         cull_align_b=np.array([rotation_aligning_z(table_end[b] - table_start[b])
                                if half_length[b] > 0.0 else np.eye(3)
@@ -342,31 +350,33 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
     frames_0 = np.concatenate((_EYE4, frames))  # index 0: the base frame (static parts)
     placed = np.einsum("kij,kj->ki", frames_0[lay.frame_of_point, :3], lay.local_points)
     points = np.concatenate((placed, lay.static_points, T_tcp[None, :3, 3]))
-    start, end = points[lay.start], points[lay.end]
     # Half-spaces are as cheap as a bound: every point against every plane in one product.
     heights = np.dot(points, lay.plane_normals_T)
     dist3 = np.minimum(heights.take(lay.plane_start_flat), heights.take(lay.plane_end_flat)) \
         - lay.plane_offset - lay.plane_r
     ha = lay.plane_a
-    n_cap = lay.n_cap
+    n_cap, n_culled = lay.n_cap, len(lay.cull_a)
     if within_m < math.inf:
-        mid = 0.5 * (start + end)
-        centre = lay.cull_centre.copy()
-        centre[:n_cap] = mid[lay.cull_b]
+        mid = points[lay.mid]
+        centres = np.concatenate((mid, lay.box_centres))
         axes = np.einsum("pij,pjk->pik", frames_0[lay.cull_frame_b, :3, :3], lay.cull_align_b)
         axes_T = np.concatenate((axes.transpose(0, 2, 1), lay.cull_box_axes_T))
-        local = np.einsum("pij,pj->pi", axes_T, mid[lay.cull_a] - centre)
+        local = np.einsum("pij,pj->pi", axes_T, mid[lay.cull_a] - centres[lay.cull_centre_row])
         outside = np.maximum(np.abs(local) - lay.cull_half, 0.0)
-        bound = np.sqrt(np.einsum("ij,ij->i", outside, outside)) - lay.cull_reach
-        keep, keep3 = bound < within_m, dist3 < within_m
-        beyond = min(bound[~keep].min(initial=math.inf), dist3[~keep3].min(initial=math.inf))
+        bound = np.concatenate((np.sqrt(np.einsum("ij,ij->i", outside, outside))
+                                - lay.cull_reach, dist3))
+        keep = bound < within_m
+        if not keep.any():
+            return _nothing_near(model.arm.n, float(bound.min(initial=math.inf)))
+        beyond = float(bound[~keep].min(initial=math.inf))
         kept = np.flatnonzero(keep)
-        k1, k2, k3 = kept[kept < n_cap], kept[kept >= n_cap] - n_cap, np.flatnonzero(keep3)
+        k1 = kept[kept < n_cap]
+        k2 = kept[(kept >= n_cap) & (kept < n_culled)] - n_cap
+        k3 = kept[kept >= n_culled] - n_culled
     else:
         beyond = math.inf
         k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(ha))
-    if not (len(k1) or len(k2) or len(k3)):
-        return _nothing_near(model.arm.n, beyond)
+    start, end = points[lay.start], points[lay.end]
     ca, cb, ba, ha = lay.cull_a[k1], lay.cull_b[k1], lay.cull_a[n_cap + k2], ha[k3]
     # Each kernel costs tens of numpy calls whatever its size: skip the empty ones.
     dist1, pa1, pb1, n1 = capsule_capsule(start[ca], end[ca], lay.cap_r_arm[k1], start[cb],

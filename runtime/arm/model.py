@@ -492,13 +492,15 @@ def _common_fields(data: dict, src: _Source, angle: float) -> dict[str, Any]:
     )
 
 
-_URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_accel"}
+_URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_accel",
+                       "link_radius"}
 
 
 def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm:
     """An arm TOML that points at a URDF file and adds what URDF lacks (accelerations, task).
 
-    `[[joints]]` tables here only override speeds and accelerations of URDF joints by name.
+    `[[joints]]` tables here only override speeds, accelerations and the collision model's
+    link radius of URDF joints by name.
     """
     from dataclasses import replace
 
@@ -539,6 +541,8 @@ def _arm_from_urdf_toml(data: dict, src: _Source, common: dict[str, Any]) -> Arm
                         raise src.error(f"must be positive, got {spec[key]}",
                                         f"joints[{i}].{key}", "joints", i, key)
                     changes[key] = v * scale
+            if "link_radius" in spec:
+                changes["link_radius_m"] = _link_radius(src, spec, i, length)
             j = replace(j, **changes)
         joints.append(j)
     if overrides:

@@ -299,3 +299,17 @@ def test_toml_wrapping_a_urdf_rejects_unknown_joint_and_key(tmp_path: Path) -> N
     assert err.field == "joints[0].lower" and err.line == 7
     err = load_error(tmp_path, head + '[[joints]]\nname = "j1"\nmax_accel = -1\n')
     assert err.field == "joints[0].max_accel" and err.line == 7
+
+
+def test_link_radius_per_joint_with_a_default(tmp_path: Path) -> None:
+    """The collision model's capsule radius (runtime.arm.collision): per joint, in the file's
+    length unit, 0.04 m when absent; not positive is an error at its line."""
+    from runtime.arm.model import DEFAULT_LINK_RADIUS_M
+    text = GOOD_TOML.replace('a = 0.3\n', 'a = 0.3\nlink_radius = 0.025\n')
+    arm = load_arm(write(tmp_path, text))
+    assert [j.link_radius_m for j in arm.joints] == [DEFAULT_LINK_RADIUS_M, 0.025]
+    bad = GOOD_TOML.replace('a = 0.3\n', 'a = 0.3\nlink_radius = 0\n')
+    with pytest.raises(ConfigError, match="must be positive") as info:
+        load_arm(write(tmp_path, bad))
+    assert info.value.field == "joints[1].link_radius"
+    assert info.value.line == line_of(bad, "link_radius")
