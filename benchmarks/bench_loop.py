@@ -32,6 +32,10 @@ Run from the repository root (headless; 2 rounds of 7 runs × 10 s and 3 × 5 s 
 realtime rows need CAP_SYS_NICE, else they say "refused" and run at normal priority):
 
     python benchmarks/bench_loop.py [--seconds 10] [--reference-seconds 5] [--rounds 2]
+                                    [--recorder-only]
+
+The last lines compare 1 kHz realtime with and without the recorder (overruns and the
+loop's wake-up lateness, same rounds); `--recorder-only` runs just those two.
 """
 
 from __future__ import annotations
@@ -188,7 +192,8 @@ def one_round(endpoint: str, observer: Observer, script: Path, variants, seconds
         out[label] = {
             "cycles": m["cycles"],
             "period_p50": loop["period_p50_s"], "period_p99": loop["period_p99_s"],
-            "period_max": loop["period_max_s"], "late_p99": loop["late_p99_s"],
+            "period_max": loop["period_max_s"], "late_p50": loop["late_p50_s"],
+            "late_p99": loop["late_p99_s"],
             "overruns": loop["overrun_fraction"], "compute_p50": loop["compute_p50_s"],
             "compute_p99": loop["compute_p99_s"],
             "moving_s": m["gate_time_s"].get("moving", 0.0),
@@ -205,9 +210,27 @@ def one_round(endpoint: str, observer: Observer, script: Path, variants, seconds
         r = out[label]
         print(f"  {label:30s} overruns {100 * r['overruns']:5.2f} % (reference "
               f"{100 * r['ref_overruns']:5.2f} %)  period p99 {r['period_p99'] * 1e3:6.3f} ms  "
-              f"max {r['period_max'] * 1e3:6.2f} ms  send→applied p50 "
+              f"max {r['period_max'] * 1e3:6.2f} ms  wake-up late p50/p99 "
+              f"{r['late_p50'] * 1e6:4.0f}/{r['late_p99'] * 1e6:5.0f} µs  send→applied p50 "
               f"{r['applied_p50'] * 1e3:5.2f} ms  load {os.getloadavg()[0]:.2f}", flush=True)
     return out
+
+
+RECORDER_PAIR = ("1000 Hz realtime", "1000 Hz realtime, no recorder")
+
+
+def recorder_cost(rounds: list[dict[str, dict]]) -> None:
+    """The session recorder's cost to a 1 kHz realtime loop: the same run with and without
+    it, in the same rounds (goal: overruns < 0.1 % and within 2x of the run without)."""
+    with_, without = RECORDER_PAIR
+    if not all(with_ in r and without in r for r in rounds):
+        return
+    m = lambda label, k: median_over(rounds, label, k)  # noqa: E731
+    a, b = m(with_, "overruns"), m(without, "overruns")
+    print(f"\nrecorder at 1 kHz realtime: overruns {100 * a:.3f} % with, {100 * b:.3f} % "
+          f"without (ratio {a / b if b else float('inf'):.2f}); wake-up late p50 "
+          f"{m(with_, 'late_p50') * 1e6:.0f} vs {m(without, 'late_p50') * 1e6:.0f} µs, p99 "
+          f"{m(with_, 'late_p99') * 1e6:.0f} vs {m(without, 'late_p99') * 1e6:.0f} µs")
 
 
 def median_over(rounds: list[dict[str, dict]], label: str, key: str) -> float:
@@ -222,7 +245,8 @@ def report(rounds: list[dict[str, dict]]) -> None:
     print("| loop | cycles | overruns | reference overruns | period p50 / p99 / max | "
           "reference period p99 / max | wake-up late p99 (ref.) | compute p50 / p99 |")
     print("|---|---|---|---|---|---|---|---|")
-    for label, _, _ in VARIANTS:
+    labels = [label for label, _, _ in VARIANTS if label in rounds[0]]
+    for label in labels:
         m = lambda k: median_over(rounds, label, k)  # noqa: E731
         print(f"| {label} | {m('cycles'):.0f} | {100 * m('overruns'):.2f} % | "
               f"{100 * m('ref_overruns'):.2f} % | {m('period_p50') * ms:.3f} / "
@@ -233,7 +257,7 @@ def report(rounds: list[dict[str, dict]]) -> None:
     print("\n| loop | read → send p50 / p99 | send → applied p50 / p99 | round trip (reader) "
           "p50 / p99 | loop round trip p50 / p99 | input → applied p50 / p99 (bound) |")
     print("|---|---|---|---|---|---|")
-    for label, _, _ in VARIANTS:
+    for label in labels:
         m = lambda k: median_over(rounds, label, k)  # noqa: E731
         print(f"| {label} | {m('read_send_p50') * ms:.2f} / {m('read_send_p99') * ms:.2f} "
               f"ms | {m('applied_p50') * ms:.2f} / {m('applied_p99') * ms:.2f} ms | "
@@ -249,7 +273,11 @@ def main() -> int:
     p.add_argument("--reference-seconds", type=float, default=5.0,
                    help="bare loop run per rate (s)")
     p.add_argument("--rounds", type=int, default=2)
+    p.add_argument("--recorder-only", action="store_true",
+                   help="only 1 kHz realtime with and without the session recorder")
     args = p.parse_args()
+    variants = [v for v in VARIANTS if v[0] in RECORDER_PAIR] if args.recorder_only \
+        else VARIANTS
     arm = load_arm(ARM)
     print(f"{os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f}; Python "
           f"{sys.version.split()[0]}, numpy {np.__version__}")
@@ -263,13 +291,14 @@ def main() -> int:
         rounds = []
         try:
             for k in range(args.rounds):
-                order = VARIANTS if k % 2 == 0 else VARIANTS[::-1]   # alternate the order
+                order = variants if k % 2 == 0 else variants[::-1]   # alternate the order
                 print(f"round {k + 1}:", flush=True)
                 rounds.append(one_round(sim.endpoint, observer, script, order, args.seconds,
                                         args.reference_seconds, workdir))
         finally:
             observer.close()
     report(rounds)
+    recorder_cost(rounds)
     print(f"\nload average at the end {os.getloadavg()[0]:.2f}")
     return 0
 

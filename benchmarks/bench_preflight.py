@@ -55,11 +55,14 @@ from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 from runtime.control.mapping import load_pad  # noqa: E402
 from runtime.arm.model import configs_dir, load_arm  # noqa: E402
 from runtime.link.pipes import PIPE_PEER  # noqa: E402
-from runtime.control.cycle import ControlCycle, frame_from_wire  # noqa: E402
+from runtime.control.cycle import ControlCycle  # noqa: E402
+from runtime.sessions.log_schema import frame_from_wire  # noqa: E402
 from runtime.sessions.preflight import TraceBuilder  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
 from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
-from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session  # noqa: E402
+from runtime.sessions.log_writer import SessionRecorder  # noqa: E402
+from runtime.sessions.log_schema import cycle_record  # noqa: E402
+from runtime.sessions.log_reader import read_session  # noqa: E402
 from runtime.sessions.rerun import cycle_settings, inputs_of, rerun_open_loop  # noqa: E402
 
 RATE_HZ = 500.0

@@ -1,26 +1,32 @@
-"""Session recorder: what it costs the control loop, and how fast it writes and reads.
+"""Session recorder: what it costs the control loop, how fast it writes and reads, and
+how large the logs are.
 
-Three measurements, each beside a reference taken in the same run:
+Measurements, each beside a reference taken in the same run:
 
+  size       the headless demo session (`jogwire drive --headless`, elbow6, 500 Hz): bytes
+             per cycle and MB per hour in format 2; reference: the same cycles written in
+             format 1 (goal: ≤ 100 MB per hour)
   record()   per-call time on the loop's side, paced at 500 Hz while the writer thread
              runs; reference: encoding the same record in the loop instead
              (to_wire + encode_frame), which is what record() avoids
-  writer     records/s from a burst of handed-over records to a closed file; reference:
-             encoding alone. Reader records/s for the same file.
+  writer     records/s from a burst of handed-over records to a closed file, formats 2
+             and 1; reader records/s for each file
   loop       a 500 Hz sleep-then-spin loop with a small numpy solve per cycle, run without
-             and with a recorder: wake-up lateness p50/p99/max and cycles late by more
-             than 0.5 ms / a whole period (an overrun). The writer's Python work holds the
-             GIL, so this is the recorder's real cost to the loop.
+             and with a recorder (format 2, and format 1): wake-up lateness p50/p99/max and
+             cycles late by more than 0.5 ms / a whole period (an overrun). The writer's
+             Python work holds the GIL, so this is the recorder's real cost to the loop.
 
-Run from the repository root:
+Run from the repository root (about a minute):
 
-    python benchmarks/bench_recorder.py [--seconds S]
+    python benchmarks/bench_recorder.py [--seconds S] [--no-demo]
 """
 
 from __future__ import annotations
 
 import argparse
+import glob
 import os
+import subprocess
 import sys
 import tempfile
 import time
@@ -31,8 +37,9 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.model import load_arm  # noqa: E402
-from runtime.sessions.recorder import (CycleRecord, SessionReader, SessionRecorder,  # noqa: E402
-                              encode_frame)
+from runtime.sessions.log_schema import CycleRecord  # noqa: E402
+from runtime.sessions.log_reader import SessionReader, read_session  # noqa: E402
+from runtime.sessions.log_writer import SessionRecorder, encode_frame  # noqa: E402
 
 RATE_HZ = 500
 PERIOD_S = 1.0 / RATE_HZ
@@ -97,35 +104,57 @@ def bench_record_call(folder: Path, seconds: float) -> None:
     print(f"  ratio of medians            {np.median(inline) / np.median(ours):.1f}x")
 
 
+def bench_demo_size(folder: Path) -> None:
+    """The headless demo session, and the same cycles rewritten in format 1."""
+    sessions = folder / "demo"
+    env = dict(os.environ, SDL_VIDEODRIVER="dummy", SDL_AUDIODRIVER="dummy",
+               PYTHONPATH=str(Path(__file__).resolve().parents[1]))
+    subprocess.run([sys.executable, "-m", "runtime.cli", "drive", "--headless", "--sessions",
+                    str(sessions)], check=True, capture_output=True, env=env)
+    (log,) = glob.glob(str(sessions / "*.jwlog"))
+    s = read_session(log)
+    v1 = folder / "demo-v1.jwlog"
+    with SessionRecorder.start(v1, s.header.arm, s.header.settings, format_version=1,
+                               queue_size=len(s.records) + 1) as rec:
+        for r in s.records:
+            rec.record(r)
+    n = len(s.records)
+    print(f"headless demo session: {n} cycles ({n / RATE_HZ:.1f} s at {RATE_HZ} Hz), "
+          f"load average {os.getloadavg()[0]:.2f}")
+    for label, path in (("format 2", Path(log)), ("format 1 (reference)", v1)):
+        size = os.path.getsize(path)
+        print(f"  {label:<22} {size / n:6.1f} bytes per cycle  "
+              f"{size / n * RATE_HZ * 3600 / 1e6:7.0f} MB per hour")
+
+
 def bench_throughput(folder: Path, n: int) -> None:
     recs = records(n)
     arm = load_arm("elbow6")
-    t0 = time.perf_counter()
-    for r in recs:
-        encode_frame(r.to_wire())
-    encode_s = time.perf_counter() - t0
-
-    path = folder / "burst.jwlog"
-    t0 = time.perf_counter()
-    rec = SessionRecorder.start(path, arm, {}, queue_size=n, flush_interval_s=0.05)
-    for r in recs:
-        rec.record(r)
-    stats = rec.close(timeout_s=60)
-    write_s = time.perf_counter() - t0
-    assert stats.written == n and stats.failed is None
-
-    t0 = time.perf_counter()
-    with SessionReader(path) as reader:
-        count = sum(1 for _ in reader)
-    read_s = time.perf_counter() - t0
-    assert count == n
-    size = os.path.getsize(path)
-    print(f"writer and reader, {n} records, {size / n:.0f} bytes per record "
-          f"({size / n * RATE_HZ * 3600 / 1e9:.2f} GB per hour at {RATE_HZ} Hz):")
-    print(f"  encode only (reference)     {n / encode_s:9.0f} records/s")
-    print(f"  writer: hand over → closed  {n / write_s:9.0f} records/s  "
-          f"({n / write_s / RATE_HZ:.0f}x a {RATE_HZ} Hz loop)")
-    print(f"  reader (streaming)          {n / read_s:9.0f} records/s")
+    print(f"writer and reader, {n} records (load average {os.getloadavg()[0]:.2f}):")
+    for version in (2, 1):
+        path = folder / f"burst-{version}.jwlog"
+        t0 = time.perf_counter()
+        rec = SessionRecorder.start(path, arm, {}, queue_size=n, flush_interval_s=0.05,
+                                    format_version=version)
+        for r in recs:
+            rec.record(r)
+        stats = rec.close(timeout_s=120)
+        write_s = time.perf_counter() - t0
+        assert stats.written == n and stats.failed is None
+        t0 = time.perf_counter()
+        with SessionReader(path) as reader:
+            count = sum(1 for _ in reader)
+        read_s = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        with SessionReader(path) as reader:
+            columns = sum(b.n for b in reader.blocks())
+        columns_s = time.perf_counter() - t0
+        assert count == columns == n
+        size = os.path.getsize(path)
+        print(f"  format {version}: {size / n:5.0f} bytes per record; writer (hand over → "
+              f"closed) {n / write_s:8.0f} records/s ({n / write_s / RATE_HZ:.0f}x a "
+              f"{RATE_HZ} Hz loop); reader: records {n / read_s:8.0f}/s, columns "
+              f"{n / columns_s:9.0f}/s")
 
 
 def run_loop(seconds: float, recorder: SessionRecorder | None) -> np.ndarray:
@@ -153,20 +182,21 @@ def bench_loop(folder: Path, seconds: float) -> None:
     other programs put on the machine falls on both alike."""
     print(f"{RATE_HZ} Hz loop, {seconds:g} s each, interleaved 1 s segments, "
           f"sys.getswitchinterval() = {sys.getswitchinterval() * 1e3:g} ms; wake-up lateness:")
-    conditions = [("without recorder", None), ("recorder, flush 0.2 s", 0.2),
-                  ("recorder, flush 0.05 s", 0.05)]
+    conditions = [("without recorder", None), ("recorder, flush 0.2 s", (0.2, 2)),
+                  ("recorder, flush 0.05 s", (0.05, 2)), ("format 1, flush 0.2 s", (0.2, 1))]
     late: dict[str, list[np.ndarray]] = {label: [] for label, _ in conditions}
     k = 0
     for _ in range(max(1, round(seconds))):
-        for label, interval in conditions:
+        for label, how in conditions:
             rec = None
-            if interval is not None:
+            if how is not None:
                 k += 1
                 rec = SessionRecorder.start(folder / f"loop-{k}.jwlog", load_arm("elbow6"), {},
-                                            flush_interval_s=interval)
+                                            flush_interval_s=how[0], format_version=how[1])
             late[label].append(run_loop(1.0, rec))
             if rec is not None:
                 rec.close()
+    print(f"  (load average {os.getloadavg()[0]:.2f})")
     for label, parts in late.items():
         x = np.concatenate(parts)
         print(f"  {label:<24} p50 {np.median(x):6.1f} µs  p99 {pct(x, 99):7.1f} µs  "
@@ -180,9 +210,15 @@ def main() -> None:
                         help="length of each paced run (default 5)")
     parser.add_argument("--burst", type=int, default=50_000,
                         help="records in the throughput run (default 50000)")
+    parser.add_argument("--no-demo", action="store_true",
+                        help="skip the demo session's size (it runs `jogwire drive`, ~12 s)")
     args = parser.parse_args()
+    print(f"{os.cpu_count()} cores, load average {os.getloadavg()[0]:.2f}")
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
+        if not args.no_demo:
+            bench_demo_size(folder)
+            print()
         bench_record_call(folder, args.seconds)
         print()
         bench_throughput(folder, args.burst)

@@ -17,7 +17,7 @@ from .errors import JogwireError
 COMMANDS: dict[str, tuple[str, str]] = {
     "drive": ("runtime.commands.drive", "drive an arm's tool by hand (the simulated demo arm by default)"),
     "probe": ("runtime.commands.probe", "kinematics at a pose: TCP pose, Jacobian, singular values"),
-    "inspect": ("runtime.commands.inspect", "summarise a recorded session log; export its cycle table"),
+    "inspect": ("runtime.commands.inspect", "summarise a session log, or list a folder of them"),
     "preflight": ("runtime.commands.preflight", "prove a motion against the arm's ratings on the simulated arm: report and verdict"),
     "replay": ("runtime.commands.replay", "send a recorded session to a target, or re-run it through today's pipeline"),
     "sim": ("runtime.commands.sim", "run the PyBullet simulated arm (the arm side of the wire)"),

@@ -150,7 +150,6 @@ def test_runtime_never_imports_sim_or_pybullet() -> None:
         assert not bad, f"{module_name(path)} imports {sorted(bad)}"
 
 
-@pytest.mark.xfail(strict=True, reason="preflight and replay still import inspect's statistics")
 def test_no_command_imports_another() -> None:
     bad = []
     for path in runtime_files("runtime/commands"):

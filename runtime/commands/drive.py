@@ -72,7 +72,9 @@ from ..link.protocol import FLAG_REDUCED_SPEED, CellHello, Contact, Hello, Rates
     RoundTripMeter, State, StateFreshness, cell_hello_for, encode, hello_differences, \
     hello_for
 from ..operator.cell_outlines import CellOutlines
-from ..sessions.recorder import SessionRecorder, cycle_record, new_session_path
+from ..sessions.log_writer import SessionRecorder, new_session_path
+from ..sessions.log_schema import cycle_record
+from ..sessions.archive import BYTES_PER_MB, SECONDS_PER_DAY, ArchiveCap, prune_sessions
 from ..control.safety import SafetySettings
 from ..link.transport import ArmClient, check_endpoint, load_client_keys
 
@@ -130,6 +132,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-record", action="store_true", help="do not write a session log")
     parser.add_argument("--sessions", default="sessions", metavar="DIR",
                         help="where session logs go (default ./sessions)")
+    parser.add_argument("--sessions-max-mb", type=float, metavar="MB",
+                        help="at the start, remove the oldest session logs in --sessions until "
+                             "they take at most MB megabytes (never this session's; each "
+                             "removal is listed)")
+    parser.add_argument("--sessions-max-days", type=float, metavar="DAYS",
+                        help="at the start, remove session logs in --sessions older than DAYS "
+                             "days (never this session's; each removal is listed)")
     parser.add_argument("--gui", action="store_true",
                         help="open PyBullet's own window for the simulated arm")
     parser.add_argument("--lockstep", action="store_true",
@@ -237,6 +246,11 @@ def _check_options(args: argparse.Namespace) -> None:
                               field=flag)
     if args.keys is not None and args.target is None:
         raise ConfigError("--keys is for a --target off this host", field="keys")
+    for flag in ("sessions_max_mb", "sessions_max_days"):
+        value = getattr(args, flag)
+        if value is not None and not (math.isfinite(value) and value > 0):
+            raise ConfigError(f"--{flag.replace('_', '-')} must be positive, got {value:g}",
+                              field=flag.replace("_", "-"))
 
 
 # ----------------------------------------------------------------------------------------
@@ -999,6 +1013,20 @@ class _MainThread:
             say(out, "\r\x1b[K", end="")
 
 
+def _cap_sessions(out: Any, args: argparse.Namespace, current: Path) -> None:
+    """Apply --sessions-max-mb / --sessions-max-days to the sessions folder, and say what
+    went (and what could not be removed)."""
+    cap = ArchiveCap(
+        max_bytes=None if args.sessions_max_mb is None
+        else int(args.sessions_max_mb * BYTES_PER_MB),
+        max_age_s=None if args.sessions_max_days is None
+        else args.sessions_max_days * SECONDS_PER_DAY)
+    for r in prune_sessions(args.sessions, cap, keep=current, now_s=time.time()):
+        what = f"{r.path.name} ({r.size_bytes / BYTES_PER_MB:.1f} MB, {r.reason})"
+        say(out, f"jogwire drive: sessions: could not remove {what}: {r.error}" if r.error
+            else f"jogwire drive: sessions: removed {what}")
+
+
 def say(out: Any, text: str, end: str = "\n") -> None:
     """Write to the terminal. A closed pipe (`jogwire drive | head`) is not the drive's
     problem: stdout then goes to /dev/null (so the exit flush does not fail either)."""
@@ -1158,6 +1186,7 @@ def run(args: argparse.Namespace) -> int:
             recorder = SessionRecorder.start(session_path, arm, settings,
                                              started_monotonic_ns=int(started * 1e9))
             stack.callback(recorder.close)
+            _cap_sessions(out, args, session_path)
 
         cycle = ControlCycle(arm, pad, rate_hz=args.rate, reduced_locked=args.reduced,
                              safety=safety, cell=cell)

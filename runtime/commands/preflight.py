@@ -42,7 +42,9 @@ from ..link.protocol import CellHello, cell_digest, cell_hello_for
 from ..sessions.cell_check import evaluate_cell, with_cell
 from ..sessions.preflight import Finding, PreflightResult, Trace, TraceBuilder, evaluate
 from ..operator.progress import Progress
-from ..sessions.recorder import SESSION_SUFFIX, SessionRecorder, cycle_record, read_session
+from ..sessions.log_schema import SESSION_SUFFIX, cycle_record
+from ..sessions.log_writer import SessionRecorder
+from ..sessions.log_reader import read_session
 from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
 from ..control.safety import SafetySettings
 
@@ -341,7 +343,7 @@ def _json_safe(value: Any) -> Any:
 def format_text(r: PreflightResult, arm: Arm, profile: str, run_info: PreflightRun,
                 paths: dict[str, str]) -> str:
     """The human-readable verdict and table."""
-    from .inspect import format_table
+    from ..operator.terminal import format_table
     speed = r.duration_s / run_info.wall_s if run_info.wall_s else math.inf
     lines = [f"preflight {arm.name} / {profile}: {r.verdict.upper()}  ({r.duration_s:.2f} s "
              f"of motion, {r.cycles} cycles at {r.rate_hz:g} Hz, {speed:.1f}x real time)",

@@ -49,7 +49,8 @@ from ..sessions.lockstep import LockstepSim, arm_file_for, run_closed_loop
 from ..arm.model import Arm, load_arm
 from ..operator.progress import Progress
 from ..link.protocol import FLAG_REDUCED_SPEED, Rates, hello_for
-from ..sessions.recorder import CycleRecord, Session, read_session
+from ..sessions.log_schema import CycleRecord
+from ..sessions.log_reader import Session, read_session
 from ..sessions.rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of, \
     rerun_open_loop
 from ..link.transport import ArmClient, load_client_keys
@@ -213,7 +214,7 @@ def _rerun_closed(args: argparse.Namespace, settings, records: Sequence[CycleRec
 
 
 def _format_rerun(r: dict[str, Any], arm: Arm) -> str:
-    from .inspect import format_table
+    from ..operator.terminal import format_table
     verdict = ("identical" if r["largest_difference"] == 0.0 else
                f"identical within {r['tolerance']:g}") if r["identical"] else "DIFFERENT"
     lines = [f"re-run ({r['mode']}) of {r['log']} with arm {r['arm']}: {r['cycles']} cycles, "

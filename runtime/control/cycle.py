@@ -17,7 +17,6 @@ recorded rates exactly.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -26,7 +25,7 @@ from ..arm.cell import Cell
 from ..arm.kinematics import analyse_pose
 from .clearance import ClearanceLimit
 from .limits import apply_limits, binding_limit, start_pose
-from .mapping import DirectCommand, InputFrame, Intent, Mapper, PadMapping
+from .mapping import InputFrame, Intent, Mapper, PadMapping
 from ..arm.model import Arm
 from .safety import SafetyGate, SafetySettings, Verdict
 from .solver import Solution, solve
@@ -111,33 +110,3 @@ class ControlCycle:
             binding_limit=binding_limit(limited.scales), saturated_joints=(),
             conflicts=limited.conflicts)
 
-
-# ----------------------------------------------------------------------------------------
-# Input frames as plain data (for the session log and re-runs)
-# ----------------------------------------------------------------------------------------
-
-def frame_to_wire(frame: InputFrame) -> dict[str, Any]:
-    """An InputFrame as msgpack-ready values; `frame_from_wire` gives it back exactly."""
-    c = frame.command
-    return {
-        "device": frame.device,
-        "present": frame.present,
-        "axes": [float(a) for a in frame.axes],
-        "pressed": sorted(frame.pressed, key=lambda b: (isinstance(b, str), str(b))),
-        "command": None if c is None else {
-            "twist": [float(v) for v in c.twist], "frame": c.frame, "enable": c.enable,
-            "reduced": c.reduced, "joint": c.joint, "joint_rate": float(c.joint_rate),
-            "stop": c.stop, "reset": c.reset},
-    }
-
-
-def frame_from_wire(m: dict[str, Any]) -> InputFrame:
-    c = m.get("command")
-    command = None if c is None else DirectCommand(
-        twist=tuple(float(v) for v in c["twist"]), frame=str(c["frame"]),
-        enable=bool(c["enable"]), reduced=bool(c["reduced"]),
-        joint=None if c["joint"] is None else int(c["joint"]),
-        joint_rate=float(c["joint_rate"]), stop=bool(c["stop"]), reset=bool(c["reset"]))
-    return InputFrame(device=str(m["device"]), present=bool(m["present"]),
-                      axes=tuple(float(a) for a in m["axes"]),
-                      pressed=frozenset(m["pressed"]), command=command)

@@ -234,6 +234,12 @@ class LockstepSim:
 
     def _gone(self, what: str) -> str:
         status = self.child.proc.poll()
+        if status is None and self.client is not None and self.client.ended:
+            # The pipe closes while the child exits, a moment before its status can be read
+            try:
+                status = self.child.proc.wait(timeout=1.0)
+            except subprocess.TimeoutExpired:
+                status = None
         if status is None:
             return what
         self.child.stop()

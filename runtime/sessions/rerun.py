@@ -32,8 +32,9 @@ from ..errors import ConfigError, LogError
 from ..control.mapping import InputFrame, PadMapping, load_pad
 from ..arm.model import Arm
 from ..arm.cell import Cell
-from ..control.cycle import STATE_LAGS, ControlCycle, frame_from_wire
-from .recorder import BAD_RECORD, CORRUPT, GAP, CycleRecord, Session
+from ..control.cycle import STATE_LAGS, ControlCycle
+from .log_reader import BAD_RECORD, CORRUPT, GAP, Session
+from .log_schema import CycleRecord, frame_from_wire
 from ..control.safety import BLOCKED, SafetySettings
 
 Vector = NDArray[np.float64]

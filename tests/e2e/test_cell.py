@@ -16,7 +16,7 @@ from runtime.arm.cell import load_cell
 from runtime.arm.model import load_arm
 from runtime.cli import main
 from runtime.sessions.cell_check import CLEARANCE_ALLOWANCE_M
-from runtime.sessions.recorder import read_session
+from runtime.sessions.log_reader import read_session
 from runtime.link.arm_process import child_env
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]

@@ -18,7 +18,7 @@ import pytest
 
 from runtime.link.arm_process import child_env
 from runtime.arm.kinematics import tcp_pose
-from runtime.sessions.recorder import read_session
+from runtime.sessions.log_reader import read_session
 
 pytestmark = pytest.mark.e2e
 

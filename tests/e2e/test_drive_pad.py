@@ -23,7 +23,7 @@ from runtime import cli
 from runtime.arm.kinematics import tcp_pose
 from runtime.control.mapping import load_pad
 from runtime.operator.inputs.gamepad import SETTLE_S
-from runtime.sessions.recorder import read_session
+from runtime.sessions.log_reader import read_session
 
 pytestmark = [pytest.mark.e2e, pytest.mark.sim]
 

@@ -60,7 +60,7 @@ from runtime.errors import LogError, ProtocolError  # noqa: E402
 from runtime.operator.inputs.script import load_script  # noqa: E402
 from runtime.arm.model import load_arm  # noqa: E402
 from runtime.link.protocol import REASONS, State, Twist, decode, hello_for  # noqa: E402
-from runtime.sessions.recorder import TORN_TAIL, read_session  # noqa: E402
+from runtime.sessions.log_reader import TORN_TAIL, read_session  # noqa: E402
 from runtime.link.relay import GARBAGE_KINDS  # noqa: E402
 from runtime.link.transport import ArmClient, Publisher  # noqa: E402
 
@@ -295,7 +295,7 @@ class Collected:
     """Everything a run left behind."""
 
     states: list[State]
-    session: object | None           # runtime.sessions.recorder.Session
+    session: object | None           # runtime.sessions.log_reader.Session
     summary: dict | None
     relay: dict | None
     sim_counts: dict[str, int]

@@ -26,7 +26,8 @@ from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.control.mapping import load_pad
 from runtime.arm.model import load_arm
 from runtime.control.cycle import ControlCycle
-from runtime.sessions.recorder import FRAME_MARK, MAGIC, SessionRecorder, cycle_record
+from runtime.sessions.log_schema import FRAME_MARK, MAGIC, cycle_record
+from runtime.sessions.log_writer import SessionRecorder
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ
@@ -44,7 +45,9 @@ def good_log(tmp_path_factory) -> Path:
     settings = {"command": "drive", "pad": "keyboard", "rate_hz": RATE_HZ,
                 "reduced_locked": False, "stale_after_s": 0.05, "overrun_limit": 5}
     q = arm.home()
-    with SessionRecorder.start(path, arm, settings) as rec:
+    # encoded by the caller: blocks of CALLER_BLOCK_RECORDS, several of them, as in a long
+    # session, whatever the timing of the writer thread
+    with SessionRecorder.start(path, arm, settings, encode_in_caller=True) as rec:
         for k in range(N):
             t = k * DT
             frame = source.read(t)

@@ -14,7 +14,8 @@ from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
 from runtime.control.mapping import DirectCommand, InputFrame, load_pad
 from runtime.arm.model import load_arm
-from runtime.control.cycle import ControlCycle, frame_from_wire, frame_to_wire
+from runtime.control.cycle import ControlCycle
+from runtime.sessions.log_schema import frame_from_wire, frame_to_wire
 from runtime.control.safety import MOVING, SafetySettings
 
 RATE_HZ = 500.0
@@ -93,7 +94,9 @@ def test_input_frame_round_trips_through_plain_data():
 
 
 def test_cycle_record_keeps_what_a_rerun_needs(tmp_path):
-    from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
+    from runtime.sessions.log_writer import SessionRecorder
+    from runtime.sessions.log_schema import cycle_record
+    from runtime.sessions.log_reader import read_session
     arm = load_arm("elbow6")
     outputs_frames = []
     cycle = ControlCycle(arm, load_pad("keyboard"), rate_hz=RATE_HZ)

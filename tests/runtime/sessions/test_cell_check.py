@@ -15,7 +15,7 @@ from runtime.arm.model import load_arm
 from runtime.sessions.cell_check import CLEARANCE_ALLOWANCE_M, contact_episodes, \
     evaluate_cell, with_cell
 from runtime.sessions.preflight import TraceBuilder, evaluate
-from runtime.sessions.recorder import CycleRecord
+from runtime.sessions.log_schema import CycleRecord
 from runtime.sessions.report import ReportContext, render_html, render_plots
 
 RATE_HZ = 500.0

@@ -16,7 +16,7 @@ from runtime.arm.kinematics import geometric_jacobian, tcp_pose
 from runtime.control.limits import REDUCED_SPEED_M_S
 from runtime.arm.model import load_arm
 from runtime.sessions.preflight import MEASURED_TOLERANCE, TraceBuilder, evaluate
-from runtime.sessions.recorder import CycleRecord
+from runtime.sessions.log_schema import CycleRecord
 
 RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ

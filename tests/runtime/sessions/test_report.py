@@ -14,7 +14,7 @@ import pytest
 from runtime.arm.kinematics import geometric_jacobian
 from runtime.arm.model import load_arm
 from runtime.sessions.preflight import TraceBuilder, evaluate
-from runtime.sessions.recorder import CycleRecord
+from runtime.sessions.log_schema import CycleRecord
 from runtime.sessions.report import PLOT_NAMES, ReportContext, reduce_series, render_html, render_plots
 
 RATE_HZ = 500.0

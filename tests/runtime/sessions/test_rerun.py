@@ -18,7 +18,9 @@ from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.control.mapping import InputFrame, load_pad
 from runtime.arm.model import load_arm
 from runtime.control.cycle import ControlCycle
-from runtime.sessions.recorder import SessionRecorder, cycle_record, read_session
+from runtime.sessions.log_writer import SessionRecorder
+from runtime.sessions.log_schema import cycle_record
+from runtime.sessions.log_reader import read_session
 from runtime.sessions.rerun import (RecordedInputs, continuous_records, cycle_settings, inputs_of,
                            rerun_open_loop)
 from runtime.control.safety import BLOCKED, SafetySettings
