@@ -636,19 +636,12 @@ class DriveSession:
             **self._clearance(sol))
 
     def _clearance(self, sol: Any) -> dict[str, Any]:
-        """The nearest pair for the window: the solve's, or (no solve, or nothing within the
-        influence distance) measured here at the arm's pose, as _snapshot does for σ_min."""
-        if self.cell is None or self.q is None:
-            return {}
+        """The nearest pair for the window, when the solve measured it (within d_i); else
+        the main thread measures it at the pose (`_MainThread.snapshot`), off this loop."""
         report = None if sol is None else sol.clearance
-        # The solve names the nearest pair only within d_i (beyond, it culls): then measure.
-        found = report.distances if report is not None and report.nearest_pair is not None \
-            else cell_distances(self.arm, self.cell, self.q)
-        i = found.nearest()
-        if i is None:
+        if report is None or report.nearest_pair is None:
             return {}
-        return {"clearance_m": float(found.distances[i]), "clearance_pair": found.pairs[i],
-                "clearance_points": np.array([found.points_arm[i], found.points_other[i]])}
+        return nearest_pair_fields(report.distances)
 
     def _contacts_shown(self, now: float) -> tuple[tuple[str, str], ...]:
         """The pairs of the newest contact report, for CONTACT_SHOWN_S after it came."""
@@ -668,6 +661,15 @@ class DriveSession:
             notes.append(f"script {script.name} {self.source.elapsed_s(now):.1f} / "
                          f"{script.duration_s:.1f} s")
         return " · ".join(notes)
+
+
+def nearest_pair_fields(found: Any) -> dict[str, Any]:
+    """The status snapshot's clearance fields from a `runtime.arm.distance.Clearances`."""
+    i = found.nearest()
+    if i is None:
+        return {}
+    return {"clearance_m": float(found.distances[i]), "clearance_pair": found.pairs[i],
+            "clearance_points": np.array([found.points_arm[i], found.points_other[i]])}
 
 
 def enter_realtime(priority: int) -> str:
@@ -915,8 +917,16 @@ class _MainThread:
         return self._timing
 
     def snapshot(self):
+        """The newest snapshot with the loop's timing and, where the solve did not name
+        the nearest pair (nothing within d_i, or no solve), that pair measured here."""
         snap = self.drive.latest
-        return None if snap is None else dataclasses.replace(snap, timing=self.timing())
+        if snap is None:
+            return None
+        more: dict[str, Any] = {"timing": self.timing()}
+        drive = self.drive
+        if drive.cell is not None and snap.q is not None and snap.clearance_points is None:
+            more.update(nearest_pair_fields(cell_distances(drive.arm, drive.cell, snap.q)))
+        return dataclasses.replace(snap, **more)
 
     def watch(self) -> bool:
         """Checks shared by both modes; True while the loop runs."""
@@ -1001,7 +1011,8 @@ class _MainThread:
             snap = self.drive.latest
             if snap is not None and (now >= next_line or (not tty and
                                                           snap.gate_state != last_state)):
-                line = status_line(snap, self.timing())
+                snap = self.snapshot()
+                line = status_line(snap, snap.timing)
                 if tty:
                     say(out, "\r" + line[:_terminal_width() - 1] + "\x1b[K", end="")
                 else:

@@ -11,7 +11,7 @@ import pytest
 
 from runtime.arm.cell import load_cell
 from runtime.commands.drive import SETTLE_TIMEOUT_S, DriveSession, LogHistogram, \
-    build_summary, format_summary, plan_input, status_line
+    _MainThread, build_summary, format_summary, plan_input, status_line
 from runtime.errors import ConfigError
 from runtime.operator.inputs.script import ScriptSource, load_script
 from runtime.arm.kinematics import tcp_pose
@@ -266,6 +266,6 @@ def test_a_drive_in_a_workcell_reports_its_nearest_pair_and_the_contacts():
     text = format_summary(m)
     assert "clearance workcell bench: nearest gripper–bench" in text
     assert "CONTACT gripper–fixture from 2.0 s, 2.0 mm deep" in text
-    snap = drive.latest
+    snap = _MainThread(drive, loop, None, None).snapshot()   # the pair measured there
     assert snap.cell is not None and snap.clearance_pair == ("gripper", "bench")
     assert "nearest gripper–bench" in status_line(snap, timing)
