@@ -4,7 +4,6 @@ shapes (sphere–capsule and half-space–capsule penetration depths are element
 
 from __future__ import annotations
 
-import threading
 import time
 
 import numpy as np
@@ -13,12 +12,11 @@ import pytest
 from runtime.arm.kinematics import geometric_jacobian, joint_frames
 from runtime.arm.model import load_arm
 from runtime.link.protocol import CellHello, Rates, hello_for
-from runtime.link.transport import ArmClient, ArmServer
+from runtime.link.transport import ArmClient
 from sim.arm import SimulatedArm
 from sim.arm_side import ArmSession
 from runtime.arm.solids import Solid, capsule
 from sim.cell_bodies import SimCell
-from sim.endpoint import ArmEndpoint
 
 pytestmark = pytest.mark.sim
 
@@ -103,7 +101,8 @@ def test_a_box_the_arm_moves_into_is_reported(elbow6) -> None:
         assert len(depths) > 100             # touched after ~10 ms and stayed in contact
 
 
-def test_contacts_reach_a_runtime_that_asked_over_a_loopback_socket(elbow6) -> None:
+def test_contacts_reach_a_runtime_that_asked_over_a_loopback_socket(elbow6,
+                                                                  serving_lockstep) -> None:
     """The wire's contact reports (docs/PROTOCOL.md §5a): a runtime that sends `cell` gets
     the arm side's `cell` back, then a `contact` before the state of every step that ended
     in contact, with that state's seq."""
@@ -111,33 +110,24 @@ def test_contacts_reach_a_runtime_that_asked_over_a_loopback_socket(elbow6) -> N
     tip, axis = (F @ [0, 0, TOOL_LENGTH_M, 1])[:3], F[:3, 2]
     ball = Solid("ball", "sphere", at(tip + 0.065 * axis), (0.05,))
     ours = CellHello("test", "0123456789abcdef")
-    stop = threading.Event()
+    session = ArmSession(hello_for(elbow6, "sim", stale_after_s=0.1), stale_after_s=0.1,
+                         in_order=True, cell=ours)
     with SimulatedArm(elbow6, cell=tool_cell([ball])) as sim, \
-            ArmServer("tcp://127.0.0.1:*", n_joints=elbow6.n) as server:
-        session = ArmSession(hello_for(elbow6, "sim", stale_after_s=0.1), stale_after_s=0.1,
-                             in_order=True, cell=ours)
-        endpoint = ArmEndpoint(server, sim, session)
-        worker = threading.Thread(target=endpoint.serve_lockstep, args=(stop.is_set,),
-                                  kwargs={"poll_s": 0.01}, daemon=True)
-        worker.start()
-        try:
-            with ArmClient(server.endpoint,
-                           hello=hello_for(elbow6, "runtime", stale_after_s=0.1)) as client:
-                client.handshake(5.0)
-                client.send(ours)
-                answer, contacts, states = None, [], []
-                for seq in (1, 2, 3):
-                    client.send(Rates(seq, time.monotonic_ns(), np.zeros(elbow6.n)))
-                    deadline = time.monotonic() + 5.0
-                    while not states or states[-1].applied_seq != seq:
-                        inbox = client.receive(1.0)
-                        answer = inbox.cell or answer
-                        contacts += inbox.contacts
-                        states += [inbox.state] if inbox.state is not None else []
-                        assert time.monotonic() < deadline, "no state for this step"
-        finally:
-            stop.set()
-            worker.join(5.0)
+            serving_lockstep(sim, session) as endpoint, \
+            ArmClient(endpoint.server.endpoint,
+                      hello=hello_for(elbow6, "runtime", stale_after_s=0.1)) as client:
+        client.handshake(5.0)
+        client.send(ours)
+        answer, contacts, states = None, [], []
+        for seq in (1, 2, 3):
+            client.send(Rates(seq, time.monotonic_ns(), np.zeros(elbow6.n)))
+            deadline = time.monotonic() + 5.0
+            while not states or states[-1].applied_seq != seq:
+                inbox = client.receive(1.0)
+                answer = inbox.cell or answer
+                contacts += inbox.contacts
+                states += [inbox.state] if inbox.state is not None else []
+                assert time.monotonic() < deadline, "no state for this step"
     assert answer == ours
     stepped = [s.seq for s in states if s.applied_seq > 0]
     assert [c.seq for c in contacts] == stepped
