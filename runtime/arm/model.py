@@ -50,7 +50,9 @@ class Joint:
 
     `max_speed`/`max_accel` are what jogwire commands (software limits); `rated_speed`/
     `rated_accel` are the hardware's ratings that preflight proves against. `link_radius_m`
-    is the radius of the capsule around the link this joint moves (runtime.arm.collision).
+    is the radius of the capsule around the link this joint moves (runtime.arm.collision);
+    `collision` replaces that capsule when the arm file describes the link's shape (URDF
+    `<collision>`): capsules (start xyz, end xyz, radius) in this joint's frame, m.
     """
 
     name: str
@@ -64,6 +66,7 @@ class Joint:
     effort: float | None
     origin: Mat4 = field(repr=False)
     link_radius_m: float = DEFAULT_LINK_RADIUS_M
+    collision: tuple[tuple[float, ...], ...] = ()
 
     @property
     def is_revolute(self) -> bool:
