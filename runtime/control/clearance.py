@@ -47,7 +47,6 @@ binding rows.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 

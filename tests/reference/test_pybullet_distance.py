@@ -106,14 +106,14 @@ def test_capsule_box(client) -> None:
         p, q, r = random_capsule(rng)
         half = rng.uniform(0.05, 0.5, 3)
         pose = make_transform(rng.uniform(-0.3, 0.3, 3), rng.uniform(-np.pi, np.pi, 3))
-        gap, on_seg, on_box, n = segment_box(p[None], q[None], pose[None], half[None])
+        gap, _, on_box, _ = segment_box(p[None], q[None], pose[None], half[None])
         if gap[0] <= 0.0:
             continue  # the axis enters the box: our depth is a direction out, not exact
         shape = pybullet.createCollisionShape(pybullet.GEOM_BOX, halfExtents=half.tolist(),
                                               physicsClientId=client)
         box = _body(client, shape, pose[:3, 3], pose[:3, :3])
         cap = capsule_body(client, p, q, r)
-        ref, on_a, on_b, normal = closest(client, cap, box)
+        ref, _, on_b, _ = closest(client, cap, box)
         clear(client, cap, box)
         assert gap[0] - r == pytest.approx(ref, abs=TOLERANCE_M)
         np.testing.assert_allclose(on_box[0], on_b, atol=1e-5)
@@ -235,7 +235,7 @@ class CellWorld:
                 self.objects[obj.name] = _body(cid, shape, np.array(obj.normal) * obj.offset_m,
                                                np.eye(3))
             else:
-                raise AssertionError(f"no PyBullet body for {obj!r}")
+                raise TypeError(f"no PyBullet body for {obj!r}")
         self.capsules = {}
 
     def min_distance(self, q) -> tuple[float, tuple[str, str]]:

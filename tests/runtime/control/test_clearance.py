@@ -61,7 +61,7 @@ def test_a_cell_out_of_reach_changes_nothing(tmp_path: Path) -> None:
 
 def test_straight_down_stops_at_the_safety_distance(elbow6_bench) -> None:
     arm, cell, limit = elbow6_bench
-    q, sols = drive(arm, limit, [0, 0, -0.3, 0, 0, 0], 1500)
+    _, sols = drive(arm, limit, [0, 0, -0.3, 0, 0, 0], 1500)
     d_s = cell.clearance.safety_distance_m
     assert min(s.clearance.min_distance_m for s in sols) >= d_s - 1e-4
     last = sols[-1]
