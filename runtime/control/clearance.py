@@ -96,7 +96,8 @@ class ClearanceReport:
     nearest_pair    the pair at that distance (None beyond d_i)
     binding_pair    the pair whose row bound the motion this cycle, or None
     factor          share of the commanded task motion kept (1.0: clearance did not bind)
-    distances       every pair (runtime.arm.distance.Clearances)
+    distances       the pairs measured this cycle, those that may be inside d_i
+                    (runtime.arm.distance.Clearances)
     """
 
     min_distance_m: float
