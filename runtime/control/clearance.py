@@ -107,7 +107,9 @@ class ClearanceReport:
     distances: Clearances = field(repr=False)
 
     def as_dict(self) -> dict[str, Any]:
-        return {"min_distance_m": self.min_distance_m,
+        """Plain JSON-ready values (min_distance_m null when there is no pair at all)."""
+        finite = self.min_distance_m < float("inf")
+        return {"min_distance_m": float(self.min_distance_m) if finite else None,
                 "nearest_pair": None if self.nearest_pair is None else list(self.nearest_pair),
                 "binding_pair": None if self.binding_pair is None else list(self.binding_pair),
                 "factor": self.factor}
