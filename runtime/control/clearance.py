@@ -126,9 +126,12 @@ class _Rows:
 
     def __init__(self, limit: ClearanceLimit, found: Clearances) -> None:
         s = limit.settings
+        if not len(found.distances):  # the usual cycle: nothing near
+            self.index, self.A = found.index, found.rate_rows
+            self.floor = self.stop = found.distances
+            return
         near = found.distances < s.influence_distance_m
-        if len(near):
-            near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
+        near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
         self.index = np.flatnonzero(near)
         self.A = found.rate_rows[self.index]
         self.floor = -s.gain_per_s * (found.distances[self.index] - s.safety_distance_m)
