@@ -1,8 +1,9 @@
 """Distances between the arm's capsules and the cell's objects, and their rates (pure numpy).
 
-One call, `clearances`, evaluates every pair of a `CollisionModel` at one pose in a single
-vectorised pass per kind of pair, and returns each pair's signed distance (negative when
-the shapes overlap), witness points, unit normal and distance-rate row:
+One call, `clearances`, evaluates the pairs of a `CollisionModel` at one pose in a single
+vectorised pass per kind of pair (all of them, or in the control cycle only those a cheap
+lower bound cannot rule out), and returns each pair's signed distance (negative when the
+shapes overlap), witness points, unit normal and distance-rate row:
 
     ḋ = row · q̇,   row = nᵀ (J_a(p_a) − J_b(p_b))
 
@@ -56,7 +57,7 @@ _NONE = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3)))  # n
 
 @dataclass(frozen=True, eq=False)
 class Clearances:
-    """Every checked pair at one pose; arrays share the pair order of `pairs`.
+    """The measured pairs at one pose; arrays share the pair order of `pairs`.
 
     pairs         (arm side, other side) names; the other side is an object, another link,
                   or `keep_in` (then the arm side is `tcp`)
