@@ -80,6 +80,17 @@ def finite_number(src: TomlSource, value: Any, field_name: str, table: str | Non
     return float(value)
 
 
+def unit_factor(src: TomlSource, data: dict[str, Any], key: str, units: dict[str, float],
+                default: str) -> float:
+    """The SI factor of the unit named at top-level `key` (e.g. length_unit = "mm" → 1e-3),
+    else a ConfigError listing the known names."""
+    name = data.get(key, default)
+    if not isinstance(name, str) or name not in units:
+        raise src.error(f"unknown unit {name!r}; use one of {', '.join(units)}", key, None, None,
+                        key)
+    return units[name]
+
+
 def reject_unknown(src: TomlSource, data: dict[str, Any], allowed: set[str] | frozenset[str],
                    prefix: str = "", table: str | None = None, index: int | None = None) -> None:
     """Raise at the first key of `data` that is not in `allowed` (typos fail loudly)."""

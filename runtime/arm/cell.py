@@ -18,7 +18,7 @@ from typing import Any, Union
 
 import numpy as np
 
-from ..tomlsource import TomlSource, finite_number, read_toml, reject_unknown
+from ..tomlsource import TomlSource, finite_number, read_toml, reject_unknown, unit_factor
 from .model import ANGLE_UNITS, LENGTH_UNITS, Arm, resolve_shipped
 from .transforms import Mat4, make_transform
 
@@ -182,8 +182,8 @@ def check_against_arm(cell: Cell, arm: Arm, src: TomlSource) -> None:
 def cell_from_toml(data: dict[str, Any], src: TomlSource) -> Cell:
     """Validate a parsed cell document and build the `Cell` (arm-independent checks only)."""
     reject_unknown(src, data, _TOP_KEYS)
-    reader = _Reader(src, _unit(src, data, "length_unit", LENGTH_UNITS, "m"),
-                     _unit(src, data, "angle_unit", ANGLE_UNITS, "deg"))
+    reader = _Reader(src, unit_factor(src, data, "length_unit", LENGTH_UNITS, "m"),
+                     unit_factor(src, data, "angle_unit", ANGLE_UNITS, "deg"))
     name = data.get("name")
     if not isinstance(name, str) or not name.strip():
         raise src.error("must be a non-empty string", "name", None, None, "name")
@@ -317,15 +317,6 @@ class _Reader:
             raise src.error(f"the influence distance ({d_i:g} m) must exceed the safety "
                             f"distance ({d_s:g} m)", f"clearance.{key}", "clearance", None, key)
         return ClearanceSettings(d_s, d_i, gain)
-
-
-def _unit(src: TomlSource, data: dict, key: str, table: dict[str, float], default: str
-          ) -> float:
-    name = data.get(key, default)
-    if not isinstance(name, str) or name not in table:
-        raise src.error(f"unknown unit {name!r}; use one of {', '.join(table)}", key, None, None,
-                        key)
-    return table[name]
 
 
 def _tables(src: TomlSource, value: Any, table: str) -> list[dict]:

@@ -4,8 +4,10 @@ Capsules come from the uniform chain of `runtime.arm.model`, so DH and URDF arms
 
 - link i (moved by joint i) is the segment from joint i's origin to joint i+1's origin (the
   last one to the flange), with the joint's `link_radius_m`. Origins that coincide (a
-  spherical wrist) give a sphere. Both end points are fixed in joint frame i, so one pass of
-  forward kinematics places every capsule.
+  spherical wrist) give a sphere. Where the arm file gives the link's shapes (URDF
+  `<collision>`, `Joint.collision`), their capsules stand in instead, named after the joint
+  (`name.1`, `name.2` … for several). All end points are fixed in joint frame i, so one
+  pass of forward kinematics places every capsule.
 - a `base` capsule from the base frame's origin to joint 0's origin, when they differ (a
   column under the first joint), static.
 - the tool: the cell's capsules in the flange frame; without any, one from the flange to the
@@ -64,6 +66,11 @@ class ArmCapsules:
         if np.linalg.norm(first_origin) > _ZERO_LENGTH_M:
             rows.append((BASE, -1, zero, first_origin, arm.joints[0].link_radius_m, -1))
         for i, joint in enumerate(arm.joints):
+            if joint.collision:  # the arm file's own shapes (URDF <collision>)
+                for k, c in enumerate(joint.collision):
+                    name = joint.name if len(joint.collision) == 1 else f"{joint.name}.{k + 1}"
+                    rows.append((name, i, np.array(c[:3]), np.array(c[3:6]), c[6], i))
+                continue
             nxt = arm.joints[i + 1].origin if i + 1 < n else arm.flange
             rows.append((joint.name, i, zero, nxt[:3, 3].copy(), joint.link_radius_m, i))
         tool = cell.tool if cell is not None else ()

@@ -1,8 +1,9 @@
 """Distances between the arm's capsules and the cell's objects, and their rates (pure numpy).
 
-One call, `clearances`, evaluates every pair of a `CollisionModel` at one pose in a single
-vectorised pass per kind of pair, and returns each pair's signed distance (negative when
-the shapes overlap), witness points, unit normal and distance-rate row:
+One call, `clearances`, evaluates the pairs of a `CollisionModel` at one pose in a single
+vectorised pass per kind of pair (all of them, or in the control cycle only those a cheap
+lower bound cannot rule out), and returns each pair's signed distance (negative when the
+shapes overlap), witness points, unit normal and distance-rate row:
 
     ḋ = row · q̇,   row = nᵀ (J_a(p_a) − J_b(p_b))
 
@@ -37,7 +38,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from numpy.typing import NDArray
@@ -56,7 +57,7 @@ _NONE = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3)))  # n
 
 @dataclass(frozen=True, eq=False)
 class Clearances:
-    """Every checked pair at one pose; arrays share the pair order of `pairs`.
+    """The measured pairs at one pose; arrays share the pair order of `pairs`.
 
     pairs         (arm side, other side) names; the other side is an object, another link,
                   or `keep_in` (then the arm side is `tcp`)
@@ -134,10 +135,15 @@ def segment_parameters(p1: Array, d1: Array, p2: Array, d2: Array) -> tuple[Arra
     return s, t
 
 
-def _unit_or(v: Array, fallback: Array) -> tuple[Array, Array]:
-    """v/‖v‖ and ‖v‖, with `fallback` (unit) where v is (nearly) zero."""
+def _unit_or(v: Array, fallback: Array | Callable[[], Array]) -> tuple[Array, Array]:
+    """v/‖v‖ and ‖v‖, with `fallback` (unit; or a function giving it, called only when
+    needed) where v is (nearly) zero."""
     length = np.sqrt(_dot(v, v))
     ok = length > 1e-12
+    if ok.all():
+        return v / length[:, None], length
+    if callable(fallback):
+        fallback = fallback()
     return np.where(ok[:, None], v / np.where(ok, length, 1.0)[:, None], fallback), length
 
 
@@ -158,7 +164,7 @@ def capsule_capsule(p1: Array, q1: Array, r1: Array, p2: Array, q2: Array, r2: A
     s, t = segment_parameters(p1, d1, p2, d2)
     c1 = p1 + s[:, None] * d1
     c2 = p2 + t[:, None] * d2
-    n, gap = _unit_or(c1 - c2, _any_perpendicular(d1, d2))
+    n, gap = _unit_or(c1 - c2, lambda: _any_perpendicular(d1, d2))  # touching axes: rare
     return gap - r1 - r2, c1 - r1[:, None] * n, c2 + r2[:, None] * n, n
 
 

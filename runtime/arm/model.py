@@ -26,7 +26,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import ConfigError
-from ..tomlsource import TomlSource as _Source, read_toml
+from ..tomlsource import TomlSource as _Source, read_toml, unit_factor as _unit
 from .chain_terms import ChainTerms, build_chain_terms
 from .transforms import Mat4, make_transform, rot4, rotx, rotz, trans
 
@@ -50,7 +50,9 @@ class Joint:
 
     `max_speed`/`max_accel` are what jogwire commands (software limits); `rated_speed`/
     `rated_accel` are the hardware's ratings that preflight proves against. `link_radius_m`
-    is the radius of the capsule around the link this joint moves (runtime.arm.collision).
+    is the radius of the capsule around the link this joint moves (runtime.arm.collision);
+    `collision` replaces that capsule when the arm file describes the link's shape (URDF
+    `<collision>`): capsules (start xyz, end xyz, radius) in this joint's frame, m.
     """
 
     name: str
@@ -64,6 +66,7 @@ class Joint:
     effort: float | None
     origin: Mat4 = field(repr=False)
     link_radius_m: float = DEFAULT_LINK_RADIUS_M
+    collision: tuple[tuple[float, ...], ...] = ()
 
     @property
     def is_revolute(self) -> bool:
@@ -285,14 +288,6 @@ def _vector3(src: _Source, value: Any, field_name: str, table: str, key: str) ->
     if not isinstance(value, list) or len(value) != 3:
         raise src.error(f"must be a list of 3 numbers, got {value!r}", field_name, table, None, key)
     return [_number(src, v, field_name, table, None, key) for v in value]
-
-
-def _unit(src: _Source, data: dict, key: str, table: dict[str, float], default: str) -> float:
-    name = data.get(key, default)
-    if not isinstance(name, str) or name not in table:
-        raise src.error(f"unknown unit {name!r}; use one of {', '.join(table)}", key, None, None,
-                        key)
-    return table[name]
 
 
 def _frame(src: _Source, data: dict, table: str, length: float, angle: float) -> Mat4:

@@ -10,6 +10,12 @@ chain of `runtime.arm.model`:
 - `continuous` joints become revolute joints with limits −inf … +inf;
 - `mimic`, `planar` and `floating` joints on the chain are refused; links and joints beyond
   the tip (a gripper's fingers, a camera mount) are ignored.
+- `<collision>` shapes of the links a joint moves (its child, and links fixed to it up to
+  the next moving joint) become that joint's collision capsules (runtime.arm.collision),
+  each shape by the capsule that encloses it: a cylinder by its axis and radius, a sphere by
+  its centre and radius, a box by its longest axis and the half-diagonal of the other two.
+  Meshes are skipped; a link without another shape keeps the default capsule. Shapes on
+  links before the first moving joint (a pedestal) are static and left to the cell.
 
 URDF knows speeds (`<limit velocity>`) but no accelerations. Our assumption, stated here and
 in `DEFAULT_RAMP_S`: each joint may reach its full speed in 0.25 s, i.e. max_accel =
@@ -25,7 +31,7 @@ from __future__ import annotations
 
 import math
 import xml.etree.ElementTree as ET
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from xml.parsers import expat
 
@@ -277,6 +283,53 @@ def _limits(doc: _Document, j: _UrdfJoint) -> dict[str, float | None]:
                 rated_accel=accel, effort=effort)
 
 
+def _collision_capsules(doc: _Document, link: ET.Element, to_joint: Mat4
+                        ) -> list[tuple[float, ...]]:
+    """The link's `<collision>` shapes as enclosing capsules (start xyz, end xyz, radius) in
+    the joint frame that `to_joint` maps the link frame into (see the module docstring)."""
+    out = []
+    name = link.get("name")
+    for k, col in enumerate(link.findall("collision")):
+        geometry = col.find("geometry")
+        shape = None if geometry is None else next(iter(geometry), None)
+        if shape is None or shape.tag == "mesh":
+            continue
+        field = f"link[{name}].collision[{k}].{shape.tag}"
+        origin = col.find("origin")
+        T = to_joint if origin is None else to_joint @ make_transform(
+            doc.vector3(origin.get("xyz"), origin, f"link[{name}].collision[{k}].origin.xyz",
+                        (0.0, 0.0, 0.0)),
+            doc.vector3(origin.get("rpy"), origin, f"link[{name}].collision[{k}].origin.rpy",
+                        (0.0, 0.0, 0.0)))
+        if shape.tag == "sphere":
+            half, radius = np.zeros(3), _positive(doc, shape, "radius", field)
+        elif shape.tag == "cylinder":
+            radius = _positive(doc, shape, "radius", field)
+            half = np.array([0.0, 0.0, 0.5 * _positive(doc, shape, "length", field)])
+        elif shape.tag == "box":
+            size = doc.vector3(shape.get("size"), shape, f"{field}.size", (0.0, 0.0, 0.0))
+            if (size <= 0).any():
+                raise doc.error(f"every edge must be positive, got {shape.get('size')!r}",
+                                shape, f"{field}.size")
+            axis = int(np.argmax(size))
+            half = np.zeros(3)
+            half[axis] = 0.5 * size[axis]
+            radius = 0.5 * float(np.linalg.norm(np.delete(size, axis)))
+        else:
+            raise doc.error(f"unknown collision shape <{shape.tag}>; use box, cylinder, sphere "
+                            f"or mesh", shape, field)
+        start, end = (T @ np.append(-half, 1.0))[:3], (T @ np.append(half, 1.0))[:3]
+        out.append((*start.tolist(), *end.tolist(), radius))
+    return out
+
+
+def _positive(doc: _Document, element: ET.Element, key: str, field: str) -> float:
+    value = doc.number(element.get(key), element, f"{field}.{key}")
+    if value <= 0:
+        raise doc.error(f"must be positive, got {element.get(key)}", element, f"{field}.{key}")
+    return value
+
+
 def _refuse_unsupported(doc: _Document, j: _UrdfJoint) -> None:
     if j.kind in ("planar", "floating"):
         raise doc.error(f"a {j.kind} joint cannot be part of a jogged serial arm",
@@ -315,6 +368,8 @@ def load_urdf_arm(path: str | Path, base_link: str | None = None,
     base = np.eye(4)
     carry = None  # the fixed transform since the last moving joint's frame
     joints: list[Joint] = []
+    capsules: list[list[tuple[float, ...]]] = []  # per moving joint, in its frame
+    link_elements = {el.get("name"): el for el in doc.root.findall("link")}
     for j in chain:
         T = _origin(doc, j)
         if j.kind == "fixed":
@@ -322,6 +377,7 @@ def load_urdf_arm(path: str | Path, base_link: str | None = None,
                 base = base @ T
             else:
                 carry = carry @ T
+                capsules[-1] += _collision_capsules(doc, link_elements[j.child], carry)
             continue
         # URDF: parent→child = T · Motion_axis(q) = (T·R) · Motion_z(q) · Rᵀ, with R·ẑ = axis.
         R = rot4(rotation_aligning_z(_axis(doc, j)))
@@ -329,6 +385,8 @@ def load_urdf_arm(path: str | Path, base_link: str | None = None,
         kind = "prismatic" if j.kind == "prismatic" else "revolute"
         joints.append(Joint(name=j.name, kind=kind, origin=origin, **_limits(doc, j)))
         carry = R.T.copy()
+        capsules.append(_collision_capsules(doc, link_elements[j.child], carry))
+    joints = [replace(joint, collision=tuple(caps)) for joint, caps in zip(joints, capsules)]
     robot_name = doc.root.get("name") or path.stem
     return Arm(name=robot_name, joints=tuple(joints), base=base, flange=carry,
                tool=np.eye(4), summary=f"from URDF {path.name}: {base_link} → {tip_link}",

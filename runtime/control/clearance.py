@@ -47,7 +47,6 @@ binding rows.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -97,7 +96,8 @@ class ClearanceReport:
     nearest_pair    the pair at that distance (None beyond d_i)
     binding_pair    the pair whose row bound the motion this cycle, or None
     factor          share of the commanded task motion kept (1.0: clearance did not bind)
-    distances       every pair (runtime.arm.distance.Clearances)
+    distances       the pairs measured this cycle, those that may be inside d_i
+                    (runtime.arm.distance.Clearances)
     """
 
     min_distance_m: float
@@ -107,7 +107,9 @@ class ClearanceReport:
     distances: Clearances = field(repr=False)
 
     def as_dict(self) -> dict[str, Any]:
-        return {"min_distance_m": self.min_distance_m,
+        """Plain JSON-ready values (min_distance_m null when there is no pair at all)."""
+        finite = self.min_distance_m < float("inf")
+        return {"min_distance_m": float(self.min_distance_m) if finite else None,
                 "nearest_pair": None if self.nearest_pair is None else list(self.nearest_pair),
                 "binding_pair": None if self.binding_pair is None else list(self.binding_pair),
                 "factor": self.factor}
@@ -124,9 +126,12 @@ class _Rows:
 
     def __init__(self, limit: ClearanceLimit, found: Clearances) -> None:
         s = limit.settings
+        if not len(found.distances):  # the usual cycle: nothing near
+            self.index, self.A = found.index, found.rate_rows
+            self.floor = self.stop = found.distances
+            return
         near = found.distances < s.influence_distance_m
-        if len(near):
-            near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
+        near &= np.einsum("ij,ij->i", found.rate_rows, found.rate_rows) > _MOVABLE
         self.index = np.flatnonzero(near)
         self.A = found.rate_rows[self.index]
         self.floor = -s.gain_per_s * (found.distances[self.index] - s.safety_distance_m)

@@ -29,7 +29,9 @@ control loop, preflight and `jogwire probe` call. One cycle:
     null space, Flacco, De Luca & Khatib 2012/2015), so the arm slides along the limit.
     The re-solve is kept only if the arm then does no motion that was not asked for;
     otherwise the arm stops at the limit.
- 6. Limits by uniform scaling (`runtime.control.limits`).
+ 6. Limits by uniform scaling (`runtime.control.limits`). With a workcell, the velocity
+    damper (`runtime.control.clearance`) first restricts the rates to those that approach
+    nothing faster than its bound, and re-checks them after the acceleration ramp.
 
 σ_min cheaply: the eigenvalues of the small Gram matrix JJᵀ (6×6) are the σ², for fewer
 flops than an SVD of J; benchmarks/bench_solver.py times the options. One eigvalsh and one

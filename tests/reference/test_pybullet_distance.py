@@ -19,13 +19,16 @@ from hypothesis import strategies as st
 
 from runtime.arm.cell import load_cell
 from runtime.arm.cell import Box, Cylinder, HalfSpace, Sphere
+from runtime.arm.collision import ArmCapsules
 from runtime.arm.distance import (capsule_capsule, cell_distances, collision_model, segment_box,
                                   segment_plane)
 from runtime.arm.kinematics import joint_frames, tcp_pose
 from runtime.arm.model import load_arm
 from runtime.arm.transforms import make_transform, matrix_to_rpy, rotation_aligning_z
+from runtime.arm.urdf import load_urdf_arm
 from runtime.control.clearance import ClearanceLimit
 from runtime.control.solver import solve
+from tests.runtime.arm.test_collision import TWO_LINKS
 
 pytestmark = pytest.mark.reference
 
@@ -103,14 +106,14 @@ def test_capsule_box(client) -> None:
         p, q, r = random_capsule(rng)
         half = rng.uniform(0.05, 0.5, 3)
         pose = make_transform(rng.uniform(-0.3, 0.3, 3), rng.uniform(-np.pi, np.pi, 3))
-        gap, on_seg, on_box, n = segment_box(p[None], q[None], pose[None], half[None])
+        gap, _, on_box, _ = segment_box(p[None], q[None], pose[None], half[None])
         if gap[0] <= 0.0:
             continue  # the axis enters the box: our depth is a direction out, not exact
         shape = pybullet.createCollisionShape(pybullet.GEOM_BOX, halfExtents=half.tolist(),
                                               physicsClientId=client)
         box = _body(client, shape, pose[:3, 3], pose[:3, :3])
         cap = capsule_body(client, p, q, r)
-        ref, on_a, on_b, normal = closest(client, cap, box)
+        ref, _, on_b, _ = closest(client, cap, box)
         clear(client, cap, box)
         assert gap[0] - r == pytest.approx(ref, abs=TOLERANCE_M)
         np.testing.assert_allclose(on_box[0], on_b, atol=1e-5)
@@ -232,7 +235,7 @@ class CellWorld:
                 self.objects[obj.name] = _body(cid, shape, np.array(obj.normal) * obj.offset_m,
                                                np.eye(3))
             else:
-                raise AssertionError(f"no PyBullet body for {obj!r}")
+                raise TypeError(f"no PyBullet body for {obj!r}")
         self.capsules = {}
 
     def min_distance(self, q) -> tuple[float, tuple[str, str]]:
@@ -309,3 +312,36 @@ def test_damper_keeps_clear_in_pybullet_and_never_blocks_moving_away(
     near = found.distances < d_i
     if (found.rate_rows[near] @ plain.rates >= 0.0).all():  # away from everything near
         assert np.array_equal(plain.rates, guarded.rates)
+
+
+def test_urdf_collision_cylinder_matches_pybullet_on_its_side(client, tmp_path) -> None:
+    """The capsule jogwire builds from a URDF link's <collision> cylinder, against PyBullet
+    loading the same URDF: equal beside the cylinder's side (there the enclosing capsule is
+    exact), at random joint positions."""
+    path = tmp_path / "collide2.urdf"
+    path.write_text(TWO_LINKS.replace("MESH", ""), encoding="utf-8")
+    arm = load_urdf_arm(path)
+    caps = ArmCapsules.of(arm)
+    i = caps.names.index("j1")
+    # URDF_USE_IMPLICIT_CYLINDER: without it PyBullet loads a URDF cylinder as a convex hull
+    robot = pybullet.loadURDF(str(path), useFixedBase=True,
+                              flags=pybullet.URDF_USE_IMPLICIT_CYLINDER, physicsClientId=client)
+    pybullet.changeDynamics(robot, 0, collisionMargin=0.0, physicsClientId=client)
+    rng = np.random.default_rng(6)
+    for _ in range(10):
+        q = rng.uniform(-1.5, 1.5, 2)
+        for joint, value in enumerate(q):
+            pybullet.resetJointState(robot, joint, float(value), physicsClientId=client)
+        start, end = caps.placed(joint_frames(arm, q)[0])
+        # a ball beside the middle of the cylinder, off its axis
+        axis = end[i] - start[i]
+        side = np.cross(axis, rng.normal(size=3))
+        centre = start[i] + 0.5 * axis + side / np.linalg.norm(side) * rng.uniform(0.1, 0.3)
+        ball = capsule_body(client, centre, centre, 0.02)
+        ref = min(h[8] for h in pybullet.getClosestPoints(robot, ball, 10.0, linkIndexA=0,
+                                                          physicsClientId=client))
+        clear(client, ball)
+        d, *_ = capsule_capsule(start[i][None], end[i][None], caps.radius[i:i + 1],
+                                centre[None], centre[None], np.array([0.02]))
+        assert d[0] == pytest.approx(ref, abs=TOLERANCE_M)
+    clear(client, robot)

@@ -93,7 +93,7 @@ def test_segment_box_closed_forms(p, q, expected) -> None:
 
 
 def test_segment_through_a_box_reports_depth_and_a_way_out() -> None:
-    gap, _, on_box, n = segment_box(*one((-1, 0.3, 0.1), (1, 0.3, 0.1)), *UNIT_CUBE)
+    gap, _, _, n = segment_box(*one((-1, 0.3, 0.1), (1, 0.3, 0.1)), *UNIT_CUBE)
     assert gap[0] == pytest.approx(-0.2)  # 0.2 below the +y face, the nearest one
     np.testing.assert_allclose(n[0], (0, 1, 0), atol=1e-12)
 
@@ -106,7 +106,7 @@ def test_rotated_box() -> None:
 
 
 def test_half_space_uses_the_nearer_end() -> None:
-    gap, end, on_plane = segment_plane(*one((0, 0, 0.5), (0, 0.3, 0.2)),
+    gap, _, on_plane = segment_plane(*one((0, 0, 0.5), (0, 0.3, 0.2)),
                                        np.array([[0.0, 0.0, 1.0]]), np.array([0.1]))
     assert gap[0] == pytest.approx(0.1)
     np.testing.assert_allclose(on_plane[0], (0, 0.3, 0.1))

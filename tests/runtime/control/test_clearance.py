@@ -61,7 +61,7 @@ def test_a_cell_out_of_reach_changes_nothing(tmp_path: Path) -> None:
 
 def test_straight_down_stops_at_the_safety_distance(elbow6_bench) -> None:
     arm, cell, limit = elbow6_bench
-    q, sols = drive(arm, limit, [0, 0, -0.3, 0, 0, 0], 1500)
+    _, sols = drive(arm, limit, [0, 0, -0.3, 0, 0, 0], 1500)
     d_s = cell.clearance.safety_distance_m
     assert min(s.clearance.min_distance_m for s in sols) >= d_s - 1e-4
     last = sols[-1]
@@ -128,3 +128,15 @@ def test_keep_in_box_binds_by_name() -> None:
     _, sols = drive(arm, limit, [0, -0.5, 0, 0, 0, 0], 1500)
     assert sols[-1].clearance.binding_pair == ("tcp", "keep_in")
     assert min(s.clearance.min_distance_m for s in sols) >= 0.03 - 1e-4
+
+
+def test_the_arm_keeps_clear_of_itself(elbow6_bench) -> None:
+    """Pulling the tool in low toward the base column: self pairs (the hand against the
+    upper arm and the column) bind, and hold d_s like the objects do."""
+    arm, cell, limit = elbow6_bench
+    _, sols = drive(arm, limit, [-0.3, 0, -0.15, 0, 0, 0], 2000)
+    links = set(arm.joint_names) | {"gripper"}
+    bound = {s.clearance.binding_pair for s in sols if s.clearance.binding_pair}
+    assert any(set(pair) <= links for pair in bound), bound
+    assert min(s.clearance.min_distance_m for s in sols) >= \
+        cell.clearance.safety_distance_m - 1e-4
