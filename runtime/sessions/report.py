@@ -341,8 +341,11 @@ def render_html(r: PreflightResult, ctx: ReportContext, plots: dict[str, bytes])
         parts.append("<h2>Why it fails</h2><ul class='reasons'>"
                      + "".join(f"<li>{e(f.message)}</li>" for f in r.findings) + "</ul>")
     else:
+        clear = "" if r.cell is None else (
+            f", and every part of the arm at least the safety distance "
+            f"({1e3 * r.cell.safety_m:g} mm) from the workcell {e(r.cell.cell)}, with no contact")
         parts.append("<p>Every joint stayed within its rated speed and acceleration and "
-                     "clear of its position limits, and the TCP within its cap.</p>")
+                     f"clear of its position limits, and the TCP within its cap{clear}.</p>")
     if r.cell is not None:
         parts.append("<h2>Workcell</h2>" + _cell_section(r, ctx))
     parts.append("<h2>Joints</h2>" + _joint_table(r, arm))
