@@ -38,6 +38,7 @@ from ..control.loop import TimingStats
 from ..arm.model import Arm
 
 SIZE = (1120, 720)
+ARM_PANEL_TITLE = "arm (measured)   top · side"
 
 # Colours: jogwire's palette (runtime/palette.py), shared with the sim, URDF and report.
 GROUND, PANEL, TRACK, LINE = palette.GROUND, palette.PANEL, palette.TRACK, palette.LINE
@@ -256,7 +257,7 @@ def _background(size: tuple[int, int], arm: Arm, cell: CellOutlines | None = Non
     surf = pygame.Surface(size)
     surf.fill(GROUND)
     _panel(surf, L.joints, "joints   position within limits · speed against limits")
-    _panel(surf, L.arm, "arm (measured)   top · side")
+    _panel(surf, L.arm, ARM_PANEL_TITLE)
     _panel(surf, L.solver, "solver")
     _panel(surf, L.link, "link")
     _panel(surf, L.loop, "loop")
@@ -509,9 +510,11 @@ def _draw_clearance(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None
             _text(surf, f"{s.clearance_m * 1e3:.0f} mm", mid, 16, colour, anchor="midleft")
         surf.set_clip(clip)
     top = L.views[0][0]
-    if s.clearance_binds:
-        badge = _rendered("CLEARANCE LIMITS MOTION", 16, GROUND, True)
-        box = pygame.Rect(top.x, top.y - 26, badge.get_width() + 12, 19)
+    if s.clearance_binds:       # beside the panel's title, clear of the TCP figures
+        title = _rendered(ARM_PANEL_TITLE.upper(), 17, MUTED, True)
+        badge = _rendered("CLEARANCE LIMITS", 16, GROUND, True)
+        box = pygame.Rect(L.arm.x + 12 + title.get_width() + 12, L.arm.y + 6,
+                          badge.get_width() + 12, 19)
         pygame.draw.rect(surf, CLEARANCE_WARN, box, border_radius=4)
         surf.blit(badge, badge.get_rect(center=box.center))
     _text(surf, clearance_text(s), L.command.topright, 18,
