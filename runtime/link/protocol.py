@@ -447,6 +447,11 @@ def decode(data: Any, *, n_joints: int | None = None) -> Message:
 # hello: building and checking
 # ----------------------------------------------------------------------------------------
 
+def _numbers(values: NDArray[np.float64]) -> str:
+    """Numbers for a digest: rounded to 1e-6, "%.6f", −0 as 0, one space between."""
+    return " ".join(f"{round(float(x), 6) + 0.0:.6f}" for x in np.ravel(values))
+
+
 def geometry_digest(arm: Arm) -> str:
     """A short hash of the chain's geometry, independent of how its fixed transforms are split.
 
@@ -456,18 +461,13 @@ def geometry_digest(arm: Arm) -> str:
     (row-major); every number rounded to 1e-6 and printed "%.6f" (−0 as 0); lines joined by
     "\n"; SHA-256 of the UTF-8 text, first 16 hex digits.
     """
-    def numbers(values: NDArray[np.float64]) -> str:
-        return " ".join(f"{round(float(x), 6) + 0.0:.6f}" for x in values)
+    numbers = _numbers
     lines, T = [], np.asarray(arm.base, dtype=np.float64)
     for joint in arm.joints:
         T = T @ joint.origin
         lines.append(f"{joint.kind} {numbers(T[:3, 3])} {numbers(T[:3, 2])}")
     lines.append(f"tcp {numbers((T @ arm.tip)[:3, :4].ravel())}")
     return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
-
-
-def _numbers(values) -> str:
-    return " ".join(f"{round(float(x), 6) + 0.0:.6f}" for x in np.ravel(values))
 
 
 def cell_digest(cell: Cell) -> str:

@@ -416,3 +416,20 @@ def test_round_trip_meter_holds_at_most_max_samples() -> None:
     for k, rtt in enumerate([0.5, 0.5, 0.5, 0.01, 0.01]):
         meter.add(rtt, k * 0.001)
     assert meter.level_s == 0.01    # (0.5, 0.01, 0.01): the oldest two are gone
+
+
+def test_cell_digest_names_the_same_objects_and_changes_with_any_of_them(tmp_path) -> None:
+    from runtime.arm.cell import load_cell
+    from runtime.arm.model import configs_dir
+    from runtime.link.protocol import cell_digest, cell_hello_for
+    arm = load_arm("elbow6")
+    shipped = configs_dir() / "cells" / "bench.toml"
+    copy = tmp_path / "bench.toml"
+    copy.write_text(shipped.read_text())
+    assert cell_digest(load_cell("bench", arm)) == cell_digest(load_cell(copy, arm))
+    moved = tmp_path / "moved.toml"
+    moved.write_text(shipped.read_text().replace("xyz = [0.55, 0.30, 0.075]",
+                                                 "xyz = [0.551, 0.30, 0.075]"))
+    assert cell_digest(load_cell(moved, arm)) != cell_digest(load_cell(copy, arm))
+    assert cell_hello_for(None) == CellHello("", "")
+    assert decode(encode(cell_hello_for(load_cell("bench", arm)))).name == "bench"
