@@ -50,7 +50,8 @@ from collections import Counter  # noqa: E402
 
 from runtime.link.arm_process import child_env  # noqa: E402
 from runtime.arm.cell import load_cell  # noqa: E402
-from runtime.commands.preflight import CellRun, load_profile, run_preflight  # noqa: E402
+from runtime.commands.preflight import load_profile, run_preflight  # noqa: E402
+from runtime.sessions.cell_check import CellRun  # noqa: E402
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 from runtime.control.mapping import load_pad  # noqa: E402
 from runtime.arm.model import configs_dir, load_arm  # noqa: E402

@@ -34,13 +34,12 @@ from ..sessions.lockstep import STATE_LAGS, LockstepSim, run_closed_loop, subste
 from ..control.mapping import InputFrame, load_pad
 from ..arm.model import Arm, load_arm
 from ..control.cycle import ControlCycle
-from ..arm.cell import Cell, load_cell
-from ..arm.distance import clearances_at, collision_model
+from ..arm.cell import load_cell
 from ..errors import TransportError
 from ..link.arm_process import snapshot_png
-from ..link.protocol import CellHello, cell_digest, cell_hello_for
-from ..sessions.cell_check import evaluate_cell, with_cell
-from ..sessions.preflight import Finding, PreflightResult, Trace, TraceBuilder, evaluate
+from ..link.protocol import cell_hello_for
+from ..sessions.cell_check import CellRun, format_cell, judge_cell, with_cell
+from ..sessions.preflight import Finding, PreflightResult, TraceBuilder, evaluate
 from ..operator.progress import Progress
 from ..sessions.log_schema import SESSION_SUFFIX, cycle_record
 from ..sessions.log_writer import SessionRecorder
@@ -179,16 +178,6 @@ def run(args: argparse.Namespace) -> int:
     return 0 if result.passed else 1
 
 
-@dataclass(frozen=True)
-class CellRun:
-    """The workcell of a run: the model, what the simulated arm loads (name or file), and
-    whether the velocity damper is in the solve."""
-
-    cell: Cell
-    spec: str
-    clearance: bool = True
-
-
 def closest_picture(arm_spec: str, cell_spec: str | None, result: PreflightResult
                     ) -> bytes | None:
     """The simulated arm in its workcell at the closest approach, or None (no workcell, or
@@ -288,18 +277,6 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, *, rate_hz: float,
                         n_cycles, float(np.median(computes)) if n_cycles else 0.0)
 
 
-def judge_cell(arm: Arm, cell: Cell, trace: Trace, contacts, arm_cell: CellHello | None):
-    """The workcell's verdict on a run: jogwire's distances at the measured poses, the
-    simulated arm's contacts, and whether it confirmed holding the same workcell."""
-    model = collision_model(arm, cell)
-    c = cell.clearance
-    confirmed = arm_cell is not None and arm_cell.digest == cell_digest(cell)
-    return evaluate_cell(trace.t, trace.q, cell=cell.name, pairs=model.pair_names,
-                         distances=lambda q: clearances_at(model, q).distances,
-                         safety_m=c.safety_distance_m, influence_m=c.influence_distance_m,
-                         contacts=contacts, contacts_measured=confirmed)
-
-
 def _add_finding(result: PreflightResult, finding: Finding) -> PreflightResult:
     return replace(result, verdict="fail", findings=result.findings + (finding,))
 
@@ -378,18 +355,6 @@ def format_text(r: PreflightResult, arm: Arm, profile: str, run_info: PreflightR
                      (("report", paths.get("report")), ("summary", paths["summary"]),
                       ("session log", paths["session_log"])) if path]
     return "\n".join(lines)
-
-
-def format_cell(c: Any) -> str:
-    """The text verdict's workcell line: the closest approach and the contacts."""
-    text = f"workcell  {c.cell}: "
-    if c.min_clearance_m is not None:
-        text += (f"nearest {c.pair[0]}–{c.pair[1]} {1e3 * c.min_clearance_m:.1f} mm at "
-                 f"t = {c.min_clearance_t_s:.2f} s (safety {1e3 * c.safety_m:.0f} mm); ")
-    if not c.contacts_measured:
-        return text + "contacts NOT measured"
-    return text + ("no contact" if not c.contacts else
-                   "CONTACT " + ", ".join(f"{e.pair} at t = {e.t_s:.2f} s" for e in c.contacts))
 
 
 def _pct(value: float, of: float) -> str:

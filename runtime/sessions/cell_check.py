@@ -28,7 +28,11 @@ from typing import Any, Callable, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from .preflight import Finding, PreflightResult
+from ..arm.cell import Cell
+from ..arm.distance import clearances_at, collision_model
+from ..arm.model import Arm
+from ..link.protocol import CellHello, cell_digest
+from .preflight import Finding, PreflightResult, Trace
 
 CLEARANCE_ALLOWANCE_M = 2e-4
 """A measured clearance counts below d_s only beyond this (m): one cycle of state lag and
@@ -38,6 +42,16 @@ PLOTTED_PAIRS = 4
 """The report plots the distances of this many pairs, those that came nearest."""
 
 Pair = tuple[str, str]
+
+
+@dataclass(frozen=True)
+class CellRun:
+    """The workcell of a run: the model, what the simulated arm loads (name or file), and
+    whether the velocity damper is in the solve."""
+
+    cell: Cell
+    spec: str
+    clearance: bool = True
 
 
 @dataclass(frozen=True)
@@ -171,3 +185,29 @@ def with_cell(result: PreflightResult, verdict: CellVerdict, findings: list[Find
     all_findings = result.findings + tuple(findings)
     return replace(result, cell=verdict, findings=all_findings, notes=tuple(notes),
                    verdict="fail" if all_findings else "pass")
+
+
+def judge_cell(arm: Arm, cell: Cell, trace: Trace,
+               contacts: Sequence[tuple[float, str, str, float]],
+               arm_cell: CellHello | None) -> tuple[CellVerdict, list[Finding]]:
+    """The workcell's verdict on a preflight run: jogwire's distances at the measured
+    poses, the simulated arm's contacts, and whether it answered with the same workcell."""
+    model = collision_model(arm, cell)
+    c = cell.clearance
+    confirmed = arm_cell is not None and arm_cell.digest == cell_digest(cell)
+    return evaluate_cell(trace.t, trace.q, cell=cell.name, pairs=model.pair_names,
+                         distances=lambda q: clearances_at(model, q).distances,
+                         safety_m=c.safety_distance_m, influence_m=c.influence_distance_m,
+                         contacts=contacts, contacts_measured=confirmed)
+
+
+def format_cell(c: CellVerdict) -> str:
+    """The text verdict's workcell line: the closest approach and the contacts."""
+    text = f"workcell  {c.cell}: "
+    if c.min_clearance_m is not None:
+        text += (f"nearest {c.pair[0]}–{c.pair[1]} {1e3 * c.min_clearance_m:.1f} mm at "
+                 f"t = {c.min_clearance_t_s:.2f} s (safety {1e3 * c.safety_m:.0f} mm); ")
+    if not c.contacts_measured:
+        return text + "contacts NOT measured"
+    return text + ("no contact" if not c.contacts else
+                   "CONTACT " + ", ".join(f"{e.pair} at t = {e.t_s:.2f} s" for e in c.contacts))
