@@ -638,10 +638,11 @@ class DriveSession:
     def _clearance(self, sol: Any) -> dict[str, Any]:
         """The nearest pair for the window, when the solve measured it (within d_i); else
         the main thread measures it at the pose (`_MainThread.snapshot`), off this loop."""
+        from ..operator.status_window import clearance_fields
         report = None if sol is None else sol.clearance
         if report is None or report.nearest_pair is None:
             return {}
-        return nearest_pair_fields(report.distances)
+        return clearance_fields(report.distances)
 
     def _contacts_shown(self, now: float) -> tuple[tuple[str, str], ...]:
         """The pairs of the newest contact report, for CONTACT_SHOWN_S after it came."""
@@ -661,15 +662,6 @@ class DriveSession:
             notes.append(f"script {script.name} {self.source.elapsed_s(now):.1f} / "
                          f"{script.duration_s:.1f} s")
         return " · ".join(notes)
-
-
-def nearest_pair_fields(found: Any) -> dict[str, Any]:
-    """The status snapshot's clearance fields from a `runtime.arm.distance.Clearances`."""
-    i = found.nearest()
-    if i is None:
-        return {}
-    return {"clearance_m": float(found.distances[i]), "clearance_pair": found.pairs[i],
-            "clearance_points": np.array([found.points_arm[i], found.points_other[i]])}
 
 
 def enter_realtime(priority: int) -> str:
@@ -922,10 +914,11 @@ class _MainThread:
         snap = self.drive.latest
         if snap is None:
             return None
+        from ..operator.status_window import clearance_fields
         more: dict[str, Any] = {"timing": self.timing()}
         drive = self.drive
         if drive.cell is not None and snap.q is not None and snap.clearance_points is None:
-            more.update(nearest_pair_fields(cell_distances(drive.arm, drive.cell, snap.q)))
+            more.update(clearance_fields(cell_distances(drive.arm, drive.cell, snap.q)))
         return dataclasses.replace(snap, **more)
 
     def watch(self) -> bool:

@@ -26,6 +26,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -471,6 +472,16 @@ def _draw_chain(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
           (L.views[1][0].right, L.views[0][0].y - 25), 17, MUTED, anchor="topright")
 
 
+def clearance_fields(found: Any) -> dict[str, Any]:
+    """StatusSnapshot's clearance fields from a `runtime.arm.distance.Clearances`: the
+    nearest pair, its distance and witness points (nothing without any pair)."""
+    i = found.nearest()
+    if i is None:
+        return {}
+    return {"clearance_m": float(found.distances[i]), "clearance_pair": found.pairs[i],
+            "clearance_points": np.array([found.points_arm[i], found.points_other[i]])}
+
+
 def clearance_colour(s: StatusSnapshot) -> tuple[int, int, int]:
     """Red at or below the safety distance (or touching), amber inside the influence
     distance (the damper is acting), muted while clear."""
@@ -509,7 +520,6 @@ def _draw_clearance(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None
             mid = ((a[0] + b[0]) // 2 + 6, (a[1] + b[1]) // 2 - 8)
             _text(surf, f"{s.clearance_m * 1e3:.0f} mm", mid, 16, colour, anchor="midleft")
         surf.set_clip(clip)
-    top = L.views[0][0]
     if s.clearance_binds:       # beside the panel's title, clear of the TCP figures
         title = _rendered(ARM_PANEL_TITLE.upper(), 17, MUTED, True)
         badge = _rendered("CLEARANCE LIMITS", 16, GROUND, True)
