@@ -80,6 +80,14 @@ class Clearances:
     index: NDArray[np.intp]
     beyond_m: float = math.inf
 
+    @staticmethod
+    def none_within(n: int, beyond_m: float) -> "Clearances":
+        """No pair measured (none can be within reach); `beyond_m` bounds them all."""
+        empty = np.zeros((0, 3))
+        return Clearances(pairs=(), distances=np.zeros(0), points_arm=empty,
+                          points_other=empty, normals=empty, rate_rows=np.zeros((0, n)),
+                          index=np.zeros(0, np.intp), beyond_m=beyond_m)
+
     def nearest(self) -> int | None:
         """Index of the smallest distance, or None without pairs."""
         return int(np.argmin(self.distances)) if len(self.distances) else None
@@ -373,7 +381,7 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
                                 - lay.cull_reach, dist3))
         keep = bound < within_m
         if not keep.any():
-            return _nothing_near(model.arm.n, float(bound.min(initial=math.inf)))
+            return Clearances.none_within(model.arm.n, float(bound.min(initial=math.inf)))
         beyond = float(bound[~keep].min(initial=math.inf))
         kept = np.flatnonzero(keep)
         k1 = kept[kept < n_cap]
@@ -408,13 +416,6 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
 
 
 _EYE4 = np.eye(4)[None]
-
-
-def _nothing_near(n: int, beyond_m: float) -> Clearances:
-    empty = np.zeros((0, 3))
-    return Clearances(pairs=(), distances=np.zeros(0), points_arm=empty, points_other=empty,
-                      normals=empty, rate_rows=np.zeros((0, n)), index=np.zeros(0, np.intp),
-                      beyond_m=beyond_m)
 
 
 def _rate_rows(arm: Arm, frames: Array, points: Array, normals: Array) -> Array:

@@ -74,17 +74,59 @@ _SLACK_M_S = 1e-9  # a row counts as met within this (m/s)
 _MOVABLE = 1e-12   # rows with a smaller squared norm: the joints cannot change that distance
 
 
+class _Memo:
+    """The last pose at which nothing was near, and the lower bound of every distance there."""
+
+    __slots__ = ("q", "bound_m")
+
+    def __init__(self) -> None:
+        self.q: list[float] | None = None
+        self.bound_m = 0.0
+
+
 @dataclass(frozen=True, eq=False)
 class ClearanceLimit:
     """An arm's collision model in one cell, with the damper settings: built once, passed to
-    every `solve`."""
+    every `solve`.
+
+    `sweep_m` bounds how far any point of the arm can move per unit motion of each joint:
+    the distance from joint j's axis to the farthest capsule point or the TCP beyond it, in
+    any pose (the link offsets along the chain, summed). A pose that differs from the last
+    pose found clear of d_i by Δq keeps every distance above that pose's bound minus
+    2·Σ|Δq_j|·sweep_j (both sides of a self pair may move), so while that stays above d_i
+    the cycle needs no distances at all (`_Memo`). The rates are the same either way (no
+    row can bind); only the reported lower bound is looser. None for arms with prismatic
+    joints, whose offsets change with q.
+    """
 
     model: CollisionModel
     settings: ClearanceSettings
+    sweep_m: tuple[float, ...] | None
+    memo: _Memo = field(default_factory=_Memo, repr=False)
 
     @staticmethod
     def of(arm: Arm, cell: Cell) -> "ClearanceLimit":
-        return ClearanceLimit(CollisionModel.build(arm, cell), cell.clearance)
+        model = CollisionModel.build(arm, cell)
+        return ClearanceLimit(model, cell.clearance, _sweep(model))
+
+
+def _sweep(model: CollisionModel) -> tuple[float, ...] | None:
+    arm, caps = model.arm, model.capsules
+    if not arm.is_revolute.all():
+        return None
+    n = arm.n
+    # reach[i]: the farthest point carried by joint frame i, from that frame's origin
+    reach = [float(np.linalg.norm(arm.tip[:3, 3])) if i == n - 1 else 0.0 for i in range(n)]
+    for f, start, end, r in zip(caps.frame.tolist(), caps.start, caps.end, caps.radius.tolist()):
+        if f >= 0:
+            reach[f] = max(reach[f], float(max(np.linalg.norm(start), np.linalg.norm(end))) + r)
+    offsets = [float(np.linalg.norm(arm.joints[i].origin[:3, 3])) for i in range(1, n)]
+    sweep = [0.0] * n
+    carried = 0.0  # the farthest point beyond joint j, from joint j's origin
+    for j in range(n - 1, -1, -1):
+        carried = max(reach[j], (offsets[j] + carried) if j < n - 1 else 0.0)
+        sweep[j] = carried
+    return tuple(sweep)
 
 
 @dataclass(frozen=True, eq=False)
@@ -165,10 +207,7 @@ class ClearanceGuard:
 
     def __init__(self, limit: ClearanceLimit, q: Vector, Jt: NDArray[np.float64],
                  damping: float, rates: Vector) -> None:
-        frames, T_tcp = joint_frames(limit.model.arm, q)
-        # Only pairs within d_i can bind: the rest are culled by a lower bound of their
-        # distance, which then stands in for the nearest distance (never overstated).
-        found = clearances(limit.model, frames, T_tcp, limit.settings.influence_distance_m)
+        found = _measure(limit, q)
         self._rows = rows = _Rows(limit, found)
         self._Jt, self._commanded = Jt, rates
         binding: tuple[str, str] | None = None
@@ -211,6 +250,22 @@ class ClearanceGuard:
             return Limited(rates, twist, {**limited.scales, "clearance": report.factor},
                            conflicts)
         return limited._replace(scales={**limited.scales, "clearance": report.factor})
+
+
+def _measure(limit: ClearanceLimit, q: Vector) -> Clearances:
+    """The pairs that may be inside d_i at q (see `ClearanceLimit` for the shortcut)."""
+    d_i, memo, sweep = limit.settings.influence_distance_m, limit.memo, limit.sweep_m
+    ql = q.tolist()
+    if memo.q is not None and sweep is not None:
+        moved = sum(abs(a - b) * s for a, b, s in zip(ql, memo.q, sweep))
+        if memo.bound_m - 2.0 * moved >= d_i:
+            return Clearances.none_within(len(ql), memo.bound_m - 2.0 * moved)
+    frames, T_tcp = joint_frames(limit.model.arm, q)
+    # Only pairs within d_i can bind: the rest are culled by a lower bound of their
+    # distance, which then stands in for the nearest distance (never overstated).
+    found = clearances(limit.model, frames, T_tcp, d_i)
+    memo.q, memo.bound_m = (ql, found.beyond_m) if not len(found.distances) else (None, 0.0)
+    return found
 
 
 def _kept(Jt: NDArray[np.float64], before: Vector, after: Vector) -> float:

@@ -291,7 +291,7 @@ def test_damper_keeps_clear_in_pybullet_and_never_blocks_moving_away(
     CLEARANCE_TOLERANCE_M. Then a command back the way it came, where it approaches nothing
     near, is left exactly as without a cell."""
     world = CellWorld(client, arm_name)
-    arm, limit = world.arm, ClearanceLimit(world.model, world.cell.clearance)
+    arm, limit = world.arm, ClearanceLimit.of(world.arm, world.cell)
     d_s, d_i = world.cell.clearance.safety_distance_m, world.cell.clearance.influence_distance_m
     q, prev = arm.home(), np.zeros(arm.n)
     toward = aim(world, target, q) + 0.3 * np.array(wobble)

@@ -140,3 +140,24 @@ def test_the_arm_keeps_clear_of_itself(elbow6_bench) -> None:
     assert any(set(pair) <= links for pair in bound), bound
     assert min(s.clearance.min_distance_m for s in sols) >= \
         cell.clearance.safety_distance_m - 1e-4
+
+
+def test_the_shortcut_far_from_everything_changes_no_rate(elbow6_bench) -> None:
+    """ClearanceLimit remembers the last pose found clear of d_i and skips measuring while
+    the arm cannot have come closer (its sweep bound): along a jog into the bench the rates
+    equal those of a solve that measures every cycle afresh."""
+    arm, cell, limit = elbow6_bench
+    remembering = ClearanceLimit.of(arm, cell)
+    q, prev = arm.home(), np.zeros(arm.n)
+    skipped = 0
+    for _ in range(900):
+        twist = np.array([0.1, -0.1, -0.3, 0.2, 0.0, 0.1])
+        fresh = solve(arm, q, twist, prev_rates=prev, dt_s=DT, clearance=ClearanceLimit(
+            limit.model, limit.settings, limit.sweep_m))
+        kept = solve(arm, q, twist, prev_rates=prev, dt_s=DT, clearance=remembering)
+        assert np.array_equal(fresh.rates, kept.rates)
+        assert kept.clearance.min_distance_m <= fresh.clearance.min_distance_m + 1e-12
+        # a looser bound than measuring afresh: this cycle took the shortcut
+        skipped += kept.clearance.min_distance_m < fresh.clearance.min_distance_m - 1e-12
+        q, prev = q + kept.rates * DT, kept.rates
+    assert skipped > 100 and kept.binding_limit == "clearance"
