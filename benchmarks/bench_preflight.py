@@ -24,7 +24,12 @@ Measured in one run, on the same machine state:
 The runtime never imports the simulator (the child process is the arm); this script
 imports `sim` only to time the physics and the arm side's work alone.
 
-    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000]
+  workcell       with --cell NAME: the lag-1 preflight again in that workcell (the damper
+                 in the solve, the simulated arm holding the objects and reading contacts,
+                 the verdict's distances at every measured pose), against the run without
+                 it from the same invocation; and the physics step with and without it
+
+    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--cell bench]
 """
 
 from __future__ import annotations
@@ -44,8 +49,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from collections import Counter  # noqa: E402
 
-from runtime.arm.load import load_arm  # noqa: E402
-from runtime.arm.model import configs_dir  # noqa: E402
+from runtime.arm.cell import load_cell
+from runtime.arm.load import load_arm
+from runtime.arm.model import configs_dir
 from runtime.control.cycle import ControlCycle  # noqa: E402
 from runtime.control.pads import load_pad  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402
@@ -53,6 +59,7 @@ from runtime.link.arm_process import child_env  # noqa: E402
 from runtime.link.pipes import PIPE_PEER  # noqa: E402
 from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
+from runtime.sessions.cell_check import CellRun
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
 from runtime.sessions.log_schema import (
@@ -108,13 +115,16 @@ def load_average() -> str:
 
 
 def bench_preflight(folder: Path, seconds: float, state_lag: int,
-                    with_report: bool) -> tuple[Path, dict]:
+                    with_report: bool, cell: str | None = None) -> tuple[Path, dict]:
     arm = load_arm(ARM)
     profile = load_profile(str(long_profile(folder, seconds)), arm, RATE_HZ)
-    log = folder / f"run-lag{state_lag}.jwlog"
+    log = folder / f"run-lag{state_lag}{'-' + cell if cell else ''}.jwlog"
     settings = preflight_settings(rate_hz=RATE_HZ, reduced=False, state_lag=state_lag)
+    t = time.perf_counter()
     run = run_preflight(ARM, arm, profile, settings, step_hz=STEP_HZ, log_path=log,
-                        progress=Progress("", 1, enabled=False))
+                        progress=Progress("", 1, enabled=False),
+                        cell=None if cell is None else CellRun(load_cell(cell, arm), cell))
+    total_s = time.perf_counter() - t       # the run and its verdict (workcell included)
     report_s = None
     if with_report:
         t = time.perf_counter()
@@ -125,7 +135,27 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int,
             session_log=str(run.log_path)))
         report_s = time.perf_counter() - t
     return log, {"motion_s": run.result.duration_s, "cycles": run.cycles,
-                 "run_s": run.wall_s, "report_s": report_s, "verdict": run.result.verdict}
+                 "run_s": run.wall_s, "total_s": total_s, "report_s": report_s,
+                 "verdict": run.result.verdict}
+
+
+def bench_cell_physics(cell: str, steps: int) -> tuple[float, float]:
+    """Median µs of SimulatedArm.step + read_state without and with the workcell."""
+    from sim.arm import SimulatedArm
+    from sim.cell_bodies import sim_cell
+    arm = load_arm(ARM)
+    out = []
+    for held in (None, sim_cell(arm, load_cell(cell, arm))):
+        with SimulatedArm(arm, cell=held) as sim:
+            sim.set_rates(0.05 * arm.max_speed)
+            times = []
+            for _ in range(steps):
+                t = time.perf_counter()
+                sim.step()
+                sim.read_state()
+                times.append(time.perf_counter() - t)
+        out.append(1e6 * statistics.median(times))
+    return out[0], out[1]
 
 
 def bench_rerun(log: Path) -> dict:
@@ -310,7 +340,13 @@ def main() -> int:
     p.add_argument("--seconds", type=float, default=60.0, help="profile length (default 60)")
     p.add_argument("--cycles", type=int, default=5000,
                    help="cycles per component measurement (default 5000)")
+    p.add_argument("--cell", metavar="NAME", help="also run the lag-1 preflight in this "
+                                                  "workcell (e.g. bench)")
+    p.add_argument("--only-cell", action="store_true",
+                   help="with --cell: only the workcell comparison")
     args = p.parse_args()
+    if args.cell and args.only_cell:
+        return bench_cell(args)
     print(f"load average at start: {load_average()}")
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
@@ -344,6 +380,28 @@ def main() -> int:
           f"it at {period / (here + exchange):.1f}x real time; side by side (lag 1) the "
           f"slower side's work at {period / max(here, there):.1f}x")
     print(f"load average at end: {load_average()}")
+    if args.cell:
+        bench_cell(args)
+    return 0
+
+
+def bench_cell(args: argparse.Namespace) -> int:
+    """The lag-1 preflight without and with the workcell, one after the other."""
+    print(f"workcell {args.cell}, load average at start: {load_average()}")
+    with tempfile.TemporaryDirectory() as tmp:
+        runs = {name: bench_preflight(Path(tmp), args.seconds, 1, False, cell)[1]
+                for name, cell in (("without", None), ("with", args.cell))}
+    for name, r in runs.items():
+        print(f"  preflight {ARM} {name} the workcell: {r['motion_s']:.1f} s of motion: run "
+              f"{r['run_s']:.2f} s = {r['motion_s'] / r['run_s']:.2f}x real time; with the "
+              f"verdict {r['total_s']:.2f} s = {r['motion_s'] / r['total_s']:.2f}x; "
+              f"verdict {r['verdict']}")
+    ratio = runs["with"]["run_s"] / runs["without"]["run_s"]
+    print(f"  the workcell's run takes {ratio:.2f}x the time of the run without it")
+    plain, held = bench_cell_physics(args.cell, args.cycles)
+    print(f"  physics step + read: {plain:.1f} µs without, {held:.1f} µs with the workcell "
+          f"(contacts read every step): +{held - plain:.1f} µs")
+    print(f"  load average at end: {load_average()}")
     return 0
 
 
