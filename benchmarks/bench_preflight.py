@@ -32,7 +32,12 @@ Measured in one run, on the same machine state:
 The runtime never imports the simulator (the child process is the arm); this script
 imports `sim` only to time the physics and the arm side's work alone.
 
-    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--links shm,pipe]
+  workcell       with --cell NAME: the lag-1 preflight again in that workcell (the damper
+                 in the solve, the simulated arm holding the objects and reading contacts,
+                 the verdict's distances at every measured pose), against the run without
+                 it from the same invocation; and the physics step with and without it
+
+    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--cell bench] [--links shm,pipe]
 """
 
 from __future__ import annotations
@@ -53,8 +58,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from collections import Counter  # noqa: E402
 
-from runtime.arm.load import load_arm  # noqa: E402
-from runtime.arm.model import configs_dir  # noqa: E402
+from runtime.arm.cell import load_cell
+from runtime.arm.load import load_arm
+from runtime.arm.model import configs_dir
 from runtime.control.cycle import ControlCycle  # noqa: E402
 from runtime.control.pads import load_pad  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402
@@ -63,6 +69,7 @@ from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer,  # noqa: E402
                                 arm_side_channel, child_link, link_spec)
 from runtime.link.protocol import Rates, State, decode, encode, hello_for  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
+from runtime.sessions.cell_check import CellRun
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 import runtime.sessions.preflight_run as preflight_run  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
@@ -154,18 +161,23 @@ class _TimedLockstepSim(LockstepSim):
             self.child_worked_s = float(found.group(1))
 
 
-def bench_preflight(folder: Path, seconds: float, state_lag: int, link: str,
-                    with_report: bool) -> tuple[Path, dict]:
+def bench_preflight(folder: Path, seconds: float, state_lag: int,
+                    with_report: bool, cell: str | None = None,
+                    link: str = "auto") -> tuple[Path, dict]:
     arm = load_arm(ARM)
     profile = load_profile(str(long_profile(folder, seconds)), arm, RATE_HZ)
-    log = folder / f"run-lag{state_lag}-{link}.jwlog"
+    log = folder / f"run-lag{state_lag}-{link}{'-' + cell if cell else ''}.jwlog"
     settings = preflight_settings(rate_hz=RATE_HZ, reduced=False, state_lag=state_lag)
+    t = time.perf_counter()
     preflight_run.LockstepSim = _TimedLockstepSim
     try:
         run = run_preflight(ARM, arm, profile, settings, step_hz=STEP_HZ, log_path=log,
-                            progress=Progress("", 1, enabled=False), link=link)
+                            progress=Progress("", 1, enabled=False),
+                            cell=None if cell is None else CellRun(load_cell(cell, arm), cell),
+                            link=link)
     finally:
         preflight_run.LockstepSim = LockstepSim
+    total_s = time.perf_counter() - t       # the run and its verdict (workcell included)
     sim = _TimedLockstepSim.last
     report_s = None
     if with_report:
@@ -177,9 +189,28 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int, link: str,
             session_log=str(run.log_path)))
         report_s = time.perf_counter() - t
     return log, {"motion_s": run.result.duration_s, "cycles": run.cycles,
-                 "run_s": run.wall_s, "report_s": report_s, "verdict": run.result.verdict,
-                 "start_s": sim.start_s, "loop_s": sim.loop_s, "here_waited_s": sim.waited_s,
-                 "child_worked_s": sim.child_worked_s}
+                 "run_s": run.wall_s, "total_s": total_s, "report_s": report_s,
+                 "verdict": run.result.verdict, "start_s": sim.start_s, "loop_s": sim.loop_s,
+                 "here_waited_s": sim.waited_s, "child_worked_s": sim.child_worked_s}
+
+
+def bench_cell_physics(cell: str, steps: int) -> tuple[float, float]:
+    """Median µs of SimulatedArm.step + read_state without and with the workcell."""
+    from sim.arm import SimulatedArm
+    from sim.cell_bodies import sim_cell
+    arm = load_arm(ARM)
+    out = []
+    for held in (None, sim_cell(arm, load_cell(cell, arm))):
+        with SimulatedArm(arm, cell=held) as sim:
+            sim.set_rates(0.05 * arm.max_speed)
+            times = []
+            for _ in range(steps):
+                t = time.perf_counter()
+                sim.step()
+                sim.read_state()
+                times.append(time.perf_counter() - t)
+        out.append(1e6 * statistics.median(times))
+    return out[0], out[1]
 
 
 def bench_rerun(log: Path) -> dict:
@@ -410,16 +441,22 @@ def main() -> int:
     p.add_argument("--links", default="shm,pipe",
                    help="lockstep links to measure, the first being the one the "
                         "components and the rerun use (default shm,pipe)")
+    p.add_argument("--cell", metavar="NAME", help="also run the lag-1 preflight in this "
+                                                  "workcell (e.g. bench)")
+    p.add_argument("--only-cell", action="store_true",
+                   help="with --cell: only the workcell comparison")
     args = p.parse_args()
     links = args.links.split(",")
+    if args.cell and args.only_cell:
+        return bench_cell(args)
     print(f"load average at start: {load_average()}")
     runs = {}
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         for lag in (1, 0):
             for link in links:
-                log, pre = bench_preflight(folder, args.seconds, lag, link,
-                                           with_report=(lag, link) == (1, links[0]))
+                log, pre = bench_preflight(folder, args.seconds, lag,
+                                           with_report=(lag, link) == (1, links[0]), link=link)
                 runs[lag, link] = (log, pre)
                 cycles = pre["cycles"]
                 per_cycle = 1e6 * pre["run_s"] / cycles
@@ -464,6 +501,28 @@ def main() -> int:
           f"it at {period / (here + exchange):.1f}x real time; side by side (lag 1) the "
           f"slower side's work at {period / max(here, there):.1f}x")
     print(f"load average at end: {load_average()}")
+    if args.cell:
+        bench_cell(args)
+    return 0
+
+
+def bench_cell(args: argparse.Namespace) -> int:
+    """The lag-1 preflight without and with the workcell, one after the other."""
+    print(f"workcell {args.cell}, load average at start: {load_average()}")
+    with tempfile.TemporaryDirectory() as tmp:
+        runs = {name: bench_preflight(Path(tmp), args.seconds, 1, False, cell)[1]
+                for name, cell in (("without", None), ("with", args.cell))}
+    for name, r in runs.items():
+        print(f"  preflight {ARM} {name} the workcell: {r['motion_s']:.1f} s of motion: run "
+              f"{r['run_s']:.2f} s = {r['motion_s'] / r['run_s']:.2f}x real time; with the "
+              f"verdict {r['total_s']:.2f} s = {r['motion_s'] / r['total_s']:.2f}x; "
+              f"verdict {r['verdict']}")
+    ratio = runs["with"]["run_s"] / runs["without"]["run_s"]
+    print(f"  the workcell's run takes {ratio:.2f}x the time of the run without it")
+    plain, held = bench_cell_physics(args.cell, args.cycles)
+    print(f"  physics step + read: {plain:.1f} µs without, {held:.1f} µs with the workcell "
+          f"(contacts read every step): +{held - plain:.1f} µs")
+    print(f"  load average at end: {load_average()}")
     return 0
 
 

@@ -1,7 +1,7 @@
 """The simulated arm: PyBullet, built from the arm model's URDF export, behind the wire.
 
     python -m sim.arm ARM [--endpoint E] [--lockstep] [--step-hz HZ] [--gui] …   (= jogwire sim)
-    python -m sim.arm ARM --snapshot arm.png [--q …] [--deg]
+    python -m sim.arm ARM --snapshot arm.png [--q …] [--deg] [--cell C]
 
 `SimulatedArm` is usable in-process with no sockets (set_rates, step, read_state), so a
 preflight run can step the pipeline and the arm in one process; `main` serves it on the
@@ -29,14 +29,16 @@ import numpy as np
 import pybullet as pb
 
 from runtime import palette
+from runtime.arm.cell import load_cell
 from runtime.arm.load import load_arm
 from runtime.arm.model import Arm
 from runtime.errors import ConfigError, JogwireError
 from runtime.link.pipes import PipeServer, arm_side_channel
-from runtime.link.protocol import hello_for
+from runtime.link.protocol import CellHello, hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
 from .arm_side import ArmSession, Reading, guard_rates
+from .cell_bodies import SimCell, add_static_bodies, read_contacts, sim_cell
 from .endpoint import ArmEndpoint, StopFlag
 from .urdf import arm_to_urdf
 
@@ -45,6 +47,7 @@ GRAVITY_M_S2 = 9.81
 # inertias need under gravity (so velocity tracking is stiff), our round numbers.
 DEFAULT_EFFORT = {"revolute": 500.0, "prismatic": 2000.0}   # N·m, N
 TCP_LINK = "tcp"
+OBJECTS_IN_VIEW_M = 0.4     # a snapshot shows workcell objects this far beyond the arm
 # The PyBullet window's ground in jogwire's palette (options its GUI connect takes).
 _GUI_BACKGROUND = " ".join(f"--background_color_{c}={v:.3f}" for c, v in
                            zip(("red", "green", "blue"), palette.unit(palette.GROUND)))
@@ -57,11 +60,17 @@ class SimulatedArm:
 
     Joint order and names are the model's; q in rad (revolute) or m (prismatic), rates per
     second. DIRECT (headless) unless gui=True. Deterministic for a given command sequence.
+
+    cell: a workcell to hold: its objects become static bodies, the arm's collision model
+    (runtime/arm/collision.py: a capsule per link, the tool's capsules) is added as one
+    link per capsule, only the pairs the runtime checks may collide, and every step reads
+    the contacts PyBullet found (`read_state`).
     """
 
     def __init__(self, arm: Arm, *, step_s: float = 1e-3, gui: bool = False,
-                 q0: np.ndarray | None = None) -> None:
+                 q0: np.ndarray | None = None, cell: SimCell | None = None) -> None:
         self.arm = arm
+        self.cell = cell
         self.step_s = float(step_s)
         self.client = pb.connect(pb.GUI, options=_GUI_BACKGROUND) if gui else \
             pb.connect(pb.DIRECT)
@@ -70,11 +79,14 @@ class SimulatedArm:
                                                               "DIRECT session"))
         try:
             self.body = self._load(arm)
+            # static body id → object name
+            self.objects = add_static_bodies(self.client, cell.objects) if cell else {}
         except Exception:
             pb.disconnect(physicsClientId=self.client)
             raise
         names = {pb.getJointInfo(self.body, i, physicsClientId=self.client)[1].decode(): i
                  for i in range(pb.getNumJoints(self.body, physicsClientId=self.client))}
+        self.parts = self._parts() if cell is not None else {}
         self.joint_ids = [names[name] for name in arm.joint_names]
         self.tcp_link = next(i for i in range(pb.getNumJoints(self.body,
                                                               physicsClientId=self.client))
@@ -88,12 +100,42 @@ class SimulatedArm:
 
     def _load(self, arm: Arm) -> int:
         fd, path = tempfile.mkstemp(suffix=".urdf", prefix=f"jogwire-{arm.name}-")
+        parts = None if self.cell is None else self.cell.parts
+        # With a workcell the arm's parts collide with each other too; _parts switches off
+        # the pairs the workcell does not check, and the sketch's own shapes altogether
+        # (they stay in the file: PyBullet computes the links' inertia from them, so the
+        # arm moves exactly as it does without a workcell).
+        flags = 0 if self.cell is None else pb.URDF_USE_SELF_COLLISION
         try:
             with os.fdopen(fd, "w", encoding="utf-8") as f:
-                f.write(arm_to_urdf(arm))
-            return pb.loadURDF(path, useFixedBase=True, physicsClientId=self.client)
+                f.write(arm_to_urdf(arm, parts=parts))
+            return pb.loadURDF(path, useFixedBase=True, flags=flags,
+                               physicsClientId=self.client)
         finally:
             os.unlink(path)
+
+    def _parts(self) -> dict[int, str]:
+        """PyBullet link index → part name for every part of the collision model. Pairs the
+        workcell does not check (neighbours, the mount, excluded pairs) are taken out of
+        PyBullet's collision detection, so every contact read is a pair the runtime
+        keeps clear of; the sketch's links collide with nothing."""
+        c, cell = self.client, self.cell
+        assert cell is not None
+        links = {pb.getJointInfo(self.body, i, physicsClientId=c)[12].decode(): i
+                 for i in range(pb.getNumJoints(self.body, physicsClientId=c))}
+        parts = {links[link]: name for link, name in cell.part_names.items()}
+        every = [-1, *links.values()]
+        for ia in every:
+            for ib in every:
+                if ia < ib and (parts.get(ia) is None or parts.get(ib) is None or
+                                frozenset((parts[ia], parts[ib])) not in cell.checked):
+                    pb.setCollisionFilterPair(self.body, self.body, ia, ib, 0,
+                                              physicsClientId=c)
+        for body, name in self.objects.items():
+            for link in every:
+                if parts.get(link) is None or frozenset((parts[link], name)) not in cell.checked:
+                    pb.setCollisionFilterPair(self.body, body, link, -1, 0, physicsClientId=c)
+        return parts
 
     def reset(self, q: np.ndarray) -> None:
         """Put the joints at q (rad or m) at rest; time restarts at 0."""
@@ -104,6 +146,7 @@ class SimulatedArm:
         self.request = np.zeros(self.arm.n)
         self.command = np.zeros(self.arm.n)
         self.limited = False
+        self.contacts: tuple[tuple[str, str, float], ...] = ()
         self._read()
 
     def set_rates(self, qd: np.ndarray) -> None:
@@ -123,6 +166,9 @@ class SimulatedArm:
         pb.stepSimulation(physicsClientId=self.client)
         self.t_s += self.step_s
         self._read()
+        if self.cell is not None:
+            self.contacts = read_contacts(self.client, self.body, self.parts,
+                                          self.objects)
 
     def _read(self) -> None:
         states = pb.getJointStates(self.body, self.joint_ids, physicsClientId=self.client)
@@ -131,7 +177,7 @@ class SimulatedArm:
 
     def read_state(self) -> Reading:
         return Reading(self.t_s, self.q.copy(), self.qd.copy(), self.command.copy(),
-                       self.limited)
+                       self.limited, self.contacts)
 
     def tcp_pose(self) -> np.ndarray:
         """The TCP frame in the world (4×4), as PyBullet computes it (link frame, not COM)."""
@@ -150,8 +196,9 @@ class SimulatedArm:
                  for i in range(-1, pb.getNumJoints(self.body, physicsClientId=c))]
         lo = np.minimum.reduce([np.array(b[0]) for b in boxes] + [np.array([0.0, 0.0, 0.0])])
         hi = np.maximum.reduce([np.array(b[1]) for b in boxes])
+        lo, hi = self._with_objects(lo, hi)
         centre, size = 0.5 * (lo + hi), max(float(np.max(hi - lo)), 0.3)
-        props = self._add_props(size)
+        props = self._add_props(size) if self.cell is None else []
         try:
             fov_deg = 40.0
             distance = 0.75 * size / math.tan(math.radians(fov_deg / 2.0))
@@ -169,6 +216,19 @@ class SimulatedArm:
         image = np.array(rgba, dtype=np.uint8).reshape(height, width, 4)
         image[np.asarray(seg).reshape(height, width) < 0] = (*palette.GROUND, 255)
         return image
+
+    def _with_objects(self, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The view's bounds grown to the workcell's objects near the arm (an object's
+        box is clipped to OBJECTS_IN_VIEW_M around the arm; a half-space is left out)."""
+        near_lo, near_hi = lo - OBJECTS_IN_VIEW_M, hi + OBJECTS_IN_VIEW_M
+        for body in self.objects:
+            if pb.getCollisionShapeData(body, -1, physicsClientId=self.client)[0][2] \
+                    == pb.GEOM_PLANE:
+                continue
+            b_lo, b_hi = (np.array(v) for v in pb.getAABB(body, physicsClientId=self.client))
+            lo = np.minimum(lo, np.clip(b_lo, near_lo, near_hi))
+            hi = np.maximum(hi, np.clip(b_hi, near_lo, near_hi))
+        return lo, hi
 
     def _add_props(self, size: float) -> list[int]:
         """Visual-only floor plate at z = 0 and, for a raised base, a column under it (the
@@ -258,6 +318,10 @@ def build_parser() -> argparse.ArgumentParser:
                         "first is negative. Default: the arm's home pose")
     p.add_argument("--deg", action="store_true", help="--q revolute values are in degrees")
     p.add_argument("--size", default="800x600", help="--snapshot image size (default 800x600)")
+    p.add_argument("--cell", metavar="NAME|FILE",
+                   help="a workcell (shipped name or .toml): its objects become static bodies, "
+                        "the arm collides as its collision model, contacts are reported to "
+                        "runtimes that ask (docs/PROTOCOL.md §5a)")
     return p
 
 
@@ -287,12 +351,13 @@ def _parse_size(text: str) -> tuple[int, int]:
     return w, h
 
 
-def snapshot(arm: Arm, path: str, q: np.ndarray, size: tuple[int, int]) -> Path:
-    with SimulatedArm(arm, q0=q) as sim:
+def snapshot(arm: Arm, path: str, q: np.ndarray, size: tuple[int, int],
+             cell: SimCell | None = None) -> Path:
+    with SimulatedArm(arm, q0=q, cell=cell) as sim:
         return write_png(path, sim.render(*size))
 
 
-def serve(args: argparse.Namespace, arm: Arm) -> int:
+def serve(args: argparse.Namespace, arm: Arm, cell: SimCell | None = None) -> int:
     if not (1.0 <= args.step_hz <= 20000.0):
         raise ConfigError("--step-hz must be between 1 and 20000", field="step-hz")
     if not args.stale_after > 0:
@@ -310,15 +375,19 @@ def serve(args: argparse.Namespace, arm: Arm) -> int:
         raise ConfigError(f"--q is outside the joint limits of {arm.name}", field="q")
     keys = load_server_keys(args.keys) if args.keys else None
     with StopFlag(args.duration) as stop, \
-            SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui, q0=q0) as sim, \
+            SimulatedArm(arm, step_s=1.0 / args.step_hz, gui=args.gui, q0=q0,
+                         cell=cell) as sim, \
             _server(args, arm, keys) as server:
+        # Without a workcell it answers `cell` with an empty name: it measures no contact.
+        ours = CellHello("", "") if cell is None else CellHello(cell.name, cell.digest)
         session = ArmSession(hello_for(arm, "sim", stale_after_s=args.stale_after),
-                             stale_after_s=args.stale_after, in_order=args.lockstep)
+                             stale_after_s=args.stale_after, in_order=args.lockstep,
+                             cell=ours)
         endpoint = ArmEndpoint(server, sim, session, substeps=args.substeps)
         mode = "lockstep" if args.lockstep else "paced"
         print(f"jogwire sim ready: arm={arm.name} joints={arm.n} endpoint={server.endpoint} "
               f"step_s={sim.step_s:g} mode={mode} stale_after_s={args.stale_after:g} "
-              f"substeps={args.substeps}", flush=True)
+              f"substeps={args.substeps} cell={cell.name if cell else '-'}", flush=True)
         if args.lockstep:
             endpoint.serve_lockstep(stop)
         else:
@@ -338,12 +407,13 @@ def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.INFO, format="jogwire sim: %(message)s", stream=sys.stderr)
     try:
         arm = load_arm(args.arm)
+        cell = sim_cell(arm, load_cell(args.cell, arm)) if args.cell else None
         if args.snapshot:
             path = snapshot(arm, args.snapshot, _parse_q(arm, args.q, args.deg),
-                            _parse_size(args.size))
+                            _parse_size(args.size), cell)
             print(f"wrote {path}")
             return 0
-        return serve(args, arm)
+        return serve(args, arm, cell)
     except JogwireError as exc:
         print(f"jogwire sim: {exc}", file=sys.stderr)
         return 2

@@ -24,6 +24,9 @@ from numpy.typing import NDArray
 from runtime.arm.model import Arm
 from runtime.errors import ProtocolError
 from runtime.link.protocol import (
+    MAX_CONTACTS,
+    CellHello,
+    Contact,
     Hello,
     LatenessFilter,
     Message,
@@ -47,7 +50,9 @@ class Reading:
 
     t_s: the target's own time (simulated seconds, or seconds since the bridge opened);
     command: the rates actually commanded on the last step (after `guard_rates`);
-    limited: the guard had to reduce the requested rates on that step.
+    limited: the guard had to reduce the requested rates on that step;
+    contacts: (part of the arm, what it touches, penetration depth m) at the end of the
+    step, deepest first; empty for a target that measures no contact.
     """
 
     t_s: float
@@ -55,6 +60,7 @@ class Reading:
     qd: Vector
     command: Vector
     limited: bool = False
+    contacts: tuple[tuple[str, str, float], ...] = ()
 
 
 # ----------------------------------------------------------------------------------------
@@ -144,11 +150,18 @@ class ArmSession:
     runtime whose hello was accepted; it keeps control while it keeps talking. Another
     runtime's hello is refused ("busy") until the controller has been silent for
     stale_after_s. Observers (role "observer") only receive state.
+
+    cell: this side's `CellHello` when it measures contact (docs/PROTOCOL.md §5a): a peer
+    that sends `cell` gets it back and becomes a contact reader. None: a side that measures
+    no contact, which treats `cell` like any kind it does not take (no answer).
     """
 
     def __init__(self, hello: Hello, *, stale_after_s: float, max_observers: int = 8,
-                 refuse_every_s: float = 0.1, in_order: bool = False) -> None:
+                 refuse_every_s: float = 0.1, in_order: bool = False,
+                 cell: CellHello | None = None) -> None:
         self.hello = hello
+        self.cell = cell
+        self.contact_readers: set[bytes] = set()
         self.stale_after_ns = int(stale_after_s * 1e9)
         self.max_observers = max_observers
         self.refuse_every_ns = int(refuse_every_s * 1e9)
@@ -184,8 +197,23 @@ class ArmSession:
             return self._on_hello(peer, msg, now_ns)
         if isinstance(msg, Rates):
             return self._on_rates(peer, msg, now_ns)
+        if isinstance(msg, CellHello) and self.cell is not None:
+            return self._on_cell(peer, msg)
         self.dropped["unexpected"] += 1
         return []
+
+    def _on_cell(self, peer: bytes, theirs: CellHello) -> list[tuple[bytes, Message]]:
+        if peer != self.controller and peer not in self.observers:
+            self.dropped["no_hello"] += 1
+            return []
+        assert self.cell is not None
+        if theirs.digest != self.cell.digest:
+            self.events.append(f"the peer holds workcell {theirs.name or 'none'!r} "
+                               f"({theirs.digest or 'no digest'}), this side "
+                               f"{self.cell.name or 'none'!r} ({self.cell.digest or 'no digest'}): "
+                               "contacts name this side's objects")
+        self.contact_readers.add(peer)
+        return [(peer, self.cell)]
 
     def _on_hello(self, peer: bytes, theirs: Hello, now_ns: int) -> list[tuple[bytes, Message]]:
         reply: list[tuple[bytes, Message]] = [(peer, self.hello)]
@@ -256,6 +284,7 @@ class ArmSession:
         """The peer is gone (or refused): it no longer controls or observes."""
         self.observers.discard(peer)
         self.greet.discard(peer)
+        self.contact_readers.discard(peer)
         if peer == self.controller:
             self.controller = None
             self.waiting.clear()
@@ -300,6 +329,16 @@ class ArmSession:
         if self.controller is not None:
             peers.append(self.controller)
         return peers
+
+    def contact(self, reading: Reading, state: State) -> Contact | None:
+        """The contact report that goes with `state` (same seq and time), None if the step
+        ended without contact or nobody reads contacts."""
+        if not reading.contacts or not self.contact_readers:
+            return None
+        listed = reading.contacts[:MAX_CONTACTS]
+        return Contact(seq=state.seq, t_ns=state.t_ns, a=[a for a, _, _ in listed],
+                       b=[b for _, b, _ in listed], depth_m=[d for _, _, d in listed],
+                       total=len(reading.contacts))
 
     def state(self, reading: Reading, t_ns: int) -> State:
         """The state message for `reading`, measured at t_ns (the arm side's clock)."""

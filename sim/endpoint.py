@@ -86,8 +86,14 @@ class ArmEndpoint:
             self.send_failures += 1
 
     def publish(self, now_ns: int) -> None:
-        state = self.session.state(self.target.read_state(), now_ns)
+        """The step's state to the controller and observers; before it, to those who read
+        contacts, the step's contact report if it ended in contact (PROTOCOL.md §5a)."""
+        reading = self.target.read_state()
+        state = self.session.state(reading, now_ns)
+        contact = self.session.contact(reading, state)
         for peer in self.session.recipients():
+            if contact is not None and peer in self.session.contact_readers:
+                self._send(peer, contact)
             self._send(peer, state)
 
     def cycle_paced(self) -> None:

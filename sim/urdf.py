@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
+from typing import TYPE_CHECKING
 from xml.sax.saxutils import quoteattr
 
 import numpy as np
@@ -33,6 +34,9 @@ import numpy as np
 from runtime import palette
 from runtime.arm.model import Arm
 from runtime.arm.transforms import Mat4, rotation_aligning_z
+
+if TYPE_CHECKING:
+    from runtime.arm.solids import Solid
 
 LINK_RADIUS_M = 0.035
 LINK_MASS_PER_M_KG = 2.5
@@ -94,6 +98,26 @@ def _inertial(mass: float, com: np.ndarray, R: np.ndarray, ixx: float, iyy: floa
             f'    <inertia ixx="{_num(ixx)}" ixy="0" ixz="0" iyy="{_num(iyy)}" iyz="0" '
             f'izz="{_num(izz)}"/>',
             "   </inertial>"]
+
+
+def _solid_geometry(solid: "Solid") -> str:
+    s = [_num(v) for v in solid.sizes]
+    if solid.kind == "box":
+        return f'<box size="{" ".join(_num(2.0 * v) for v in solid.sizes)}"/>'
+    if solid.kind in ("cylinder", "capsule"):
+        return f'<{solid.kind} radius="{s[0]}" length="{s[1]}"/>'
+    if solid.kind == "sphere":
+        return f'<sphere radius="{s[0]}"/>'
+    raise ValueError(f"a {solid.kind} cannot be part of a link")
+
+
+def _part_link(name: str, solid: "Solid", drawn: bool) -> list[str]:
+    """A link holding one collision shape of the arm's collision model (drawn: the tool's)."""
+    geometry = _solid_geometry(solid)
+    body = _shape("collision", _origin_tag(solid.pose), geometry, "")
+    if drawn:
+        body += _shape("visual", _origin_tag(solid.pose), geometry, "tool")
+    return _tool_link(name, body)
 
 
 def _material(name: str, rgb: palette.RGB) -> str:
@@ -161,8 +185,14 @@ def _joint(name: str, kind: str, parent: str, child: str, T: Mat4,
             *(f"   {e}" for e in extra), "  </joint>"]
 
 
-def arm_to_urdf(arm: Arm, *, name: str | None = None) -> str:
-    """The URDF text of `arm` (see the module docstring for the layout)."""
+def arm_to_urdf(arm: Arm, *, name: str | None = None,
+                parts: "list[tuple[str, str, Solid, bool]] | None" = None) -> str:
+    """The URDF text of `arm` (see the module docstring for the layout).
+
+    parts: the arm's collision model besides the sketch, as (parent link, part link name,
+    its shape in the parent's frame, drawn?): each part is a link of its own on a fixed
+    joint, so a contact names the very part it touched (the simulator decides which
+    shapes may collide)."""
     out = ['<?xml version="1.0"?>',
            "<!-- written by jogwire from an arm model; geometry and inertias are a sketch -->",
            f"<robot name={quoteattr(name or arm.name)}>",
@@ -193,6 +223,9 @@ def arm_to_urdf(arm: Arm, *, name: str | None = None) -> str:
     out += _tool_link("tcp", _shape("visual", _origin_tag(np.eye(4)), ball, "tool"))
     out += _joint(_unique("flange_joint", taken), "fixed", links[-1], "flange", arm.flange)
     out += _joint(_unique("tcp_joint", taken), "fixed", "flange", "tcp", arm.tool)
+    for parent, link, solid, drawn in parts or ():
+        out += _part_link(link, solid, drawn)
+        out += _joint(_unique(f"{link}_joint", taken), "fixed", parent, link, np.eye(4))
     out.append("</robot>")
     return "\n".join(out) + "\n"
 

@@ -7,4 +7,4 @@ Pure numpy: no I/O past the loaders, no clock. May import only ``runtime.errors`
 """
 
 __all__ = ["cell", "chain_terms", "collision", "distance", "kinematics", "load", "model",
-           "serial", "transforms", "urdf"]
+           "serial", "solids", "transforms", "urdf"]

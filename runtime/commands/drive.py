@@ -16,7 +16,9 @@ import math
 import sys
 from pathlib import Path
 
+from ..arm.cell import Cell, load_cell
 from ..arm.load import load_arm
+from ..arm.model import Arm
 from ..control.pads import load_pad
 from ..control.settings import RunSettings
 from ..errors import ConfigError
@@ -27,6 +29,7 @@ from ..sessions.archive import BYTES_PER_MB, SECONDS_PER_DAY, ArchiveCap
 from ..sessions.drive import REALTIME_PRIORITY, DriveInput, DriveTarget, run_drive
 from ..sessions.drive_ui import DEMO_SCRIPT, DriveUI, plan_input, probe_display_and_pads
 
+DEMO_ARM, DEMO_CELL = "elbow6", "bench"   # the demo arm works in the demo workcell
 DEFAULT_PADS = {"gamepad": "twinstick", "keyboard": "keyboard"}
 
 
@@ -35,8 +38,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "Drive an arm's tool by hand. With no arguments: start the simulated demo arm, open "
         "the status window and take the first gamepad (or the keyboard). Without a display "
         "and a pad: play the demo script headless and print a summary.")
-    parser.add_argument("--arm", default="elbow6",
-                        help="shipped arm name, arm .toml or .urdf (default elbow6)")
+    parser.add_argument("--arm", default=DEMO_ARM,
+                        help=f"shipped arm name, arm .toml or .urdf (default {DEMO_ARM})")
+    parser.add_argument("--cell", metavar="NAME|FILE",
+                        help="the workcell around the arm (shipped name or .toml); clearance "
+                             "keeps the arm out of it, the simulated arm holds it and reports "
+                             "contacts. Default: the demo workcell `bench` for the built-in "
+                             f"demo arm ({DEMO_ARM}), none otherwise; `none` for none")
     parser.add_argument("--pad", metavar="PAD",
                         help="pad mapping: shipped name (twinstick, twinstick_sdl, keyboard) "
                              "or a .toml (default for a pad: the shipped file SDL's layout "
@@ -119,10 +127,22 @@ def _check_options(args: argparse.Namespace) -> None:
                               field=flag.replace("_", "-"))
 
 
+def cell_for(args: argparse.Namespace, arm: Arm) -> tuple[Cell | None, str | None]:
+    """The workcell of the session and what the simulated arm loads: --cell, or the demo
+    workcell for the demo arm on the built-in simulated arm."""
+    spec = args.cell
+    if spec is None and args.arm == DEMO_ARM and args.target is None:
+        spec = DEMO_CELL
+    if spec is None or spec == "none":
+        return None, None
+    return load_cell(spec, arm), spec
+
+
 def run(args: argparse.Namespace) -> int:
     settings = settings_from(args)
     _check_options(args)
     arm = load_arm(args.arm)
+    cell, cell_spec = cell_for(args, arm)
     keys = load_client_keys(args.keys) if args.keys else None
     if args.target is not None:
         check_endpoint(args.target, keys, action="connect to")   # refused before anything runs
@@ -159,10 +179,11 @@ def run(args: argparse.Namespace) -> int:
         else args.sessions_max_days * SECONDS_PER_DAY)
     result = run_drive(settings, arm, DriveInput(plan.spec, pad),
                        DriveTarget(args.arm, args.target, keys, gui=args.gui,
-                                   lockstep=args.lockstep),
+                                   lockstep=args.lockstep,
+                                   cell_spec=cell_spec if args.target is None else None),
                        DriveUI(plan.window, out, screenshot), duration_s=args.duration,
                        sessions_dir=None if args.no_record else args.sessions,
-                       sessions_cap=cap, realtime=args.realtime)
+                       sessions_cap=cap, realtime=args.realtime, cell=cell)
     summary = result.summary
     say(out, format_drive_summary(summary))
     if "screenshot" in summary:

@@ -18,17 +18,21 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
 from dataclasses import replace
 from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+from ..arm.cell import load_cell
 from ..arm.load import load_arm
 from ..arm.model import Arm
 from ..control.limits import REDUCED_SPEED_M_S
 from ..control.settings import STATE_LAGS, RunSettings
-from ..errors import ConfigError
+from ..errors import ConfigError, TransportError
+from ..link.arm_process import snapshot_png
 from ..operator.terminal import format_table, json_safe
+from ..sessions.cell_check import CellRun, format_cell
 from ..sessions.lockstep import LINKS, substeps_for
 from ..sessions.log_schema import SESSION_SUFFIX
 from ..sessions.preflight import PreflightResult
@@ -71,6 +75,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print the summary as one JSON object (SI units) instead of text")
     parser.add_argument("--no-report", action="store_true",
                         help="skip the HTML report and its plots (faster; JSON and log only)")
+    parser.add_argument("--cell", metavar="NAME|FILE",
+                        help="a workcell (shipped name or .toml): the simulated arm holds its "
+                             "objects and reports contacts; any contact or a clearance below "
+                             "its safety distance fails the run")
+    parser.add_argument("--no-clearance", action="store_true",
+                        help="with --cell: leave the velocity damper out of the solve, to see "
+                             "what the motion does without it")
 
 
 def add_link_argument(parser: argparse.ArgumentParser) -> None:
@@ -85,7 +96,10 @@ def run(args: argparse.Namespace) -> int:
     substeps_for(args.rate, args.step_hz)        # a bad rate is an error before anything starts
     settings = preflight_settings(rate_hz=args.rate, reduced=args.reduced,
                                   state_lag=args.state_lag)
+    if args.no_clearance and not args.cell:
+        raise ConfigError("--no-clearance needs --cell", field="no-clearance")
     arm = load_arm(args.arm)
+    cell = load_cell(args.cell, arm) if args.cell else None
     profile = load_profile(args.profile, arm, args.rate)
     out_dir = Path(args.out)
     try:
@@ -98,6 +112,8 @@ def run(args: argparse.Namespace) -> int:
         settings = replace(settings, reduced_locked=True)
     run_info = run_preflight(args.arm, arm, profile, settings, step_hz=args.step_hz,
                              log_path=out_dir / f"{stem}{SESSION_SUFFIX}",
+                             cell=None if cell is None else CellRun(cell, args.cell,
+                                                                    not args.no_clearance),
                              link=args.lockstep_link)
     result = run_info.result
     paths = {"session_log": str(run_info.log_path), "summary": str(out_dir / f"{stem}.json")}
@@ -106,7 +122,8 @@ def run(args: argparse.Namespace) -> int:
         paths["report"] = str(write_report(out_dir / f"{stem}.html", result, ReportContext(
             arm=arm, profile=profile.name, profile_source=profile.source, rate_hz=args.rate,
             step_hz=args.step_hz, started_at=run_info.started_at, wall_s=run_info.wall_s,
-            session_log=str(run_info.log_path))))
+            session_log=str(run_info.log_path),
+            closest_picture=closest_picture(args.arm, args.cell, result))))
     summary = _summary(result, arm, profile, args, run_info, paths)
     try:
         Path(paths["summary"]).write_text(json.dumps(json_safe(summary), indent=2) + "\n",
@@ -119,6 +136,20 @@ def run(args: argparse.Namespace) -> int:
     else:
         print(format_text(result, arm, profile.name, run_info, paths))
     return 0 if result.passed else 1
+
+
+def closest_picture(arm_spec: str, cell_spec: str | None, result: PreflightResult
+                    ) -> bytes | None:
+    """The simulated arm in its workcell at the closest approach, or None (no workcell, or
+    the picture could not be made: the report says the rest)."""
+    if result.cell is None or result.cell.closest_q is None:
+        return None
+    try:
+        return snapshot_png(arm_spec, result.cell.closest_q, cell=cell_spec)
+    except TransportError as exc:
+        print(f"jogwire preflight: no picture of the closest approach ({exc})",
+              file=sys.stderr)
+        return None
 
 
 def _free_stem(folder: Path, base: str) -> str:
@@ -174,6 +205,8 @@ def format_text(r: PreflightResult, arm: Arm, profile: str, run_info: PreflightR
     if r.tcp_peak_speed_reduced is not None and not r.reduced:
         lines.append(f"          in reduced-speed segments peak {r.tcp_peak_speed_reduced:.3f} "
                      f"m/s commanded (cap {min(REDUCED_SPEED_M_S, r.tcp_cap_normal):.3f} m/s)")
+    if r.cell is not None:
+        lines.append(format_cell(r.cell))
     if r.findings:
         lines += ["", "reasons"] + [f"  - {f.message}" for f in r.findings]
     if r.notes:

@@ -40,6 +40,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from ..arm.cell import load_cell
 from ..arm.load import load_arm
 from ..arm.model import Arm
 from ..control.settings import RunSettings
@@ -65,6 +66,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--rerun", action="store_true",
                         help="feed the recorded inputs through today's control cycle instead "
                              "of sending; report per joint the largest rate difference")
+    parser.add_argument("--cell", metavar="NAME|FILE",
+                        help="with --rerun: the workcell to re-run in (default: the one the "
+                             "session recorded, if any; `none` for none)")
     parser.add_argument("--closed-loop", action="store_true",
                         help="with --rerun: in lockstep with the simulated arm (its measured "
                              "pose) instead of on the recorded poses")
@@ -109,6 +113,9 @@ def run(args: argparse.Namespace) -> int:
 def _check_options(args: argparse.Namespace) -> None:
     if args.closed_loop and not args.rerun:
         raise ConfigError("--closed-loop goes with --rerun", field="closed-loop")
+    if args.cell is not None and not args.rerun:
+        raise ConfigError("--cell goes with --rerun (sending replays recorded rates)",
+                          field="cell")
     if args.rerun and (args.target or args.speed != 1.0 or args.from_here):
         raise ConfigError("--target, --speed and --from-here are for sending; a re-run "
                           "moves no arm", field="rerun")
@@ -141,22 +148,30 @@ def _warn(text: str) -> None:
 # Re-run
 # ----------------------------------------------------------------------------------------
 
+def rerun_cell(option: str | None, recorded: Any) -> str | None:
+    """The workcell a re-run uses: --cell, else the one the session recorded; "none": none."""
+    spec = option if option is not None else recorded.get("cell")
+    return None if spec in (None, "", "none") else str(spec)
+
+
 def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRecord],
            arm: Arm) -> int:
     where = str(args.log)
     settings = cycle_settings(session.header.settings, where=where)
     frames = inputs_of(records, where)
+    cell_spec = rerun_cell(args.cell, session.header.settings)
+    cell = None if cell_spec is None else load_cell(cell_spec, arm)
     if args.closed_loop:
         result = rerun_closed_loop(settings, records, frames, arm,
                                    arm_spec=args.arm or arm_file_for(arm),
                                    step_hz=args.step_hz, label=Path(args.log).name,
-                                   link=args.lockstep_link)
+                                   cell=cell, cell_spec=cell_spec, link=args.lockstep_link)
     else:
-        cycle = settings.control_cycle(arm)
+        cycle = settings.control_cycle(arm, cell)
         diff = rerun_open_loop(cycle, records, frames)
         result = {"mode": "open loop", **diff.as_dict()}
     result.update({"log": where, "arm": arm.name, "recorded_arm": session.header.arm.name,
-                   "tolerance": args.tolerance})
+                   "cell": cell_spec, "tolerance": args.tolerance})
     same = result["largest_difference"] <= args.tolerance
     result["identical"] = same
     if args.json:

@@ -25,6 +25,7 @@ options (passed to the simulated arm; `jogwire sim ARM --help` explains each):
   --stale-after S     no fresh rates for S seconds → ramp to zero (default 0.1)
   --duration S        stop after S seconds
   --snapshot FILE.png render the arm (home pose or --q) to a PNG and exit; --size WxH
+  --cell NAME|FILE    hold a workcell: its objects as static bodies, contacts reported
 """
 
 

@@ -21,8 +21,10 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from ..arm.cell import Cell
 from ..arm.kinematics import analyse_pose
 from ..arm.model import Arm
+from .clearance import ClearanceLimit
 from .intent import InputFrame, Intent
 from .limits import apply_limits, binding_limit, start_pose
 from .mapping import Mapper
@@ -49,13 +51,16 @@ class CycleOutput:
 class ControlCycle:
     """Mapper, safety gate and solver for one arm, with the rates sent last cycle."""
 
-    def __init__(self, arm: Arm, pad: PadMapping, settings: RunSettings) -> None:
+    def __init__(self, arm: Arm, pad: PadMapping, settings: RunSettings,
+                 cell: Cell | None = None) -> None:
         self.arm = arm
         self.settings = settings
         self.dt_s = settings.dt_s
         # how far q lags the arm (limits.start_pose): as set for a lockstep run, else one cycle
         self.state_lag_cycles = settings.effective_state_lag
         self.locked = settings.locked_axes
+        # With a workcell the velocity damper keeps every pair clear (control/clearance.py).
+        self.clearance = None if cell is None else ClearanceLimit.of(arm, cell)
         self.mapper = Mapper(pad, arm, reduced_locked=settings.reduced_locked)
         self.gate = SafetyGate(settings.safety())
         self.prev_rates = np.zeros(arm.n)
@@ -85,7 +90,8 @@ class ControlCycle:
             solution = solve(self.arm, q, intent.twist, frame=intent.frame,
                              locked=self.locked, reduced=intent.reduced,
                              prev_rates=self.prev_rates, dt_s=self.dt_s,
-                             state_lag_cycles=self.state_lag_cycles)
+                             state_lag_cycles=self.state_lag_cycles,
+                             clearance=self.clearance)
         self.prev_rates = solution.rates
         return CycleOutput(solution.rates, intent, verdict, solution)
 

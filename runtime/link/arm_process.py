@@ -17,6 +17,7 @@ import re
 import selectors
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 from typing import IO, Any, Sequence
@@ -107,3 +108,25 @@ class ArmProcess:
 
     def __exit__(self, *exc: object) -> None:
         self.stop()
+
+
+def snapshot_png(arm: str, q: Sequence[float], *, cell: str | None = None,
+                 size: tuple[int, int] = (800, 600), timeout_s: float = 60.0) -> bytes:
+    """A picture of the simulated arm at pose q (rad or m), in its workcell if `cell` is
+    given: `python -m sim.arm ARM --snapshot … --q …` in a child (PyBullet's software
+    renderer), the PNG's bytes back. Raises TransportError if the child fails."""
+    with tempfile.TemporaryDirectory(prefix="jogwire-snapshot-") as folder:
+        path = Path(folder) / "snapshot.png"
+        options = ["--snapshot", str(path), "--q=" + ",".join(repr(float(v)) for v in q),
+                   "--size", f"{size[0]}x{size[1]}"] + (["--cell", cell] if cell else [])
+        try:
+            done = subprocess.run(child_argv("sim", arm, options), env=child_env(),
+                                  capture_output=True, text=True, timeout=timeout_s)
+        except subprocess.TimeoutExpired:
+            raise TransportError(f"the snapshot of {arm} took longer than {timeout_s:g} s") \
+                from None
+        if done.returncode != 0 or not path.exists():
+            tail = " / ".join(done.stderr.strip().splitlines()[-2:])
+            raise TransportError(f"the snapshot of {arm} failed (status {done.returncode})"
+                                 + (f": {tail}" if tail else ""))
+        return path.read_bytes()

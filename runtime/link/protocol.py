@@ -8,6 +8,9 @@ version `v` and a `kind`:
     state    arm → runtime: measured q and q̇, the last applied rates sequence, a status
     refuse   arm → runtime: why the arm side ignores this peer (mismatch, busy, …)
     twist    input program → runtime: a tool twist (m/s, rad/s), frame, enable flag
+    cell     both ways, only after hello: which workcell this side holds (name, digest); a
+             runtime that sends it asks for contact reports
+    contact  arm → runtime that sent `cell`: arm parts touching cell objects (pairs, depth)
 
 `docs/PROTOCOL.md` is the normative text (field tables, sockets, timing); a test checks that
 it and `FIELDS` below agree. Decoding is strict: anything that is not exactly a message of
@@ -32,9 +35,11 @@ from typing import Any, Callable, Union
 
 import msgpack
 import numpy as np
-from numpy.typing import NDArray
+from numpy.typing import ArrayLike, NDArray
 
+from ..arm.cell import Cell
 from ..arm.model import FRAMES, Arm, limits_digest
+from ..arm.solids import Solid, cell_solids, solid_of, tool_solids
 from ..errors import ModelMismatch, ProtocolError
 
 PROTOCOL_VERSION = 1
@@ -42,6 +47,7 @@ MAX_MESSAGE_BYTES = 16384   # a hello for MAX_JOINTS joints with long names stay
 MAX_JOINTS = 64
 MAX_NAME_CHARS = 64         # arm and joint names, digests
 MAX_TEXT_CHARS = 512        # refusal texts
+MAX_CONTACTS = 16           # pairs in one contact message, deepest first
 MAX_SEQ = 2**64 - 1
 INT64_MIN, INT64_MAX = -2**63, 2**63 - 1
 
@@ -159,9 +165,47 @@ class Twist:
         object.__setattr__(self, "twist", _floats(self.twist))
 
 
-Message = Union[Hello, Rates, State, Refuse, Twist]
+@dataclass(frozen=True)
+class CellHello:
+    """Which workcell this side holds: its `name` and `digest` (`cell_digest`), both "" for
+    none. A runtime sends it after the arm side accepted its hello, to ask for `Contact`
+    reports; the arm side answers with its own. A side that predates cells never sends it
+    and drops it when received (docs/PROTOCOL.md, "Versions")."""
+
+    name: str
+    digest: str
+
+
+@dataclass(frozen=True)
+class Contact:
+    """Arm parts touching workcell objects (or each other) at the end of one arm-side step.
+
+    seq: the `seq` of the state sent right after it for the same step; t_ns: the arm side's
+    clock when measured. a[i] (a part of the arm: a link or the tool) touches b[i] (a cell
+    object or another part) penetrating depth_m[i] ≥ 0 (m); deepest first, at most
+    MAX_CONTACTS pairs; total: how many pairs touch in all.
+    """
+
+    seq: int
+    t_ns: int
+    a: tuple[str, ...]
+    b: tuple[str, ...]
+    depth_m: FloatVector
+    total: int
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "a", tuple(self.a))
+        object.__setattr__(self, "b", tuple(self.b))
+        object.__setattr__(self, "depth_m", _floats(self.depth_m))
+
+    @property
+    def pairs(self) -> list[tuple[str, str, float]]:
+        return list(zip(self.a, self.b, self.depth_m))
+
+
+Message = Union[Hello, Rates, State, Refuse, Twist, CellHello, Contact]
 KINDS: dict[str, type] = {"hello": Hello, "rates": Rates, "state": State, "refuse": Refuse,
-                          "twist": Twist}
+                          "twist": Twist, "cell": CellHello, "contact": Contact}
 _KIND_OF = {cls: kind for kind, cls in KINDS.items()}
 
 
@@ -268,10 +312,29 @@ def _names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
     return names
 
 
+def _part_names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
+    """1…MAX_CONTACTS names of 1…MAX_NAME_CHARS characters (repeats allowed)."""
+    if type(value) is not list and type(value) is not tuple:  # tuple: when encoding
+        raise _bad("type", field, f"expected an array, got {type(value).__name__}")
+    if not 1 <= len(value) <= MAX_CONTACTS:
+        raise _bad("length", field, f"expected 1…{MAX_CONTACTS} names, got {len(value)}")
+    return tuple(_text(MAX_NAME_CHARS)(x, n, field) for x in value)
+
+
+def _depths(value: Any, n: int | None, field: str) -> FloatVector:
+    depths = _SOME_FLOATS(value, n, field)
+    if len(depths) > MAX_CONTACTS:
+        raise _bad("length", field, f"expected 1…{MAX_CONTACTS} values, got {len(depths)}")
+    if min(depths) < 0.0:
+        raise _bad("range", field, "a penetration depth is negative")
+    return tuple(depths)
+
+
 _FLAG_WORD = _integer(0, 2**32 - 1)
 _SEQ = _integer(0, MAX_SEQ)
 _TIME = _integer(INT64_MIN, INT64_MAX)
 _JOINT_FLOATS = _float_array(lambda n: n)
+_SOME_FLOATS = _float_array(lambda n: None)
 _SIX_FLOATS = _float_array(lambda n: 6)
 
 # kind → (wire key, check) for every field besides `v` and `kind`, in dataclass order.
@@ -287,6 +350,10 @@ FIELDS: dict[str, tuple[tuple[str, Check], ...]] = {
     "refuse": (("code", _one_of(REFUSE_CODES)), ("reason", _text(MAX_TEXT_CHARS, empty=True))),
     "twist": (("seq", _integer(1, MAX_SEQ)), ("t_ns", _TIME), ("twist", _SIX_FLOATS),
               ("frame", _one_of(FRAMES)), ("enable", _bool)),
+    "cell": (("name", _text(MAX_NAME_CHARS, empty=True)),
+             ("digest", _text(MAX_NAME_CHARS, empty=True))),
+    "contact": (("seq", _SEQ), ("t_ns", _TIME), ("a", _part_names), ("b", _part_names),
+                ("depth_m", _depths), ("total", _integer(1, 2**32 - 1))),
 }
 assert all([f.name for f in fields(KINDS[k])] == [key for key, _ in FIELDS[k]] for k in KINDS)
 _KEYS = {kind: frozenset(("v", "kind", *(key for key, _ in spec)))
@@ -304,6 +371,11 @@ def _checked(kind: str, data: dict[str, Any], n_joints: int | None) -> dict[str,
     values = {key: check(data[key], n_joints, key) for key, check in spec}
     if kind == "state" and len(values["q"]) != len(values["qd"]):
         raise _bad("length", "qd", f"{len(values['qd'])} values for {len(values['q'])} joints")
+    if kind == "contact":
+        if not len(values["a"]) == len(values["b"]) == len(values["depth_m"]):
+            raise _bad("length", "depth_m", "a, b and depth_m differ in length")
+        if values["total"] < len(values["a"]):
+            raise _bad("range", "total", "fewer pairs in all than in this message")
     return values
 
 
@@ -376,6 +448,11 @@ def decode(data: Any, *, n_joints: int | None = None) -> Message:
 # hello: building and checking
 # ----------------------------------------------------------------------------------------
 
+def _numbers(values: ArrayLike) -> str:
+    """Numbers for a digest: rounded to 1e-6, "%.6f", −0 as 0, one space between."""
+    return " ".join(f"{round(float(x), 6) + 0.0:.6f}" for x in np.ravel(values))
+
+
 def geometry_digest(arm: Arm) -> str:
     """A short hash of the chain's geometry, independent of how its fixed transforms are split.
 
@@ -385,8 +462,7 @@ def geometry_digest(arm: Arm) -> str:
     (row-major); every number rounded to 1e-6 and printed "%.6f" (−0 as 0); lines joined by
     "\n"; SHA-256 of the UTF-8 text, first 16 hex digits.
     """
-    def numbers(values: NDArray[np.float64]) -> str:
-        return " ".join(f"{round(float(x), 6) + 0.0:.6f}" for x in values)
+    numbers = _numbers
     lines, T = [], np.asarray(arm.base, dtype=np.float64)
     for joint in arm.joints:
         T = T @ joint.origin
@@ -398,6 +474,28 @@ def geometry_digest(arm: Arm) -> str:
 def rates_message(seq: int, t_ns: int, qd: Any, *, reduced: bool = False) -> Rates:
     """Rates number `seq` stamped `t_ns`, with the reduced-speed flag when `reduced`."""
     return Rates(seq=seq, t_ns=t_ns, qd=qd, flags=FLAG_REDUCED_SPEED if reduced else 0)
+def cell_digest(cell: Cell) -> str:
+    """A short hash of what a workcell holds, for the `cell` message (PROTOCOL.md §5a).
+
+    One line per object in the file's order, "<name> <kind> <pose> <sizes>" (the object as
+    a `runtime.arm.solids.Solid`: the 12 numbers of its pose's top three rows, row-major,
+    then its sizes in m); then one line per tool capsule, "tool <name> capsule …" in the
+    flange frame; then "keep_in box …" if there is one. Numbers rounded to 1e-6 and printed
+    "%.6f" (−0 as 0); lines joined by "\n"; SHA-256 of the UTF-8 text, first 16 hex digits.
+    """
+    def line(prefix: str, solid: Solid) -> str:
+        return f"{prefix}{solid.kind} {_numbers(solid.pose[:3, :4])} {_numbers(solid.sizes)}"
+    lines = [line(f"{s.name} ", s) for s in cell_solids(cell)]
+    lines += [line(f"tool {s.name} ", s) for s in tool_solids(cell.tool)]
+    if cell.keep_in is not None:
+        lines.append(line("keep_in ", solid_of(cell.keep_in)))
+    return hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
+
+
+def cell_hello_for(cell: Cell | None) -> CellHello:
+    """Our `cell` message for `cell` (name and digest; both "" for none)."""
+    return CellHello("", "") if cell is None else CellHello(cell.name[:MAX_NAME_CHARS],
+                                                            cell_digest(cell))
 
 
 def hello_for(arm: Arm, role: str, *, stale_after_s: float) -> Hello:

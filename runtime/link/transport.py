@@ -38,7 +38,7 @@ import shutil
 import stat
 import time
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Union, cast
 
@@ -47,7 +47,18 @@ import zmq.auth
 from zmq.auth.thread import ThreadAuthenticator
 
 from ..errors import ModelMismatch, ProtocolError, TransportError
-from .protocol import MAX_MESSAGE_BYTES, Hello, Message, Refuse, State, check_hello, decode, encode
+from .protocol import (
+    MAX_MESSAGE_BYTES,
+    CellHello,
+    Contact,
+    Hello,
+    Message,
+    Refuse,
+    State,
+    check_hello,
+    decode,
+    encode,
+)
 
 DEFAULT_ARM_ENDPOINT = "tcp://127.0.0.1:47810"     # arm side binds, runtime connects
 DEFAULT_TWIST_ENDPOINT = "tcp://127.0.0.1:47811"   # runtime binds, input programs connect
@@ -323,11 +334,14 @@ class ArmServer(_Socket):
 
 @dataclass
 class Inbox:
-    """What one `ArmClient.receive` found: the newest state and the newest other messages."""
+    """What one `ArmClient.receive` found: the newest state and the newest other messages,
+    and every contact report (each belongs to one arm-side step)."""
 
     state: State | None = None
     hello: Hello | None = None
     refuse: Refuse | None = None
+    cell: CellHello | None = None
+    contacts: list[Contact] = field(default_factory=list)
     count: int = 0
 
     def add(self, msg: Message | ProtocolError, dropped: Counter[str]) -> None:
@@ -340,6 +354,10 @@ class Inbox:
             self.hello = msg
         elif isinstance(msg, Refuse):
             self.refuse = msg
+        elif isinstance(msg, Contact):
+            self.contacts.append(msg)
+        elif isinstance(msg, CellHello):
+            self.cell = msg
         elif not isinstance(msg, ProtocolError):
             dropped["unexpected"] += 1
 

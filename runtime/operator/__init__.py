@@ -6,4 +6,5 @@ May import the control cycle (its intent types above all), the link and the arm;
 sessions or commands.
 """
 
-__all__ = ["pad_check", "pad_learn", "progress", "status_window", "terminal", "inputs"]
+__all__ = ["cell_outlines", "pad_check", "pad_learn", "progress", "status_window", "terminal",
+           "inputs"]

@@ -26,6 +26,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -35,15 +36,21 @@ from ..arm.kinematics import joint_frames
 from ..arm.model import Arm
 from ..control.loop import TimingStats
 from ..control.safety import STALE_AFTER_S
+from .cell_outlines import CellOutlines
 from .inputs.pygame_init import init_events, init_fonts, pygame
 
 SIZE = (1120, 720)
+ARM_PANEL_TITLE = "arm (measured)   top · side"
 
 # Colours: jogwire's palette (runtime/palette.py), shared with the sim, URDF and report.
 GROUND, PANEL, TRACK, LINE = palette.GROUND, palette.PANEL, palette.TRACK, palette.LINE
 TEXT, MUTED = palette.TEXT, palette.MUTED
 GOOD, WARN, BAD = palette.GOOD, palette.WARN, palette.BAD
 STATE_COLOURS = palette.STATE_COLOURS
+CELL_OBJECT, CELL_FLOOR = palette.CELL_OBJECT, palette.CELL_FLOOR
+CLEARANCE_LINE, CLEARANCE_WARN, CLEARANCE_STOP = (palette.CLEARANCE_LINE,
+                                                  palette.CLEARANCE_WARN,
+                                                  palette.CLEARANCE_STOP)
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,6 +62,9 @@ class StatusSnapshot:
     speed_m_s: full-stick linear speed of the current preset (after reduced speed).
     direct: the input sends twists itself (script, network): no preset applies.
     state_age_s / rtt_s: age of the newest arm state; command → state round trip.
+    cell: the workcell's outlines (None: no workcell). clearance_m, clearance_pair,
+    clearance_points: the nearest pair at the measured pose, its distance (m) and its two
+    witness points (2, 3) in the base frame; contacts: pairs the arm side reports touching.
     """
 
     arm: Arm
@@ -85,6 +95,15 @@ class StatusSnapshot:
     timing: TimingStats | None = None
     elapsed_s: float = 0.0
     note: str = ""
+    cell: CellOutlines | None = None
+    clearance_m: float | None = None
+    clearance_pair: tuple[str, str] | None = None
+    clearance_points: NDArray[np.float64] | None = None
+    contacts: tuple[tuple[str, str], ...] = ()
+
+    @property
+    def clearance_binds(self) -> bool:
+        return (self.binding_limit or "").startswith("clearance")
 
 
 # ----------------------------------------------------------------------------------------
@@ -192,6 +211,20 @@ class _Layout:
     def view_centre(rect: pygame.Rect, axes: tuple[int, int]) -> tuple[int, int]:
         return rect.centerx, rect.centery + (rect.h // 6 if axes[1] == 2 else 0)
 
+    def view_mapper(self, rect: pygame.Rect, axes: tuple[int, int], arm: Arm
+                    ) -> Callable[[NDArray[np.float64]], tuple[int, int]]:
+        """Base-frame metres (a 3-D point, or a 2-D one already in the view's axes) →
+        pixels in one view; the arm's base sits at the view's centre."""
+        cx, cy = self.view_centre(rect, axes)
+        a, b = axes
+        ox, oy = float(arm.base[a, 3]), float(arm.base[b, 3])
+        scale = self.view_scale
+
+        def px(p: NDArray[np.float64]) -> tuple[int, int]:
+            x, y = (p[0], p[1]) if len(p) == 2 else (p[a], p[b])
+            return int(cx + scale * (x - ox)), int(cy - scale * (y - oy))
+        return px
+
 
 def _inner(rect: pygame.Rect) -> pygame.Rect:
     """The content area of a panel (below its title)."""
@@ -214,12 +247,13 @@ def _reach_m(arm: Arm) -> float:
 
 
 @lru_cache(maxsize=8)
-def _background(size: tuple[int, int], arm: Arm) -> tuple[pygame.Surface, _Layout]:
+def _background(size: tuple[int, int], arm: Arm, cell: CellOutlines | None = None
+                ) -> tuple[pygame.Surface, _Layout]:
     L = _Layout(size, arm)
     surf = pygame.Surface(size)
     surf.fill(GROUND)
     _panel(surf, L.joints, "joints   position within limits · speed against limits")
-    _panel(surf, L.arm, "arm (measured)   top · side")
+    _panel(surf, L.arm, ARM_PANEL_TITLE)
     _panel(surf, L.solver, "solver")
     _panel(surf, L.link, "link")
     _panel(surf, L.loop, "loop")
@@ -267,7 +301,45 @@ def _background(size: tuple[int, int], arm: Arm) -> tuple[pygame.Surface, _Layou
                     pygame.draw.line(surf, PANEL, (rect.left + 2, gy), (rect.right - 3, gy))
         if axes[1] == 2:
             pygame.draw.line(surf, LINE, (rect.left + 6, cy), (rect.right - 6, cy), 2)
+        if cell is not None:
+            _draw_cell(surf, cell, rect, axes, L.view_mapper(rect, axes, arm))
     return surf, L
+
+
+def _draw_cell(surf: pygame.Surface, cell: CellOutlines, rect: pygame.Rect, axes,
+               px: Callable[[NDArray[np.float64]], tuple[int, int]]) -> None:
+    """The workcell's objects in one view: solids as filled outlines, half-spaces seen
+    edge-on as a line with short strokes on their solid side."""
+    clip = surf.get_clip()
+    surf.set_clip(rect.inflate(-4, -4))
+    for _, point, normal in cell.halfplanes[axes]:
+        along = np.array([-normal[1], normal[0]])
+        span = 4.0 * max(rect.w, rect.h)            # metres enough to cross the view
+        a, b = px(point - span * along), px(point + span * along)
+        pygame.draw.line(surf, CELL_FLOOR, a, b, 3)
+        n_px = np.array([normal[0], -normal[1]])     # screen y points down
+        step = 14
+        length = math.hypot(b[0] - a[0], b[1] - a[1])
+        for k in range(int(length // step)):
+            t = k * step / length
+            x0, y0 = a[0] + t * (b[0] - a[0]), a[1] + t * (b[1] - a[1])
+            pygame.draw.line(surf, CELL_FLOOR, (x0, y0),
+                             (x0 - 8 * n_px[0] - 6 * n_px[1], y0 - 8 * n_px[1] + 6 * n_px[0]), 1)
+    for name, polygon in cell.polygons[axes]:
+        screen = [px(p) for p in polygon]
+        if len(screen) >= 3:
+            pygame.draw.polygon(surf, _mix(GROUND, CELL_OBJECT, 0.45), screen)
+            pygame.draw.polygon(surf, CELL_OBJECT, screen, 2)
+            xs, ys = zip(*screen)
+            label = _rendered(name, 15, _mix(CELL_OBJECT, TEXT, 0.4), False)
+            if max(xs) - min(xs) > label.get_width() + 4:    # named where the name fits
+                surf.blit(label, label.get_rect(center=(sum(xs) // len(xs),
+                                                        sum(ys) // len(ys))))
+    if cell.keep_in is not None:
+        screen = [px(p) for p in cell.keep_in[axes]]
+        if len(screen) >= 3:
+            pygame.draw.polygon(surf, _mix(CELL_OBJECT, TEXT, 0.3), screen, 1)
+    surf.set_clip(clip)
 
 
 # ----------------------------------------------------------------------------------------
@@ -354,6 +426,8 @@ def _arm_view(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
     _command_line(surf, s, L.command)
     if s.q is not None:
         _draw_chain(surf, s, L)
+    if s.cell is not None:
+        _draw_clearance(surf, s, L)
     for rect, _, label in L.views:
         lw, lh = _rendered(label, 16, MUTED, False).get_size()
         pygame.draw.rect(surf, GROUND, (rect.x + 4, rect.bottom - 24, lw + 8, lh + 6))
@@ -393,6 +467,66 @@ def _draw_chain(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
           (L.views[1][0].right, L.views[0][0].y - 25), 17, MUTED, anchor="topright")
 
 
+def clearance_fields(found: Any) -> dict[str, Any]:
+    """StatusSnapshot's clearance fields from a `runtime.arm.distance.Clearances`: the
+    nearest pair, its distance and witness points (nothing without any pair)."""
+    i = found.nearest()
+    if i is None:
+        return {}
+    return {"clearance_m": float(found.distances[i]), "clearance_pair": found.pairs[i],
+            "clearance_points": np.array([found.points_arm[i], found.points_other[i]])}
+
+
+def clearance_colour(s: StatusSnapshot) -> tuple[int, int, int]:
+    """Red at or below the safety distance (or touching), amber inside the influence
+    distance (the damper is acting), muted while clear."""
+    c, d = s.cell, s.clearance_m
+    if s.contacts or (d is not None and c is not None and d <= c.safety_m):
+        return CLEARANCE_STOP
+    if d is not None and c is not None and d < c.influence_m:
+        return CLEARANCE_WARN
+    return CLEARANCE_LINE
+
+
+def clearance_text(s: StatusSnapshot) -> str:
+    """"nearest tool–bench 23.4 mm", with the contacts first when there are any."""
+    parts = [f"CONTACT {a}–{b}" for a, b in s.contacts[:2]]
+    if s.clearance_m is not None and s.clearance_pair is not None:
+        a, b = s.clearance_pair
+        parts.append(f"nearest {a}–{b} {s.clearance_m * 1e3:.1f} mm")
+    elif not parts:
+        parts.append("nearest —")
+    return "   ".join(parts)
+
+
+def _draw_clearance(surf: pygame.Surface, s: StatusSnapshot, L: _Layout) -> None:
+    """The nearest pair as a line between its witness points in each view, labelled with
+    its distance; above the views, the pair and whether clearance is limiting motion."""
+    colour = clearance_colour(s)
+    if s.clearance_points is not None and s.q is not None and s.clearance_m is not None:
+        clip = surf.get_clip()
+        for rect, axes, _ in L.views:
+            px = L.view_mapper(rect, axes, s.arm)
+            a, b = (px(p) for p in np.asarray(s.clearance_points))
+            surf.set_clip(rect)
+            pygame.draw.line(surf, colour, a, b, 2)
+            for p in (a, b):
+                pygame.draw.circle(surf, colour, p, 3)
+            mid = ((a[0] + b[0]) // 2 + 6, (a[1] + b[1]) // 2 - 8)
+            _text(surf, f"{s.clearance_m * 1e3:.0f} mm", mid, 16, colour, anchor="midleft")
+        surf.set_clip(clip)
+    if s.clearance_binds:       # beside the panel's title, clear of the TCP figures
+        title = _rendered(ARM_PANEL_TITLE.upper(), 17, MUTED, True)
+        badge = _rendered("CLEARANCE LIMITS", 16, GROUND, True)
+        box = pygame.Rect(L.arm.x + 12 + title.get_width() + 12, L.arm.y + 6,
+                          badge.get_width() + 12, 19)
+        pygame.draw.rect(surf, CLEARANCE_WARN, box, border_radius=4)
+        surf.blit(badge, badge.get_rect(center=box.center))
+    _text(surf, clearance_text(s), L.command.topright, 18,
+          colour if colour != CLEARANCE_LINE else MUTED, anchor="topright",
+          max_width=L.command.w // 2 - 8)
+
+
 def _command_line(surf: pygame.Surface, s: StatusSnapshot, rect: pygame.Rect) -> None:
     """The commanded motion: the twist (mm/s, °/s, in its frame) or the jogged joint."""
     if s.mode == "joint" and s.rates is not None:
@@ -405,7 +539,8 @@ def _command_line(surf: pygame.Surface, s: StatusSnapshot, rect: pygame.Rect) ->
                 f"ω {w[0]:+.1f} {w[1]:+.1f} {w[2]:+.1f} °/s")
     else:
         text = "command  —"
-    _text(surf, text, rect.topleft, 18, TEXT if s.allowed else MUTED, max_width=rect.w)
+    width = rect.w if s.cell is None else rect.w // 2 + 20   # the clearance takes the rest
+    _text(surf, text, rect.topleft, 18, TEXT if s.allowed else MUTED, max_width=width)
 
 
 def _gauge(surf: pygame.Surface, rect: pygame.Rect, frac: float, colour: tuple[int, int, int],
@@ -495,7 +630,7 @@ def draw_status(surf: pygame.Surface, s: StatusSnapshot,
     them, 0.2–0.3 % with no window at all).
     """
     pause = pause or (lambda: None)
-    background, L = _background(surf.get_size(), s.arm)
+    background, L = _background(surf.get_size(), s.arm, s.cell)
     surf.blit(background, (0, 0))
     pause()
     _header(surf, s, L.width)

@@ -15,8 +15,8 @@ import numpy as np
 from ..arm.kinematics import tcp_pose
 from ..control.loop import TimingStats
 
-__all__ = ["format_catalog", "format_drive_summary", "format_summary", "format_table",
-           "json_safe", "say", "status_line", "terminal_width"]
+__all__ = ["format_catalog", "format_clearance", "format_drive_summary", "format_summary",
+           "format_table", "json_safe", "say", "status_line", "terminal_width"]
 
 
 def json_safe(value: Any) -> Any:
@@ -42,6 +42,27 @@ def _num(x: float | None, digits: int = 3, scale: float = 1.0) -> str:
 
 def _pct(x: float | None, of: float) -> str:
     return "—" if x is None or of <= 0 else f"{100.0 * x / of:.0f} %"
+
+
+def format_clearance(m: dict[str, Any]) -> str:
+    """The drive summary's workcell line: the nearest approach and what the arm side
+    reported."""
+    if m["min_clearance_m"] is None:
+        text = f"workcell {m['cell']}: no distance measured"
+    elif m["clearance_pair"] is None:     # the solve names pairs within d_i only
+        text = (f"workcell {m['cell']}: nothing came within the influence distance (nearest "
+                f"≥ {m['min_clearance_m'] * 1e3:.0f} mm)")
+    else:
+        a, b = m["clearance_pair"]
+        text = (f"workcell {m['cell']}: nearest {a}–{b} {m['min_clearance_m'] * 1e3:.1f} mm "
+                f"at {m['min_clearance_t_s']:.1f} s")
+    if not m["contacts_measured"]:
+        return text + "; the arm side did not confirm this workcell: no contact check"
+    if not m["contacts"]:
+        return text + "; no contact"
+    return text + "; CONTACT " + ", ".join(
+        f"{c['a']}–{c['b']} from {c['t_s']:.1f} s, {c['depth_m'] * 1e3:.1f} mm deep"
+        for c in m["contacts"])
 
 
 def format_table(headers: list[str], rows: list[list[str]], indent: int = 2) -> list[str]:
@@ -225,6 +246,9 @@ def status_line(snap: Any, timing: TimingStats | None) -> str:
     if snap.rtt_s is not None:
         link += f" rtt {snap.rtt_s * 1e3:.1f} ms"
     parts.append(link)
+    if snap.cell is not None:
+        from .status_window import clearance_text
+        parts.append(clearance_text(snap) + (" (LIMITING)" if snap.clearance_binds else ""))
     if timing is not None and timing.cycles:
         parts.append(f"loop p99 {timing.period_p99_s * 1e3:.2f} ms, "
                      f"{timing.overruns} overruns")
@@ -296,6 +320,8 @@ def format_drive_summary(m: dict[str, Any]) -> str:
                        f"mm/s ({st['reason']}): {st['joint']} would brake at "
                        f"{st['asked_decel'] * k:.1f} {unit} if the arm followed the zero "
                        f"literally")
+    if m.get("cell") is not None:
+        out.append(f"  clearance {format_clearance(m)}")
     out.append(f"  stop      {m['stop']}")
     if m["arm_side"]:
         out.append(f"  arm side  {m['arm_side']}")

@@ -6,6 +6,6 @@ statistics engine.
 May import the control cycle, the link, the arm and the operator's side; never commands.
 """
 
-__all__ = ["archive", "catalog", "drive", "drive_stats", "drive_ui", "export", "lockstep",
-           "log_blocks", "log_blocks_decode", "log_reader", "log_schema", "log_writer",
+__all__ = ["archive", "catalog", "cell_check", "drive", "drive_stats", "drive_ui", "export",
+           "lockstep", "log_blocks", "log_blocks_decode", "log_reader", "log_schema", "log_writer",
            "preflight", "preflight_run", "replay", "report", "rerun", "stats", "summary"]

@@ -51,6 +51,7 @@ from typing import Any, Callable, TextIO
 
 import numpy as np
 
+from ..arm.cell import Cell
 from ..arm.kinematics import analyse_pose
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle, CycleOutput
@@ -60,17 +61,20 @@ from ..control.pads import PadMapping
 from ..control.settings import RunSettings
 from ..link.arm_process import ArmProcess
 from ..link.protocol import (
+    CellHello,
     Hello,
     Rates,
     RoundTripMeter,
     State,
     StateFreshness,
+    cell_hello_for,
     encode,
     hello_differences,
     hello_for,
     rates_message,
 )
 from ..link.transport import ArmClient, ClientKeys
+from ..operator.cell_outlines import CellOutlines
 from ..operator.inputs import FiniteInput, InputSource, open_source
 from ..operator.terminal import say
 from .archive import BYTES_PER_MB, ArchiveCap, prune_sessions
@@ -89,6 +93,7 @@ REST_SPEED = 1e-3                 # |q̇| at or below this (rad/s or m/s) counts
 REFUSAL_HOLD_S = 0.5              # motion held this long after the arm side refused us
 HANDSHAKE_TIMEOUT_S = 10.0
 SNAPSHOT_HZ = 60.0                # status snapshots per second published by the loop
+CONTACT_SHOWN_S = 0.5             # a contact report stays on the screen at least this long
 REALTIME_PRIORITY = 50            # SCHED_FIFO level for --realtime: above ordinary work and
                                   # below the kernel's own threads (common practice)
 
@@ -107,10 +112,15 @@ class DriveSession:
     def __init__(self, *, arm: Arm, pad: PadMapping, settings: RunSettings,
                  source: InputSource, client: ArmClient, recorder: SessionRecorder | None,
                  clock: Callable[[], float], duration_s: float | None, same_clock: bool,
-                 target: str, lockstep: bool = False) -> None:
+                 target: str, lockstep: bool = False, cell: Cell | None = None) -> None:
         self.arm = arm
         self.settings = settings
-        self.cycle = ControlCycle(arm, pad, settings)
+        self.cycle = ControlCycle(arm, pad, settings, cell=cell)
+        self.cell = cell
+        self.cell_hello = None if cell is None else cell_hello_for(cell)  # sent after hellos
+        self.cell_name = None if cell is None else cell.name
+        # the workcell in the window's views
+        self.outlines = None if cell is None else CellOutlines.of_cell(cell)
         self.source = source
         # a script ends: checked once here, not every cycle (a protocol isinstance is slow)
         self._finite = source if isinstance(source, FiniteInput) else None
@@ -132,6 +142,8 @@ class DriveSession:
         self.state_stamp_s: float | None = None      # when q was measured/received
         self.state_received_s: float | None = None
         self.arm_status = ""
+        self.arm_cell: CellHello | None = None       # the arm side's answer to our workcell
+        self.recent_contacts: tuple[tuple[tuple[str, str], ...], float] = ((), -math.inf)
         self.seq = 0
         self.cycles = 0
         self.latest = None                           # StatusSnapshot, replaced whole
@@ -189,6 +201,11 @@ class DriveSession:
 
     def _receive(self, now: float, timeout_s: float = 0.0) -> None:
         inbox = self.client.receive(timeout_s)
+        if inbox.cell is not None:
+            self.arm_cell = inbox.cell
+        for contact in inbox.contacts:
+            self.stats.add_contact(contact, now - (self.t0 or now))
+            self.recent_contacts = (tuple((a, b) for a, b, _ in contact.pairs), now)
         if inbox.refuse is not None and inbox.refuse.code != "no_hello":
             self._refused = (f"the arm side refused us ({inbox.refuse.code}): "
                              f"{inbox.refuse.reason}", now)
@@ -207,6 +224,8 @@ class DriveSession:
         self._mismatch = None
         self.freshness.reset()
         self._applied_seen, self._applied_seen_at_s = 0, None
+        if self.cell_hello is not None:        # a new exchange: ask for contacts again
+            self.client.send(self.cell_hello)
 
     def _await_applied(self, seq: int, until: float) -> None:
         """Lockstep (docs/PROTOCOL.md §6): wait for the state of the step that applied
@@ -237,6 +256,7 @@ class DriveSession:
             self._ending_first_seq = self.seq
         self.stats.read_to_send.add(sent - now)
         self.stats.add_cycle(out, tick.index, now - self.t0)
+        self.stats.add_clearance(out, now - self.t0)
         # (a state that came in after `now` was read has a stamp a little after it)
         age = None if self.state_stamp_s is None else max(now - self.state_stamp_s, 0.0)
         if age is not None:
@@ -345,7 +365,22 @@ class DriveSession:
             reduced=intent.reduced, joint=intent.joint, sigma_min=sigma,
             manipulability=manip, damping=damping, binding_limit=binding, target=self.target,
             connected=connected, state_age_s=age, stale_after_s=self.stale_after_s,
-            rtt_s=self.round_trip.level_s, elapsed_s=self._elapsed_s(now), note=self._note(now))
+            rtt_s=self.round_trip.level_s, elapsed_s=self._elapsed_s(now), note=self._note(now),
+            cell=self.outlines, contacts=self._contacts_shown(now), **self._clearance(sol))
+
+    def _clearance(self, sol: Any) -> dict[str, Any]:
+        """The nearest pair for the window, when the solve measured it (within d_i); else
+        the main thread measures it at the pose (`MainThread.snapshot`), off this loop."""
+        from ..operator.status_window import clearance_fields
+        report = None if sol is None else sol.clearance
+        if report is None or report.nearest_pair is None:
+            return {}
+        return clearance_fields(report.distances)
+
+    def _contacts_shown(self, now: float) -> tuple[tuple[str, str], ...]:
+        """The pairs of the newest contact report, for CONTACT_SHOWN_S after it came."""
+        pairs, at = self.recent_contacts
+        return pairs if now - at <= CONTACT_SHOWN_S else ()
 
     def _note(self, now: float) -> str:
         notes = []
@@ -374,11 +409,12 @@ def enter_realtime(priority: int) -> str:
     return f"real-time SCHED_FIFO {priority}"
 
 
-def warm_up(arm: Arm, pad: PadMapping, q: np.ndarray, settings: RunSettings) -> None:
+def warm_up(arm: Arm, pad: PadMapping, q: np.ndarray, settings: RunSettings,
+            cell: Cell | None = None) -> None:
     """Run every piece of a cycle a few times on a throwaway ControlCycle, so the first real
     cycles do not pay for first calls (imports, caches, numpy's first dispatch)."""
     from ..operator.status_window import StatusSnapshot
-    cycle = ControlCycle(arm, pad, settings)
+    cycle = ControlCycle(arm, pad, settings, cell=cell)
     rate_hz = settings.rate_hz
     frames = [InputFrame("warm-up", True, command=DirectCommand(enable=False))] + \
         [InputFrame("warm-up", True, command=DirectCommand(twist=(0.01, 0, 0, 0, 0, 0)))] * 3
@@ -439,6 +475,15 @@ def build_summary(drive: DriveSession, timing: TimingStats, *, priority: str, in
         "limits": {k: {"cycles": c, "episodes": e} for k, (c, e) in
                    sorted(s.limits.items(), key=lambda kv: -kv[1][0])},
         "stops": [stop.as_dict() for stop in m.stops],
+        "cell": drive.cell_name,
+        "min_clearance_m": s.min_clearance_m,
+        "clearance_pair": None if s.min_clearance_pair is None else list(s.min_clearance_pair),
+        "min_clearance_t_s": s.min_clearance_t_s,
+        # The arm side answered our workcell with the same one: its contacts are checked.
+        "contacts_measured": drive.arm_cell is not None and drive.cell_hello is not None
+        and drive.arm_cell.digest == drive.cell_hello.digest,
+        "contacts": [{"a": a, "b": b, "t_s": t, "depth_m": d, "steps": n}
+                     for (a, b), (t, d, n) in s.contacts.items()],
         "session": None if session_path is None else {
             "path": str(session_path), "written": recorder_stats.written,
             "dropped": recorder_stats.dropped, "lost": recorder_stats.lost,
@@ -471,13 +516,15 @@ class DriveInput:
 class DriveTarget:
     """The arm side: a simulated arm started as a child (`endpoint` None) loading
     `arm_spec`, or the arm side listening at `endpoint` (CURVE `keys` off this host).
-    gui: PyBullet's own window for the child; lockstep: the child steps once per cycle."""
+    gui: PyBullet's own window for the child; lockstep: the child steps once per cycle;
+    cell_spec: the workcell the child holds as PyBullet bodies (name or file), if any."""
 
     arm_spec: str
     endpoint: str | None = None
     keys: ClientKeys | None = None
     gui: bool = False
     lockstep: bool = False
+    cell_spec: str | None = None
 
 
 @dataclass(frozen=True)
@@ -504,6 +551,8 @@ def sim_child_options(settings: RunSettings, target: DriveTarget,
         options.append("--gui")
     if target.lockstep:
         options += ["--lockstep", "--step-hz", f"{settings.rate_hz:g}"]
+    if target.cell_spec is not None:
+        options += ["--cell", target.cell_spec]
     if duration_s is not None:  # a bound even if we are killed
         options += ["--duration", f"{duration_s + 60:g}"]
     return options
@@ -513,10 +562,11 @@ def run_drive(settings: RunSettings, arm: Arm, source: DriveInput, target: Drive
               ui: DriveUI, *, duration_s: float | None = None,
               sessions_dir: str | Path | None = "sessions",
               sessions_cap: ArchiveCap | None = None,
-              realtime: bool = False) -> DriveResult:
+              realtime: bool = False, cell: Cell | None = None) -> DriveResult:
     """Drive `arm` from `source` until a stop (duration, end of a script, window closed,
     a signal, the arm side gone); record the session to `sessions_dir` (None: no log),
-    whose older logs `sessions_cap` trims at the start."""
+    whose older logs `sessions_cap` trims at the start. In `cell` the velocity damper keeps
+    the arm clear of the workcell and the arm side is asked for contact reports."""
     out = ui.out
     clock = time.perf_counter
     with contextlib.ExitStack() as stack:
@@ -554,7 +604,8 @@ def run_drive(settings: RunSettings, arm: Arm, source: DriveInput, target: Drive
             pad_source=source.pad.source, target=endpoint,
             target_kind=theirs.role if child is None else
             "sim child, lockstep" if target.lockstep else "sim child, paced",
-            target_arm=theirs.arm, duration_s=duration_s)
+            target_arm=theirs.arm, duration_s=duration_s,
+            **({} if target.cell_spec is None else {"cell": target.cell_spec}))
         # Real-time priority from here on: the recorder's writer, the control loop and the
         # window are created after this and inherit it; the simulated arm, started before,
         # does not. All of our threads have it, so none can be preempted by other programs
@@ -577,8 +628,10 @@ def run_drive(settings: RunSettings, arm: Arm, source: DriveInput, target: Drive
         drive = DriveSession(arm=arm, pad=source.pad, settings=settings, source=input_source,
                              client=client, recorder=recorder, clock=clock,
                              duration_s=duration_s, same_clock=same_clock, target=link_label,
-                             lockstep=target.lockstep)
-        warm_up(arm, source.pad, np.asarray(first_state.q), settings)
+                             lockstep=target.lockstep, cell=cell)
+        if drive.cell_hello is not None:   # ask the arm side for contact reports (§5a)
+            client.send(drive.cell_hello)
+        warm_up(arm, source.pad, np.asarray(first_state.q), settings, cell)
         drive.offer_state(first_state, clock())
         window_s = min(max(duration_s or 10.0, 10.0) + 1.0, 60.0)
         loop = FixedRateLoop(settings.rate_hz, clock=clock, window_s=window_s)

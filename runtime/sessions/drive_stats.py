@@ -10,7 +10,7 @@ import numpy as np
 
 from ..arm.model import Arm
 from ..control.cycle import CycleOutput
-from ..link.protocol import State
+from ..link.protocol import Contact, State
 from .stats import MotionStats
 
 __all__ = ["LogHistogram", "RunStats"]
@@ -83,6 +83,10 @@ class RunStats:
         self.state_age = LogHistogram()                # age of q when a cycle uses it
         self.arm_limited = 0                           # states in which the arm side limited
         self.states = 0
+        self.min_clearance_m: float | None = None      # nearest pair over the session
+        self.min_clearance_pair: tuple[str, str] | None = None
+        self.min_clearance_t_s: float | None = None
+        self.contacts: dict[tuple[str, str], list[float]] = {}  # pair → [first t, depth, steps]
 
     def add_cycle(self, out: CycleOutput, index: int, t_s: float) -> None:
         """One cycle: its number and time (s since the start) as the log records them."""
@@ -105,6 +109,22 @@ class RunStats:
                                       math.sqrt(a[3]**2 + a[4]**2 + a[5]**2))
         self.motion.add_cycle(index, t_s, out.rates, out.verdict.allowed, out.verdict.reason,
                               linear)
+
+    def add_clearance(self, out: CycleOutput, t_s: float) -> None:
+        """The nearest pair the cycle's solve measured (with a workcell), session low."""
+        report = None if out.solution is None else out.solution.clearance
+        if report is not None and (self.min_clearance_m is None or
+                                   report.min_distance_m < self.min_clearance_m):
+            self.min_clearance_m = report.min_distance_m
+            self.min_clearance_pair = report.nearest_pair
+            self.min_clearance_t_s = t_s
+
+    def add_contact(self, contact: Contact, t_s: float) -> None:
+        """One step's contact report from the arm side (docs/PROTOCOL.md §5a)."""
+        for a, b, depth in contact.pairs:
+            c = self.contacts.setdefault((a, b), [t_s, 0.0, 0])
+            c[1] = max(c[1], depth)
+            c[2] += 1
 
     def add_round_trip(self, level_s: float | None, limit_s: float) -> None:
         """One cycle's round-trip median (s, None before the first) against the limit."""

@@ -137,8 +137,18 @@ class MainThread:
         return self._timing
 
     def snapshot(self):
+        """The newest snapshot with the loop's timing and, where the solve did not name
+        the nearest pair (nothing within d_i, or no solve), that pair measured here."""
         snap = self.drive.latest
-        return None if snap is None else dataclasses.replace(snap, timing=self.timing())
+        if snap is None:
+            return None
+        from ..arm.distance import cell_distances
+        from ..operator.status_window import clearance_fields
+        more: dict[str, Any] = {"timing": self.timing()}
+        drive = self.drive
+        if drive.cell is not None and snap.q is not None and snap.clearance_points is None:
+            more.update(clearance_fields(cell_distances(drive.arm, drive.cell, snap.q)))
+        return dataclasses.replace(snap, **more)
 
     def watch(self) -> bool:
         """Checks shared by both modes; True while the loop runs."""
@@ -225,7 +235,8 @@ class MainThread:
             snap = self.drive.latest
             if snap is not None and (now >= next_line or (not tty and
                                                           snap.gate_state != last_state)):
-                line = status_line(snap, self.timing())
+                snap = self.snapshot()
+                line = status_line(snap, snap.timing)
                 if tty:
                     say(out, "\r" + line[:terminal_width() - 1] + "\x1b[K", end="")
                 else:

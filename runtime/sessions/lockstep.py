@@ -41,6 +41,8 @@ from ..link.arm_process import ArmProcess
 from ..link import shared_rings
 from ..link.pipes import PipeClient, child_link, link_spec
 from ..link.protocol import (
+    CellHello,
+    Contact,
     Refuse,
     State,
     geometry_digest,
@@ -56,6 +58,7 @@ Vector = NDArray[np.float64]
 # gets a stale_after far beyond any stall.
 LOCKSTEP_STALE_AFTER_S = 3600.0
 ANSWER_TIMEOUT_S = 10.0     # no state this long after a rates message: the child is gone
+CELL_ANSWER_TIMEOUT_S = 5.0  # no answer to our workcell this long: the child reports no contacts
 LINKS = ("auto", "shm", "pipe")
 
 
@@ -116,14 +119,19 @@ def arm_file_for(arm: Arm) -> str:
         f"arm file to use", field="arm")
 
 
+Touch = tuple[str, str, float]       # (part of the arm, what it touches, depth m)
+
+
 @dataclass(frozen=True, eq=False)
 class SimStep:
-    """The arm after one lockstep cycle: q (rad or m), q̇ (rad/s or m/s) and whether the
-    arm side had to reduce the rates at its own limits."""
+    """The arm after one lockstep cycle: q (rad or m), q̇ (rad/s or m/s), whether the
+    arm side had to reduce the rates at its own limits, and the contacts PyBullet found at
+    the end of the cycle's last physics step (deepest first; docs/PROTOCOL.md §5a)."""
 
     q: Vector
     qd: Vector
     limited: bool
+    contacts: tuple[Touch, ...] = ()
 
 
 class LockstepSim:
@@ -132,12 +140,16 @@ class LockstepSim:
     arm_spec: what the child loads (a shipped name or a file); `arm` is our model of it,
     and the hello exchange refuses a child whose arm differs (ModelMismatch).
     start_q: the pose the arm starts in (rad or m); None = the arm's home pose.
+    cell_spec, cell: the workcell the child loads (a shipped name or a file) and our
+    `CellHello` for it: the child then holds its objects and reports contacts, and
+    `arm_cell` is its answer (None: it reports no contacts).
     link: "auto", "shm" or "pipe" (`link_kind`); the one taken is in `link`.
     """
 
     def __init__(self, arm_spec: str, arm: Arm, *, rate_hz: float, step_hz: float,
-                 start_q: Sequence[float] | None = None,
-                 ready_timeout_s: float = 30.0, link: str = "auto") -> None:
+                 start_q: Sequence[float] | None = None, cell_spec: str | None = None,
+                 cell: CellHello | None = None, ready_timeout_s: float = 30.0,
+                 link: str = "auto") -> None:
         self.arm = arm
         self.substeps = substeps_for(rate_hz, step_hz)
         self.step_s = 1.0 / step_hz
@@ -151,12 +163,16 @@ class LockstepSim:
             if np.any(q0 < arm.lower) or np.any(q0 > arm.upper):
                 raise ConfigError("the start pose is outside the joint limits", field="q")
             options.append("--q=" + ",".join(repr(float(v)) for v in q0))
+        if cell_spec is not None:
+            options += ["--cell", cell_spec]
         # Two pipes, ours to write rates into and the child's to write states into; with
         # shared rings, the frames go through the memory and the pipes ring the bells.
         channel, child_ends = child_link(self.link)
         options += ["--link", link_spec(*child_ends)]
         self.seq = 0
         self.states: deque[State] = deque()    # arrived, not yet waited for
+        self.contacts: dict[int, Contact] = {}  # by the seq of the state they go with
+        self.arm_cell: CellHello | None = None
         self.client: PipeClient | None = PipeClient(
             channel, endpoint=f"the simulated arm's {self.link} link",
             hello=hello_for(arm, "runtime", stale_after_s=LOCKSTEP_STALE_AFTER_S))
@@ -173,10 +189,28 @@ class LockstepSim:
                 os.close(fd)
         try:
             _, first = self.client.handshake(timeout_s=ready_timeout_s)
+            if cell is not None:
+                self.arm_cell = self._exchange_cell(cell, min(ready_timeout_s,
+                                                              CELL_ANSWER_TIMEOUT_S))
         except BaseException:
             self.close()
             raise
         self.first = SimStep(np.array(first.q), np.array(first.qd), bool(first.limited))
+
+    def _exchange_cell(self, ours: CellHello, timeout_s: float) -> CellHello | None:
+        """Send our workcell; the child answers with its own before anything else (a pipe
+        keeps the order). None if it does not answer: it reports no contacts."""
+        assert self.client is not None
+        if not self.client.send(ours):
+            raise TransportError(self._gone("the link to the simulated arm is down"))
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline and not self.client.ended:
+            for msg in self.client.messages(timeout_s=0.5):
+                if isinstance(msg, CellHello):
+                    return msg
+                if isinstance(msg, State):
+                    self.states.append(msg)
+        return None
 
     def step(self, rates: Vector, *, reduced: bool = False) -> SimStep:
         """Send one cycle's rates; return the arm's state after its `substeps` steps."""
@@ -196,7 +230,11 @@ class LockstepSim:
     def wait(self, seq: int) -> SimStep:
         """The arm's state after the rates numbered `seq` (sent, and not yet waited for)."""
         state = self._wait_for(seq)
-        return SimStep(np.array(state.q), np.array(state.qd), bool(state.limited))
+        contact = self.contacts.pop(state.seq, None)
+        for older in [k for k in self.contacts if k < state.seq]:   # a state not waited for
+            del self.contacts[older]
+        return SimStep(np.array(state.q), np.array(state.qd), bool(state.limited),
+                       () if contact is None else tuple(contact.pairs))
 
     def _wait_for(self, seq: int) -> State:
         """States come in the order of the rates they follow; a later one may already be
@@ -212,6 +250,8 @@ class LockstepSim:
             for msg in messages:
                 if isinstance(msg, State):
                     self.states.append(msg)
+                elif isinstance(msg, Contact):
+                    self.contacts[msg.seq] = msg
                 elif isinstance(msg, Refuse):
                     raise TransportError(self._gone(f"the simulated arm refused us "
                                                     f"({msg.code}): {msg.reason}"))

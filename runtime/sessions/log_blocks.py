@@ -54,9 +54,12 @@ COLUMNS: tuple[tuple[str, str], ...] = (
     ("scales", STR_F8_MAP), ("binding_limit", STR), ("period_s", F8), ("compute_s", F8),
     ("overrun", BOOL), ("reduced", BOOL), ("input", MSGPACK), ("state_age_s", F8_OPT),
     ("overrun_streak", I8), ("safety_state", STR),
+    ("min_clearance_m", F8_OPT), ("clearance_arm", STR), ("clearance_other", STR),
 )
 FIELDS = tuple(name for name, _ in COLUMNS)
-_NULLABLE_STR = {"binding_limit"}
+# Columns added within version 2: a block written before them reads as all nil there.
+ADDED_COLUMNS = frozenset({"min_clearance_m", "clearance_arm", "clearance_other"})
+_NULLABLE_STR = {"binding_limit", "clearance_arm", "clearance_other"}
 _LAYOUT_LENGTH = struct.Struct("<I")
 _u4 = np.dtype("<u4")
 _u8 = np.dtype("<u8")

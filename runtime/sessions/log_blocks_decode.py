@@ -20,6 +20,7 @@ import numpy as np
 
 from ..errors import LogError
 from .log_blocks import (
+    ADDED_COLUMNS,
     BOOL,
     BOOL_LIST,
     CODEC,
@@ -99,11 +100,22 @@ def parse_block(m: Mapping[str, Any]) -> ParsedBlock:
     if at != len(body):
         raise LogError(f"block body has {len(body) - at} bytes after its columns")
     for name, kind in COLUMNS:
+        if name not in parts and name in ADDED_COLUMNS:
+            parts[name] = _absent(name, kind, n)
         if name not in parts:
             raise LogError(f"cycle block has no column {name!r}")
         if parts[name].desc["type"] != kind:
             raise LogError(f"column {name!r} is {parts[name].desc['type']!r}, not {kind!r}")
     return ParsedBlock(n, parts)
+
+
+def _absent(name: str, kind: str, n: int) -> Part:
+    """A column added within version 2, for a block written before it: all nil."""
+    if kind == F8_OPT:
+        return Part(n, {"name": name, "type": kind, "delta": XOR}, bytes(n), bytes(8 * n), 1)
+    if kind == STR:
+        return Part(n, {"name": name, "type": kind, "values": [None]}, bytes(4 * n), b"", 1)
+    raise LogError(f"column {name!r} of type {kind!r} cannot be absent")
 
 
 def decode_blocks(blocks: Sequence[ParsedBlock]) -> CycleBlock:

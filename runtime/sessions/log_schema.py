@@ -70,6 +70,17 @@ class CycleRecord:
     state_age_s: float | None = None    # age of q when used (s); None: no arm state yet
     overrun_streak: int = 0             # consecutive overrunning cycles before this one
     safety_state: str = ""              # the safety gate's state name
+    # With a workcell (None without one, or when the cycle did not solve): the nearest pair
+    # as the solve measured it at q (runtime/control/clearance.py).
+    min_clearance_m: float | None = None  # m; exact within d_i, a lower bound beyond
+    clearance_arm: str | None = None      # that pair within d_i: the arm's part …
+    clearance_other: str | None = None    # … and the object (or other part) it is near
+
+    @property
+    def clearance_pair(self) -> tuple[str, str] | None:
+        if self.clearance_arm is None or self.clearance_other is None:
+            return None
+        return self.clearance_arm, self.clearance_other
 
     def to_wire(self) -> dict[str, Any]:
         """The msgpack map of this record (plain Python values only)."""
@@ -100,6 +111,11 @@ class CycleRecord:
             "state_age_s": None if self.state_age_s is None else float(self.state_age_s),
             "overrun_streak": int(self.overrun_streak),
             "safety_state": str(self.safety_state),
+            "min_clearance_m": None if self.min_clearance_m is None
+            else float(self.min_clearance_m),
+            "clearance_arm": None if self.clearance_arm is None else str(self.clearance_arm),
+            "clearance_other": None if self.clearance_other is None
+            else str(self.clearance_other),
         }
 
     @classmethod
@@ -138,6 +154,10 @@ class CycleRecord:
             values[key] = int(m.get(key, 0))
             key = "safety_state"
             values[key] = as_str(m.get(key, ""))
+            for key in ("min_clearance_m",):
+                values[key] = None if m.get(key) is None else as_float(m[key])
+            for key in ("clearance_arm", "clearance_other"):
+                values[key] = None if m.get(key) is None else as_str(m[key])
         except KeyError:
             raise LogError(f"cycle record has no {key!r}") from None
         except (TypeError, ValueError, AttributeError) as exc:
@@ -291,6 +311,8 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
     """The log record of one `ControlCycle.step` (drive, preflight and re-runs share it)."""
     sol, intent = out.solution, out.intent
     nan = float("nan")
+    clearance = None if sol is None else sol.clearance   # with a workcell only
+    pair = None if clearance is None else clearance.nearest_pair
     return CycleRecord(
         cycle=cycle, t_s=t_s, axes=tuple(frame.axes),
         buttons=frame.button_flags(_BUTTONS_LOGGED), enabled=out.verdict.allowed,
@@ -306,7 +328,10 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
         binding_limit=None if sol is None else sol.binding_limit,
         period_s=period_s, compute_s=compute_s, overrun=overrun, reduced=intent.reduced,
         input=frame_to_wire(frame), state_age_s=state_age_s, overrun_streak=overrun_streak,
-        safety_state=out.verdict.state)
+        safety_state=out.verdict.state,
+        min_clearance_m=None if clearance is None else clearance.min_distance_m,
+        clearance_arm=None if pair is None else pair[0],
+        clearance_other=None if pair is None else pair[1])
 
 
 def frame_to_wire(frame: InputFrame) -> dict[str, Any]:

@@ -25,6 +25,10 @@ Fails (each gives a reason naming the joint, the value, the limit and the time):
   no_motion       the run never moved the arm: it proves nothing
   damaged_profile a recorded profile that could only be played in part (added by the
                   preflight command)
+  contact, clearance, contact_unchecked
+                  with a workcell: the simulated arm reported a contact, a pair came
+                  closer than the safety distance, or the simulated arm did not confirm the
+                  workcell (runtime/sessions/cell_check.py, added by the preflight command)
 Reported, not failed: lowest σ_min, time under damping, tracking error, binding-limit
 episodes, stops, steps the arm side had to limit, software limits above ratings.
 
@@ -68,7 +72,8 @@ REST_SPEED = 1e-3
 """|q̇| (rad/s or m/s) below which a joint counts as at rest (end of a stop)."""
 
 FAIL_CODES = ("rated_speed", "rated_accel", "software_speed", "software_accel",
-              "position_limit", "tcp_speed", "no_motion", "damaged_profile")
+              "position_limit", "tcp_speed", "no_motion", "damaged_profile", "contact",
+              "clearance", "contact_unchecked")
 
 
 # ----------------------------------------------------------------------------------------
@@ -299,6 +304,7 @@ class PreflightResult:
     duration_s: float
     rate_hz: float
     series: Series = field(repr=False)
+    cell: Any = None                    # cell_check.CellVerdict with a workcell, else None
 
     @property
     def passed(self) -> bool:
@@ -348,6 +354,8 @@ class PreflightResult:
             "cycles": self.cycles,
             "duration_s": self.duration_s,
             "rate_hz": self.rate_hz,
+            **(self.cell.as_dict() if self.cell is not None else
+               {"cell": None, "min_clearance": None, "clearance_pair": None, "contacts": []}),
         }
 
 

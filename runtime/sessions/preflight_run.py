@@ -24,8 +24,10 @@ from ..control.intent import InputFrame
 from ..control.pads import load_pad
 from ..control.settings import RunSettings
 from ..errors import ConfigError, LogError
+from ..link.protocol import cell_hello_for
 from ..operator.inputs.script import ScriptSource, load_script
 from ..operator.progress import Progress
+from .cell_check import CellRun, judge_cell, with_cell
 from .lockstep import LockstepSim, run_closed_loop
 from .log_reader import read_session
 from .log_schema import SESSION_SUFFIX, cycle_record
@@ -108,13 +110,16 @@ def preflight_settings(*, rate_hz: float, reduced: bool, state_lag: int) -> RunS
 
 def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettings, *,
                   step_hz: float, log_path: Path,
-                  progress: Progress | None = None, link: str = "auto") -> PreflightRun:
+                  progress: Progress | None = None, cell: CellRun | None = None,
+                  link: str = "auto") -> PreflightRun:
     """Run `profile` on the simulated arm in lockstep, record it, evaluate it.
 
     link: how the messages cross to the child (`lockstep.link_kind`).
 
     settings.state_lag_cycles: cycles the measured pose lags behind the arm
-    (`lockstep.run_closed_loop`; None counts as 1)."""
+    (`lockstep.run_closed_loop`; None counts as 1).
+    cell: the workcell the arm works in: the simulated arm holds it and reports contacts,
+    and the verdict adds contacts and clearance (`runtime.sessions.cell_check`)."""
     settings = replace(settings, state_lag_cycles=settings.effective_state_lag)
     rate_hz, reduced = settings.rate_hz, settings.reduced_locked
     pad = load_pad(profile.pad_source) if Path(profile.pad_source).exists() \
@@ -122,17 +127,22 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
     header = settings.to_header(
         command="preflight", input=f"{profile.kind}:{profile.source}", profile=profile.name,
         pad=pad.name, pad_source=pad.source, step_hz=step_hz, target="sim child, lockstep",
-        target_kind="sim child", clock="simulated (t = cycle / rate)")
-    cycle = ControlCycle(arm, pad, settings)
+        target_kind="sim child", clock="simulated (t = cycle / rate)",
+        **({} if cell is None else {"cell": cell.spec, "clearance": cell.clearance}))
+    cycle = ControlCycle(arm, pad, settings,
+                         cell=cell.cell if cell is not None and cell.clearance else None)
     dt = cycle.dt_s
     n_cycles = int(math.ceil((profile.duration_s + TAIL_S) * rate_hz - 1e-9))
     started_at = datetime.now().astimezone()
     bar = progress if progress is not None else \
         Progress(f"preflight {arm.name} {profile.name}", n_cycles * dt)
     computes = np.zeros(n_cycles)
+    contacts: list[tuple[float, str, str, float]] = []
     wall0 = time.perf_counter()
     with LockstepSim(arm_spec, arm, rate_hz=rate_hz, step_hz=step_hz,
-                     start_q=profile.start_q, link=link) as sim, \
+                     start_q=profile.start_q, cell_spec=None if cell is None else cell.spec,
+                     cell=None if cell is None else cell_hello_for(cell.cell),
+                     link=link) as sim, \
             SessionRecorder.start(log_path, arm, header, started_at=started_at,
                                   queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)
@@ -151,10 +161,15 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
         for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles,
                                  state_lag=settings.effective_state_lag, prepare=prepare):
             trace.add_state(c.after.q, c.after.qd, c.after.limited, cycle=c.k)
+            contacts += [(c.t_s, a, b, depth) for a, b, depth in c.after.contacts]
             bar.update((c.k + 1) * dt)
         bar.close()
+        arm_cell = sim.arm_cell
     wall = time.perf_counter() - wall0
-    result = evaluate(arm, trace.build(), rate_hz=rate_hz, reduced=reduced)
+    built = trace.build()
+    result = evaluate(arm, built, rate_hz=rate_hz, reduced=reduced)
+    if cell is not None:
+        result = with_cell(result, *judge_cell(arm, cell.cell, built, contacts, arm_cell))
     logged = recorder.stats()
     if logged.failed or logged.dropped or logged.lost:
         result = replace(result, notes=result.notes + (

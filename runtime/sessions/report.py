@@ -12,6 +12,11 @@ axis (s from the start of the run):
     sigma         σ_min of the task Jacobian, the damping threshold and the damping λ
     tracking      commanded vs measured twist: linear (mm/s) and angular (deg/s) error
     timeline      when motion was allowed, when damped, which limit bound; stops
+    clearance     with a workcell: the nearest pairs' distances against d_s and d_i, and
+                  the contacts the simulated arm reported
+
+With a workcell the report also shows a picture of the arm in the cell at the closest
+approach (`ReportContext.closest_picture`, rendered by the simulated arm).
 """
 
 from __future__ import annotations
@@ -34,7 +39,8 @@ from .preflight import PreflightResult, Series
 PLOT_POINTS = 3000          # longer series are reduced to this many bins (peaks kept)
 FIG_SIZE_IN = (9.0, 3.0)
 DPI = 100
-PLOT_NAMES = ("speeds", "accelerations", "limits", "tcp", "sigma", "tracking", "timeline")
+PLOT_NAMES = ("clearance", "speeds", "accelerations", "limits", "tcp", "sigma", "tracking",
+              "timeline")
 
 # Colours from jogwire's palette, in the variants made for white paper.
 _PASS, _FAIL = palette.hex_code(palette.PASS_ON_PAPER), palette.hex_code(palette.FAIL_ON_PAPER)
@@ -59,6 +65,7 @@ class ReportContext:
     started_at: str
     wall_s: float
     session_log: str
+    closest_picture: bytes | None = None   # PNG: the arm in its workcell at the closest approach
 
 
 # ----------------------------------------------------------------------------------------
@@ -84,9 +91,11 @@ def render_plots(result: PreflightResult, arm: Arm) -> dict[str, bytes]:
     s = result.series
     makers = {"speeds": _plot_speeds, "accelerations": _plot_accels, "limits": _plot_limits,
               "tcp": _plot_tcp, "sigma": _plot_sigma, "tracking": _plot_tracking,
-              "timeline": _plot_timeline}
+              "timeline": _plot_timeline, "clearance": _plot_clearance}
     out = {}
     for name in PLOT_NAMES:
+        if name == "clearance" and result.cell is None:
+            continue
         fig = Figure(figsize=FIG_SIZE_IN, dpi=DPI)
         ax = fig.subplots()
         # Fixed margins: an automatic layout draws every figure twice.
@@ -231,6 +240,35 @@ def _plot_timeline(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
                  fontsize=10, loc="left")
 
 
+def _plot_clearance(ax, s: Series, r: PreflightResult, arm: Arm) -> None:
+    """The nearest pairs in mm against d_s and d_i; red marks where the simulated arm
+    reported contact. The axis stops a little above d_i: farther than that nothing acts."""
+    c = r.cell
+    mm = 1e3
+    t1, d = reduce_series(c.t, c.plotted_distance_m * mm, how=np.fmin)
+    for i, ((a, b), color) in enumerate(zip(c.plotted, _joint_colors(len(c.plotted)))):
+        ax.plot(t1, d[:, i], color=color, label=f"{a}–{b}", **_CMD_STYLE)
+    ax.axhline(c.safety_m * mm, label=f"safety d_s {c.safety_m * mm:g} mm", **_LIMIT_STYLE)
+    ax.axhline(c.influence_m * mm, color="#8a8a8a", linewidth=0.9, linestyle=":",
+               label=f"influence d_i {c.influence_m * mm:g} mm")
+    for e in c.contacts:
+        ax.plot([e.t_s], [0.0], marker="x", color=_FAIL, markersize=8, linestyle="none",
+                label=f"contact {e.pair}")
+    low = min(0.0, _low(d)) * 1.1
+    top = max(1.6 * c.influence_m * mm, 1.2 * (c.min_clearance_m or 0.0) * mm)
+    ax.axhspan(low, c.safety_m * mm, color=_FAIL, alpha=0.06, linewidth=0)
+    ax.set_ylim(low, top)
+    ax.set_ylabel("distance (mm)")
+    ax.set_title(f"Clearance in workcell {c.cell}: the nearest pairs (measured pose)",
+                 fontsize=10, loc="left")
+    ax.legend(fontsize=7, loc="lower left", ncol=2)
+
+
+def _low(values: NDArray[np.float64]) -> float:
+    finite = values[np.isfinite(values)]
+    return float(finite.min()) if finite.size else 0.0
+
+
 def _spans(t: NDArray[np.float64], mask: NDArray[np.bool_], dt: float
            ) -> list[tuple[float, float]]:
     """(start, width) of each run of True in mask."""
@@ -303,8 +341,13 @@ def render_html(r: PreflightResult, ctx: ReportContext, plots: dict[str, bytes])
         parts.append("<h2>Why it fails</h2><ul class='reasons'>"
                      + "".join(f"<li>{e(f.message)}</li>" for f in r.findings) + "</ul>")
     else:
+        clear = "" if r.cell is None else (
+            f", and every part of the arm at least the safety distance "
+            f"({1e3 * r.cell.safety_m:g} mm) from the workcell {e(r.cell.cell)}, with no contact")
         parts.append("<p>Every joint stayed within its rated speed and acceleration and "
-                     "clear of its position limits, and the TCP within its cap.</p>")
+                     f"clear of its position limits, and the TCP within its cap{clear}.</p>")
+    if r.cell is not None:
+        parts.append("<h2>Workcell</h2>" + _cell_section(r, ctx))
     parts.append("<h2>Joints</h2>" + _joint_table(r, arm))
     parts.append("<h2>Tool</h2>" + _tcp_table(r))
     if r.notes:
@@ -323,6 +366,30 @@ def render_html(r: PreflightResult, ctx: ReportContext, plots: dict[str, bytes])
         "safety-rated stop, an enabling device and a risk assessment, and local codes and "
         "licensed practice come first (docs/SAFETY.md).</p></body></html>")
     return "\n".join(parts)
+
+
+def _cell_section(r: PreflightResult, ctx: ReportContext) -> str:
+    """The closest approach, the contacts and the picture of the arm at that moment."""
+    c, e = r.cell, html.escape
+    rows = [("workcell", c.cell),
+            ("safety distance d_s / influence distance d_i",
+             f"{1e3 * c.safety_m:.1f} / {1e3 * c.influence_m:.1f} mm")]
+    if c.min_clearance_m is not None:
+        rows.append(("closest approach", f"{c.pair[0]}–{c.pair[1]} "
+                     f"{1e3 * c.min_clearance_m:.1f} mm at t = {c.min_clearance_t_s:.2f} s"))
+    rows.append(("contacts (simulated arm)", "not measured" if not c.contacts_measured else
+                 "none" if not c.contacts else
+                 "; ".join(f"{x.pair} from t = {x.t_s:.2f} s, {1e3 * x.depth_m:.1f} mm deep, "
+                           f"{x.cycles} cycles" for x in c.contacts)))
+    table = "<table>" + "".join(f"<tr><td>{e(a)}</td><td>{e(b)}</td></tr>" for a, b in rows) \
+        + "</table>"
+    if ctx.closest_picture is None:
+        return table
+    data = base64.b64encode(ctx.closest_picture).decode("ascii")
+    caption = "" if c.min_clearance_t_s is None else \
+        f"The arm at the closest approach, t = {c.min_clearance_t_s:.2f} s (measured pose)."
+    return table + f"<img alt='closest approach' src='data:image/png;base64,{data}'>" \
+        f"<p class='meta'>{e(caption)}</p>"
 
 
 def _joint_table(r: PreflightResult, arm: Arm) -> str:

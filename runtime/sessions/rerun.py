@@ -26,6 +26,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
+from ..arm.cell import Cell
 from ..arm.model import Arm
 from ..control.cycle import ControlCycle
 from ..control.intent import InputFrame
@@ -52,18 +53,26 @@ class CycleSettings:
 
     run: RunSettings
     pad: PadMapping
+    clearance: bool = True         # with a workcell: the velocity damper was in the solve
 
-    def control_cycle(self, arm: Arm) -> ControlCycle:
-        return ControlCycle(arm, self.pad, self.run)
+    def control_cycle(self, arm: Arm, cell: Cell | None = None) -> ControlCycle:
+        """The session's control cycle; in `cell` with the damper if the session had it."""
+        return ControlCycle(arm, self.pad, self.run, cell=cell if self.clearance else None)
 
 
 def cycle_settings(settings: Mapping[str, Any], *, where: str = "session") -> CycleSettings:
     """Read the header settings a re-run needs (`RunSettings.from_header`: a missing rate
-    or a bad value is a LogError) and the pad mapping: the recorded file (pad_source) if it
-    still exists, else the shipped mapping of that name, else the keyboard mapping (scripted
-    and network input carry their commands in the frames and use the pad only for its
-    start state)."""
-    return CycleSettings(RunSettings.from_header(settings, where=where), _pad(settings))
+    or a bad value is a LogError), whether the velocity damper was on (`clearance`,
+    preflight --no-clearance records false) and the pad mapping: the recorded file
+    (pad_source) if it still exists, else the shipped mapping of that name, else the
+    keyboard mapping (scripted and network input carry their commands in the frames and
+    use the pad only for its start state)."""
+    clearance = settings.get("clearance", True)
+    if not isinstance(clearance, bool):
+        raise LogError(f"{where}: the header settings are malformed (clearance is "
+                       f"{clearance!r})")
+    return CycleSettings(RunSettings.from_header(settings, where=where), _pad(settings),
+                         clearance=clearance)
 
 
 def _pad(settings: Mapping[str, Any]) -> PadMapping:

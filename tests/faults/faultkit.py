@@ -67,6 +67,7 @@ from runtime.sessions.log_reader import TORN_TAIL, read_session  # noqa: E402
 ARM = "elbow6"
 STALE_AFTER_S = 0.1         # both sides' watchdog (drive --stale-after, sim --stale-after)
 RATE_HZ = float(os.environ.get("JOGWIRE_FAULT_RATE_HZ", "250"))  # the runtime's loop rate
+FLUSH_INTERVAL_S = 0.2      # the session log writer's flush interval (one block each)
 CYCLE_S = 1.0 / RATE_HZ     # one control cycle
 REST = 1e-3                 # |q̇| at or below this (rad/s) counts as standing still
 MOVING = 0.02               # |q̇| above this (rad/s) counts as moving
@@ -745,8 +746,11 @@ def loop_starved(folder: Path, seed: int = 1) -> FaultResult:
 
 
 def disk_full(folder: Path, seed: int = 1) -> FaultResult:
-    """Session log writes fail (EFBIG past a file-size limit) about 1.5 s into the motion."""
-    limit = 600_000
+    """Session log writes fail (EFBIG past a file-size limit) about 1.5 s into the motion.
+
+    The limit fits the header (about 3.5 kB) and about 1.9 s of blocks of the format-2 log
+    at RATE_HZ (about 29 kB/s for this motion, measured here)."""
+    limit = 55_000
     name = "disk full while recording"
     c, t_motion, t_release, _ = _script_run(name, folder, seed=seed,
                                             drive_preexec=limit_file_size(limit))
@@ -758,12 +762,14 @@ def disk_full(folder: Path, seed: int = 1) -> FaultResult:
     t_full = zero + int(c.session.records[-1].t_s * 1e9)
     r.records_lost_before_fault = session_gaps(c.session)
     r.figures["full_before_release"] = t_motion < t_full < t_release
-    # Everything that fit was kept: the bytes after the last readable record are less than
-    # one record (the one being written when the disk filled).
+    # Everything that fit was kept: the bytes after the last readable record are at most
+    # one block, the one being written when the disk filled (a block holds one flush
+    # interval of cycles, runtime.sessions.log_writer).
     size = c.session.path.stat().st_size
     torn = next((pr.offset for pr in c.session.problems if pr.kind == TORN_TAIL), size)
     r.figures["unreadable_bytes"] = size - torn
     r.figures["record_bytes"] = torn / len(c.session.records)
+    r.figures["block_bytes"] = r.figures["record_bytes"] * RATE_HZ * FLUSH_INTERVAL_S
     written = c.summary["session"]["written"] if c.summary else None
     r.notes.append(f"log full after {len(c.session.records)} records "
                    f"({(t_full - t_motion) * 1e-9:.2f} s into the motion); "

@@ -150,9 +150,9 @@ def test_disk_full_while_recording(tmp_path) -> None:
     assert r.measured_from == "release"
     stops_in_bound(r)
     # Everything that fit is readable: what cannot be read at the end of the file is the one
-    # record that was being written when the disk filled (records vary in length: the bound
+    # block that was being written when the disk filled (blocks vary in length: the bound
     # is 1.5 × their mean length).
-    assert r.figures["unreadable_bytes"] < 1.5 * r.figures["record_bytes"], r.notes
+    assert r.figures["unreadable_bytes"] < 1.5 * r.figures["block_bytes"], r.notes
     assert "said while driving: yes" in r.notes
     assert any(n.startswith("summary: recording stopped: writing") for n in r.notes), r.notes
     # The loop kept its pace after the disk filled (as seen at the arm: rates applied / s).

@@ -4,7 +4,6 @@ the lockstep endpoint over a loopback socket in the same process."""
 from __future__ import annotations
 
 import math
-import threading
 import time
 from pathlib import Path
 
@@ -17,10 +16,9 @@ from runtime import palette
 from runtime.arm.kinematics import tcp_pose
 from runtime.arm.load import load_arm
 from runtime.link.protocol import Rates, hello_for
-from runtime.link.transport import ArmClient, ArmServer
+from runtime.link.transport import ArmClient
 from sim.arm import SimulatedArm, main, write_png
 from sim.arm_side import ArmSession
-from sim.endpoint import ArmEndpoint
 
 pytestmark = pytest.mark.sim
 
@@ -134,7 +132,7 @@ def test_in_process_runs_are_deterministic(reach7) -> None:
     assert np.array_equal(runs[0], runs[1])
 
 
-def test_lockstep_over_a_socket_equals_the_in_process_run(reach7) -> None:
+def test_lockstep_over_a_socket_equals_the_in_process_run(reach7, serving_lockstep) -> None:
     """The endpoint steps once per rates message and sends one state back; the result is
     bit-for-bit the in-process run with the same commands."""
     cmds = command_sequence(reach7.n, 200)
@@ -144,30 +142,20 @@ def test_lockstep_over_a_socket_equals_the_in_process_run(reach7) -> None:
             reference.step()
         expected = reference.read_state().q
 
-    stop = threading.Event()
-    with SimulatedArm(reach7) as sim, \
-            ArmServer("tcp://127.0.0.1:*", n_joints=reach7.n) as server:
-        session = ArmSession(hello_for(reach7, "sim", stale_after_s=0.1), stale_after_s=0.1)
-        endpoint = ArmEndpoint(server, sim, session)
-        worker = threading.Thread(target=endpoint.serve_lockstep, args=(stop.is_set,),
-                                  kwargs={"poll_s": 0.01}, daemon=True)
-        worker.start()
-        try:
-            with ArmClient(server.endpoint,
-                           hello=hello_for(reach7, "runtime", stale_after_s=0.1)) as client:
-                _, first = client.handshake(5.0)
-                assert first.status == "waiting" and np.allclose(first.q, reach7.home())
-                for seq, c in enumerate(cmds, start=1):
-                    client.send(Rates(seq, time.monotonic_ns(), c))
-                    deadline = time.monotonic() + 5.0
-                    while True:
-                        state = client.receive(1.0).state
-                        if state is not None and state.applied_seq == seq:
-                            break
-                        assert time.monotonic() < deadline, "no state for this step"
-        finally:
-            stop.set()
-            worker.join(5.0)
+    session = ArmSession(hello_for(reach7, "sim", stale_after_s=0.1), stale_after_s=0.1)
+    with SimulatedArm(reach7) as sim, serving_lockstep(sim, session) as endpoint, \
+            ArmClient(endpoint.server.endpoint,
+                      hello=hello_for(reach7, "runtime", stale_after_s=0.1)) as client:
+        _, first = client.handshake(5.0)
+        assert first.status == "waiting" and np.allclose(first.q, reach7.home())
+        for seq, c in enumerate(cmds, start=1):
+            client.send(Rates(seq, time.monotonic_ns(), c))
+            deadline = time.monotonic() + 5.0
+            while True:
+                state = client.receive(1.0).state
+                if state is not None and state.applied_seq == seq:
+                    break
+                assert time.monotonic() < deadline, "no state for this step"
         assert endpoint.steps == len(cmds)
         assert np.array_equal(np.array(state.q), expected)
         assert state.status == "tracking"

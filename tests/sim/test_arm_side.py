@@ -10,7 +10,17 @@ import pytest
 
 from runtime.arm.load import load_arm
 from runtime.errors import ProtocolError
-from runtime.link.protocol import Hello, Rates, Refuse, Twist, hello_for
+from runtime.link.protocol import (
+    MAX_CONTACTS,
+    CellHello,
+    Hello,
+    Rates,
+    Refuse,
+    Twist,
+    decode,
+    encode,
+    hello_for,
+)
 from sim.arm_side import MAX_IN_ORDER, ArmSession, Reading, guard_rates, ramp_to_zero, stop_time_s
 
 MS = 1_000_000  # ns
@@ -262,3 +272,74 @@ def test_state_reports_what_is_followed(session, arm) -> None:
             state.limited) == (1, 777, 9, 12345, "tracking", True)
     assert np.allclose(state.q, q)
     assert isinstance(Refuse("busy", "x"), Refuse)
+
+
+# ----------------------------------------------------------------------------------------
+# Workcell exchange and contact reports (docs/PROTOCOL.md §5a)
+# ----------------------------------------------------------------------------------------
+
+OURS = CellHello("bench", "0123456789abcdef")
+TOUCHING = (("tool", "bench", 0.002), ("link_3", "post", 0.0005))
+
+
+def test_cell_is_answered_and_its_sender_gets_contact_reports(arm) -> None:
+    session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
+                         cell=OURS)
+    session.on_message(RUNTIME, runtime_hello(arm), 0)
+    session.on_message(WATCHER, runtime_hello(arm, "observer"), 0)
+    assert session.on_message(RUNTIME, CellHello("bench", OURS.digest), 0) == [(RUNTIME, OURS)]
+    reading = Reading(0.001, arm.home(), np.zeros(7), np.zeros(7), contacts=TOUCHING)
+    state = session.state(reading, 777)
+    contact = session.contact(reading, state)
+    assert (contact.seq, contact.t_ns, contact.total) == (state.seq, 777, 2)
+    assert contact.pairs == list(TOUCHING)
+    assert session.contact_readers == {RUNTIME}          # the observer did not ask
+    assert not any("workcell" in e for e in session.events)   # same digest: nothing to say
+    session.forget(RUNTIME)
+    assert session.contact(reading, session.state(reading, 778)) is None
+
+
+@pytest.fixture
+def reading_contacts(arm) -> ArmSession:
+    """A session whose controller asked for contact reports."""
+    session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
+                         cell=OURS)
+    session.on_message(RUNTIME, runtime_hello(arm), 0)
+    session.on_message(RUNTIME, OURS, 0)
+    return session
+
+
+def test_a_step_without_contact_sends_no_report(reading_contacts, arm) -> None:
+    session = reading_contacts
+    reading = Reading(0.001, arm.home(), np.zeros(7), np.zeros(7))
+    assert session.contact(reading, session.state(reading, 1)) is None
+
+
+def test_contact_report_lists_the_deepest_and_counts_all(reading_contacts, arm) -> None:
+    session = reading_contacts
+    many = tuple((f"link_{i}", "wall", 0.01 - 1e-4 * i) for i in range(MAX_CONTACTS + 5))
+    reading = Reading(0.0, arm.home(), np.zeros(7), np.zeros(7), contacts=many)
+    contact = session.contact(reading, session.state(reading, 1))
+    assert contact.total == MAX_CONTACTS + 5 and len(contact.a) == MAX_CONTACTS
+    assert decode(encode(contact)) == contact
+
+
+def test_another_workcell_is_noted_and_cell_from_a_stranger_is_dropped(arm) -> None:
+    session = ArmSession(hello_for(arm, "sim", stale_after_s=0.1), stale_after_s=0.1,
+                         cell=OURS)
+    assert session.on_message(OTHER, OURS, 0) == []       # never said hello
+    assert session.dropped["no_hello"] == 1
+    session.on_message(RUNTIME, runtime_hello(arm), 0)
+    assert session.on_message(RUNTIME, CellHello("other", "ffffffffffffffff"), 0) == \
+        [(RUNTIME, OURS)]
+    assert any("contacts name this side's objects" in e for e in session.events)
+
+
+def test_a_side_without_contact_measurement_does_not_answer_cell(session, arm) -> None:
+    # What a runtime sees from an arm side that knows nothing of workcells: no answer, and
+    # motion goes on as before (PROTOCOL.md §11).
+    session.on_message(RUNTIME, runtime_hello(arm), 0)
+    assert session.on_message(RUNTIME, OURS, 0) == []
+    assert session.dropped["unexpected"] == 1
+    session.on_message(RUNTIME, rates(1, 0), 0)
+    assert session.decide(0).status == "tracking"

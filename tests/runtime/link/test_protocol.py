@@ -18,10 +18,13 @@ from runtime.errors import ModelMismatch, ProtocolError
 from runtime.link.protocol import (
     FIELDS,
     KINDS,
+    MAX_CONTACTS,
     MAX_JOINTS,
     MAX_MESSAGE_BYTES,
     PROTOCOL_VERSION,
     REASONS,
+    CellHello,
+    Contact,
     Hello,
     LatenessFilter,
     Rates,
@@ -36,6 +39,7 @@ from runtime.link.protocol import (
     encode,
     geometry_digest,
     hello_for,
+    to_map,
 )
 
 DOC = Path(__file__).resolve().parents[3] / "docs" / "PROTOCOL.md"
@@ -56,11 +60,14 @@ def examples() -> list:
             State(1042, 1234567990000, (0.5, 1.0, -0.5), (0.1, -0.25, 0.0), 42, 1234567890123,
                   "tracking", False),
             Refuse("busy", "another runtime is commanding this arm"),
-            Twist(7, 1234567000000, (0.05, 0, 0, 0, 0, 0.1), "tool", True)]
+            Twist(7, 1234567000000, (0.05, 0, 0, 0, 0, 0.1), "tool", True),
+            CellHello("bench", "5d0c2c3f8a7e9b14"),
+            Contact(1042, 1234567990000, ("tool", "link_3"), ("fixture", "bench"),
+                    (0.0021, 0.0004), 2)]
 
 
 def valid_map(kind: str) -> dict:
-    msg = {m.__class__.__name__.lower(): m for m in examples()}[kind]
+    msg = {to_map(m)["kind"]: m for m in examples()}[kind]
     return msgpack.unpackb(encode(msg))
 
 
@@ -143,6 +150,14 @@ def mutated(message_kind: str, **changes) -> bytes:
     (mutated("hello", stale_after_s=0.0), "range"),
     (mutated("twist", twist=[0.0] * 5), "length"),
     (mutated("twist", frame="world"), "range"),
+    (mutated("contact", depth_m=[0.001]), "length"),      # a, b, depth_m differ in length
+    (mutated("contact", depth_m=[0.001, -0.001]), "range"),
+    (mutated("contact", total=1), "range"),                # fewer in all than listed
+    (mutated("contact", a=[], b=[], depth_m=[]), "length"),
+    (mutated("contact", a=["tool"] * (MAX_CONTACTS + 1), b=["bench"] * (MAX_CONTACTS + 1),
+             depth_m=[0.0] * (MAX_CONTACTS + 1), total=99), "length"),
+    (mutated("contact", b=["bench", ""]), "range"),        # names are not empty
+    (mutated("cell", digest=7), "type"),
     (msgpack.packb(msgpack.ExtType(1, b"")), "type"),       # no ext values
     (msgpack.packb(msgpack.ExtType(1, b"abc")), "type"),
 ])
@@ -422,3 +437,20 @@ def test_round_trip_meter_holds_at_most_max_samples() -> None:
     for k, rtt in enumerate([0.5, 0.5, 0.5, 0.01, 0.01]):
         meter.add(rtt, k * 0.001)
     assert meter.level_s == 0.01    # (0.5, 0.01, 0.01): the oldest two are gone
+
+
+def test_cell_digest_names_the_same_objects_and_changes_with_any_of_them(tmp_path) -> None:
+    from runtime.arm.cell import load_cell
+    from runtime.arm.model import configs_dir
+    from runtime.link.protocol import cell_digest, cell_hello_for
+    arm = load_arm("elbow6")
+    shipped = configs_dir() / "cells" / "bench.toml"
+    copy = tmp_path / "bench.toml"
+    copy.write_text(shipped.read_text())
+    assert cell_digest(load_cell("bench", arm)) == cell_digest(load_cell(copy, arm))
+    moved = tmp_path / "moved.toml"
+    moved.write_text(shipped.read_text().replace("xyz = [0.55, 0.30, 0.075]",
+                                                 "xyz = [0.551, 0.30, 0.075]"))
+    assert cell_digest(load_cell(moved, arm)) != cell_digest(load_cell(copy, arm))
+    assert cell_hello_for(None) == CellHello("", "")
+    assert decode(encode(cell_hello_for(load_cell("bench", arm)))).name == "bench"

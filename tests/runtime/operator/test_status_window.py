@@ -111,3 +111,36 @@ def test_window_runs_draws_and_hands_events_to_the_inputs():
         assert window.run(lambda: None, on_event=on_event) == "closed"
     finally:
         window.close()
+
+
+def test_the_workcell_nearest_pair_and_binding_clearance_are_drawn():
+    from runtime.arm.cell import load_cell
+    from runtime.arm.distance import cell_distances
+    from runtime.operator.cell_outlines import CellOutlines
+    from runtime.operator.status_window import (
+        CELL_OBJECT,
+        CLEARANCE_STOP,
+        CLEARANCE_WARN,
+        clearance_colour,
+        clearance_text,
+    )
+    arm = load_arm("elbow6")
+    cell = load_cell("bench", arm)
+    found = cell_distances(arm, cell, arm.home())
+    i = found.nearest()
+    near = dict(cell=CellOutlines.of_cell(cell), clearance_m=float(found.distances[i]),
+                clearance_pair=found.pairs[i],
+                clearance_points=np.array([found.points_arm[i], found.points_other[i]]))
+    plain = draw_status(pygame.Surface(SIZE), snapshot())
+    drawn = draw_status(pygame.Surface(SIZE), snapshot(**near, binding_limit="clearance"))
+    img = pygame.surfarray.array3d(drawn)
+    assert np.any(np.all(img == np.array(CELL_OBJECT), axis=2))       # the objects' outlines
+    assert np.any(np.all(img == np.array(CLEARANCE_WARN), axis=2))    # the badge
+    assert not np.array_equal(img, pygame.surfarray.array3d(plain))
+    s = snapshot(**near)
+    a, b = found.pairs[i]
+    assert clearance_text(s) == f"nearest {a}–{b} {found.distances[i] * 1e3:.1f} mm"
+    assert clearance_colour(snapshot(**{**near, "clearance_m": 0.01})) == CLEARANCE_STOP
+    touching = snapshot(**near, contacts=(("gripper", "bench"),))
+    assert clearance_colour(touching) == CLEARANCE_STOP
+    assert clearance_text(touching).startswith("CONTACT gripper–bench")

@@ -9,19 +9,20 @@ import math
 import numpy as np
 import pytest
 
+from runtime.arm.cell import load_cell
 from runtime.arm.kinematics import tcp_pose
 from runtime.arm.load import load_arm
 from runtime.control.loop import FixedRateLoop
 from runtime.control.pads import load_pad
 from runtime.control.settings import RunSettings
 from runtime.errors import ConfigError
-from runtime.link.protocol import State
+from runtime.link.protocol import CellHello, Contact, State, cell_hello_for
 from runtime.link.transport import Inbox
 from runtime.operator.inputs.script import ScriptSource, load_script
-from runtime.operator.terminal import format_drive_summary
+from runtime.operator.terminal import format_drive_summary, status_line
 from runtime.sessions.drive import SETTLE_TIMEOUT_S, DriveSession, build_summary, enter_realtime
 from runtime.sessions.drive_stats import LogHistogram
-from runtime.sessions.drive_ui import plan_input
+from runtime.sessions.drive_ui import MainThread, plan_input
 
 RATE_HZ = 500.0
 
@@ -224,3 +225,59 @@ def test_realtime_refused_falls_back_to_normal_priority(monkeypatch):
     got = enter_realtime(50)
     assert got.startswith("normal (real-time refused: Operation not permitted")
     assert "CAP_SYS_NICE" in got
+
+
+class ArmInCell(IdealArm):
+    """The ideal arm that answers our workcell and reports one contact at `touch_at`."""
+
+    touch_at = 52.0    # clock reading (the fake clock starts at 50 s)
+    asked = False
+
+    def send(self, msg) -> bool:
+        if isinstance(msg, CellHello):
+            self.asked = True
+            return True
+        return super().send(msg)
+
+    def receive(self, timeout_s: float = 0.0) -> Inbox:
+        inbox = super().receive(timeout_s)
+        if self.asked and not getattr(self, "answered", False):
+            self.answered = True
+            inbox.cell = CellHello("bench", cell_hello_for(self.cell).digest)
+        if inbox.state is not None and self.clock() >= self.touch_at and \
+                not getattr(self, "touched", False):
+            self.touched = True
+            inbox.contacts.append(Contact(inbox.state.seq, inbox.state.t_ns, ["gripper"],
+                                          ["fixture"], [0.002], 1))
+        return inbox
+
+
+def test_a_drive_in_a_workcell_reports_its_nearest_pair_and_the_contacts(fake_clock):
+    arm = load_arm("elbow6")
+    cell = load_cell("bench", arm)
+    clock = fake_clock(start_s=50.0, read_cost_s=2e-6)
+    client = ArmInCell(arm, clock)
+    client.cell = cell
+    drive = DriveSession(arm=arm, pad=load_pad("keyboard"),
+                         settings=RunSettings(rate_hz=RATE_HZ, stale_after_s=0.1),
+                         source=ScriptSource(load_script("bench_plunge", arm)), client=client,
+                         recorder=None, clock=clock, duration_s=None, same_clock=True,
+                         target="ideal", cell=cell)
+    client.send(drive.cell_hello)
+    loop = FixedRateLoop(RATE_HZ, clock=clock, sleep=clock.sleep)
+    timing = loop.run(drive.body, duration_s=30.0)
+    m = build_summary(drive, timing, priority="normal", input_name="script bench_plunge",
+                      target="ideal", recorder_stats=None, session_path=None, arm_side_log="",
+                      started_s=0.0, ended_s=5.0)
+    d_s = cell.clearance.safety_distance_m
+    # The ideal arm follows the rates exactly: the damper's own guarantee, d ≥ d_s.
+    assert m["min_clearance_m"] >= d_s - 1e-9 and m["clearance_pair"] == ["gripper", "bench"]
+    assert m["contacts_measured"] and m["cell"] == "bench"
+    assert m["contacts"] == [{"a": "gripper", "b": "fixture", "t_s": pytest.approx(2.0, abs=0.01),
+                              "depth_m": 0.002, "steps": 1}]
+    text = format_drive_summary(m)
+    assert "clearance workcell bench: nearest gripper–bench" in text
+    assert "CONTACT gripper–fixture from 2.0 s, 2.0 mm deep" in text
+    snap = MainThread(drive, loop, None, None).snapshot()   # the pair measured there
+    assert snap.cell is not None and snap.clearance_pair == ("gripper", "bench")
+    assert "nearest gripper–bench" in status_line(snap, timing)

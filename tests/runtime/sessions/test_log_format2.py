@@ -91,7 +91,8 @@ records = st.builds(
     binding_limit=st.none() | text, period_s=any_float, compute_s=any_float,
     overrun=st.booleans(), reduced=st.booleans(), input=wire_input(),
     state_age_s=st.none() | any_float, overrun_streak=st.integers(0, 2**62),
-    safety_state=text)
+    safety_state=text, min_clearance_m=st.none() | any_float,
+    clearance_arm=st.none() | text, clearance_other=st.none() | text)
 
 
 def exact(value):
@@ -160,6 +161,28 @@ def test_byte_planes_are_as_documented() -> None:
     ints = np.array([1, 2, 4], dtype="<i8")
     assert np.frombuffer(pack_eight(ints, 1, "delta2"), np.uint8).reshape(8, 3)[0].tolist() \
         == [1, 0, 1]
+
+
+def test_a_block_written_before_the_clearance_columns_reads_them_as_nil(monkeypatch) -> None:
+    # Columns added within version 2 (docs/SESSION_FORMAT.md, "Versions"): an older
+    # writer's block lacks them and must still decode, with nil there.
+    import runtime.sessions.log_blocks as blocks
+    rec = CycleRecord(cycle=1, t_s=0.002, axes=(), buttons=(), enabled=True,
+                      enable_reason="enable held", twist=(0.0,) * 6, frame="base",
+                      q=(0.1, 0.2), rates=(0.0, 0.0), damping=0.0, sigma_min=0.3,
+                      manipulability=0.1, achieved_twist=(0.0,) * 6, tracking_error=0.0,
+                      scales={}, binding_limit=None, period_s=DT, compute_s=1e-4,
+                      overrun=False, min_clearance_m=0.05, clearance_arm="gripper",
+                      clearance_other="bench")
+    older = tuple((n, k) for n, k in COLUMNS if n not in blocks.ADDED_COLUMNS)
+    monkeypatch.setattr(blocks, "COLUMNS", older)
+    data = encode_block(CycleBlock.from_records([rec]))
+    monkeypatch.undo()
+    (back,) = decode_block(msgpack.unpackb(msgpack.packb(data), raw=False)).records()
+    assert (back.min_clearance_m, back.clearance_arm, back.clearance_pair) == (None, None, None)
+    assert back.q == rec.q and back.safety_state == rec.safety_state
+    (full,) = through_a_block([rec])
+    assert full.clearance_pair == ("gripper", "bench") and full.min_clearance_m == 0.05
 
 
 def test_columns_cover_every_record_field() -> None:

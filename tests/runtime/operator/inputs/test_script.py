@@ -100,7 +100,7 @@ def test_a_script_drives_the_gate_like_an_operator(arm):
     assert states[round(src.script.duration_s + 0.1, 2)][0] == READY
 
 
-PUSHING_PROFILES = {"elbow_stretch", "wrist_limit"}
+PUSHING_PROFILES = {"elbow_stretch", "wrist_limit", "bench_plunge"}
 
 
 def test_every_shipped_profile_loads_and_closes_on_released_enable(arm):
