@@ -4,21 +4,29 @@ Measured in one run, on the same machine state:
 
   preflight      a 60 s profile on reach7 (the shipped `gentle`, repeated), 500 Hz control,
                  1 ms physics step (2 steps per cycle): wall time and real-time factor,
-                 with the default state lag of one cycle (this process computes a cycle
-                 while the child steps the last) and
-                 with lag 0 (strictly one after the other); the HTML report's time apart
+                 over each lockstep link (shm: shared rings, the pipes as doorbell; pipe:
+                 the pipes alone), with the default state lag of one cycle (this process
+                 computes a cycle while the child steps the last) and with lag 0 (strictly
+                 one after the other); the HTML report's time apart
+  per side       in each run, what one cycle of the loop (from the handshake on) is on
+                 each side: working, and waiting for the other (this process: its time in
+                 `LockstepSim.wait`; the child: its time on messages, from the summary it
+                 prints when it stops)
   rerun          `replay --rerun` (open loop) of that 60 s session log: wall time, factor
   components     what one preflight cycle is made of, each timed alone (medians):
                    control cycle      ControlCycle.step on the run's recorded poses
                    bookkeeping        the cycle's record (built and encoded), the trace
                    lockstep exchange  one rates → state exchange with the simulated arm
-                                      child over its pipes (2 physics steps inside)
+                                      child over each link (2 physics steps inside)
                    arm side's work    the child's handling of one message, in process
                                       (decode, rules, 2 physics steps, state encoded)
                    physics            2 × SimulatedArm.step + read_state in this process
-                   pipe round trip    a small message to a child process and back, bare,
-                                      and with each side busy 300 µs between messages
-                                      (each then finds its reader asleep: the wake-up cost)
+                   link handling      each side's own part of one exchange, both ends in
+                                      this process: encode + send, take + decode
+                   link round trip    a small message to a child process and back over
+                                      each link's own channel code, bare, and with each
+                                      side busy 60 µs between messages (about each side's
+                                      work): the round trip less the work, the hand-over
                    socket round trip  the same over ZeroMQ DEALER ↔ ROUTER on 127.0.0.1
 
 The runtime never imports the simulator (the child process is the arm); this script
@@ -29,13 +37,14 @@ imports `sim` only to time the physics and the arm side's work alone.
                  the verdict's distances at every measured pose), against the run without
                  it from the same invocation; and the physics step with and without it
 
-    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--cell bench]
+    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--cell bench] [--links shm,pipe]
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import re
 import statistics
 import subprocess
 import sys
@@ -56,11 +65,13 @@ from runtime.control.cycle import ControlCycle  # noqa: E402
 from runtime.control.pads import load_pad  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402
 from runtime.link.arm_process import child_env  # noqa: E402
-from runtime.link.pipes import PIPE_PEER  # noqa: E402
-from runtime.link.protocol import Rates, decode, encode, hello_for  # noqa: E402
+from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer,  # noqa: E402
+                                arm_side_channel, child_link, link_spec)
+from runtime.link.protocol import Rates, State, decode, encode, hello_for  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
 from runtime.sessions.cell_check import CellRun
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
+import runtime.sessions.preflight_run as preflight_run  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
 from runtime.sessions.log_schema import (
     cycle_record,  # noqa: E402
@@ -76,14 +87,18 @@ STEP_HZ = 1000.0
 ARM = "reach7"
 
 ECHO_CHILD = r"""
-import os, sys, time, zmq
-if sys.argv[1] == "pipe":
-    r, w, work_s = int(sys.argv[2]), int(sys.argv[3]), float(sys.argv[4])
-    while (data := os.read(r, 4096)) != b"stop":
-        t = time.perf_counter()
-        while time.perf_counter() - t < work_s:
-            pass
-        os.write(w, data)
+import sys, time, zmq
+if sys.argv[1] == "link":
+    from runtime.link.pipes import arm_side_channel
+    channel, work_s = arm_side_channel(sys.argv[2]), float(sys.argv[3])
+    while channel.poll(10.0) and not channel.ended:
+        for data in channel.take():
+            if data == b"stop":
+                sys.exit(0)
+            t = time.perf_counter()
+            while time.perf_counter() - t < work_s:
+                pass
+            channel.send(data)
     sys.exit(0)
 ctx = zmq.Context()
 s = ctx.socket(zmq.ROUTER)
@@ -114,17 +129,56 @@ def load_average() -> str:
     return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
+class _TimedLockstepSim(LockstepSim):
+    """LockstepSim that keeps how long its loop ran (from the handshake to close), how
+    long this process waited for states in it, and how long the child worked on messages
+    (from the summary line it prints when it stops)."""
+
+    last: "_TimedLockstepSim | None" = None
+
+    def __init__(self, *args, **kwargs) -> None:
+        started = time.perf_counter()
+        super().__init__(*args, **kwargs)
+        self.ready = time.perf_counter()
+        self.start_s = self.ready - started
+        self.loop_s = self.waited_s = 0.0
+        self.child_worked_s = float("nan")
+        _TimedLockstepSim.last = self
+
+    def wait(self, seq: int):
+        t = time.perf_counter()
+        try:
+            return super().wait(seq)
+        finally:
+            now = time.perf_counter()
+            self.waited_s += now - t
+            self.loop_s = now - self.ready      # the loop ends with its last wait
+
+    def close(self) -> None:
+        super().close()
+        found = re.search(r"worked ([0-9.]+) s on messages", self.child.errors)
+        if found:
+            self.child_worked_s = float(found.group(1))
+
+
 def bench_preflight(folder: Path, seconds: float, state_lag: int,
-                    with_report: bool, cell: str | None = None) -> tuple[Path, dict]:
+                    with_report: bool, cell: str | None = None,
+                    link: str = "auto") -> tuple[Path, dict]:
     arm = load_arm(ARM)
     profile = load_profile(str(long_profile(folder, seconds)), arm, RATE_HZ)
-    log = folder / f"run-lag{state_lag}{'-' + cell if cell else ''}.jwlog"
+    log = folder / f"run-lag{state_lag}-{link}{'-' + cell if cell else ''}.jwlog"
     settings = preflight_settings(rate_hz=RATE_HZ, reduced=False, state_lag=state_lag)
     t = time.perf_counter()
-    run = run_preflight(ARM, arm, profile, settings, step_hz=STEP_HZ, log_path=log,
-                        progress=Progress("", 1, enabled=False),
-                        cell=None if cell is None else CellRun(load_cell(cell, arm), cell))
+    preflight_run.LockstepSim = _TimedLockstepSim
+    try:
+        run = run_preflight(ARM, arm, profile, settings, step_hz=STEP_HZ, log_path=log,
+                            progress=Progress("", 1, enabled=False),
+                            cell=None if cell is None else CellRun(load_cell(cell, arm), cell),
+                            link=link)
+    finally:
+        preflight_run.LockstepSim = LockstepSim
     total_s = time.perf_counter() - t       # the run and its verdict (workcell included)
+    sim = _TimedLockstepSim.last
     report_s = None
     if with_report:
         t = time.perf_counter()
@@ -136,7 +190,8 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int,
         report_s = time.perf_counter() - t
     return log, {"motion_s": run.result.duration_s, "cycles": run.cycles,
                  "run_s": run.wall_s, "total_s": total_s, "report_s": report_s,
-                 "verdict": run.result.verdict}
+                 "verdict": run.result.verdict, "start_s": sim.start_s, "loop_s": sim.loop_s,
+                 "here_waited_s": sim.waited_s, "child_worked_s": sim.child_worked_s}
 
 
 def bench_cell_physics(cell: str, steps: int) -> tuple[float, float]:
@@ -172,7 +227,7 @@ def bench_rerun(log: Path) -> dict:
             "largest_difference": diff.largest, "cycles": diff.cycles}
 
 
-def bench_components(log: Path, cycles: int) -> dict[str, float]:
+def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, float]:
     """Medians in µs per cycle."""
     session = read_session(log)
     records = session.records[:cycles]
@@ -206,13 +261,14 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
     out["bookkeeping (record built + encoded, trace)"] = statistics.median(times) / 1e3
 
     rates = np.array([r.rates for r in records])
-    times = []
-    with LockstepSim(ARM, arm, rate_hz=RATE_HZ, step_hz=STEP_HZ) as sim:
-        for k in range(len(records)):
-            t = time.perf_counter_ns()
-            sim.step(rates[k])
-            times.append(time.perf_counter_ns() - t)
-    out["lockstep exchange (pipe + child)"] = statistics.median(times) / 1e3
+    for link in links:
+        times = []
+        with LockstepSim(ARM, arm, rate_hz=RATE_HZ, step_hz=STEP_HZ, link=link) as sim:
+            for k in range(len(records)):
+                t = time.perf_counter_ns()
+                sim.step(rates[k])
+                times.append(time.perf_counter_ns() - t)
+        out[f"lockstep exchange ({link} + child)"] = statistics.median(times) / 1e3
 
     from sim.arm import SimulatedArm  # the benchmark may; the runtime never does
     times = []
@@ -227,8 +283,13 @@ def bench_components(log: Path, cycles: int) -> dict[str, float]:
     out["physics (2 steps, in process)"] = statistics.median(times) / 1e3
     out["arm side's work per message, in process"] = arm_side_work(arm, rates)
 
-    out["pipe round trip (bare)"] = pipe_round_trip(len(records))
-    out["pipe round trip, 300 µs of work each side"] = pipe_round_trip(len(records) // 2, 3e-4)
+    for link in links:
+        for name, value in link_ops(arm, link, len(records)).items():
+            out[f"{link}: {name}"] = value
+    for link in links:
+        out[f"{link} round trip (bare)"] = link_round_trip(link, len(records))
+        out[f"{link} round trip, 60 µs of work each side, less the work"] = \
+            link_round_trip(link, len(records), 6e-5)
     out["socket round trip (bare ZeroMQ)"] = echo_round_trip(len(records))
     return out
 
@@ -279,33 +340,70 @@ def arm_side_work(arm, rates: np.ndarray) -> float:
     return statistics.median(times) / 1e3
 
 
-def pipe_round_trip(n: int, work_s: float = 0.0) -> float:
-    """Median µs of a 120-byte message to a child and back over two pipes, both ends
-    blocking in read. With work_s, each side works that long between messages (busy, as
-    the control cycle and the physics do), so each message finds its reader asleep; the
-    result is the round trip less the two work periods: what waking a reader costs."""
-    to_child, from_child = os.pipe(), os.pipe()
-    child = subprocess.Popen([sys.executable, "-c", ECHO_CHILD, "pipe", str(to_child[0]),
-                              str(from_child[1]), repr(work_s)],
-                             pass_fds=(to_child[0], from_child[1]), env=child_env())
-    os.close(to_child[0])
-    os.close(from_child[1])
+def link_ops(arm, link: str, n: int) -> dict[str, float]:
+    """Median µs of each side's own message handling per cycle, both ends in this process
+    (nothing waits): here the rates encoded and sent and the state taken and decoded; at
+    the arm side the rates taken and decoded and the state encoded and sent."""
+    ours, child_ends = child_link(link)
+    client = PipeClient(ours, hello=hello_for(arm, "runtime", stale_after_s=3600.0))
+    server = PipeServer(arm_side_channel(link_spec(*child_ends)), n_joints=arm.n)
+    state = State(seq=1, t_ns=1, q=tuple(arm.home().tolist()), qd=(0.0,) * arm.n,
+                  applied_seq=1, echo_ns=0, status="tracking")
+    qd = np.full(arm.n, 0.1)
+    names = ("here: rates encoded and sent", "arm side: rates taken and decoded",
+             "arm side: state encoded and sent", "here: state taken and decoded")
+    times = {name: [] for name in names}
+    clock = time.perf_counter_ns
+    try:
+        for k in range(n):
+            t0 = clock()
+            client.send(Rates(seq=k + 1, t_ns=k, qd=qd))
+            t1 = clock()
+            server.drain()
+            t2 = clock()
+            server.send(PIPE_PEER, state)
+            t3 = clock()
+            client.messages()
+            t4 = clock()
+            for name, t in zip(names, (t1 - t0, t2 - t1, t3 - t2, t4 - t3)):
+                times[name].append(t)
+            if link == "shm" and k % 1000 == 999:   # the bells nobody waited for
+                server.poll(0.0)
+                client.poll(0.0)
+    finally:
+        client.close()
+        server.close()
+    return {name: statistics.median(t) / 1e3 for name, t in times.items()}
+
+
+def link_round_trip(link: str, n: int, work_s: float = 0.0) -> float:
+    """Median µs of a 120-byte message to a child and back over a lockstep link's own
+    channel code (`runtime.link.pipes.child_link`). With work_s, each side works that long
+    between messages (busy, as the control cycle and the physics do), so a waiting side
+    may have gone to sleep; the result is the round trip less the two work periods: what
+    the hand-over costs."""
+    channel, child_ends = child_link(link)
+    child = subprocess.Popen([sys.executable, "-c", ECHO_CHILD, "link",
+                              link_spec(*child_ends), repr(work_s)],
+                             pass_fds=child_ends, env=child_env())
+    for fd in child_ends:
+        os.close(fd)
     payload = b"x" * 120
     times = []
     try:
         for _ in range(n):
             t = time.perf_counter_ns()
-            os.write(to_child[1], payload)
-            os.read(from_child[0], 4096)
+            channel.send(payload)
+            while not channel.take():
+                channel.poll(10.0)
             times.append(time.perf_counter_ns() - t - int(work_s * 1e9))
             busy = time.perf_counter()
             while time.perf_counter() - busy < work_s:
                 pass
-        os.write(to_child[1], b"stop")
+        channel.send(b"stop")
     finally:
         child.wait(timeout=10)
-        os.close(to_child[1])
-        os.close(from_child[0])
+        channel.close()
     return statistics.median(times[100:]) / 1e3
 
 
@@ -340,40 +438,63 @@ def main() -> int:
     p.add_argument("--seconds", type=float, default=60.0, help="profile length (default 60)")
     p.add_argument("--cycles", type=int, default=5000,
                    help="cycles per component measurement (default 5000)")
+    p.add_argument("--links", default="shm,pipe",
+                   help="lockstep links to measure, the first being the one the "
+                        "components and the rerun use (default shm,pipe)")
     p.add_argument("--cell", metavar="NAME", help="also run the lag-1 preflight in this "
                                                   "workcell (e.g. bench)")
     p.add_argument("--only-cell", action="store_true",
                    help="with --cell: only the workcell comparison")
     args = p.parse_args()
+    links = args.links.split(",")
     if args.cell and args.only_cell:
         return bench_cell(args)
     print(f"load average at start: {load_average()}")
+    runs = {}
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        runs = {}
         for lag in (1, 0):
-            log, pre = bench_preflight(folder, args.seconds, lag, with_report=lag == 1)
-            runs[lag] = (log, pre)
-            print(f"preflight {ARM}, state lag {lag}: {pre['motion_s']:.1f} s of motion, "
-                  f"{pre['cycles']} cycles ({RATE_HZ:g} Hz, physics {STEP_HZ:g} Hz): run "
-                  f"{pre['run_s']:.2f} s = {pre['motion_s'] / pre['run_s']:.2f}x real time "
-                  f"({1e6 * pre['run_s'] / pre['cycles']:.0f} µs per cycle); verdict "
-                  f"{pre['verdict']}")
-        print(f"  the HTML report of the lag-1 run: {runs[1][1]['report_s']:.2f} s")
-        log = runs[1][0]
-        re = bench_rerun(log)
-        print(f"replay --rerun (open loop): {re['motion_s']:.1f} s session, {re['cycles']} "
-              f"cycles: read {re['read_s']:.2f} s, re-run {re['rerun_s']:.2f} s = "
-              f"{re['motion_s'] / (re['read_s'] + re['rerun_s']):.1f}x real time; largest "
-              f"difference {re['largest_difference']:g}")
-        parts = bench_components(log, args.cycles)
-    print("one preflight cycle, its parts (medians, µs):")
+            for link in links:
+                log, pre = bench_preflight(folder, args.seconds, lag,
+                                           with_report=(lag, link) == (1, links[0]), link=link)
+                runs[lag, link] = (log, pre)
+                cycles = pre["cycles"]
+                per_cycle = 1e6 * pre["run_s"] / cycles
+                loop = 1e6 * pre["loop_s"] / cycles
+                here_wait = 1e6 * pre["here_waited_s"] / cycles
+                there_work = 1e6 * pre["child_worked_s"] / cycles
+                print(f"preflight {ARM}, state lag {lag}, {link} link: {pre['motion_s']:.1f} s "
+                      f"of motion, {cycles} cycles ({RATE_HZ:g} Hz, physics {STEP_HZ:g} Hz): "
+                      f"run {pre['run_s']:.2f} s = {pre['motion_s'] / pre['run_s']:.2f}x real "
+                      f"time ({per_cycle:.0f} µs per cycle); verdict {pre['verdict']}; "
+                      f"load {load_average()}")
+                print(f"    the loop alone {loop:.0f} µs a cycle (starting the child and the "
+                      f"handshake: {pre['start_s']:.2f} s); per cycle here: working "
+                      f"{loop - here_wait:.0f} µs, waiting for the state {here_wait:.0f} µs; "
+                      f"in the child: working {there_work:.0f} µs, waiting or between "
+                      f"messages {loop - there_work:.0f} µs")
+        base = runs[1, links[0]][1]
+        for link in links[1:]:
+            for lag in (1, 0):
+                speed = runs[lag, link][1]["run_s"] / runs[lag, links[0]][1]["run_s"]
+                print(f"  lag {lag}: the {links[0]} link runs {speed:.2f}x as fast as the "
+                      f"{link} link (same run)")
+        print(f"  the HTML report of the lag-1 {links[0]} run: {base['report_s']:.2f} s")
+        log = runs[1, links[0]][0]
+        rerun = bench_rerun(log)
+        print(f"replay --rerun (open loop): {rerun['motion_s']:.1f} s session, "
+              f"{rerun['cycles']} cycles: read {rerun['read_s']:.2f} s, re-run "
+              f"{rerun['rerun_s']:.2f} s = "
+              f"{rerun['motion_s'] / (rerun['read_s'] + rerun['rerun_s']):.1f}x real time; "
+              f"largest difference {rerun['largest_difference']:g}; load {load_average()}")
+        parts = bench_components(log, args.cycles, links)
+    print(f"one preflight cycle, its parts (medians, µs; load {load_average()}):")
     for name, value in parts.items():
-        print(f"  {name:<46} {value:8.1f}")
+        print(f"  {name:<62} {value:8.1f}")
     period = 1e6 / RATE_HZ
     here = parts["control cycle"] + parts["bookkeeping (record built + encoded, trace)"]
     there = parts["arm side's work per message, in process"]
-    exchange = parts["lockstep exchange (pipe + child)"]
+    exchange = parts[f"lockstep exchange ({links[0]} + child)"]
     print(f"  work per cycle: here (control cycle + bookkeeping) {here:.0f} µs, at the arm "
           f"side {there:.0f} µs")
     print(f"  one after the other (lag 0: this work plus an exchange with the child) bounds "

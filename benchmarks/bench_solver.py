@@ -13,8 +13,11 @@ Both run call by call, interleaved (with jogwire's FK + Jacobian alone as a thir
 on the poses of a simulated jog (q += q̇·dt at 500 Hz; WORKLOADS below), so the machine's
 load hits all alike and the jogwire path sees damping and limits as they come in use;
 medians are also given per path (clear of limits and singularities, near a position limit,
-damped). Also times the candidate ways of getting σ_min (the choice made
-in runtime/control/solver.py).
+damped). Then the full solve split into its stages, each timed alone on the same poses,
+round-robin with the full solve (FK + J; σ_min and damping; the DLS solve; the null-space
+term; each limit; the clearance rows with a cell; what is left: checks, the result, calls).
+Also times the candidate ways of getting σ_min (the choice made in
+runtime/control/solver.py). Every figure is printed with the load average.
 
 Clearance (--cell, default the demo cell `bench`): the same solve with and without the
 velocity damper (runtime/control/clearance.py), interleaved at each pose of a jog that
@@ -28,6 +31,7 @@ inside the influence distance. Run from the repository root:
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import sys
 import tempfile
@@ -42,9 +46,13 @@ from runtime.arm.cell import load_cell
 from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian
 from runtime.arm.load import load_arm
 from runtime.arm.model import Arm
-from runtime.control.clearance import ClearanceLimit
-from runtime.control.limits import JointBounds, clear_of_limits
-from runtime.control.solver import _eigvalsh, _solve, solve
+from runtime.control.clearance import ClearanceGuard, ClearanceLimit
+from runtime.control.limits import (JointBounds, acceleration_step, apply_limits,
+                                    braking_factor, clear_of_limits, speed_factor, start_pose,
+                                    tcp_caps)
+from runtime.control.solver import (_REFINE_BELOW, _constants, _eigen_pinv_gram, _eigvalsh,
+                                    _identity, _resolve_at_limits, _solve, damping_squared,
+                                    solve)
 from sim.urdf import write_urdf
 
 DT_S = 0.002
@@ -106,9 +114,11 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
             reference(q, v)
     clock = time.perf_counter
     gesture = int(1.0 / DT_S)
+    inputs = []
     for k, v in enumerate(twists):
         if workload == "gestures" and k % gesture == 0:  # start at rest at the home pose
             q, prev = arm.home(), np.zeros(arm.n)
+        inputs.append((q, v, prev))
         t0 = clock()
         sol = solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
         t1 = clock()
@@ -124,7 +134,135 @@ def run(arm: Arm, urdf: Path, cycles: int, workload: str) -> dict[str, np.ndarra
         prev = sol.rates
         q = q + prev * DT_S
     return {"ours": ours, "theirs": theirs, "kinematics": kinematics, "paths": paths,
-            "binding": binding}
+            "binding": binding, "inputs": inputs, "load": load_average()}
+
+
+def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
+    """Median µs of each way to get σ_min (and what else it gives) on the arm's 6×n J."""
+    rng = np.random.default_rng(3)
+    Js = [geometric_jacobian(arm, rng.uniform(np.maximum(arm.lower, -3), np.minimum(arm.upper, 3)))
+          for _ in range(64)]
+    v = np.ones(6)
+    options = {
+        "svd(J), values only": lambda J: np.linalg.svd(J, compute_uv=False),
+        "svd(J), full": lambda J: np.linalg.svd(J, full_matrices=False),
+        "eigvalsh(JJᵀ)": lambda J: np.linalg.eigvalsh(J @ J.T),
+        "eigvalsh(JJᵀ) + solve": lambda J: (np.linalg.eigvalsh(G := J @ J.T),
+                                           np.linalg.solve(G, v)),
+        "eigh(JJᵀ)": lambda J: np.linalg.eigh(J @ J.T),
+        "chosen: eigvalsh(JJᵀ) + solve, numpy's gufuncs": lambda J: (_eigvalsh(G := J @ J.T),
+                                                                   _solve(G, v)),
+    }
+    times = {name: np.empty(repeat) for name in options}
+    clock = time.perf_counter
+    for k in range(repeat):  # round-robin, so the machine's load falls on all alike
+        J = Js[k % 64]
+        for name, f in options.items():
+            t0 = clock()
+            f(J)
+            times[name][k] = clock() - t0
+    return {name: float(np.median(t)) * 1e6 for name, t in times.items()}
+
+
+STAGES = ("full solve", "FK + Jacobian", "σ_min and damping (JJᵀ, eigenvalues, λ)",
+          "DLS solve of the task", "null-space term (centring, projected)",
+          "start pose + clear-of-limits check", "joint-limit re-solve (near a limit)",
+          "limit: joint speed", "limit: position brake (near a limit)",
+          "limit: TCP caps (J·q̇, linear, angular, reduced)", "limit: acceleration",
+          "clearance: distances and the damper's restriction",
+          "clearance: settled after the other limits")
+
+
+def stage_split(arm: Arm, inputs: list, limit: ClearanceLimit | None = None
+                ) -> dict[str, np.ndarray]:
+    """Each stage of `solve` timed alone on the cycle's inputs, right after the full solve
+    on them (µs; NaN where a stage does not run that cycle). The stages call what `solve`
+    calls, in its order (runtime/control/solver.py); the null-space term is timed as its
+    own solve here, where `solve` folds it into the task solve when λ = 0. With `limit`
+    (a cell), the full solve includes the clearance rows and so do the stages; the distances
+    are then measured at a pose the full solve has just measured (its far-away shortcut
+    applies as it would a cycle later, when the arm has hardly moved)."""
+    consts = _constants(arm)
+    b = consts.bounds
+    out = {name: np.full(len(inputs), np.nan) for name in STAGES}
+    clock = time.perf_counter
+    for k, (q, v, prev) in enumerate(inputs):
+        t0 = clock()
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
+        t1 = clock()
+        T, J = pose_and_jacobian(arm, q)
+        t2 = clock()
+        Jt, vt = (J, v) if consts.full_task else (J[arm.task_mask], v[arm.task_mask])
+        G = np.dot(Jt, Jt.T)
+        values = _eigvalsh(G).tolist()
+        smallest, largest = max(values[0], 0.0), max(values[-1], 0.0)
+        lam2 = damping_squared(math.sqrt(smallest), consts.threshold, consts.damping_max)
+        t3 = clock()
+        rates = np.dot(_solve(G + lam2 * _identity(len(G)), vt), Jt)
+        t4 = clock()
+        z = None
+        if consts.nullspace and Jt.shape[0] < consts.n:
+            z = (q - consts.mid) * consts.k_grad
+            Jz = np.dot(Jt, z)
+            regular = smallest > _REFINE_BELOW * largest
+            rates = rates + z - np.dot(_solve(G, Jz) if regular else
+                                       _eigen_pinv_gram(Jt, Jz, G), Jt)
+        t5 = clock()
+        q_start = start_pose(q, prev, DT_S, 1)
+        clear = clear_of_limits(b, q_start, DT_S)
+        t6 = clock()
+        if not clear:
+            rates = _resolve_at_limits(arm, q_start, Jt, vt, z, rates, 0.0, DT_S)[0]
+        t7 = clock()
+        speed_factor(b, rates)
+        t8 = clock()
+        if not clear:
+            braking_factor(b, q_start, rates, DT_S)
+        t9 = clock()
+        tcp_caps(arm, np.dot(J, rates), False)
+        t10 = clock()
+        acceleration_step(b, q_start, prev, rates, DT_S, clear=clear)
+        acceleration_s = clock() - t10
+        t10 = clock()
+        limited = apply_limits(arm, q_start, rates, J, prev_rates=prev, dt_s=DT_S, clear=clear)
+        t11 = clock()
+        if limit is not None:
+            guard = ClearanceGuard(limit, q, Jt, math.sqrt(lam2), rates)
+            t12 = clock()
+            guard.settle(limited)
+            t13 = clock()
+        nan = math.nan
+        row = (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4 if z is not None else nan,
+               t6 - t5, nan if clear else t7 - t6, t8 - t7, nan if clear else t9 - t8,
+               t10 - t9, acceleration_s, nan if limit is None else t12 - t11,
+               nan if limit is None else t13 - t12)
+        for name, value in zip(STAGES, row):
+            out[name][k] = value
+    return {name: t * 1e6 for name, t in out.items()}
+
+
+def print_split(split: dict[str, np.ndarray], what: str) -> None:
+    """The stages' medians, each over the cycles where it ran, and what they leave of the
+    full solve's median."""
+    full = float(np.nanmedian(split["full solve"]))
+    print(f"The full solve in stages, each timed alone on the same cycles ({what}; median µs "
+          f"over the cycles where the stage runs; load {load_average()}):")
+    total = 0.0
+    for name in STAGES:
+        t = split[name]
+        ran = ~np.isnan(t)
+        if not ran.any():
+            print(f"  {name:<52}      —   (not in this run)")
+            continue
+        median, share = float(np.median(t[ran])), float(ran.mean())
+        if name != "full solve":
+            total += median * share
+        print(f"  {name:<52} {median:6.1f}" + (f"   in {share:.0%} of cycles" if share < 1 else ""))
+    print(f"  {'rest: checks, the result, calls (full − stages)':<52} {full - total:6.1f}")
+
+
+def load_average() -> str:
+    return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
 def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
@@ -162,6 +300,7 @@ def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
     rng = np.random.default_rng(seed)
     hold = int(3.0 / DT_S)
     plain, guarded = np.empty(cycles), np.empty(cycles)
+    inputs = []
     near = np.zeros(cycles, dtype=bool)
     q, prev = arm.home(), np.zeros(arm.n)
     for v in jog_twists(200):  # warm-up
@@ -173,6 +312,7 @@ def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
             q, prev = arm.home(), np.zeros(arm.n)
             d = rng.normal(size=3) * (1.0, 1.0, 0.5) - (0.0, 0.0, 1.0)
             v = np.concatenate((0.3 * d / np.linalg.norm(d), rng.normal(size=3) * 0.2))
+        inputs.append((q, v, prev))
         t0 = clock()
         solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
         t1 = clock()
@@ -182,7 +322,8 @@ def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
         near[k] = sol.clearance.min_distance_m < cell.clearance.influence_distance_m
         prev = sol.rates
         q = q + prev * DT_S
-    return {"plain": plain, "guarded": guarded, "near": near}
+    return {"plain": plain, "guarded": guarded, "near": near, "inputs": inputs,
+            "limit": limit, "load": load_average()}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -203,7 +344,7 @@ def main(argv: list[str] | None = None) -> int:
           f"at {1 / DT_S:.0f} Hz (numpy {np.__version__}, Python {sys.version.split()[0]})")
     for workload, result in results.items():
         ours, theirs = result["ours"] * us, result["theirs"] * us
-        print(f"{workload}: {WORKLOADS[workload]}")
+        print(f"{workload}: {WORKLOADS[workload]} (load after it {result['load']})")
         rows = [("jogwire solve", ours), ("reference: pin J + numpy.linalg.solve DLS", theirs),
                 ("  (jogwire FK + Jacobian alone)", result["kinematics"] * us)]
         for name, t in rows:
@@ -219,19 +360,24 @@ def main(argv: list[str] | None = None) -> int:
         share = ", ".join(f"{k} {v / args.cycles:.0%}" for k, v in
                           sorted(result["binding"].items(), key=lambda kv: -kv[1]))
         print(f"  binding limit: {share}")
-    print("σ_min options on 6×n Jacobians (median µs):")
-    for name, t in sigma_min_options(arm, 5000).items():
+    print_split(stage_split(arm, results["wander"]["inputs"]),
+                "workload wander, no cell")
+    options = sigma_min_options(arm, 5000)
+    print(f"σ_min options on 6×n Jacobians (median µs; load {load_average()}):")
+    for name, t in options.items():
         print(f"  {name:<48} {t:6.1f}")
     cost = clearance_cost(arm, args.cell, args.cycles)
     plain, guarded, near = cost["plain"] * us, cost["guarded"] * us, cost["near"]
     print(f"Clearance in cell {args.cell} ({args.cycles} cycles; a pair inside d_i in "
-          f"{near.mean():.0%} of them):")
+          f"{near.mean():.0%} of them; load after it {cost['load']}):")
     for name, chosen in (("all cycles", np.ones_like(near)), ("a pair inside d_i", near),
                          ("nothing inside d_i", ~near)):
         if chosen.any():
             print(f"  {name:<20} solve median {np.median(plain[chosen]):6.1f} µs, with the "
                   f"cell {np.median(guarded[chosen]):6.1f} µs, added (median of per-cycle "
                   f"differences) {np.median(guarded[chosen] - plain[chosen]):6.1f} µs")
+    print_split(stage_split(arm, cost["inputs"], cost["limit"]),
+                f"the jog into cell {args.cell}")
     print(f"load average at the end {os.getloadavg()[0]:.2f}")
     return 0
 

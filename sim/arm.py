@@ -33,7 +33,7 @@ from runtime.arm.cell import load_cell
 from runtime.arm.load import load_arm
 from runtime.arm.model import Arm
 from runtime.errors import ConfigError, JogwireError
-from runtime.link.pipes import PipeServer, parse_link_spec
+from runtime.link.pipes import PipeServer, arm_side_channel
 from runtime.link.protocol import CellHello, hello_for
 from runtime.link.transport import DEFAULT_ARM_ENDPOINT, ArmServer, load_server_keys
 
@@ -302,7 +302,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="one step per received rates message, no pacing (deterministic)")
     p.add_argument("--link", metavar="fd:R,W",
                    help="with --lockstep: serve on the pipe ends R (read) and W (write) the "
-                        "parent passed in, instead of --endpoint (runtime/link/pipes.py)")
+                        "parent passed in, instead of --endpoint; shm:R,W,M: the frames in "
+                        "the shared memory M, the pipes as doorbell (runtime/link/pipes.py)")
     p.add_argument("--substeps", type=int, default=1, metavar="N",
                    help="with --lockstep: physics steps per rates message (default 1; e.g. "
                         "2 for a 500 Hz control rate on a 1 ms step)")
@@ -397,7 +398,7 @@ def serve(args: argparse.Namespace, arm: Arm, cell: SimCell | None = None) -> in
 
 def _server(args: argparse.Namespace, arm: Arm, keys) -> ArmServer | PipeServer:
     if args.link:
-        return PipeServer(*parse_link_spec(args.link), n_joints=arm.n)
+        return PipeServer(arm_side_channel(args.link), n_joints=arm.n, endpoint=args.link)
     return ArmServer(args.endpoint, n_joints=arm.n, keys=keys)
 
 

@@ -82,12 +82,25 @@ def guard_rates(arm: Arm, q: Vector, qd: Vector, dt: float) -> tuple[Vector, boo
     """
     qd = np.asarray(qd, dtype=np.float64)
     scale = 1.0
+    sqrt = math.sqrt
+    # min/max/abs written as comparisons: the same values, without a call each (this runs
+    # twice per lockstep cycle)
     for v, qi, lo, hi, vmax, a in zip(qd.tolist(), np.asarray(q).tolist(), *_limits(arm)):
         if v == 0.0:
             continue
-        d = max(hi - qi if v > 0.0 else qi - lo, 0.0)   # inf for an unlimited joint
-        bound = min(vmax, math.sqrt(2.0 * a * d), d / dt)
-        scale = min(scale, bound / abs(v))
+        d = hi - qi if v > 0.0 else qi - lo          # inf for an unlimited joint
+        if d < 0.0:
+            d = 0.0
+        bound = vmax                                 # min(vmax, √(2ad), d/dt)
+        braking = sqrt(2.0 * a * d)
+        if braking < bound:
+            bound = braking
+        one_step = d / dt
+        if one_step < bound:
+            bound = one_step
+        ratio = bound / (v if v > 0.0 else -v)
+        if ratio < scale:
+            scale = ratio
     if scale >= 1.0:
         return qd, False
     return qd * scale, True

@@ -65,6 +65,7 @@ class ArmEndpoint:
         self.late_steps = 0      # steps that started after their deadline (then caught up)
         self.overruns = 0        # stalls longer than CATCH_UP_S: simulated time fell behind
         self.send_failures = 0
+        self.worked_ns = 0       # lockstep: time spent on messages (not waiting for them)
 
     # -- one cycle -----------------------------------------------------------------------
 
@@ -113,6 +114,13 @@ class ArmEndpoint:
         times with the next rates and publish the state. True if stepped."""
         if not self.session.waiting and not self.server.poll(timeout_s):
             return False
+        started = time.perf_counter_ns()
+        try:
+            return self._serve_pending()
+        finally:
+            self.worked_ns += time.perf_counter_ns() - started
+
+    def _serve_pending(self) -> bool:
         now = self.clock_ns()
         self.receive(now)
         rates = self.session.take_pending(now)
@@ -163,9 +171,10 @@ class ArmEndpoint:
     def summary(self) -> str:
         dropped = self.server.dropped + self.session.dropped
         drops = ", ".join(f"{k} {v}" for k, v in sorted(dropped.items())) or "none"
+        worked = f", worked {self.worked_ns * 1e-9:.3f} s on messages" if self.worked_ns else ""
         return (f"{self.steps} steps, {self.late_steps} late, {self.overruns} overruns, "
                 f"{self.server.received} "
-                f"messages received, dropped: {drops}")
+                f"messages received, dropped: {drops}{worked}")
 
 
 class StopFlag:

@@ -33,7 +33,7 @@ from ..errors import ConfigError, TransportError
 from ..link.arm_process import snapshot_png
 from ..operator.terminal import format_table, json_safe
 from ..sessions.cell_check import CellRun, format_cell
-from ..sessions.lockstep import substeps_for
+from ..sessions.lockstep import LINKS, substeps_for
 from ..sessions.log_schema import SESSION_SUFFIX
 from ..sessions.preflight import PreflightResult
 from ..sessions.preflight_run import (
@@ -65,6 +65,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="how many cycles the measured pose each cycle works on lags "
                              "behind the arm: 1 (default) as over a real link, 0 for a link "
                              "without delay")
+    add_link_argument(parser)
     parser.add_argument("--reduced", action="store_true",
                         help="reduced speed locked on: TCP ≤ 0.25 m/s (ISO 10218-1)")
     parser.add_argument("--out", metavar="DIR", default=DEFAULT_OUT,
@@ -81,6 +82,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-clearance", action="store_true",
                         help="with --cell: leave the velocity damper out of the solve, to see "
                              "what the motion does without it")
+
+
+def add_link_argument(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--lockstep-link", choices=LINKS, default="auto",
+                        help="how messages cross to the simulated arm child: shm (shared "
+                             "memory, the pipes as doorbell), pipe, or auto (default: shm on "
+                             "x86-64 with two cores or more, else pipe). The motion and its "
+                             "log are the same either way")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -104,7 +113,8 @@ def run(args: argparse.Namespace) -> int:
     run_info = run_preflight(args.arm, arm, profile, settings, step_hz=args.step_hz,
                              log_path=out_dir / f"{stem}{SESSION_SUFFIX}",
                              cell=None if cell is None else CellRun(cell, args.cell,
-                                                                    not args.no_clearance))
+                                                                    not args.no_clearance),
+                             link=args.lockstep_link)
     result = run_info.result
     paths = {"session_log": str(run_info.log_path), "summary": str(out_dir / f"{stem}.json")}
     if not args.no_report:

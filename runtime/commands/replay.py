@@ -49,7 +49,7 @@ from ..link.arm_process import ArmProcess
 from ..link.protocol import hello_for
 from ..link.transport import ArmClient, load_client_keys
 from ..operator.terminal import format_table
-from ..sessions.lockstep import arm_file_for
+from ..sessions.lockstep import LINKS, arm_file_for
 from ..sessions.log_reader import Session, read_session
 from ..sessions.log_schema import CycleRecord
 from ..sessions.replay import ReplayLink, check_speed, check_start, paced_send, rerun_closed_loop
@@ -88,6 +88,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="send even if the target is not at the recorded start pose")
     parser.add_argument("--step-hz", type=float, default=1000.0, metavar="HZ",
                         help="physics step rate of the simulated arm (default 1000)")
+    parser.add_argument("--lockstep-link", choices=LINKS, default="auto",
+                        help="with --closed-loop: how messages cross to the simulated arm "
+                             "child: shm, pipe or auto (default; as `jogwire preflight`)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -162,7 +165,7 @@ def _rerun(args: argparse.Namespace, session: Session, records: Sequence[CycleRe
         result = rerun_closed_loop(settings, records, frames, arm,
                                    arm_spec=args.arm or arm_file_for(arm),
                                    step_hz=args.step_hz, label=Path(args.log).name,
-                                   cell=cell, cell_spec=cell_spec)
+                                   cell=cell, cell_spec=cell_spec, link=args.lockstep_link)
     else:
         cycle = settings.control_cycle(arm, cell)
         diff = rerun_open_loop(cycle, records, frames)

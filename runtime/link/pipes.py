@@ -6,16 +6,22 @@
 A lockstep run (preflight, closed-loop re-runs) is one rates message out and one state back
 per control cycle, between this process and a child it started itself. Over ZeroMQ every
 exchange wakes each side's I/O thread in both directions; over a pipe it is one write and
-one read a side (bare round trip measured here: ~17 µs for a pipe, ~130 µs for a ZeroMQ
-DEALER/ROUTER pair; benchmarks/RESULTS.md). Nothing else changes: the messages are the
-wire's own (`protocol.encode`/`decode`, the hello exchange included), each framed by its
-length as a 4-byte little-endian unsigned integer (docs/PROTOCOL.md, "Lockstep over pipes").
+one read a side. Nothing else changes: the messages are the wire's own
+(`protocol.encode`/`decode`, the hello exchange included) (docs/PROTOCOL.md, "Lockstep
+over pipes").
+
+The frames travel through a channel, one of two:
+- `PipeChannel`: in the pipes themselves, each framed by its length as a 4-byte
+  little-endian unsigned integer (`--link fd:R,W`);
+- `RingChannel` (runtime.link.shared_rings): in two rings of shared memory, the pipes beside
+  them ringing a bell per frame and telling the other process's end (`--link shm:R,W,M`).
+  Cheaper a hand-over; the runtime takes it where `shared_rings.usable()` says it works.
 
 The two classes offer what `ArmClient` and `ArmServer` offer the code that uses them
 (`send`, `receive`/`drain`, `poll`, `handshake`, `dropped`), so the arm side's serving loop
 and the lockstep runner do not know which link they have. A pipe is private to the two
-processes: no address, no keys. A pipe loses and reorders nothing, so there are no retries;
-its end (EOF, the other process gone) is reported, never waited out.
+processes: no address, no keys. Neither channel loses or reorders anything, so there are no
+retries; the pipe's end (EOF, the other process gone) is reported, never waited out.
 """
 
 from __future__ import annotations
@@ -28,6 +34,7 @@ from collections import Counter
 
 from ..errors import ProtocolError, TransportError
 from .protocol import MAX_MESSAGE_BYTES, Hello, Message, State, encode
+from .shared_rings import RingChannel, close_fds, create_memory
 from .transport import Inbox, check_answer, decode_counted
 
 PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers are identities)
@@ -41,25 +48,57 @@ _LENGTH = struct.Struct("<I")
 _READ_BYTES = 1 << 16
 
 
-def link_spec(read_fd: int, write_fd: int) -> str:
-    """How the child is told its ends: "fd:R,W" (read fd, write fd, in the child)."""
-    return f"fd:{read_fd},{write_fd}"
+def link_spec(read_fd: int, write_fd: int, memory_fd: int | None = None) -> str:
+    """How the child is told its ends: "fd:R,W" (read fd, write fd, in the child), or
+    "shm:R,W,M" when the frames go through shared rings in the memory M
+    (runtime.link.shared_rings) and the pipes only ring their bells."""
+    if memory_fd is None:
+        return f"fd:{read_fd},{write_fd}"
+    return f"shm:{read_fd},{write_fd},{memory_fd}"
 
 
-def parse_link_spec(spec: str) -> tuple[int, int]:
-    """(read fd, write fd) from "fd:R,W"; TransportError otherwise."""
+def parse_link_spec(spec: str) -> tuple[int, ...]:
+    """(read fd, write fd) from "fd:R,W", (read fd, write fd, memory fd) from
+    "shm:R,W,M"; TransportError otherwise."""
     try:
-        kind, fds = spec.split(":", 1)
-        read_fd, write_fd = (int(v) for v in fds.split(","))
+        kind, text = spec.split(":", 1)
+        fds = tuple(int(v) for v in text.split(","))
     except ValueError:
-        kind, read_fd, write_fd = "", -1, -1
-    if kind != "fd" or read_fd < 0 or write_fd < 0:
-        raise TransportError(f"a pipe link is given as fd:READ,WRITE, got {spec!r}")
-    return read_fd, write_fd
+        kind, fds = "", ()
+    if {"fd": 2, "shm": 3}.get(kind) != len(fds) or min(fds) < 0:
+        raise TransportError(f"a lockstep link is given as fd:READ,WRITE or "
+                             f"shm:READ,WRITE,MEMORY, got {spec!r}")
+    return fds
 
 
-class PipeEnd:
-    """One process's end of the link: frames out on one fd, frames in from another."""
+def child_link(kind: str) -> tuple["PipeChannel | RingChannel", tuple[int, ...]]:
+    """A new link to a child about to start: this process's channel ("pipe" or "shm"),
+    and the descriptors to pass to the child (`link_spec(*fds)` describes them; close
+    them here once the child has started: its exit then ends our reads)."""
+    to_child, from_child = os.pipe(), os.pipe()
+    child_ends: tuple[int, ...] = (to_child[0], from_child[1])
+    if kind != "shm":
+        return PipeChannel(from_child[0], to_child[1]), child_ends
+    memory_fd = create_memory()
+    channel = RingChannel(from_child[0], to_child[1], memory_fd, arm_side=False)
+    return channel, child_ends + (memory_fd,)
+
+
+def arm_side_channel(spec: str) -> "PipeChannel | RingChannel":
+    """The child's end of the link its parent described in `spec` (see link_spec)."""
+    fds = parse_link_spec(spec)
+    if len(fds) == 3:
+        read_fd, write_fd, memory_fd = fds
+        channel = RingChannel(read_fd, write_fd, memory_fd, arm_side=True)
+        os.close(memory_fd)                 # mapped now
+        return channel
+    return PipeChannel(*fds)
+
+
+class PipeChannel:
+    """Frames over the two pipes themselves, each payload after its length."""
+
+    kind = "pipe"
 
     def __init__(self, read_fd: int, write_fd: int, *, spin_s: float = SPIN_S) -> None:
         self.read_fd, self.write_fd = read_fd, write_fd
@@ -70,7 +109,7 @@ class PipeEnd:
         self.dropped: Counter[str] = Counter()
         self.received = 0
 
-    def send_frame(self, payload: bytes) -> bool:
+    def send(self, payload: bytes) -> bool:
         """Write one frame, whole; False if the other end is gone. (A write waits only when
         the pipe's buffer, 64 KiB on Linux, is full: a lockstep peer reads every message.)"""
         data = memoryview(_LENGTH.pack(len(payload)) + payload)
@@ -97,7 +136,7 @@ class PipeEnd:
                 select.select([self.read_fd], [], [], deadline - now)
         return True
 
-    def frames(self) -> list[bytes]:
+    def take(self) -> list[bytes]:
         """Every whole frame that has arrived (without waiting); oversized ones are
         counted in `dropped` and skipped."""
         if not self.ended:
@@ -133,26 +172,52 @@ class PipeEnd:
         self.buffer += chunk
         return True
 
+    def close(self) -> None:
+        close_fds(self.read_fd, self.write_fd)
+        self.read_fd = self.write_fd = -1
+        self.ended = True
+
+
+class PipeEnd:
+    """One process's end of the link: the wire's messages through a channel (the pipes
+    themselves, or shared rings beside them)."""
+
+    def __init__(self, channel: PipeChannel | RingChannel) -> None:
+        self.channel = channel
+        self.dropped = channel.dropped      # the channel counts `oversize`, decoding the rest
+
+    @property
+    def ended(self) -> bool:
+        return self.channel.ended
+
+    @property
+    def received(self) -> int:
+        return self.channel.received
+
+    def send_frame(self, payload: bytes) -> bool:
+        return self.channel.send(payload)
+
+    def poll(self, timeout_s: float) -> bool:
+        return self.channel.poll(timeout_s)
+
+    def frames(self) -> list[bytes]:
+        return self.channel.take()
+
     def decode(self, payload: bytes, n_joints: int | None) -> Message | ProtocolError:
         return decode_counted(payload, n_joints, self.dropped)
 
     def close(self) -> None:
-        for fd in (self.read_fd, self.write_fd):
-            try:
-                os.close(fd)
-            except OSError:
-                pass
-        self.read_fd = self.write_fd = -1
-        self.ended = True
+        self.channel.close()
 
 
 class PipeServer(PipeEnd):
     """The arm side of a pipe link: the drop-in for `ArmServer` in `sim.endpoint`."""
 
-    def __init__(self, read_fd: int, write_fd: int, *, n_joints: int) -> None:
-        super().__init__(read_fd, write_fd)
+    def __init__(self, channel: PipeChannel | RingChannel, *, n_joints: int,
+                 endpoint: str = "") -> None:
+        super().__init__(channel)
         self.n_joints = n_joints
-        self.endpoint = link_spec(read_fd, write_fd)
+        self.endpoint = endpoint or channel.kind   # the link spec, in the ready line
 
     def drain(self) -> list[tuple[bytes, Message | ProtocolError]]:
         """Everything waiting, decoded, from the one peer; malformed ones counted."""
@@ -173,9 +238,9 @@ class PipeClient(PipeEnd):
     """The runtime's end of a pipe link to a child it started: the drop-in for `ArmClient`
     in a lockstep run."""
 
-    def __init__(self, read_fd: int, write_fd: int, *, hello: Hello,
+    def __init__(self, channel: PipeChannel | RingChannel, *, hello: Hello,
                  endpoint: str = "the arm side's pipe") -> None:
-        super().__init__(read_fd, write_fd)
+        super().__init__(channel)
         self.hello = hello
         self.n_joints = len(hello.joints)
         self.endpoint = endpoint

@@ -6,8 +6,9 @@
               └──────────── state (q, q̇) after them ◄──┘
 
 `runtime` never imports the simulator: the arm runs in a child process and every cycle is
-one round trip over a pair of pipes (`runtime.link.pipes`: the wire's messages, a
-seventh of a loopback socket's round trip; docs/PROTOCOL.md, "Lockstep mode"). One rates
+one round trip over a pair of pipes (`runtime.link.pipes`: the wire's messages, in the pipes
+or, where two cores allow, in shared-memory rings beside them; docs/PROTOCOL.md, "Lockstep
+over pipes"). One rates
 message advances `substeps` physics steps, so a 500 Hz cycle on a 1 ms physics step is two
 steps per message. The run is deterministic: the next rates go out only after the state
 whose `applied_seq` is the last rates' `seq` has come back, and each cycle's time is the
@@ -37,7 +38,8 @@ from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
 from ..control.intent import InputFrame
 from ..errors import ConfigError, TransportError
 from ..link.arm_process import ArmProcess
-from ..link.pipes import PipeClient, link_spec
+from ..link import shared_rings
+from ..link.pipes import PipeClient, child_link, link_spec
 from ..link.protocol import (
     CellHello,
     Contact,
@@ -57,6 +59,21 @@ Vector = NDArray[np.float64]
 LOCKSTEP_STALE_AFTER_S = 3600.0
 ANSWER_TIMEOUT_S = 10.0     # no state this long after a rates message: the child is gone
 CELL_ANSWER_TIMEOUT_S = 5.0  # no answer to our workcell this long: the child reports no contacts
+LINKS = ("auto", "shm", "pipe")
+
+
+def link_kind(choice: str) -> str:
+    """The link a lockstep run takes: "shm" (frames through shared rings, the pipes as
+    doorbell) where `shared_rings.usable()`, "pipe" otherwise; or the one asked for.
+    ConfigError if shared rings are asked for where they do not work."""
+    if choice not in LINKS:
+        raise ConfigError(f"the lockstep link is one of {', '.join(LINKS)}, got {choice!r}",
+                          field="lockstep-link")
+    why_not = shared_rings.usable() if choice != "pipe" else None
+    if choice == "shm" and why_not:
+        raise ConfigError(f"no shared-memory lockstep link here: {why_not}",
+                          field="lockstep-link")
+    return "pipe" if choice == "pipe" or why_not else "shm"
 
 
 def substeps_for(rate_hz: float, step_hz: float) -> int:
@@ -126,20 +143,19 @@ class LockstepSim:
     cell_spec, cell: the workcell the child loads (a shipped name or a file) and our
     `CellHello` for it: the child then holds its objects and reports contacts, and
     `arm_cell` is its answer (None: it reports no contacts).
+    link: "auto", "shm" or "pipe" (`link_kind`); the one taken is in `link`.
     """
 
     def __init__(self, arm_spec: str, arm: Arm, *, rate_hz: float, step_hz: float,
                  start_q: Sequence[float] | None = None, cell_spec: str | None = None,
-                 cell: CellHello | None = None, ready_timeout_s: float = 30.0) -> None:
+                 cell: CellHello | None = None, ready_timeout_s: float = 30.0,
+                 link: str = "auto") -> None:
         self.arm = arm
         self.substeps = substeps_for(rate_hz, step_hz)
         self.step_s = 1.0 / step_hz
-        # Two pipes: ours to write rates into and the child's to write states into.
-        to_child, from_child = os.pipe(), os.pipe()
-        child_ends = (to_child[0], from_child[1])
-        options = ["--lockstep", "--link", link_spec(*child_ends), "--step-hz",
-                   repr(float(step_hz)), "--substeps", str(self.substeps), "--stale-after",
-                   repr(LOCKSTEP_STALE_AFTER_S)]
+        self.link = link_kind(link)
+        options = ["--lockstep", "--step-hz", repr(float(step_hz)), "--substeps",
+                   str(self.substeps), "--stale-after", repr(LOCKSTEP_STALE_AFTER_S)]
         if start_q is not None:
             q0 = np.asarray(start_q, dtype=float)
             if q0.shape != (arm.n,) or not np.all(np.isfinite(q0)):
@@ -149,12 +165,16 @@ class LockstepSim:
             options.append("--q=" + ",".join(repr(float(v)) for v in q0))
         if cell_spec is not None:
             options += ["--cell", cell_spec]
+        # Two pipes, ours to write rates into and the child's to write states into; with
+        # shared rings, the frames go through the memory and the pipes ring the bells.
+        channel, child_ends = child_link(self.link)
+        options += ["--link", link_spec(*child_ends)]
         self.seq = 0
         self.states: deque[State] = deque()    # arrived, not yet waited for
         self.contacts: dict[int, Contact] = {}  # by the seq of the state they go with
         self.arm_cell: CellHello | None = None
         self.client: PipeClient | None = PipeClient(
-            from_child[0], to_child[1], endpoint="the simulated arm's pipe",
+            channel, endpoint=f"the simulated arm's {self.link} link",
             hello=hello_for(arm, "runtime", stale_after_s=LOCKSTEP_STALE_AFTER_S))
         try:
             # Its own session: a Ctrl-C reaches only us, and we end the child in order.

@@ -110,9 +110,11 @@ def preflight_settings(*, rate_hz: float, reduced: bool, state_lag: int) -> RunS
 
 def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettings, *,
                   step_hz: float, log_path: Path,
-                  progress: Progress | None = None, cell: CellRun | None = None
-                  ) -> PreflightRun:
+                  progress: Progress | None = None, cell: CellRun | None = None,
+                  link: str = "auto") -> PreflightRun:
     """Run `profile` on the simulated arm in lockstep, record it, evaluate it.
+
+    link: how the messages cross to the child (`lockstep.link_kind`).
 
     settings.state_lag_cycles: cycles the measured pose lags behind the arm
     (`lockstep.run_closed_loop`; None counts as 1).
@@ -139,7 +141,8 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
     wall0 = time.perf_counter()
     with LockstepSim(arm_spec, arm, rate_hz=rate_hz, step_hz=step_hz,
                      start_q=profile.start_q, cell_spec=None if cell is None else cell.spec,
-                     cell=None if cell is None else cell_hello_for(cell.cell)) as sim, \
+                     cell=None if cell is None else cell_hello_for(cell.cell),
+                     link=link) as sim, \
             SessionRecorder.start(log_path, arm, header, started_at=started_at,
                                   queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)

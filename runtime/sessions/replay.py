@@ -37,10 +37,10 @@ SPIN_S = 3e-4               # sleep until this long before a send, then spin (lo
 def rerun_closed_loop(settings: CycleSettings, records: Sequence[CycleRecord],
                       frames: Sequence[InputFrame], arm: Arm, *, arm_spec: str,
                       step_hz: float, label: str, cell: Cell | None = None,
-                      cell_spec: str | None = None) -> dict[str, Any]:
+                      cell_spec: str | None = None, link: str = "auto") -> dict[str, Any]:
     """The recorded inputs through today's cycle in lockstep with the simulated arm
-    (loading `arm_spec`, in `cell` loaded from `cell_spec` if any): per joint the largest
-    rate difference and pose deviation."""
+    (loading `arm_spec`, in `cell` loaded from `cell_spec` if any, over `link`:
+    `lockstep.link_kind`): per joint the largest rate difference and pose deviation."""
     cycle = settings.control_cycle(arm, cell)
     inputs = RecordedInputs(records, frames, cycle.dt_s)
     n_cycles = len(records)
@@ -52,7 +52,7 @@ def rerun_closed_loop(settings: CycleSettings, records: Sequence[CycleRecord],
     start_q = recorded_q[0] if records[0].q else None
     with LockstepSim(arm_spec, arm, rate_hz=settings.run.rate_hz, step_hz=step_hz,
                      start_q=start_q, cell_spec=cell_spec,
-                     cell=None if cell is None else cell_hello_for(cell)) as sim:
+                     cell=None if cell is None else cell_hello_for(cell), link=link) as sim:
         for c in run_closed_loop(cycle, sim, inputs.frame_at, n_cycles,
                                  state_lag=settings.run.effective_state_lag):
             rates[c.k] = c.out.rates

@@ -1,5 +1,6 @@
-"""The lockstep simulated arm child (`sim.arm --lockstep --link fd:R,W`) and its pipe link:
-a deterministic run, and what either side does when the other one goes."""
+"""The lockstep simulated arm child (`sim.arm --lockstep --link fd:R,W` or `shm:R,W,M`) and
+its link, the frames in the pipes or in shared rings: a deterministic run, the same poses
+over either, and what either side does when the other one goes."""
 
 from __future__ import annotations
 
@@ -22,6 +23,11 @@ def arm():
     return load_arm("elbow6")
 
 
+@pytest.fixture(params=["pipe", "shm"])
+def link(request):
+    return request.param
+
+
 def drive(sim: LockstepSim, n: int, ahead: bool) -> np.ndarray:
     """n cycles of a slow sweep; `ahead`: the next rates go out before the last state is
     collected (as a lag-1 run does). Returns the poses after each cycle."""
@@ -41,17 +47,20 @@ def drive(sim: LockstepSim, n: int, ahead: bool) -> np.ndarray:
 
 
 def test_the_same_rates_give_the_same_poses_sent_ahead_or_not(arm) -> None:
-    """Physics steps once per message, in order, whether or not the runtime waited."""
-    with LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0) as a:
+    """Physics steps once per message, in order, whether or not the runtime waited, and
+    whichever channel carries the frames."""
+    with LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0, link="pipe") as a:
+        assert a.link == "pipe"
         waited = drive(a, 200, ahead=False)
-    with LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0) as b:
+    with LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0, link="shm") as b:
+        assert b.link == "shm"
         ahead = drive(b, 200, ahead=True)
     assert np.abs(waited[-1] - arm.home()).max() > 0.01     # it moved
     np.testing.assert_array_equal(waited, ahead)            # bit for bit
 
 
-def test_the_child_ends_when_the_runtime_closes_the_link(arm) -> None:
-    sim = LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0)
+def test_the_child_ends_when_the_runtime_closes_the_link(arm, link) -> None:
+    sim = LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0, link=link)
     try:
         sim.step(np.zeros(arm.n))
         sim.client.close()            # as if this process died: the pipe's ends close
@@ -64,8 +73,8 @@ def test_the_child_ends_when_the_runtime_closes_the_link(arm) -> None:
         sim.close()
 
 
-def test_a_child_killed_mid_run_is_an_error_at_once_with_its_status(arm) -> None:
-    with LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0) as sim:
+def test_a_child_killed_mid_run_is_an_error_at_once_with_its_status(arm, link) -> None:
+    with LockstepSim("elbow6", arm, rate_hz=500.0, step_hz=1000.0, link=link) as sim:
         sim.step(np.zeros(arm.n))
         os.kill(sim.child.pid, signal.SIGKILL)
         started = time.monotonic()

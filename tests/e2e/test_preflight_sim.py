@@ -312,3 +312,25 @@ def test_a_session_log_is_a_profile(case, reduced_run, tmp_path, capsys):
     assert again["tcp_peak_speed"] == pytest.approx(first["tcp_peak_speed"], rel=1e-12)
     assert np.allclose([j["peak_speed"] for j in again["joints"]],
                        [j["peak_speed"] for j in first["joints"]], rtol=1e-12, atol=0)
+
+
+def test_either_lockstep_link_gives_the_same_verdict_and_log(case, tmp_path, capsys):
+    """The messages cross to the child through shared rings or through the pipes alone
+    (--lockstep-link): the summary (all but timing and file names) and every cycle record
+    (all but the wall time of its computation) are the same, byte for byte."""
+    import msgpack
+    from runtime.sessions.log_reader import read_session
+    arm, profile = case
+    runs = {}
+    for link in ("shm", "pipe"):
+        code, summary = preflight(capsys, str(arm), str(profile), "--out",
+                                  str(tmp_path / link), "--no-report", "--lockstep-link", link)
+        records = [r.to_wire() for r in read_session(summary["files"]["session_log"]).records]
+        for r in records:
+            r.pop("compute_s")
+        timing = ("started_at", "wall_s", "real_time_factor", "files")
+        runs[link] = (code, {k: v for k, v in summary.items() if k not in timing},
+                      [msgpack.packb(r) for r in records])
+    assert runs["shm"][0] == runs["pipe"][0] == 1
+    assert runs["shm"][1] == runs["pipe"][1]
+    assert len(runs["shm"][2]) > 1000 and runs["shm"][2] == runs["pipe"][2]
