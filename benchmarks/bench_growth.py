@@ -30,11 +30,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from runtime.arm.cell import load_cell  # noqa: E402
 from runtime.arm.kinematics import pose_and_jacobian  # noqa: E402
-from runtime.control.clearance import ClearanceLimit  # noqa: E402
-from runtime.errors import ConfigError  # noqa: E402
 from runtime.arm.load import load_arm  # noqa: E402
 from runtime.arm.model import Arm  # noqa: E402
+from runtime.control.clearance import ClearanceLimit  # noqa: E402
 from runtime.control.solver import solve  # noqa: E402
+from runtime.errors import ConfigError  # noqa: E402
 
 JOINT_COUNTS = (3, 6, 7, 12, 24)
 CELL_SIZES = (0, 5, 20, 50)

@@ -58,6 +58,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from collections import Counter  # noqa: E402
 
+import runtime.sessions.preflight_run as preflight_run  # noqa: E402
 from runtime.arm.cell import load_cell
 from runtime.arm.load import load_arm
 from runtime.arm.model import configs_dir
@@ -65,13 +66,18 @@ from runtime.control.cycle import ControlCycle  # noqa: E402
 from runtime.control.pads import load_pad  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402
 from runtime.link.arm_process import child_env  # noqa: E402
-from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer,  # noqa: E402
-                                arm_side_channel, child_link, link_spec)
+from runtime.link.pipes import (  # noqa: E402
+    PIPE_PEER,
+    PipeClient,
+    PipeServer,
+    arm_side_channel,
+    child_link,
+    link_spec,
+)
 from runtime.link.protocol import Rates, State, decode, encode, hello_for  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
 from runtime.sessions.cell_check import CellRun
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
-import runtime.sessions.preflight_run as preflight_run  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
 from runtime.sessions.log_schema import (
     cycle_record,  # noqa: E402

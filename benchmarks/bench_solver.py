@@ -47,12 +47,27 @@ from runtime.arm.kinematics import geometric_jacobian, pose_and_jacobian
 from runtime.arm.load import load_arm
 from runtime.arm.model import Arm
 from runtime.control.clearance import ClearanceGuard, ClearanceLimit
-from runtime.control.limits import (JointBounds, acceleration_step, apply_limits,
-                                    braking_factor, clear_of_limits, speed_factor, start_pose,
-                                    tcp_caps)
-from runtime.control.solver import (_REFINE_BELOW, _constants, _eigen_pinv_gram, _eigvalsh,
-                                    _identity, _resolve_at_limits, _solve, damping_squared,
-                                    solve)
+from runtime.control.limits import (
+    JointBounds,
+    acceleration_step,
+    apply_limits,
+    braking_factor,
+    clear_of_limits,
+    speed_factor,
+    start_pose,
+    tcp_caps,
+)
+from runtime.control.solver import (
+    _REFINE_BELOW,
+    _constants,
+    _eigen_pinv_gram,
+    _eigvalsh,
+    _identity,
+    _resolve_at_limits,
+    _solve,
+    damping_squared,
+    solve,
+)
 from sim.urdf import write_urdf
 
 DT_S = 0.002

@@ -37,8 +37,8 @@ from ..arm.model import Arm, configs_dir, limits_digest
 from ..control.cycle import STATE_LAGS, ControlCycle, CycleOutput
 from ..control.intent import InputFrame
 from ..errors import ConfigError, TransportError
-from ..link.arm_process import ArmProcess
 from ..link import shared_rings
+from ..link.arm_process import ArmProcess
 from ..link.pipes import PipeClient, child_link, link_spec
 from ..link.protocol import (
     CellHello,

@@ -319,6 +319,7 @@ def test_either_lockstep_link_gives_the_same_verdict_and_log(case, tmp_path, cap
     (--lockstep-link): the summary (all but timing and file names) and every cycle record
     (all but the wall time of its computation) are the same, byte for byte."""
     import msgpack
+
     from runtime.sessions.log_reader import read_session
     arm, profile = case
     runs = {}

@@ -16,8 +16,15 @@ import pytest
 from runtime.arm.load import load_arm
 from runtime.errors import ModelMismatch, TransportError
 from runtime.link import shared_rings
-from runtime.link.pipes import (PIPE_PEER, PipeClient, PipeServer, arm_side_channel,
-                                child_link, link_spec, parse_link_spec)
+from runtime.link.pipes import (
+    PIPE_PEER,
+    PipeClient,
+    PipeServer,
+    arm_side_channel,
+    child_link,
+    link_spec,
+    parse_link_spec,
+)
 from runtime.link.protocol import MAX_MESSAGE_BYTES, Hello, Rates, Refuse, State, encode, hello_for
 
 N = 3
