@@ -78,6 +78,10 @@ def synthetic_block(k0: int, rng: np.random.Generator, n_joints: int) -> CycleBl
         "state_age_s": (np.ones(BLOCK, dtype=bool), 1e-3 + rng.normal(0, 1e-5, BLOCK)),
         "overrun_streak": np.zeros(BLOCK, dtype=np.int64),
         "safety_state": Strings(np.zeros(BLOCK, dtype="<u4"), ("moving",)),
+        # a session without a workcell: no clearance measured
+        "min_clearance_m": (np.zeros(BLOCK, dtype=bool), np.zeros(BLOCK)),
+        "clearance_arm": Strings(np.zeros(BLOCK, dtype="<u4"), (None,)),
+        "clearance_other": Strings(np.zeros(BLOCK, dtype="<u4"), (None,)),
     }
     return CycleBlock(BLOCK, cols)
 

@@ -37,7 +37,8 @@ imports `sim` only to time the physics and the arm side's work alone.
                  the verdict's distances at every measured pose), against the run without
                  it from the same invocation; and the physics step with and without it
 
-    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--cell bench] [--links shm,pipe]
+    python benchmarks/bench_preflight.py [--seconds 60] [--cycles 5000] [--cell bench]
+                                         [--links shm,pipe]
 """
 
 from __future__ import annotations

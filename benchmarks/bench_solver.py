@@ -280,33 +280,6 @@ def load_average() -> str:
     return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
-def sigma_min_options(arm: Arm, repeat: int) -> dict[str, float]:
-    """Median µs of each way to get σ_min (and what else it gives) on the arm's 6×n J."""
-    rng = np.random.default_rng(3)
-    Js = [geometric_jacobian(arm, rng.uniform(np.maximum(arm.lower, -3), np.minimum(arm.upper, 3)))
-          for _ in range(64)]
-    v = np.ones(6)
-    options = {
-        "svd(J), values only": lambda J: np.linalg.svd(J, compute_uv=False),
-        "svd(J), full": lambda J: np.linalg.svd(J, full_matrices=False),
-        "eigvalsh(JJᵀ)": lambda J: np.linalg.eigvalsh(J @ J.T),
-        "eigvalsh(JJᵀ) + solve": lambda J: (np.linalg.eigvalsh(G := J @ J.T),
-                                           np.linalg.solve(G, v)),
-        "eigh(JJᵀ)": lambda J: np.linalg.eigh(J @ J.T),
-        "chosen: eigvalsh(JJᵀ) + solve, numpy's gufuncs": lambda J: (_eigvalsh(G := J @ J.T),
-                                                                   _solve(G, v)),
-    }
-    times = {name: np.empty(repeat) for name in options}
-    clock = time.perf_counter
-    for k in range(repeat):  # round-robin, so the machine's load falls on all alike
-        J = Js[k % 64]
-        for name, f in options.items():
-            t0 = clock()
-            f(J)
-            times[name][k] = clock() - t0
-    return {name: float(np.median(t)) * 1e6 for name, t in times.items()}
-
-
 def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
                    ) -> dict[str, np.ndarray]:
     """Per cycle: solve time without and with the cell, and whether a pair was inside d_i."""

@@ -9,9 +9,10 @@ finds its reader asleep costs a wake-up (tens to hundreds of µs on a virtual ma
 than either side's work. Here each direction is a ring of SLOTS frames in memory both
 processes map (a memfd passed like the pipe ends: no name, nothing left behind by a killed
 process; a named `multiprocessing.shared_memory` segment would need removing, and in Python
-3.11 the attaching child's resource tracker would remove it when the child exits). The writer copies the frame into the next slot and then stores the count of
-frames written; the reader reads that count first, copies the frame out and then stores the
-count it has taken. A reader that waits polls the count: BUSY_S without pause, then until
+3.11 the attaching child's resource tracker would remove it when the child exits). The
+writer copies the frame into the next slot and then stores the count of frames written;
+the reader reads that count first, copies the frame out and then stores the count it has
+taken. A reader that waits polls the count: BUSY_S without pause, then until
 `spin_s` yielding its core to anything runnable between looks; then it sleeps in `select`
 on its pipe. The pipe's end (EOF) still says the other process is gone, at once.
 
