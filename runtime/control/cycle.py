@@ -63,6 +63,7 @@ class ControlCycle:
         self.clearance = None if cell is None else ClearanceLimit.of(arm, cell)
         self.mapper = Mapper(pad, arm, reduced_locked=settings.reduced_locked)
         self.gate = SafetyGate(settings.safety())
+        self._last_now_s: float | None = None    # the previous cycle's time (s)
         self.prev_rates = np.zeros(arm.n)
 
     def step(self, frame: InputFrame, now_s: float, q: Vector | None,
@@ -75,6 +76,7 @@ class ControlCycle:
             default 0.0 is a link without delay (preflight's lockstep, re-runs).
         hold: a reason from the caller that forbids motion (target not ready, …).
         """
+        step_s = self._step_s(now_s)
         intent = self.mapper.update(frame)
         verdict = self.gate.update(now_s, enable=intent.enable, stop=intent.stop,
                                    reset=intent.reset, present=intent.present,
@@ -85,24 +87,34 @@ class ControlCycle:
             self.prev_rates = np.zeros(self.arm.n)
             return CycleOutput(self.prev_rates, intent, verdict, None)
         if intent.mode == "joint":
-            solution = self._jog_joint(q, intent)
+            solution = self._jog_joint(q, intent, step_s)
         else:
             solution = solve(self.arm, q, intent.twist, frame=intent.frame,
                              locked=self.locked, reduced=intent.reduced,
                              prev_rates=self.prev_rates, dt_s=self.dt_s,
                              state_lag_cycles=self.state_lag_cycles,
-                             clearance=self.clearance)
+                             clearance=self.clearance, step_s=step_s)
         self.prev_rates = solution.rates
         return CycleOutput(solution.rates, intent, verdict, solution)
 
-    def _jog_joint(self, q: Vector, intent: Intent) -> Solution:
+    def _step_s(self, now_s: float) -> float:
+        """The time since the last cycle when it is shorter than a period (a cycle that
+        catches up after a late one), else the period: what the acceleration limit holds
+        over, so that an arm applying each command on arrival never sees more than
+        max_accel. A fixed-rate run (preflight, re-runs at t = k·dt) always gets dt."""
+        last, self._last_now_s = self._last_now_s, now_s
+        if last is None or not 0.0 < now_s - last < self.dt_s * (1.0 - 1e-9):
+            return self.dt_s      # (a clock that did not move is no shorter cycle)
+        return now_s - last
+
+    def _jog_joint(self, q: Vector, intent: Intent, step_s: float) -> Solution:
         """Single-joint jog: one joint's rate, through the same limits as a Cartesian move."""
         rates = np.zeros(self.arm.n)
         rates[intent.joint] = intent.joint_rate
         pose = analyse_pose(self.arm, q)
         q_start = start_pose(q, self.prev_rates, self.dt_s, self.state_lag_cycles)
         limited = apply_limits(self.arm, q_start, rates, pose.jacobian, reduced=intent.reduced,
-                               prev_rates=self.prev_rates, dt_s=self.dt_s)
+                               prev_rates=self.prev_rates, dt_s=self.dt_s, step_s=step_s)
         return Solution(
             rates=limited.rates, damping=0.0, sigma_min=float(pose.singular_values[-1]),
             manipulability=pose.manipulability, commanded_twist=pose.jacobian @ rates,

@@ -34,9 +34,11 @@ wins, because the cap is the operator's protection and the ramp only the drive's
 and a position limit against the ramp (the arm ran further than commanded: the position
 wins, because a joint past its soft limit is closer to a hard stop).
 
-The acceleration bound is per control period (nominal dt): the change between two
-consecutive commands, over dt. An arm that applies each command for one period sees exactly
-that; the statistics (runtime/sessions/stats.py) judge commanded accelerations the same way.
+The acceleration bound is per control period, or per the real time since the last command
+where that was shorter (`step_s`: a cycle catching up after a late one), so an arm that
+applies each command on arrival never sees more than max_accel; the statistics
+(runtime/sessions/stats.py) judge commanded accelerations the same way. The braking curves
+keep the nominal period.
 
 Small vectors (n ≤ ~10) make numpy's per-call overhead (~1 µs) the cost, so the per-joint
 loops and reductions below run on Python floats; the vector arithmetic stays in numpy.
@@ -294,7 +296,8 @@ def rate_bounds(bounds: JointBounds, q: Vector, dt_s: float) -> tuple[Vector, Ve
 
 
 def acceleration_step(bounds: JointBounds, q: Vector, prev: Vector, target: Vector,
-                      dt_s: float, *, clear: bool, start: float = 1.0) -> tuple[Vector, float]:
+                      dt_s: float, *, clear: bool, start: float = 1.0,
+                      step_s: float | None = None) -> tuple[Vector, float]:
     """This cycle's rates on the way from `prev` (last cycle's, within the speed limits) to
     `target` (within every velocity-level limit), and the fraction of that step taken.
 
@@ -320,21 +323,27 @@ def acceleration_step(bounds: JointBounds, q: Vector, prev: Vector, target: Vect
     start·prev, with s the largest value that keeps the whole change from prev within
     ±a_i·dt. If even s = 0 cannot (reduced speed switched on while moving fast), the cap
     wins and the change exceeds a_i·dt.
+
+    `step_s` ≤ dt is the time since the last command went out when that is shorter than a
+    period (a cycle that follows a late one): the change is then held to a_i·step_s, so an
+    arm that applies each command as it arrives never sees more than max_accel. The
+    position bounds stay those of the nominal period.
     """
+    step_s = dt_s if step_s is None else step_s
     delta = target - prev
-    worst = _worst_ratio(delta, bounds.inv_accel) / dt_s
+    worst = _worst_ratio(delta, bounds.inv_accel) / step_s
     if worst <= 1.0:
         return target, 1.0
     s = 1.0 / worst
     if not clear and _box_entry(bounds, q, prev, delta, dt_s) > s:
         lo, hi = rate_bounds(bounds, q, dt_s)
-        return _per_joint_step(bounds, prev, target, lo, hi, dt_s)
+        return _per_joint_step(bounds, prev, target, lo, hi, step_s)
     if start >= 1.0:
         return prev + s * delta, s
     origin = prev * start
     step = target - origin
     s = min(1.0, max(0.0, min(
-        ((a * dt_s - math.copysign(1.0, d) * c) / abs(d) for a, c, d in
+        ((a * step_s - math.copysign(1.0, d) * c) / abs(d) for a, c, d in
          zip(bounds.accel.tolist(), (prev * (start - 1.0)).tolist(), step.tolist()) if d != 0.0),
         default=1.0)))
     return origin + s * step, s
@@ -387,7 +396,8 @@ def tcp_caps(arm: Arm, twist: Vector, reduced: bool) -> tuple[float, float, floa
 
 def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                  reduced: bool = False, prev_rates: Vector | None = None,
-                 dt_s: float, clear: bool | None = None) -> Limited:
+                 dt_s: float, clear: bool | None = None,
+                 step_s: float | None = None) -> Limited:
     """Bring `rates` (the solver's joint rates) within every limit of `arm`.
 
     q is the pose where the rates start to act (`start_pose`: the measured pose moved on by
@@ -398,8 +408,10 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
     one-off query such as `jogwire probe`) and skips the acceleration limit; the control
     loop starts from zeros. Returns the limited rates, their TCP twist and the factor of each
     limit (1.0 when it did not bind), named as in SCALE_NAMES. `clear` is
-    `clear_of_limits(…)` if the caller has it already.
+    `clear_of_limits(…)` if the caller has it already. `step_s`: the time since the last
+    command when shorter than dt_s (`acceleration_step`); None: a full period.
     """
+    step_s = dt_s if step_s is None else step_s
     b = JointBounds.of(arm)
     if clear is None:
         clear = clear_of_limits(b, q, dt_s)
@@ -421,13 +433,14 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
         if _worst_ratio(prev, b.inv_speed) > 1.0:
             prev = np.minimum(np.maximum(prev, -b.speed), b.speed)
         target = r
-        r, f_acc = acceleration_step(b, q, prev, target, dt_s, clear=clear)
+        r, f_acc = acceleration_step(b, q, prev, target, dt_s, clear=clear, step_s=step_s)
         if f_acc < 1.0:
             # prev was capped at last cycle's pose; here it may be over a cap (the pose moved,
             # or reduced speed was just switched on): start the step from it brought within.
             start = math.prod(tcp_caps(arm, np.dot(J, prev), reduced))
             if start < 1.0:
-                r, f_acc = acceleration_step(b, q, prev, target, dt_s, clear=clear, start=start)
+                r, f_acc = acceleration_step(b, q, prev, target, dt_s, clear=clear, start=start,
+                                             step_s=step_s)
             twist = np.dot(J, r)
             # Safety net (per-joint steps, round-off): the cap outranks the ramp.
             g_lin, g_ang, g_red = tcp_caps(arm, twist, reduced)
@@ -438,7 +451,7 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
                 f_lin, f_ang, f_red = f_lin * g_lin, f_ang * g_ang, f_red * g_red
             # 1e-9: distances to a limit are differences of positions of a few rad, so the
             # braking curve carries round-off of ~1e-12 relative to a·dt near the limit
-            if _worst_ratio(r - prev, b.inv_accel) > dt_s * (1.0 + 1e-9):
+            if _worst_ratio(r - prev, b.inv_accel) > step_s * (1.0 + 1e-9):
                 capped = start < 1.0 or g < 1.0
                 conflicts = ("tcp_cap_over_acceleration" if capped else
                              "position_over_acceleration",)

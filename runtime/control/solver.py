@@ -352,7 +352,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
           locked: tuple[str, ...] = (), reduced: bool = False,
           prev_rates: Vector | None = None, dt_s: float,
           state_lag_cycles: int = 1,
-          clearance: ClearanceLimit | None = None) -> Solution:
+          clearance: ClearanceLimit | None = None, step_s: float | None = None) -> Solution:
     """Joint rates that move the TCP as `twist` asks, within every limit of `arm`.
 
     q           measured joint positions (n,), rad or m
@@ -366,6 +366,8 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
                 judged from where the arm will be when these rates act (`start_pose`)
     clearance   the arm's collision model in a cell: the velocity damper keeps every pair
                 clear (runtime.control.clearance); None: no cell
+    step_s      the time since the last command, when shorter than dt_s (a cycle after a
+                late one): the acceleration limit holds over it (limits.acceleration_step)
 
     Never raises or returns NaN for finite inputs of the right shapes (exact singularities
     and zero twists included). Wrong shapes, non-finite values, an unknown frame or axis
@@ -408,7 +410,7 @@ def solve(arm: Arm, q: Vector, twist: Vector, *, frame: str = "base",
         guard = ClearanceGuard(clearance, q, Jt, damping, rates)
         rates = guard.rates
     limited = apply_limits(arm, q_start, rates, J, reduced=reduced, prev_rates=prev_rates,
-                           dt_s=dt_s, clear=clear)
+                           dt_s=dt_s, clear=clear, step_s=step_s)
     if guard is not None:
         limited = guard.settle(limited)
     # Tracking error over the task rows; norms are the same in base and tool axes.

@@ -5,10 +5,12 @@
 accelerations here, so the three agree on every peak and speak one vocabulary:
 
 - A **commanded acceleration** is the change between two consecutive cycles' rates over
-  the *nominal* control period: |q̇_k − q̇_{k−1}|·rate_hz. That is the bound the limit
-  layer keeps (runtime/control/limits.py: |Δq̇_i| ≤ max_accel_i·dt per period), so a
-  session that kept its limits never shows a peak above max_accel, however the loop's
-  timing jittered. Cycles missing from a log (a gap) pair with nothing.
+  the control period, or over the real time between them where that was shorter (a
+  cycle that caught up after a late one): |q̇_k − q̇_{k−1}| / min(dt, t_k − t_{k−1}). That
+  is what an arm applying each command on arrival sees, and the bound the limit layer
+  keeps (runtime/control/limits.py, `acceleration_step`: |Δq̇_i| ≤ max_accel_i·step),
+  so a session that kept its limits never shows a peak above max_accel, however the
+  loop's timing jittered. Cycles missing from a log (a gap) pair with nothing.
 - A **stop** is a cycle where motion was not allowed (enable released, stop pressed, the
   safety gate blocked, the link was lost) after a cycle that moved. jogwire sends zero at
   once and leaves the braking to the arm side (docs/SAFETY.md, "Stops"), so the step to
@@ -83,7 +85,8 @@ class MotionStats:
         self.peak_accel = np.zeros(n)
         self.peak_accel_t = np.full(n, math.nan)
         self.stops: list[Stop] = []
-        self._last: tuple[int, Vector, bool, float] | None = None  # cycle, rates, allowed, tcp
+        # cycle, rates, allowed, TCP speed and time of the last cycle taken
+        self._last: tuple[int, Vector, bool, float, float] | None = None
         self._pending: list[tuple[int, float, Vector, bool, str, float]] = []
 
     PENDING_MAX = 128
@@ -121,30 +124,40 @@ class MotionStats:
         speed = np.abs(rates)
         _update_peaks(self.peak_speed, self.peak_speed_t, speed, t)
         if self._last is not None:
-            c0, r0, a0, v0 = self._last
+            c0, r0, a0, v0, t0 = self._last
+            prev_t = np.concatenate(([t0], t[:-1]))
             prev_cycle = np.concatenate(([c0], cycle[:-1]))
             prev_rates = np.vstack((r0, rates[:-1]))
             prev_moving = np.concatenate(([bool(r0.any())], rates[:-1].any(axis=1)))
             prev_tcp = np.concatenate(([v0], tcp_speed[:-1]))
         else:
+            prev_t = np.concatenate(([t[0] - 1.0 / self.rate_hz], t[:-1]))
             prev_cycle = np.concatenate(([cycle[0] - 1], cycle[:-1]))
             prev_rates = np.vstack((np.zeros(rates.shape[1]), rates[:-1]))
             prev_moving = np.concatenate(([False], rates[:-1].any(axis=1)))
             prev_tcp = np.concatenate(([0.0], tcp_speed[:-1]))
         paired = cycle - prev_cycle == 1
         step = np.abs(rates - prev_rates) * self.rate_hz
+        # Over the real spacing where a cycle came early (after a late one): what an arm
+        # that applies each command on arrival sees; the limit layer holds the same bound
+        # (control.limits.acceleration_step's step_s).
+        dt = 1.0 / self.rate_hz
+        spacing = t - prev_t
+        early = (spacing > 0.0) & (spacing < dt * (1.0 - 1e-9))
+        over = np.where(early, dt / np.where(early, spacing, dt), 1.0)
+        change = step * over[:, None]
         stop = paired & ~allowed & prev_moving
         counted = paired & ~stop
-        accel[counted] = step[counted]
+        accel[counted] = change[counted]
         if counted.any():
-            _update_peaks(self.peak_accel, self.peak_accel_t, step[counted], t[counted])
+            _update_peaks(self.peak_accel, self.peak_accel_t, change[counted], t[counted])
         for k in np.flatnonzero(stop).tolist():
             worst = int(np.argmax(step[k] * self.inv_accel))
             self.stops.append(Stop(t_s=float(t[k]), tcp_speed=float(prev_tcp[k]),
                                    reason=str(reasons[k]), joint=self.joint_names[worst],
                                    asked_decel=float(step[k, worst])))
         self._last = (int(cycle[-1]), rates[-1].copy(), bool(allowed[-1]),
-                      float(tcp_speed[-1]))
+                      float(tcp_speed[-1]), float(t[-1]))
         return accel
 
 

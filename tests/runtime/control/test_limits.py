@@ -162,6 +162,22 @@ def test_single_joint_brakes_to_its_limit_and_never_passes() -> None:
     assert trace[-1] == pytest.approx(b.high[0], abs=1e-4)  # it does get there
 
 
+def test_a_cycle_that_comes_early_changes_the_rates_by_max_accel_over_its_real_spacing(
+        ) -> None:
+    # A cycle 0.7 ms after the last (catching up after a late one, 2 ms period): the change
+    # is held to a·0.7 ms, so an arm applying each command on arrival never sees more than
+    # max_accel (elementary kinematics: Δv = a·Δt); a full period allows a·dt as before.
+    arm = ARMS["elbow6"]
+    b = JointBounds.of(arm)
+    q, J = arm.home(), geometric_jacobian(arm, arm.home())
+    target = 0.5 * b.speed
+    early = apply_limits(arm, q, target, J, prev_rates=np.zeros(6), dt_s=0.002, step_s=0.0007)
+    assert (np.abs(early.rates) <= b.accel * 0.0007 * (1 + TOL)).all()
+    assert np.isclose(np.abs(early.rates) / (b.accel * 0.0007), 1.0).any()
+    full = apply_limits(arm, q, target, J, prev_rates=np.zeros(6), dt_s=0.002)
+    np.testing.assert_allclose(full.rates, early.rates * (0.002 / 0.0007), rtol=1e-12)
+
+
 def test_acceleration_step_ramps_up_and_down_at_max_accel() -> None:
     # Start from rest and stop to rest: every joint's change per cycle ≤ a·dt, and the
     # direction of the change is kept (one fraction for the whole vector).

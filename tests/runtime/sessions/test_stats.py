@@ -59,3 +59,17 @@ def test_one_cycle_at_a_time_gives_what_chunks_give(chunk):
     for name in ("peak_speed", "peak_speed_t", "peak_accel", "peak_accel_t"):
         assert getattr(single, name) == pytest.approx(getattr(whole, name), nan_ok=True), name
     assert single.stops == whole.stops
+
+
+def test_a_cycle_that_came_early_is_judged_over_the_real_spacing():
+    # Hand arithmetic: at 100 Hz a change of 0.01 rad/s is 1.0 rad/s² over the 10 ms
+    # period; cycle 2 came 4 ms after cycle 1 (catching up after a late one), so its change
+    # of 0.01 is 0.01 / 0.004 = 2.5 rad/s² as an arm applying it on arrival sees it. Cycle 1
+    # came late (16 ms): still judged over the period, 1.0 rad/s².
+    m = MotionStats(NAMES, MAX_ACCEL, RATE_HZ)
+    t = np.array([0.0, 0.016, 0.020, 0.030])
+    rates = np.array([[0.0, 0.0], [0.01, 0.0], [0.02, 0.0], [0.03, 0.0]])
+    accel = m.add(np.arange(4), t, rates, np.ones(4, dtype=bool), ["moving"] * 4,
+                  np.zeros(4))
+    assert accel[1:, 0] == pytest.approx([1.0, 2.5, 1.0])
+    assert m.peak_accel[0] == pytest.approx(2.5) and m.peak_accel_t[0] == pytest.approx(0.020)
