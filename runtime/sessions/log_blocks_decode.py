@@ -55,8 +55,9 @@ def decode_block(m: Mapping[str, Any]) -> CycleBlock:
 
 
 def parse_block(m: Mapping[str, Any]) -> ParsedBlock:
-    """Check a block map down to every column's sizes and codes; LogError says what is
-    wrong. Columns of a type this version does not know are skipped."""
+    """Check a block map: inflate it, read its layout, and check each column's size,
+    type, delta, stride and text tables (not its values: `decode_blocks` checks those).
+    LogError says what is wrong. Columns of a type this version does not know are skipped."""
     n = m.get("count")
     if type(n) is not int or not 0 <= n <= MAX_BLOCK_ROWS:
         raise LogError(f"implausible row count {n!r}")
