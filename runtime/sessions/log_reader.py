@@ -271,13 +271,13 @@ class SessionReader:
         """Decode checked blocks together; drop malformed cycles and report gaps."""
         try:
             block = decode_blocks([p for _, p in run])
-        except Exception:  # noqa: BLE001 - checked blocks decode; if not, one at a time
+        except Exception as exc:  # noqa: BLE001 - a malformed block: find it, skip it
             if len(run) > 1:
                 for one in run:
                     yield from self._decode_run([one])
                 return
-            self._problem(BAD_RECORD, run[0][0], "a cycle block that cannot be decoded; "
-                          "skipped")
+            self._problem(BAD_RECORD, run[0][0], f"a cycle block that cannot be decoded "
+                          f"({exc}); skipped")
             return
         offsets = np.repeat([o for o, _ in run], [p.n for _, p in run])
         keep = _good_rows(block, self.header.arm.n)

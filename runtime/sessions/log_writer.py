@@ -2,9 +2,10 @@
 
 The control loop calls `SessionRecorder.record(rec)`, which only appends to a bounded
 queue and never blocks. A background thread wakes every `flush_interval_s`, encodes what is
-queued and writes it with unbuffered writes, so after a crash or kill -9 the file holds
-everything up to at most one flush interval before the end. Disk errors stop the recorder
-(`failed` says why) and never reach the loop.
+queued as one block of columns (format 2, `log_blocks`) and writes it with an unbuffered
+write, so after a crash or kill -9 the file holds everything up to at most one flush
+interval before the end. Disk errors stop the recorder (`failed` says why) and never reach
+the loop.
 
 Why frames and not plain concatenated msgpack: a torn tail is detectable either way, but
 a damaged byte in the middle of a plain stream either decodes into a silently wrong value

@@ -59,7 +59,8 @@ class Distribution:
             scaled = (np.log(np.maximum(values, 0.0) / self.LOWEST_S)
                       / np.log1p(self.RELATIVE_WIDTH))
         index = np.where(values > 0.0, np.clip(np.floor(scaled), 0, self.BINS) + 1, 0)
-        np.add.at(self.counts, index.astype(np.int64), 1)
+        bins, counts = np.unique(index.astype(np.int64), return_counts=True)
+        self.counts[bins] += counts
         self.n += values.size
         self.total += float(values.sum())
         top = float(values.max())

@@ -110,6 +110,27 @@ def test_filters_are_for_folders(folder: Path, capsys) -> None:
     assert "[since]" in capsys.readouterr().err
 
 
+def test_rows_are_cached_until_a_log_changes(folder: Path, tmp_path: Path, monkeypatch) -> None:
+    import shutil
+
+    import runtime.sessions.catalog as cat
+    d = tmp_path / "copy"
+    shutil.copytree(folder, d)
+    (d / cat.CACHE_NAME).unlink(missing_ok=True)
+    first = catalog(d)
+    assert (d / cat.CACHE_NAME).exists()
+    read = []
+    real = cat.summarise
+    monkeypatch.setattr(cat, "summarise", lambda p: read.append(Path(p).name) or real(p))
+    assert catalog(d) == first and read == []                     # all from the cache
+    os.utime(d / "b.jwlog", ns=(1, 1))                             # b changed
+    assert catalog(d) == first and read == ["b.jwlog"]
+    (d / cat.CACHE_NAME).write_text("{not json")                   # a broken cache is ignored
+    assert catalog(d) == first and len(read) == 4
+    assert json.loads((d / cat.CACHE_NAME).read_text())["sessions"].keys() == \
+        {"a.jwlog", "b.jwlog", "c.jwlog"}                          # unreadable: not cached
+
+
 # ----------------------------------------------------------------------------------------
 # Cycle table exports
 # ----------------------------------------------------------------------------------------
