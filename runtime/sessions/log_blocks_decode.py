@@ -1,10 +1,8 @@
 """Decoding cycle blocks (session format 2), many at a time.
 
-`parse_block` checks one block map (inflates it, reads its layout, checks every column's
-size, type, delta, stride and text tables) without touching the values; `decode_blocks`
-checks the rest as it decodes (row lengths add up, dictionary codes in range) and raises
-LogError, and the reader then decodes that run block by block, so a malformed block is
-refused on its own. `decode_blocks` then decodes a run of parsed blocks
+`parse_block` checks one block map completely (inflates it, reads its layout, checks every
+column's size, row lengths, strides and dictionary codes) without decoding the values, so a
+damaged block is refused on its own. `decode_blocks` then decodes a run of parsed blocks
 together: each column of all of them in a few numpy calls (the deltas are undone with one
 running XOR or sum over the run, corrected at each block's start), which is what lets
 `jogwire inspect` read an hour-long log in seconds. The input column (msgpack) is decoded
@@ -59,8 +57,8 @@ class Part:
 
     n: int
     desc: Mapping[str, Any]
-    head: bytes | memoryview     # flags, row lengths or codes before the values, or b""
-    values: bytes | memoryview   # eight-byte values (deltas in byte planes) or flags, or b""
+    head: bytes          # flags, row lengths or codes before the eight-byte values, or b""
+    values: bytes        # the values: eight-byte (deltas in byte planes) or flags, or b""
     stride: int
 
 
@@ -76,9 +74,8 @@ def decode_block(m: Mapping[str, Any]) -> CycleBlock:
 
 
 def parse_block(m: Mapping[str, Any]) -> ParsedBlock:
-    """Check a block map: inflate it, read its layout, and check each column's size,
-    type, delta, stride and text tables (not its values: `decode_blocks` checks those).
-    LogError says what is wrong. Columns of a type this version does not know are skipped."""
+    """Check a block map down to every column's sizes and codes; LogError says what is
+    wrong. Columns of a type this version does not know are skipped."""
     n = m.get("count")
     if type(n) is not int or not 0 <= n <= MAX_BLOCK_ROWS:
         raise LogError(f"implausible row count {n!r}")
@@ -92,12 +89,11 @@ def parse_block(m: Mapping[str, Any]) -> ParsedBlock:
     if not isinstance(described, list) or not all(isinstance(d, dict) for d in described):
         raise LogError("block layout is not a list of column maps")
     parts = {}
-    view = memoryview(body)
     for desc in described:
         size = desc.get("size")
         if type(size) is not int or size < 0 or at + size > len(body):
             raise LogError(f"column {desc.get('name')!r}: size {size!r} beyond the block")
-        chunk, at = view[at:at + size], at + size      # a view: no copy
+        chunk, at = body[at:at + size], at + size
         kind = desc.get("type")
         if isinstance(kind, str) and kind in _PARSERS and isinstance(desc.get("name"), str):
             parts[desc["name"]] = _PARSERS[kind](chunk, n, desc)
@@ -183,29 +179,30 @@ def _parse_bool(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Part:
 def _parse_str(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Part:
     table = desc.get("values")
     _need(isinstance(table, list), desc, "no table of values")
-    _check_texts(desc, [table])
-    _need(len(chunk) == 4 * n, desc, f"{len(chunk)} bytes for {n} codes")
-    return Part(n, desc, chunk, b"", 1)         # codes checked when decoded
-
-
-def _check_texts(desc: Mapping[str, Any], tables: list[Any]) -> None:
     try:
-        for table in tables:
-            check_table(desc["name"], table)
+        check_table(desc["name"], table)
     except TypeError as exc:
         raise LogError(str(exc)) from None
+    _need(len(chunk) == 4 * n, desc, f"{len(chunk)} bytes for {n} codes")
+    _codes_in_range(chunk, len(table), desc)
+    return Part(n, desc, chunk, b"", 1)
+
+
+def _codes_in_range(chunk: bytes, size: int, desc: Mapping[str, Any]) -> None:
+    codes = np.frombuffer(chunk, _u4)
+    _need(not codes.size or int(codes.max()) < size, desc, "codes out of range")
 
 
 def _parse_list(item: int):
-    """Row lengths, then values; that the lengths add up is checked when decoded."""
     def parse(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Part:
-        _need(len(chunk) >= 4 * n and (len(chunk) - 4 * n) % item == 0, desc,
-              f"{len(chunk)} bytes do not hold {n} row lengths and whole values")
-        values = chunk[4 * n:]
+        _need(len(chunk) >= 4 * n, desc, f"too short for {n} row lengths")
+        total = int(np.frombuffer(chunk[:4 * n], _u4).sum(dtype=np.int64))
+        rest = chunk[4 * n:]
+        _need(len(rest) == item * total, desc, f"{len(rest)} bytes for {total} values")
         if item == 8:
             _delta(desc)
-            return Part(n, desc, chunk[:4 * n], values, _stride(desc, len(values) // 8))
-        return Part(n, desc, chunk[:4 * n], values, 1)
+            return Part(n, desc, chunk[:4 * n], rest, _stride(desc, total))
+        return Part(n, desc, chunk[:4 * n], rest, 1)
     return parse
 
 
@@ -213,12 +210,20 @@ def _parse_map(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Part:
     keys = desc.get("keys")
     _need(isinstance(keys, list) and all(isinstance(k, list) for k in keys), desc,
           "no table of key lists")
-    _check_texts(desc, keys)
-    _need(len(chunk) >= 4 * n and (len(chunk) - 4 * n) % 8 == 0, desc,
-          f"{len(chunk)} bytes do not hold {n} codes and whole values")
+    assert isinstance(keys, list)                  # (as _need checked)
+    try:
+        for names in keys:
+            check_table(desc["name"], names)
+    except TypeError as exc:
+        raise LogError(str(exc)) from None
+    _need(len(chunk) >= 4 * n, desc, f"too short for {n} codes")
+    _codes_in_range(chunk[:4 * n], len(keys), desc)
+    widths = np.array([len(k) for k in keys] or [0], dtype=np.int64)
+    total = int(widths[np.frombuffer(chunk[:4 * n], _u4)].sum())
+    rest = chunk[4 * n:]
+    _need(len(rest) == 8 * total, desc, f"{len(rest)} bytes for {total} values")
     _delta(desc)
-    values = chunk[4 * n:]
-    return Part(n, desc, chunk[:4 * n], values, _stride(desc, len(values) // 8))
+    return Part(n, desc, chunk[:4 * n], rest, _stride(desc, total))
 
 
 def _parse_objects(chunk: bytes, n: int, desc: Mapping[str, Any]) -> Part:
@@ -289,17 +294,7 @@ def _decode_str(parts: Sequence[Part]) -> Strings:
 
 def _decode_map(parts: Sequence[Part]) -> KeyedFloats:
     codes, keys = _recoded(parts, "keys", tuple)
-    flat = eight_values(parts, np.float64)
-    widths = np.array([len(k) for k in keys] or [0], dtype=np.int64)
-    if int(widths[codes].sum()) != flat.size:
-        raise LogError(f"the rows' keys do not match the {flat.size} values")
-    return KeyedFloats(codes, keys, flat)
-
-
-def _ragged(lengths: np.ndarray, flat: np.ndarray) -> Ragged:
-    if int(lengths.sum(dtype=np.int64)) != flat.size:
-        raise LogError(f"row lengths add up to {int(lengths.sum())}, not {flat.size} values")
-    return Ragged(lengths, flat)
+    return KeyedFloats(codes, keys, eight_values(parts, np.float64))
 
 
 _DECODE = {
@@ -308,8 +303,8 @@ _DECODE = {
     F8_OPT: lambda parts: (_heads(parts, np.uint8) != 0, eight_values(parts, np.float64)),
     BOOL: lambda parts: _heads(parts, np.uint8) != 0,
     STR: _decode_str,
-    F8_LIST: lambda parts: _ragged(_heads(parts, _u4), eight_values(parts, np.float64)),
-    BOOL_LIST: lambda parts: _ragged(
+    F8_LIST: lambda parts: Ragged(_heads(parts, _u4), eight_values(parts, np.float64)),
+    BOOL_LIST: lambda parts: Ragged(
         _heads(parts, _u4),
         np.concatenate([np.frombuffer(p.values, np.uint8) for p in parts]) != 0 if parts
         else np.zeros(0, bool)),
