@@ -38,18 +38,19 @@ __all__ = ["arm_from_toml", "load_arm", "resolve_arm_path", "resolve_shipped"]
 
 
 
-def resolve_shipped(kind: str, name_or_path: str | Path, suffixes: tuple[str, ...] = (".toml",)
-                    ) -> Path:
+def resolve_shipped(kind: str, name_or_path: str | Path, suffixes: tuple[str, ...] = (".toml",),
+                    folder_name: str | None = None) -> Path:
     """A shipped config name (`elbow6` under configs/arms/, for kind "arm") or a file path.
 
     A name with one of `suffixes`, or any existing path, is taken as a path; otherwise the
-    name is looked up as configs/<kind>s/<name>.toml and an unknown name lists the shipped
-    ones.
+    name is looked up as configs/<folder_name>/<name>.toml (folder_name: "<kind>s" unless
+    given) and an unknown name lists the shipped ones. The one lookup for arms, cells, pads
+    and scripts.
     """
     p = Path(name_or_path)
     if p.suffix in suffixes or p.exists():
         return p
-    folder = configs_dir() / f"{kind}s"
+    folder = configs_dir() / (folder_name or f"{kind}s")
     shipped = folder / f"{name_or_path}.toml"
     if shipped.exists():
         return shipped

@@ -10,8 +10,8 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Any
 
+from ..arm.load import resolve_shipped
 from ..arm.model import FRAMES, TASK_AXES, configs_dir
-from ..errors import ConfigError
 from ..tomlsource import TomlSource, finite_number, read_toml, reject_unknown
 from .intent import Button
 from .shaping import CURVES, Shaping
@@ -92,14 +92,8 @@ def pad_names() -> list[str]:
 
 
 def resolve_pad_path(name_or_path: str | Path) -> Path:
-    p = Path(name_or_path)
-    if p.suffix == ".toml" or p.exists():
-        return p
-    shipped = configs_dir() / "pads" / f"{name_or_path}.toml"
-    if shipped.exists():
-        return shipped
-    raise ConfigError(f"no pad mapping named {str(name_or_path)!r}; shipped: "
-                      f"{', '.join(pad_names())}", field="pad")
+    """A shipped pad mapping's name (configs/pads/) or a .toml path."""
+    return resolve_shipped("pad", name_or_path)
 
 
 def load_pad(name_or_path: str | Path) -> PadMapping:

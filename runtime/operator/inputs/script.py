@@ -32,9 +32,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from ...arm.load import resolve_shipped
 from ...arm.model import ANGLE_UNITS, FRAMES, Arm, configs_dir
 from ...control.intent import DirectCommand, InputFrame
-from ...errors import ConfigError
 from ...tomlsource import TomlSource, finite_number, read_toml, reject_unknown
 
 _RELEASED = DirectCommand(enable=False)
@@ -73,14 +73,8 @@ def profile_names() -> list[str]:
 
 
 def resolve_script_path(name_or_path: str | Path) -> Path:
-    p = Path(name_or_path)
-    if p.suffix == ".toml" or p.exists():
-        return p
-    shipped = configs_dir() / "profiles" / f"{name_or_path}.toml"
-    if shipped.exists():
-        return shipped
-    raise ConfigError(f"no script named {str(name_or_path)!r}; shipped: "
-                      f"{', '.join(profile_names())}", field="script")
+    """A shipped script's name (configs/profiles/, shared with preflight) or a .toml path."""
+    return resolve_shipped("script", name_or_path, folder_name="profiles")
 
 
 def load_script(name_or_path: str | Path, arm: Arm | None = None) -> Script:
