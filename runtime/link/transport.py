@@ -378,7 +378,22 @@ def check_answer(inbox: Inbox, mine: Hello, endpoint: str) -> Hello | None:
     return inbox.hello
 
 
-class ArmClient(_Socket):
+class _Sender(_Socket):
+    """A socket that sends to one peer (or all): never blocks, counts what could not go."""
+
+    send_dropped = 0
+
+    def send(self, msg: Message) -> bool:
+        """Send without blocking; False (and counted in send_dropped) if it could not go."""
+        try:
+            self.socket.send(encode(msg), zmq.NOBLOCK)
+            return True
+        except zmq.Again:
+            self.send_dropped += 1
+            return False
+
+
+class ArmClient(_Sender):
     """The runtime's socket to the arm side (DEALER, connects). Say `handshake` first.
 
     Each client has a random identity, so the arm side knows it across TCP reconnects. If the
@@ -394,7 +409,6 @@ class ArmClient(_Socket):
         self.identity = os.urandom(16)
         self.rehello_s = rehello_s
         self.clock = clock
-        self.send_dropped = 0
         self._last_hello = -float("inf")
         self._hello_sent = False
         super().__init__(zmq.DEALER, endpoint, bind=False, keys=keys)
@@ -402,15 +416,6 @@ class ArmClient(_Socket):
     def _configure(self, s: zmq.Socket) -> None:
         s.setsockopt(zmq.IMMEDIATE, 1)    # queue only to a live connection
         s.setsockopt(zmq.ROUTING_ID, self.identity)
-
-    def send(self, msg: Message) -> bool:
-        """Send without blocking; False (and counted in send_dropped) if it could not go."""
-        try:
-            self.socket.send(encode(msg), zmq.NOBLOCK)
-            return True
-        except zmq.Again:
-            self.send_dropped += 1
-            return False
 
     def say_hello(self) -> bool:
         """Send our hello; False if there is no connection yet (nothing was queued)."""
@@ -490,21 +495,12 @@ class LatestSubscriber(_Socket):
         return newest
 
 
-class Publisher(_Socket):
+class Publisher(_Sender):
     """PUB with ZMQ_CONFLATE: a slow subscriber gets the newest message, not a backlog."""
 
     def __init__(self, endpoint: str = DEFAULT_TWIST_ENDPOINT, *, bind: bool = False,
                  keys: Keys | None = None) -> None:
-        self.send_dropped = 0
         super().__init__(zmq.PUB, endpoint, bind=bind, keys=keys)
 
     def _configure(self, s: zmq.Socket) -> None:
         s.setsockopt(zmq.CONFLATE, 1)
-
-    def send(self, msg: Message) -> bool:
-        try:
-            self.socket.send(encode(msg), zmq.NOBLOCK)
-            return True
-        except zmq.Again:
-            self.send_dropped += 1
-            return False
