@@ -301,24 +301,26 @@ def _one_of(choices: tuple[str, ...]) -> Check:
     return check
 
 
-def _names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
+def _name_list(value: Any, n: int | None, field: str, most: int) -> tuple[str, ...]:
+    """1…`most` names of 1…MAX_NAME_CHARS characters."""
     if type(value) is not list and type(value) is not tuple:  # tuple: when encoding
         raise _bad("type", field, f"expected an array, got {type(value).__name__}")
-    if not 1 <= len(value) <= MAX_JOINTS:
-        raise _bad("length", field, f"expected 1…{MAX_JOINTS} names, got {len(value)}")
-    names = tuple(_text(MAX_NAME_CHARS)(x, n, field) for x in value)
+    if not 1 <= len(value) <= most:
+        raise _bad("length", field, f"expected 1…{most} names, got {len(value)}")
+    return tuple(_text(MAX_NAME_CHARS)(x, n, field) for x in value)
+
+
+def _names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
+    """Joint names: 1…MAX_JOINTS, none repeated."""
+    names = _name_list(value, n, field, MAX_JOINTS)
     if len(set(names)) != len(names):
         raise _bad("range", field, "joint names repeat")
     return names
 
 
 def _part_names(value: Any, n: int | None, field: str) -> tuple[str, ...]:
-    """1…MAX_CONTACTS names of 1…MAX_NAME_CHARS characters (repeats allowed)."""
-    if type(value) is not list and type(value) is not tuple:  # tuple: when encoding
-        raise _bad("type", field, f"expected an array, got {type(value).__name__}")
-    if not 1 <= len(value) <= MAX_CONTACTS:
-        raise _bad("length", field, f"expected 1…{MAX_CONTACTS} names, got {len(value)}")
-    return tuple(_text(MAX_NAME_CHARS)(x, n, field) for x in value)
+    """Contact parts: 1…MAX_CONTACTS names (repeats allowed)."""
+    return _name_list(value, n, field, MAX_CONTACTS)
 
 
 def _depths(value: Any, n: int | None, field: str) -> FloatVector:
