@@ -417,21 +417,24 @@ def runtime_state_use(session, states: list[State]) -> tuple[int, int]:
     Each cycle's q is matched to the states the arm sent, as the observer saw them (at rest
     many states share one q, hence a greedy match: the oldest candidate not older than the
     previous cycle's). Cycles before the first match used states sent before the observer
-    connected and are skipped. An observer that missed states (`observer_missed`: a busy
-    machine) cannot vouch for a q it did not see: then no q counts as unknown."""
+    connected and are skipped, and so are cycles after the last match: the observer stops
+    reading when the run ends, and the runtime's last cycles may use states sent after
+    that. An observer that missed states (`observer_missed`: a busy machine) cannot vouch
+    for a q it did not see: then no q counts as unknown."""
     if session is None:
         return 0, 0
     seqs: dict[tuple[float, ...], list[int]] = {}
     for s in states:                                   # states arrive in seq order
         seqs.setdefault(tuple(s.q), []).append(s.seq)
-    older = unknown = floor = 0
+    older = unknown = floor = pending = 0
     matched, missed = False, observer_missed(states)
     for rec in session.records:
         candidates = seqs.get(tuple(rec.q)) if rec.q else None
         if candidates is None:
-            unknown += matched and bool(rec.q) and not missed
+            pending += matched and bool(rec.q) and not missed
             continue
         matched = True
+        unknown, pending = unknown + pending, 0        # unknowns before a later match count
         i = bisect.bisect_left(candidates, floor)
         if i == len(candidates):
             older += 1
