@@ -33,7 +33,9 @@ ATTEMPTS = 3
 ALLOWANCE_S = 0.050
 
 
-def run(name: str, tmp_path) -> FaultResult:
+def run(name: str, tmp_path, reached=lambda r: True) -> FaultResult:
+    """The fault's first run that exercised it (`reached`: and showed it at the runtime as
+    well, where that depends on chance), at most ATTEMPTS runs."""
     tried = []
     for attempt in range(1, ATTEMPTS + 1):
         try:
@@ -45,9 +47,11 @@ def run(name: str, tmp_path) -> FaultResult:
               f"{r.bound_s:.4f} s, restarted {r.restarted}, notes {r.notes}\n"
               f"  arm dropped {r.arm_dropped}\n  runtime dropped {r.runtime_dropped}\n"
               f"  relay {r.relay}")
-        if r.exercised:
+        if r.exercised and (reached(r) or attempt == ATTEMPTS):
             return r
-        tried.append("; ".join(r.notes) or "the arm was not moving at the fault")
+        tried.append("; ".join(r.notes) or ("the fault did not reach the runtime"
+                                            if r.exercised else
+                                            "the arm was not moving at the fault"))
     pytest.fail(f"{name}: no run exercised the fault in {ATTEMPTS} attempts: {tried}")
 
 
@@ -93,7 +97,10 @@ def test_a_stalled_stream(direction, tmp_path) -> None:
 
 @pytest.mark.parametrize("name", ["loss_20", "dup_reorder", "garbage"])
 def test_a_bad_link_is_ridden_through_and_nothing_bad_is_acted_on(name, tmp_path) -> None:
-    r = run(name, tmp_path)
+    # A reordered state is refused only when it reaches the runtime alone in one read (the
+    # transport keeps the newest of what is waiting): a run may see none; try again.
+    r = run(name, tmp_path, reached=lambda r: name != "dup_reorder" or
+            r.runtime_dropped.get("refused (old or late)", 0) > 0)
     nothing_bad_acted_on(r)
     assert r.measured_from == "release", f"the arm stopped at the fault: {r.notes}"
     stops_in_bound(r)
