@@ -67,6 +67,7 @@ from runtime.control.cycle import ControlCycle  # noqa: E402
 from runtime.control.pads import load_pad  # noqa: E402
 from runtime.control.settings import RunSettings  # noqa: E402
 from runtime.link.arm_process import child_env  # noqa: E402
+from runtime.link.packed import MARK, decode_packed, encode_packed, packs  # noqa: E402
 from runtime.link.pipes import (  # noqa: E402
     PIPE_PEER,
     PipeClient,
@@ -315,12 +316,13 @@ class _InProcessLink:
         return bool(self.inbox)
 
     def drain(self) -> list:
-        out = [(PIPE_PEER, decode(m, n_joints=self.n_joints)) for m in self.inbox]
+        out = [(PIPE_PEER, decode_packed(m, self.n_joints) if m[:1] == bytes((MARK,))
+                else decode(m, n_joints=self.n_joints)) for m in self.inbox]
         self.inbox = []
         return out
 
     def send(self, peer: bytes, msg) -> str:
-        encode(msg)
+        encode_packed(msg, self.n_joints) if packs(msg) else encode(msg)
         return "sent"
 
 
@@ -340,7 +342,8 @@ def arm_side_work(arm, rates: np.ndarray) -> float:
         link.inbox.append(encode(hello_for(arm, "runtime", stale_after_s=3600.0)))
         endpoint.cycle_lockstep(0.0)
         for k in range(len(rates)):
-            link.inbox.append(encode(Rates(seq=k + 1, t_ns=time.monotonic_ns(), qd=rates[k])))
+            link.inbox.append(encode_packed(Rates(seq=k + 1, t_ns=time.monotonic_ns(),
+                                                  qd=rates[k]), arm.n))
             t = time.perf_counter_ns()
             endpoint.cycle_lockstep(0.0)
             times.append(time.perf_counter_ns() - t)

@@ -6,5 +6,5 @@ the arm process.
 May import ``runtime.arm``; never the control cycle, sessions, operator or commands.
 """
 
-__all__ = ["arm_process", "pipes", "protocol", "relay", "relay_runner", "shared_rings",
-           "transport"]
+__all__ = ["arm_process", "packed", "pipes", "protocol", "relay", "relay_runner",
+           "shared_rings", "transport"]

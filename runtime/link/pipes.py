@@ -6,8 +6,9 @@
 A lockstep run (preflight, closed-loop re-runs) is one rates message out and one state back
 per control cycle, between this process and a child it started itself. Over ZeroMQ every
 exchange wakes each side's I/O thread in both directions; over a pipe it is one write and
-one read a side. Nothing else changes: the messages are the wire's own
-(`protocol.encode`/`decode`, the hello exchange included) (docs/PROTOCOL.md, "Lockstep
+one read a side. The messages are the wire's own, the hello exchange included; the two a
+cycle carries, `rates` and `state`, travel in a fixed layout instead of msgpack
+(runtime.link.packed), the rest as `protocol.encode`/`decode` (docs/PROTOCOL.md, "Lockstep
 over pipes").
 
 The frames travel through a channel, one of two:
@@ -33,6 +34,7 @@ import time
 from collections import Counter
 
 from ..errors import ProtocolError, TransportError
+from .packed import MARK, decode_packed, encode_packed, packs
 from .protocol import MAX_MESSAGE_BYTES, Hello, Message, State, encode
 from .shared_rings import RingChannel, close_fds, create_memory
 from .transport import Inbox, check_answer, decode_counted
@@ -45,6 +47,7 @@ PIPE_PEER = b"pipe"         # the one peer a PipeServer has (ArmServer's peers a
 # would be idle while the other process works.
 SPIN_S = 0.002
 _LENGTH = struct.Struct("<I")
+_PACKED = bytes((MARK,))
 _READ_BYTES = 1 << 16
 
 
@@ -182,8 +185,9 @@ class PipeEnd:
     """One process's end of the link: the wire's messages through a channel (the pipes
     themselves, or shared rings beside them)."""
 
-    def __init__(self, channel: PipeChannel | RingChannel) -> None:
+    def __init__(self, channel: PipeChannel | RingChannel, n_joints: int) -> None:
         self.channel = channel
+        self.n_joints = n_joints
         self.dropped = channel.dropped      # the channel counts `oversize`, decoding the rest
 
     @property
@@ -203,8 +207,18 @@ class PipeEnd:
     def frames(self) -> list[bytes]:
         return self.channel.take()
 
-    def decode(self, payload: bytes, n_joints: int | None) -> Message | ProtocolError:
-        return decode_counted(payload, n_joints, self.dropped)
+    def encode(self, msg: Message) -> bytes:
+        return encode_packed(msg, self.n_joints) if packs(msg) else encode(msg)
+
+    def decode(self, payload: bytes) -> Message | ProtocolError:
+        """The message in a frame (packed or msgpack); a malformed one counted and returned."""
+        if payload[:1] != _PACKED:
+            return decode_counted(payload, self.n_joints, self.dropped)
+        try:
+            return decode_packed(payload, self.n_joints)
+        except ProtocolError as exc:
+            self.dropped[exc.reason] += 1
+            return exc
 
     def close(self) -> None:
         self.channel.close()
@@ -215,17 +229,16 @@ class PipeServer(PipeEnd):
 
     def __init__(self, channel: PipeChannel | RingChannel, *, n_joints: int,
                  endpoint: str = "") -> None:
-        super().__init__(channel)
-        self.n_joints = n_joints
+        super().__init__(channel, n_joints)
         self.endpoint = endpoint or channel.kind   # the link spec, in the ready line
 
     def drain(self) -> list[tuple[bytes, Message | ProtocolError]]:
         """Everything waiting, decoded, from the one peer; malformed ones counted."""
-        return [(PIPE_PEER, self.decode(p, self.n_joints)) for p in self.frames()]
+        return [(PIPE_PEER, self.decode(p)) for p in self.frames()]
 
     def send(self, peer: bytes, msg: Message) -> str:
         """"sent", or "gone" when the runtime's end is closed."""
-        return "sent" if self.send_frame(encode(msg)) else "gone"
+        return "sent" if self.send_frame(self.encode(msg)) else "gone"
 
     def __enter__(self) -> "PipeServer":
         return self
@@ -240,14 +253,13 @@ class PipeClient(PipeEnd):
 
     def __init__(self, channel: PipeChannel | RingChannel, *, hello: Hello,
                  endpoint: str = "the arm side's pipe") -> None:
-        super().__init__(channel)
+        super().__init__(channel, len(hello.joints))
         self.hello = hello
-        self.n_joints = len(hello.joints)
         self.endpoint = endpoint
         self.send_dropped = 0
 
     def send(self, msg: Message) -> bool:
-        if self.send_frame(encode(msg)):
+        if self.send_frame(self.encode(msg)):
             return True
         self.send_dropped += 1
         return False
@@ -258,7 +270,7 @@ class PipeClient(PipeEnd):
         only the newest."""
         if timeout_s > 0 and not self.poll(timeout_s):
             return []
-        decoded = (self.decode(p, self.n_joints) for p in self.frames())
+        decoded = (self.decode(p) for p in self.frames())
         return [m for m in decoded if not isinstance(m, ProtocolError)]
 
     def receive(self, timeout_s: float = 0.0) -> Inbox:
@@ -268,7 +280,7 @@ class PipeClient(PipeEnd):
         if timeout_s > 0 and not self.poll(timeout_s):
             return inbox
         for payload in self.frames():
-            inbox.add(self.decode(payload, self.n_joints), self.dropped)
+            inbox.add(self.decode(payload), self.dropped)
         return inbox
 
     def handshake(self, timeout_s: float = 5.0) -> tuple[Hello, State]:

@@ -394,15 +394,26 @@ def _stride(lengths: np.ndarray) -> int:
 
 def encode_block(block: CycleBlock) -> dict[str, Any]:
     """The msgpack map of a cycle block (the payload of its frame)."""
-    return _block_map(block.n, [_pack_column(name, kind, block.columns[name])
-                                for name, kind in COLUMNS])
+    return block_map(block.n, [_pack_column(name, kind, block.columns[name])
+                               for name, kind in COLUMNS])
+
+
+PackedColumns = list[tuple[dict[str, Any], bytes]]
+"""Each column's layout map and bytes, in COLUMNS order: a block before compression."""
 
 
 def encode_records(records: Sequence[CycleRecord], pause: Callable[[], None] | None = None
                    ) -> dict[str, Any]:
-    """The block map of `records`, gathered and packed one column at a time, calling
-    `pause()` between columns: a writer thread sleeps there, so that it never holds the
-    interpreter lock for longer than one column while the control loop wants it."""
+    """The block map of `records` (`pack_records`, then `block_map`)."""
+    return block_map(len(records), pack_records(records, pause))
+
+
+def pack_records(records: Sequence[CycleRecord], pause: Callable[[], None] | None = None
+                 ) -> PackedColumns:
+    """The columns of `records`, gathered and packed one at a time, calling `pause()`
+    between columns: a writer thread sleeps there, so that it never holds the interpreter
+    lock for longer than one column while the control loop wants it. Raises for a record
+    that cannot be encoded; `block_map` never does."""
     packed = []
     for name, kind in COLUMNS:
         col = _GATHER[kind](list(map(attrgetter(name), records)))
@@ -411,10 +422,12 @@ def encode_records(records: Sequence[CycleRecord], pause: Callable[[], None] | N
         packed.append(_pack_column(name, kind, col))
         if pause is not None:
             pause()
-    return _block_map(len(records), packed)
+    return packed
 
 
-def _block_map(n: int, packed: list[tuple[dict[str, Any], bytes]]) -> dict[str, Any]:
+def block_map(n: int, packed: PackedColumns) -> dict[str, Any]:
+    """The block map of `n` records' packed columns: the layout, then the compressed body
+    (zlib works without the interpreter lock, so another thread may run meanwhile)."""
     layout = msgpack.packb([desc for desc, _ in packed], use_bin_type=True)
     body = b"".join([_LAYOUT_LENGTH.pack(len(layout)), layout] + [data for _, data in packed])
     return {"kind": BLOCK_KIND, "count": n, "codec": CODEC,

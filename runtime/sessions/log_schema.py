@@ -303,6 +303,16 @@ def protocol_version() -> int | None:
 
 
 _BUTTONS_LOGGED = 16  # pad buttons 0…15 as flags; `input` keeps every key by name
+_NO_BUTTONS = (False,) * _BUTTONS_LOGGED
+
+
+def _plain_floats(values: Sequence[float] | np.ndarray | None) -> tuple[float, ...]:
+    """Python floats (an ndarray converted in one call); () for None."""
+    if values is None:
+        return ()
+    if isinstance(values, np.ndarray):
+        return tuple(values.astype(float, copy=False).tolist())
+    return tuple(map(float, values))
 
 
 def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
@@ -315,9 +325,10 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
     pair = None if clearance is None else clearance.nearest_pair
     return CycleRecord(
         cycle=cycle, t_s=t_s, axes=tuple(frame.axes),
-        buttons=frame.button_flags(_BUTTONS_LOGGED), enabled=out.verdict.allowed,
+        buttons=frame.button_flags(_BUTTONS_LOGGED) if frame.pressed else _NO_BUTTONS,
+        enabled=out.verdict.allowed,
         enable_reason=out.verdict.reason, twist=tuple(intent.twist.tolist()),
-        frame=intent.frame, q=() if q is None else tuple(float(v) for v in q),
+        frame=intent.frame, q=_plain_floats(q),
         rates=tuple(out.rates.tolist()),
         damping=0.0 if sol is None else sol.damping,
         sigma_min=nan if sol is None else sol.sigma_min,

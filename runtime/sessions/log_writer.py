@@ -33,7 +33,7 @@ import msgpack
 
 from ..arm.model import Arm
 from ..errors import LogError
-from .log_blocks import encode_records
+from .log_blocks import PackedColumns, block_map, encode_records, pack_records
 from .log_schema import (
     FORMAT_VERSION,
     FRAME_MARK,
@@ -129,10 +129,11 @@ class SessionRecorder:
     queued records into one block (format 2: columns, compressed, see `log_blocks`), writes
     it and, with `fsync=True`, asks the OS to put it on the disk.
 
-    With `encode_in_caller=True`, `record()` collects records and encodes a block itself
-    every `CALLER_BLOCK_RECORDS`; the thread only writes bytes. For a caller with time to
-    spare between cycles (a lockstep run encodes while the simulated arm steps) that avoids
-    the thread's interpreter-lock bursts the caller would otherwise wait out.
+    With `encode_in_caller=True`, `record()` collects records and packs a block's columns
+    itself every `CALLER_BLOCK_RECORDS`; the thread only compresses (zlib runs without the
+    interpreter lock, beside the caller) and writes. For a caller with time to spare between
+    cycles (a lockstep run packs while the simulated arm steps) that avoids the thread's
+    interpreter-lock bursts the caller would otherwise wait out.
 
     fsync is off by default: the worst cases it guards against are power loss and a kernel
     crash, since after a process crash or kill -9 everything written is already in the OS's
@@ -151,7 +152,7 @@ class SessionRecorder:
         self._fsync = fsync
         self._capacity = queue_size
         self._encode_in_caller = encode_in_caller
-        self._queue: collections.deque[CycleRecord | _Encoded] = collections.deque()
+        self._queue: collections.deque[CycleRecord | _Encoded | _Packed] = collections.deque()
         self._collected: list[CycleRecord] = []       # encode_in_caller: the next block
         self._stop = threading.Event()
         self._closed = False
@@ -227,10 +228,15 @@ class SessionRecorder:
         return True
 
     def _hand_over_collected(self) -> None:
-        encoded, bad = self._encode(self._collected)
-        self._collected = []
+        records, self._collected = self._collected, []
+        if self.format_version == 1:
+            encoded, bad = _encode_v1(records)
+            self._queue.extend(encoded)
+        else:
+            packed, bad = self._pack(records, pause=None)
+            if packed is not None:
+                self._queue.append(packed)
         self._unencodable_here += bad
-        self._queue.extend(encoded)
 
     @property
     def failed(self) -> str | None:
@@ -266,21 +272,27 @@ class SessionRecorder:
     def __exit__(self, *exc_info: object) -> None:
         self.close()
 
-    # -- encoding (writer thread, or the caller with encode_in_caller) ------------------
+    # -- encoding (writer thread; the caller packs with encode_in_caller) ----------------
 
     def _encode(self, records: list[CycleRecord]) -> tuple[list[_Encoded], int]:
         """Frames for `records` and how many records could not be encoded (skipped)."""
         if self.format_version == 1:
             return _encode_v1(records)
-        pause = None if self._encode_in_caller else _let_the_loop_run
+        packed, bad = self._pack(records, pause=_let_the_loop_run)
+        return ([] if packed is None else [packed.framed()]), bad
+
+    @staticmethod
+    def _pack(records: list[CycleRecord], pause: Callable[[], None] | None
+              ) -> tuple[_Packed | None, int]:
+        """The block of `records` before compression, and how many were skipped."""
         try:
-            return [_Encoded(encode_frame(encode_records(records, pause)), len(records))], 0
+            return _Packed(pack_records(records, pause), len(records)), 0
         except Exception:  # noqa: BLE001 - one bad record must not stop the session
             good = [r for r in records if _encodable(r)]
             if len(good) == len(records):     # not the records' fault: report it
                 raise
-            encoded, _ = self._encode(good) if good else ([], 0)
-            return encoded, len(records) - len(good)
+            packed = SessionRecorder._pack(good, pause)[0] if good else None
+            return packed, len(records) - len(good)
 
     # -- the writer thread ------------------------------------------------------------
 
@@ -309,8 +321,11 @@ class SessionRecorder:
         records: list[CycleRecord] = []
         for _ in range(len(queue)):
             item = queue.popleft()
-            if isinstance(item, _Encoded):        # encoded by the caller
+            if isinstance(item, _Encoded):        # encoded by the caller (format 1)
                 out.append(item)
+                continue
+            if isinstance(item, _Packed):         # packed by the caller: compressed here
+                out.append(item.framed())
                 continue
             records.append(item)
             if len(records) == MAX_FLUSH_RECORDS:
@@ -392,9 +407,20 @@ class _Encoded:
     records: int
 
 
-def _count(items: Iterable[CycleRecord | _Encoded]) -> int:
-    """Cycle records in a queue or frame list (an encoded block counts its records)."""
-    return sum(i.records if isinstance(i, _Encoded) else 1 for i in items)
+@dataclass(frozen=True)
+class _Packed:
+    """A block's columns, packed by the caller; the writer thread compresses and frames it."""
+
+    columns: PackedColumns
+    records: int
+
+    def framed(self) -> _Encoded:
+        return _Encoded(encode_frame(block_map(self.records, self.columns)), self.records)
+
+
+def _count(items: Iterable[CycleRecord | _Encoded | _Packed]) -> int:
+    """Cycle records in a queue or frame list (a block counts its records)."""
+    return sum(i.records if isinstance(i, (_Encoded, _Packed)) else 1 for i in items)
 
 
 def _encode_v1(records: list[CycleRecord]) -> tuple[list[_Encoded], int]:

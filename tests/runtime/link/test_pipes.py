@@ -93,17 +93,31 @@ def test_a_frame_split_across_writes_waits_until_it_is_whole(arm) -> None:
 
 def test_malformed_and_oversized_frames_are_counted_and_dropped(link) -> None:
     client, server = link
-    garbage = b"\xc1not msgpack"
+    garbage = b"\x91"                        # a msgpack array cut short
     wrong_length = msgpack.packb({"v": 1, "kind": "rates", "seq": 1, "t_ns": 0,
                                   "qd": [0.0], "flags": 0})
-    for payload in (garbage, wrong_length, b"\x00" * (MAX_MESSAGE_BYTES + 1)):
+    packed_garbage = b"\xc1not a kind"       # the packed mark, then no known kind
+    for payload in (garbage, wrong_length, packed_garbage, b"\x00" * (MAX_MESSAGE_BYTES + 1)):
         client.send_frame(payload)
     client.send(Rates(2, 2, (0.0, 0.0, 0.0)))
     assert server.poll(1.0)
     good = [(p, m) for p, m in server.drain() if isinstance(m, Rates)]
     assert [m.seq for _, m in good] == [2]
-    assert server.dropped == {"msgpack": 1, "length": 1, "oversize": 1}
-    assert server.received == 4
+    assert server.dropped == {"msgpack": 1, "length": 1, "kind": 1, "oversize": 1}
+    assert server.received == 5
+
+
+def test_each_cycles_messages_travel_packed_and_the_rest_as_msgpack(link, arm) -> None:
+    client, server = link
+    client.send(hello_for(arm, "runtime", stale_after_s=0.1))
+    client.send(Rates(1, 1, (0.5, -0.0, 0.0)))
+    server.send(PIPE_PEER, state(1))
+    assert server.poll(1.0) and client.poll(1.0)
+    hello, rates = server.channel.take()
+    assert hello[:1] != b"\xc1" and rates[:1] == b"\xc1"   # runtime/link/packed.py
+    (back,) = client.channel.take()
+    assert back[:1] == b"\xc1" and client.decode(back) == state(1)
+    assert server.decode(rates) == Rates(1, 1, (0.5, -0.0, 0.0))
 
 
 def test_handshake_checks_the_arm_side_hello(link, arm) -> None:
