@@ -71,6 +71,7 @@ from runtime.link.packed import MARK, decode_packed, encode_packed, packs  # noq
 from runtime.link.pipes import (  # noqa: E402
     PIPE_PEER,
     PipeClient,
+    PipeEnd,
     PipeServer,
     arm_side_channel,
     child_link,
@@ -202,6 +203,47 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int,
                  "here_waited_s": sim.waited_s, "child_worked_s": sim.child_worked_s}
 
 
+# The runtime side's parts of a lockstep run, timed inside the run by wrapping them: the same
+# calls take longer there than alone (caches shared with everything else the loop does).
+IN_RUN_PARTS = (
+    (ControlCycle, "step", "control cycle"),
+    (preflight_run, "cycle_record", "the cycle's record built"),
+    (SessionRecorder, "record", "the record handed over (a block packed per 256)"),
+    (TraceBuilder, "add_cycle", "the verdict's trace: the cycle"),
+    (TraceBuilder, "add_state", "the verdict's trace: the state after it"),
+    (LockstepSim, "send", "rates built, encoded and sent"),
+    (LockstepSim, "wait", "the state taken"),
+    (PipeEnd, "poll", "  of it: waiting for the state"),   # nested parts start with a space
+    (PipeEnd, "decode", "  of it: the state decoded"),
+)
+
+
+def bench_parts_in_run(folder: Path, seconds: float, link: str) -> tuple[dict[str, float], dict]:
+    """µs per cycle of each of IN_RUN_PARTS in a lag-1 preflight (wall time, means), and
+    that run's figures."""
+    spent: Counter[str] = Counter()
+    originals = [(owner, name, getattr(owner, name)) for owner, name, _ in IN_RUN_PARTS]
+
+    def timed(f, label):
+        def call(*args, **kwargs):
+            t = time.perf_counter()
+            try:
+                return f(*args, **kwargs)
+            finally:
+                spent[label] += time.perf_counter() - t
+        return call
+
+    for (owner, name, f), (_, _, label) in zip(originals, IN_RUN_PARTS):
+        setattr(owner, name, timed(f, label))
+    try:
+        (folder / "timed").mkdir(exist_ok=True)
+        _, run = bench_preflight(folder / "timed", seconds, 1, False, link=link)
+    finally:
+        for owner, name, f in originals:
+            setattr(owner, name, f)
+    return {label: 1e6 * spent[label] / run["cycles"] for *_, label in IN_RUN_PARTS}, run
+
+
 def bench_cell_physics(cell: str, steps: int) -> tuple[float, float]:
     """Median µs of SimulatedArm.step + read_state without and with the workcell."""
     from sim.arm import SimulatedArm
@@ -266,7 +308,8 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
                             if o.solution is not None else np.zeros(6))
             trace.add_state(rec.q, rec.rates)
             times.append(time.perf_counter_ns() - t)
-    out["bookkeeping (record built + encoded, trace)"] = statistics.median(times) / 1e3
+    # The mean: the caller packs a block every 256 cycles, which a median would not see
+    out["bookkeeping (record built + packed, trace; mean)"] = statistics.fmean(times) / 1e3
 
     rates = np.array([r.rates for r in records])
     for link in links:
@@ -498,11 +541,20 @@ def main() -> int:
               f"{rerun['motion_s'] / (rerun['read_s'] + rerun['rerun_s']):.1f}x real time; "
               f"largest difference {rerun['largest_difference']:g}; load {load_average()}")
         parts = bench_components(log, args.cycles, links)
+        in_run, run = bench_parts_in_run(folder, args.seconds, links[0])
+    loop = 1e6 * run["loop_s"] / run["cycles"]
+    print(f"the lag-1 {links[0]} run again, this process's parts timed inside it (µs per "
+          f"cycle, wall; the loop {loop:.0f} µs a cycle with the timing; load "
+          f"{load_average()}):")
+    for name, value in in_run.items():
+        print(f"  {name:<62} {value:8.1f}")
+    rest = loop - sum(v for name, v in in_run.items() if not name.startswith(" "))
+    print(f"  {'the rest (the loop itself, progress, contacts)':<62} {rest:8.1f}")
     print(f"one preflight cycle, its parts (medians, µs; load {load_average()}):")
     for name, value in parts.items():
         print(f"  {name:<62} {value:8.1f}")
     period = 1e6 / RATE_HZ
-    here = parts["control cycle"] + parts["bookkeeping (record built + encoded, trace)"]
+    here = parts["control cycle"] + parts["bookkeeping (record built + packed, trace; mean)"]
     there = parts["arm side's work per message, in process"]
     exchange = parts[f"lockstep exchange ({links[0]} + child)"]
     print(f"  work per cycle: here (control cycle + bookkeeping) {here:.0f} µs, at the arm "

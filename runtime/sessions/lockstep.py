@@ -305,21 +305,6 @@ class ClosedLoopCycle:
     state_age_s: float = 0.0
 
 
-@dataclass(frozen=True, eq=False)
-class _InFlight:
-    """A cycle whose rates are sent, before the arm's state after them has come back."""
-
-    seq: int
-    k: int
-    t_s: float
-    frame: InputFrame
-    out: CycleOutput
-    q_used: Vector
-    state_age_s: float
-    compute_s: float
-    prepared: Any
-
-
 Prepare = Callable[[int, float, InputFrame, CycleOutput, Vector, float, float], Any]
 
 
@@ -351,7 +336,9 @@ def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
                           f"{state_lag!r}", field="state-lag")
     q = sim.first.q
     dt = cycle.dt_s
-    in_flight: deque[_InFlight] = deque()
+    # Each cycle whose rates are sent, until the arm's state after them comes back: its
+    # rates' seq and the rest of its ClosedLoopCycle, in field order.
+    in_flight: deque[tuple[int, tuple[Any, ...]]] = deque()
     for k in range(n_cycles):
         t = k * dt
         age = min(k, state_lag) * dt
@@ -361,15 +348,15 @@ def run_closed_loop(cycle: ControlCycle, sim: LockstepSim,
         compute = clock() - started
         seq = sim.send(out.rates, reduced=out.intent.reduced)
         prepared = None if prepare is None else prepare(k, t, frame, out, q, compute, age)
-        in_flight.append(_InFlight(seq, k, t, frame, out, q, age, compute, prepared))
+        in_flight.append((seq, (k, t, frame, out, q, compute, prepared, age)))
         if len(in_flight) > state_lag:
-            done = _landed(sim, in_flight.popleft())
+            done = _landed(sim, *in_flight.popleft())
             q = done.after.q
             yield done
     while in_flight:
-        yield _landed(sim, in_flight.popleft())
+        yield _landed(sim, *in_flight.popleft())
 
 
-def _landed(sim: LockstepSim, c: _InFlight) -> ClosedLoopCycle:
-    return ClosedLoopCycle(c.k, c.t_s, c.frame, c.out, c.q_used, sim.wait(c.seq),
-                           c.compute_s, c.prepared, c.state_age_s)
+def _landed(sim: LockstepSim, seq: int, sent: tuple[Any, ...]) -> ClosedLoopCycle:
+    k, t, frame, out, q, compute, prepared, age = sent
+    return ClosedLoopCycle(k, t, frame, out, q, sim.wait(seq), compute, prepared, age)
