@@ -14,7 +14,9 @@ Measured in one run, on the same machine state:
                  prints when it stops)
   rerun          `replay --rerun` (open loop) of that 60 s session log: wall time, factor
   components     what one preflight cycle is made of, each timed alone (medians):
-                   control cycle      ControlCycle.step on the run's recorded poses
+                   control cycle      ControlCycle.step on the run's recorded poses;
+                                      again with this process on one core and a busy
+                                      loop on the other (a lag-1 run keeps both busy)
                    bookkeeping        the cycle's record (built and encoded), the trace
                    lockstep exchange  one rates → state exchange with the simulated arm
                                       child over each link (2 physics steps inside)
@@ -286,13 +288,12 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
     out: dict[str, float] = {}
 
     cycle = ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ))
-    outs, times = [], []
-    for rec, frame in zip(records, frames):
-        q = np.array(rec.q)
-        t = time.perf_counter_ns()
-        outs.append(cycle.step(frame, rec.t_s, q, rec.t_s))
-        times.append(time.perf_counter_ns() - t)
-    out["control cycle"] = statistics.median(times) / 1e3
+    outs, out["control cycle"] = time_control_cycles(cycle, records, frames)
+    busy = with_other_core_busy(lambda: time_control_cycles(
+        ControlCycle(arm, load_pad("keyboard"), RunSettings(rate_hz=RATE_HZ)), records,
+        frames)[1])
+    if busy is not None:
+        out["control cycle, the other core busy (pure Python loop)"] = busy
 
     times = []
     with tempfile.TemporaryDirectory() as tmp, \
@@ -343,6 +344,39 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
             link_round_trip(link, len(records), 6e-5)
     out["socket round trip (bare ZeroMQ)"] = echo_round_trip(len(records))
     return out
+
+
+def time_control_cycles(cycle: ControlCycle, records, frames) -> tuple[list, float]:
+    """The cycle's outputs on the recorded poses, and its median µs."""
+    outs, times = [], []
+    for rec, frame in zip(records, frames):
+        q = np.array(rec.q)
+        t = time.perf_counter_ns()
+        outs.append(cycle.step(frame, rec.t_s, q, rec.t_s))
+        times.append(time.perf_counter_ns() - t)
+    return outs, statistics.median(times) / 1e3
+
+
+def with_other_core_busy(measure):
+    """measure() with this process on one core and a busy loop on another (None on a
+    machine with fewer than two cores, or without affinity control). In a lag-1 run the
+    two sides work at once, one on each core: this is what a core's speed is then, when
+    the two share more than memory (hyperthreads of one physical core, a virtual machine's
+    vCPUs on a busy host, a shared clock limit)."""
+    if not hasattr(os, "sched_setaffinity") or len(os.sched_getaffinity(0)) < 2:
+        return None
+    mine = os.sched_getaffinity(0)
+    here, there = sorted(mine)[:2]
+    neighbour = subprocess.Popen([sys.executable, "-c", "while True: pass"])
+    try:
+        os.sched_setaffinity(0, {here})
+        os.sched_setaffinity(neighbour.pid, {there})
+        time.sleep(0.2)                      # the neighbour past its start
+        return measure()
+    finally:
+        neighbour.kill()
+        neighbour.wait()
+        os.sched_setaffinity(0, mine)
 
 
 class _InProcessLink:
@@ -562,6 +596,12 @@ def main() -> int:
     print(f"  one after the other (lag 0: this work plus an exchange with the child) bounds "
           f"it at {period / (here + exchange):.1f}x real time; side by side (lag 1) the "
           f"slower side's work at {period / max(here, there):.1f}x")
+    busy = parts.get("control cycle, the other core busy (pure Python loop)")
+    if busy is not None:
+        slowed = busy / parts["control cycle"]
+        print(f"  a core works {slowed:.2f}x as long while the other core is busy: side by "
+              f"side, each side slowed so, bounds it at "
+              f"{period / (slowed * max(here, there)):.1f}x")
     print(f"load average at end: {load_average()}")
     if args.cell:
         bench_cell(args)
