@@ -53,6 +53,20 @@ Array = NDArray[np.float64]
 
 _EPS = 1e-12  # squared lengths below this are points (m²)
 _NONE = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3)))  # no pairs
+_EMPTY, _EMPTY_3, _NO_INDEX = np.zeros(0), np.zeros((0, 3)), np.zeros(0, np.intp)
+for _shared in (_EMPTY, _EMPTY_3, _NO_INDEX):
+    _shared.setflags(write=False)
+_MARGIN_M = 1e-9
+"""A pair is left out on a bound only this far beyond the threshold (m): far above the
+rounding of any distance here (~1e-15 m), so a pair the exact pass would place inside is
+never left out."""
+
+
+@lru_cache(maxsize=64)
+def _empty_rows(n: int) -> Array:
+    rows = np.zeros((0, n))
+    rows.setflags(write=False)
+    return rows
 
 
 @dataclass(frozen=True, eq=False)
@@ -69,6 +83,9 @@ class Clearances:
     index         (p,) each pair's position in the model's `pair_names`
     beyond_m      a lower bound of the distance of every pair not measured (inf: none left
                   out; see `clearances`)
+    lower_m       (P,) with a cull (`clearances` with `within_m`): a lower bound of every
+                  pair of the model at this pose, in `pair_names` order, exact where measured;
+                  None otherwise
     """
 
     pairs: tuple[tuple[str, str], ...]
@@ -79,14 +96,15 @@ class Clearances:
     rate_rows: Array
     index: NDArray[np.intp]
     beyond_m: float = math.inf
+    lower_m: Array | None = None
 
     @staticmethod
-    def none_within(n: int, beyond_m: float) -> "Clearances":
+    def none_within(n: int, beyond_m: float, lower_m: Array | None = None) -> "Clearances":
         """No pair measured (none can be within reach); `beyond_m` bounds them all."""
-        empty = np.zeros((0, 3))
-        return Clearances(pairs=(), distances=np.zeros(0), points_arm=empty,
-                          points_other=empty, normals=empty, rate_rows=np.zeros((0, n)),
-                          index=np.zeros(0, np.intp), beyond_m=beyond_m)
+        empty = _EMPTY_3
+        return Clearances(pairs=(), distances=_EMPTY, points_arm=empty, points_other=empty,
+                          normals=empty, rate_rows=_empty_rows(n), index=_NO_INDEX,
+                          beyond_m=beyond_m, lower_m=lower_m)
 
     def nearest(self) -> int | None:
         """Index of the smallest distance, or None without pairs."""
@@ -183,7 +201,7 @@ def segment_box(p: Array, q: Array, pose: Array, half: Array
     R, centre = pose[:, :3, :3], pose[:, :3, 3]
     x0 = np.einsum("pji,pj->pi", R, p - centre)  # box frame: Rᵀ(p − c)
     dx = np.einsum("pji,pj->pi", R, q - p)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # dx ≈ 0: no crossing
         crossings = np.concatenate(((half - x0) / dx, (-half - x0) / dx), axis=1)
     crossings = np.where(np.isfinite(crossings), np.clip(crossings, 0.0, 1.0), 0.0)
     m = len(p)
@@ -218,7 +236,7 @@ def _deepest(x0: Array, dx: Array, half: Array, knots: Array
     nearest face among the candidates where that depth, a concave piecewise-linear function
     of t, can peak (face crossings, end points, coordinate zero crossings, the point nearest
     the centre), its projection on that face, the face normal and −depth."""
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         zero = -x0 / dx
         centre = -_dot(x0, dx) / _dot(dx, dx)
     candidates = np.concatenate((knots, zero, centre[:, None]), axis=1)
@@ -352,24 +370,30 @@ def _layout(model: CollisionModel) -> _Layout:
 
 
 def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
-               within_m: float = math.inf) -> Clearances:
+               within_m: float = math.inf, known_m: Array | None = None) -> Clearances:
     """The pairs of `model` at the pose given by `kinematics.joint_frames` (frames, T_tcp).
 
     With `within_m`, only pairs that may be closer than that are measured: a cheap lower
     bound of every pair's distance (see `_Layout`) culls the rest, and `beyond_m` is the
-    smallest bound among those left out (a distance never overstated). The control cycle
+    smallest bound among those left out (a distance never overstated); `lower_m` then holds
+    a lower bound of every pair at this pose (exact where measured). `known_m` (one per
+    pair, m) are lower bounds known from elsewhere (`reach_weights`): a kind of pair whose
+    every pair the cull keeps is known to be beyond `within_m` is not measured either. Its
+    rows still take their places, as zeros, in the product that makes the rate rows, so the
+    rows of the pairs measured are the very numbers a pass without `known_m` gives (the
+    product's rounding may depend on how many rows it has and where). The control cycle
     measures exactly what the damper needs this way; probe and preflight measure every pair.
     """
     lay = _layout(model)
-    frames_0 = np.concatenate((_EYE4, frames))  # index 0: the base frame (static parts)
-    placed = np.einsum("kij,kj->ki", frames_0[lay.frame_of_point, :3], lay.local_points)
-    points = np.concatenate((placed, lay.static_points, T_tcp[None, :3, 3]))
+    frames_0, points = _point_table(lay, frames, T_tcp)
     # Half-spaces are as cheap as a bound: every point against every plane in one product.
     heights = np.dot(points, lay.plane_normals_T)
-    dist3 = np.minimum(heights.take(lay.plane_start_flat), heights.take(lay.plane_end_flat)) \
-        - lay.plane_offset - lay.plane_r
+    dist3 = _plane_distances(lay, heights.take(lay.plane_start_flat),
+                             heights.take(lay.plane_end_flat))
     ha = lay.plane_a
     n_cap, n_culled = lay.n_cap, len(lay.cull_a)
+    skip_cap = skip_box = False
+    bound = None
     if within_m < math.inf:
         mid = points[lay.mid]
         centres = np.concatenate((mid, lay.box_centres))
@@ -381,22 +405,27 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
                                 - lay.cull_reach, dist3))
         keep = bound < within_m
         if not keep.any():
-            return Clearances.none_within(model.arm.n, float(bound.min(initial=math.inf)))
+            return Clearances.none_within(model.arm.n, float(bound.min(initial=math.inf)),
+                                          bound)
         beyond = float(bound[~keep].min(initial=math.inf))
         kept = np.flatnonzero(keep)
         k1 = kept[kept < n_cap]
         k2 = kept[(kept >= n_cap) & (kept < n_culled)] - n_cap
         k3 = kept[kept >= n_culled] - n_culled
+        if known_m is not None:
+            far = known_m >= within_m + _MARGIN_M
+            skip_cap = bool(len(k1)) and bool(far[k1].all())
+            skip_box = bool(len(k2)) and bool(far[k2 + n_cap].all())
     else:
         beyond = math.inf
         k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(ha))
     start, end = points[lay.start], points[lay.end]
     ca, cb, ba, ha = lay.cull_a[k1], lay.cull_b[k1], lay.cull_a[n_cap + k2], ha[k3]
     # Each kernel costs tens of numpy calls whatever its size: skip the empty ones.
-    dist1, pa1, pb1, n1 = capsule_capsule(start[ca], end[ca], lay.cap_r_arm[k1], start[cb],
-                                          end[cb], lay.cap_r_other[k1]) if len(k1) else _NONE
-    gap2, seg2, box2, n2 = segment_box(start[ba], end[ba], lay.box_pose[k2],
-                                       lay.box_half[k2]) if len(k2) else _NONE
+    dist1, pa1, pb1, n1 = _zeros(len(k1)) if skip_cap or not len(k1) else capsule_capsule(
+        start[ca], end[ca], lay.cap_r_arm[k1], start[cb], end[cb], lay.cap_r_other[k1])
+    gap2, seg2, box2, n2 = _zeros(len(k2)) if skip_box or not len(k2) else segment_box(
+        start[ba], end[ba], lay.box_pose[k2], lay.box_half[k2])
     r2 = lay.box_r[k2]
     n3, r3 = lay.plane_normal[k3], lay.plane_r[k3]
     gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, lay.plane_offset[k3])
@@ -405,14 +434,44 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
     points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3 - r3[:, None] * n3))
     points_other = np.concatenate((pb1, box2, plane3))
     rows = _rate_rows(model.arm, frames, points_arm, normals) * lay.mask_arm[index]
-    if len(k1):
+    if len(k1) and not skip_cap:
         other = lay.mask_other[k1]
         rows[:len(k1)] -= _rate_rows(model.arm, frames, points_other[:len(k1)], n1) * other
+    distances = np.concatenate((dist1, gap2 - r2, gap3 - r3))
+    lower = None
+    if bound is not None:
+        lower = bound
+        if skip_cap or skip_box:  # leave out the kinds not measured
+            assert known_m is not None
+            measured = np.concatenate((np.full(len(k1), not skip_cap),
+                                       np.full(len(k2), not skip_box), np.ones(len(k3), bool)))
+            beyond = min(beyond, float(known_m[index[~measured]].min()))
+            index, distances, normals = index[measured], distances[measured], normals[measured]
+            points_arm, points_other = points_arm[measured], points_other[measured]
+            rows = rows[measured]
+        lower[index] = distances
     names = model.pair_names
-    return Clearances(pairs=tuple(names[i] for i in index.tolist()),
-                      distances=np.concatenate((dist1, gap2 - r2, gap3 - r3)),
+    return Clearances(pairs=tuple(names[i] for i in index.tolist()), distances=distances,
                       points_arm=points_arm, points_other=points_other, normals=normals,
-                      rate_rows=rows, index=index, beyond_m=beyond)
+                      rate_rows=rows, index=index, beyond_m=beyond, lower_m=lower)
+
+
+def _point_table(lay: _Layout, frames: Array, T_tcp: Array) -> tuple[Array, Array]:
+    """The joint frames with the base frame first (index 0, static parts), and the point
+    table of the pose (see `_Layout`)."""
+    frames_0 = np.concatenate((_EYE4, frames))
+    placed = np.einsum("kij,kj->ki", frames_0[lay.frame_of_point, :3], lay.local_points)
+    return frames_0, np.concatenate((placed, lay.static_points, T_tcp[None, :3, 3]))
+
+
+def _plane_distances(lay: _Layout, start_heights: Array, end_heights: Array) -> Array:
+    """Every plane pair's distance from its end points' heights above the planes."""
+    return np.minimum(start_heights, end_heights) - lay.plane_offset - lay.plane_r
+
+
+def _zeros(p: int) -> tuple[Array, Array, Array, Array]:
+    """A kernel's outputs for p pairs not measured: zeros that only hold their places."""
+    return np.zeros(p), np.zeros((p, 3)), np.zeros((p, 3)), np.zeros((p, 3))
 
 
 _EYE4 = np.eye(4)[None]
@@ -427,6 +486,54 @@ def _rate_rows(arm: Arm, frames: Array, points: Array, normals: Array) -> Array:
     if len(pri):
         rows[:, pri] = np.dot(normals, z[pri].T)
     return np.asarray(rows, dtype=float)
+
+
+@lru_cache(maxsize=32)
+def reach_weights(model: CollisionModel) -> Array | None:
+    """(P, n), m/rad: how fast each pair's distance can change with each joint, in any pose;
+    None for arms with prismatic joints (their offsets change with q).
+
+    A point carried by joint frame f moves, when revolute joint j ≤ f turns by dq, at most
+    |dq| times its distance from joint j's origin, which no pose makes larger than the link
+    offsets from joint j to frame f, summed, plus the point's own distance from frame f's
+    origin. A pair's distance changes by no more than its two sides' points move relative to
+    each other: for an object, by the arm side's motion; for two links, only joints between
+    their frames move one against the other (those below carry both alike). So along a
+    straight move from q₀ to q
+
+        d(q) ≥ d(q₀) − Σ_j W[pair, j]·|q_j − q₀_j|
+
+    for every pair, with d(q₀) its distance or any lower bound of it, wherever the right
+    side is positive: the gap between two sets changes by no more than their relative
+    motion, and a positive distance here is such a gap (for a cylinder, the gap to its
+    enclosing capsule). Segment end points bound every point of a capsule (it is convex);
+    radii do not move.
+    """
+    arm, caps, lay = model.arm, model.capsules, _layout(model)
+    if not arm.is_revolute.all():
+        return None
+    n, s = arm.n, len(model.static_radius)
+    offsets = np.array([0.0] + [float(np.linalg.norm(j.origin[:3, 3])) for j in arm.joints[1:]])
+    carried = np.cumsum(offsets)  # carried[f] − carried[j]: offsets from joint j to frame f
+    frame = np.concatenate((caps.frame, np.full(s, -1), [n - 1]))
+    local = np.concatenate((np.maximum(np.linalg.norm(caps.start, axis=1),
+                                       np.linalg.norm(caps.end, axis=1)),
+                            np.zeros(s), [float(np.linalg.norm(arm.tip[:3, 3]))]))
+    joints = np.arange(n)
+    # reach[row, j]: farthest point of capsule-table row `row` from joint j's origin
+    reach = np.where(joints[None, :] <= frame[:, None],
+                     carried[np.maximum(frame, 0)][:, None] - carried[None, :] + local[:, None],
+                     0.0)
+    cp, bp, hp = model.capsule_pairs, model.box_pairs, model.plane_pairs
+    rows_a = np.concatenate((cp[:, 0], bp[:, 0], hp[:, 0]))  # the TCP: the table's last row
+    rows_b = np.concatenate((cp[:, 1], np.full(len(bp) + len(hp), -1)))
+    frame_b = np.where(rows_b >= 0, frame[np.maximum(rows_b, 0)], -1)
+    frame_a = frame[rows_a]
+    moving = np.where(frame_b > frame_a, rows_b, rows_a)
+    low, high = np.minimum(frame_a, frame_b), np.maximum(frame_a, frame_b)
+    between = (joints[None, :] > low[:, None]) & (joints[None, :] <= high[:, None])
+    assert len(rows_a) == len(lay.cull_a) + len(lay.plane_a)
+    return np.asarray(np.where(between, reach[moving], 0.0), dtype=float)
 
 
 def clearances_at(model: CollisionModel, q: Array) -> Clearances:
@@ -447,4 +554,5 @@ def cell_distances(arm: Arm, cell: Cell | None, q: Array) -> Clearances:
 
 
 __all__ = ["Clearances", "capsule_capsule", "cell_distances", "clearances", "clearances_at",
-           "collision_model", "segment_box", "segment_parameters", "segment_plane"]
+           "collision_model", "reach_weights", "segment_box", "segment_parameters",
+           "segment_plane"]

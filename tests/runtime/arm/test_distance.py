@@ -216,3 +216,34 @@ def test_cull_keeps_every_pair_within_reach_and_bounds_the_rest(arm_in_bench) ->
         assert (full.distances[left_out] >= 0.15).all()
         if len(left_out):
             assert part.beyond_m <= full.distances[left_out].min() + 1e-12
+
+
+def test_known_bounds_leave_out_pairs_and_keep_the_rows_bit_for_bit(arm_in_bench) -> None:
+    """With bounds known from elsewhere (`known_m`), a kind of pair the cull keeps but the
+    bounds place beyond within_m is not measured; the rows of the pairs measured are the
+    same numbers, bit for bit, as without (the rate-row product keeps its shape), and
+    every pair left out is reported as beyond."""
+    from runtime.arm.distance import clearances, collision_model
+    from runtime.arm.kinematics import joint_frames
+    arm, cell = arm_in_bench
+    model = collision_model(arm, cell)
+    rng = np.random.default_rng(4)
+    left_out = 0
+    for _ in range(60):
+        q = arm.home() + rng.uniform(-1.0, 1.0, arm.n)
+        frames, T = joint_frames(arm, q)
+        plain = clearances(model, frames, T, within_m=0.15)
+        exact = clearances(model, frames, T).distances
+        # true lower bounds that place every pair beyond 0.15 m beyond it
+        known = np.where(exact >= 0.15 + 1e-6, exact, -np.inf)
+        part = clearances(model, frames, T, within_m=0.15, known_m=known)
+        assert set(part.index.tolist()) <= set(plain.index.tolist())
+        assert (exact[np.setdiff1d(plain.index, part.index)] >= 0.15).all()
+        left_out += len(plain.index) - len(part.index)
+        where = np.searchsorted(plain.index, part.index)
+        assert plain.rate_rows[where].tobytes() == part.rate_rows.tobytes()
+        assert plain.distances[where].tobytes() == part.distances.tobytes()
+        assert part.beyond_m <= exact[np.setdiff1d(np.arange(len(exact)), part.index)].min()
+        assert part.lower_m is not None and (part.lower_m <= exact + 1e-12).all()
+    assert left_out > 0
+
