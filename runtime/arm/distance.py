@@ -469,6 +469,47 @@ def _plane_distances(lay: _Layout, start_heights: Array, end_heights: Array) -> 
     return np.minimum(start_heights, end_heights) - lay.plane_offset - lay.plane_r
 
 
+def distance_table(model: CollisionModel, qs: Array, block: int = 512) -> Array:
+    """(N, P): every pair's distance (m, `pair_names` order) at each of N poses qs (N, n).
+
+    Row k is, bit for bit, `clearances_at(model, qs[k]).distances`: each pose's points are
+    placed as there, and the kernels, which treat every pair alone, take the pairs of
+    `block` poses in one pass instead of one pose's. For a whole run's poses at once
+    (the preflight's verdict), without witness points, normals or rate rows.
+    """
+    lay = _layout(model)
+    qs = np.asarray(qs, dtype=float).reshape(-1, model.arm.n)
+    table = np.empty((len(qs), len(model.pair_names)))
+    for first in range(0, len(qs), block):
+        table[first:first + block] = _distance_block(model, lay, qs[first:first + block])
+    return table
+
+
+def _distance_block(model: CollisionModel, lay: _Layout, qs: Array) -> Array:
+    m = len(qs)
+    points = np.empty((m, len(lay.frame_of_point) + len(lay.static_points) + 1, 3))
+    heights = np.empty((m, points.shape[1] * lay.plane_normals_T.shape[1]))
+    for k, q in enumerate(qs):
+        frames, T_tcp = joint_frames(model.arm, q)
+        points[k] = _point_table(lay, frames, T_tcp)[1]
+        heights[k] = np.dot(points[k], lay.plane_normals_T).ravel()  # as in `clearances`
+    start, end = points[:, lay.start], points[:, lay.end]
+    ca, cb, ba = lay.cull_a[:lay.n_cap], lay.cull_b, lay.cull_a[lay.n_cap:]
+
+    def flat(a: Array) -> Array:
+        return a.reshape(-1, 3)
+
+    dist1 = capsule_capsule(flat(start[:, ca]), flat(end[:, ca]), np.tile(lay.cap_r_arm, m),
+                            flat(start[:, cb]), flat(end[:, cb]), np.tile(lay.cap_r_other, m)
+                            )[0] if lay.n_cap else np.zeros(0)
+    gap2 = segment_box(flat(start[:, ba]), flat(end[:, ba]), np.tile(lay.box_pose, (m, 1, 1)),
+                       np.tile(lay.box_half, (m, 1)))[0] if lay.n_box else np.zeros(0)
+    dist3 = _plane_distances(lay, heights[:, lay.plane_start_flat],
+                             heights[:, lay.plane_end_flat])
+    return np.concatenate((dist1.reshape(m, -1), (gap2 - np.tile(lay.box_r, m)).reshape(m, -1),
+                           dist3), axis=1)
+
+
 def _zeros(p: int) -> tuple[Array, Array, Array, Array]:
     """A kernel's outputs for p pairs not measured: zeros that only hold their places."""
     return np.zeros(p), np.zeros((p, 3)), np.zeros((p, 3)), np.zeros((p, 3))
@@ -554,5 +595,6 @@ def cell_distances(arm: Arm, cell: Cell | None, q: Array) -> Clearances:
 
 
 __all__ = ["Clearances", "capsule_capsule", "cell_distances", "clearances", "clearances_at",
+           "distance_table",
            "collision_model", "reach_weights", "segment_box", "segment_parameters",
            "segment_plane"]

@@ -247,3 +247,14 @@ def test_known_bounds_leave_out_pairs_and_keep_the_rows_bit_for_bit(arm_in_bench
         assert part.lower_m is not None and (part.lower_m <= exact + 1e-12).all()
     assert left_out > 0
 
+
+def test_distance_table_is_the_distances_of_each_pose_bit_for_bit(arm_in_bench) -> None:
+    """The preflight's table of every pair at every pose, taken many poses per pass, is
+    `clearances_at` pose by pose, to the bit (blocks of 7 poses: a last block shorter)."""
+    from runtime.arm.distance import clearances_at, collision_model, distance_table
+    arm, cell = arm_in_bench
+    model = collision_model(arm, cell)
+    qs = arm.home() + np.random.default_rng(5).uniform(-1.5, 1.5, (40, arm.n))
+    table = distance_table(model, qs, block=7)
+    assert table.shape == (40, len(model.pair_names))
+    assert table.tobytes() == np.array([clearances_at(model, q).distances for q in qs]).tobytes()
