@@ -128,10 +128,13 @@ def _dot(a: Array, b: Array) -> Array:
 
 
 def _cross(a: Array, b: Array) -> Array:
-    """Row-wise cross product (np.cross costs several times more on small arrays)."""
-    a0, a1, a2 = a[:, 0], a[:, 1], a[:, 2]
-    b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
-    return np.stack((a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0), axis=1)
+    """Row-wise cross product, each component a_i·b_j − a_j·b_i rounded as written (np.cross
+    costs several times more on small arrays): one gather per operand order, not per
+    component."""
+    return np.asarray(a[:, _NEXT] * b[:, _AFTER] - a[:, _AFTER] * b[:, _NEXT], dtype=float)
+
+
+_NEXT, _AFTER = np.array([1, 2, 0]), np.array([2, 0, 1])
 
 
 def segment_parameters(p1: Array, d1: Array, p2: Array, d2: Array) -> tuple[Array, Array]:
@@ -433,10 +436,11 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
     normals = np.concatenate((n1, n2, n3))
     points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3 - r3[:, None] * n3))
     points_other = np.concatenate((pb1, box2, plane3))
-    rows = _rate_rows(model.arm, frames, points_arm, normals) * lay.mask_arm[index]
+    axes = _axes(frames)
+    rows = _rate_rows(model.arm, axes, points_arm, normals) * lay.mask_arm[index]
     if len(k1) and not skip_cap:
         other = lay.mask_other[k1]
-        rows[:len(k1)] -= _rate_rows(model.arm, frames, points_other[:len(k1)], n1) * other
+        rows[:len(k1)] -= _rate_rows(model.arm, axes, points_other[:len(k1)], n1) * other
     distances = np.concatenate((dist1, gap2 - r2, gap3 - r3))
     lower = None
     if bound is not None:
@@ -518,10 +522,15 @@ def _zeros(p: int) -> tuple[Array, Array, Array, Array]:
 _EYE4 = np.eye(4)[None]
 
 
-def _rate_rows(arm: Arm, frames: Array, points: Array, normals: Array) -> Array:
+def _axes(frames: Array) -> tuple[Array, Array]:
+    """Every joint's axis z and its moment z × o (o: the joint's origin), base frame."""
+    z = frames[:, :3, 2]
+    return z, _cross(z, frames[:, :3, 3])
+
+
+def _rate_rows(arm: Arm, axes: tuple[Array, Array], points: Array, normals: Array) -> Array:
     """n·J(p) for every point as if every joint moved it (the caller masks the rest)."""
-    z, o = frames[:, :3, 2], frames[:, :3, 3]
-    moment = _cross(z, o)
+    z, moment = axes
     rows = np.dot(_cross(points, normals), z.T) - np.dot(normals, moment.T)
     pri = arm.prismatic_index
     if len(pri):
