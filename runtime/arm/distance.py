@@ -38,7 +38,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Any, Callable
+from typing import Any, Callable, cast
 
 import numpy as np
 from numpy.typing import NDArray
@@ -124,7 +124,7 @@ class Clearances:
 # ----------------------------------------------------------------------------------------
 
 def _dot(a: Array, b: Array) -> Array:
-    return np.asarray(np.einsum("ij,ij->i", a, b), dtype=float)
+    return cast(Array, np.einsum("ij,ij->i", a, b))
 
 
 def _cross(a: Array, b: Array) -> Array:
@@ -151,16 +151,20 @@ def segment_parameters(p1: Array, d1: Array, p2: Array, d2: Array) -> tuple[Arra
     a_s, e_s = np.where(a_ok, a, 1.0), np.where(e_ok, e, 1.0)
     denom = a * e - b * b
     skew = denom > 1e-12 * a * e  # not parallel: the closest points of the lines, clamped
-    s = np.where(skew, np.clip((b * f - c * e) / np.where(skew, denom, 1.0), 0.0, 1.0), 0.0)
+    # (ndarray.clip is what np.clip calls, without its dispatch)
+    s = np.where(skew, ((b * f - c * e) / np.where(skew, denom, 1.0)).clip(0.0, 1.0), 0.0)
     t = (b * s + f) / e_s
-    s = np.where(t < 0.0, np.clip(-c / a_s, 0.0, 1.0),
-                 np.where(t > 1.0, np.clip((b - c) / a_s, 0.0, 1.0), s))
-    t = np.clip(t, 0.0, 1.0)
-    # Degenerate segments: a point against a segment, or two points.
-    s = np.where(e_ok, s, np.clip(-c / a_s, 0.0, 1.0))
-    t = np.where(e_ok, t, 0.0)
-    t = np.where(a_ok, t, np.clip(f / e_s, 0.0, 1.0))
-    s = np.where(a_ok, s, 0.0)
+    s = np.where(t < 0.0, (-c / a_s).clip(0.0, 1.0),
+                 np.where(t > 1.0, ((b - c) / a_s).clip(0.0, 1.0), s))
+    t = t.clip(0.0, 1.0)
+    # Degenerate segments: a point against a segment, or two points (where none is, these
+    # would change nothing).
+    if not e_ok.all():
+        s = np.where(e_ok, s, (-c / a_s).clip(0.0, 1.0))
+        t = np.where(e_ok, t, 0.0)
+    if not a_ok.all():
+        t = np.where(a_ok, t, (f / e_s).clip(0.0, 1.0))
+        s = np.where(a_ok, s, 0.0)
     return s, t
 
 
@@ -393,7 +397,6 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
     heights = np.dot(points, lay.plane_normals_T)
     dist3 = _plane_distances(lay, heights.take(lay.plane_start_flat),
                              heights.take(lay.plane_end_flat))
-    ha = lay.plane_a
     n_cap, n_culled = lay.n_cap, len(lay.cull_a)
     skip_cap = skip_box = False
     bound = None
@@ -412,36 +415,42 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
                                           bound)
         beyond = float(bound[~keep].min(initial=math.inf))
         kept = np.flatnonzero(keep)
-        k1 = kept[kept < n_cap]
-        k2 = kept[(kept >= n_cap) & (kept < n_culled)] - n_cap
-        k3 = kept[kept >= n_culled] - n_culled
+        first_box, first_plane = np.searchsorted(kept, (n_cap, n_culled)).tolist()
+        k1, k2, k3 = (kept[:first_box], kept[first_box:first_plane] - n_cap,
+                      kept[first_plane:] - n_culled)
         if known_m is not None:
             far = known_m >= within_m + _MARGIN_M
             skip_cap = bool(len(k1)) and bool(far[k1].all())
-            skip_box = bool(len(k2)) and bool(far[k2 + n_cap].all())
+            skip_box = bool(len(k2)) and bool(far[kept[first_box:first_plane]].all())
     else:
         beyond = math.inf
-        k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(ha))
+        k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(lay.plane_a))
     start, end = points[lay.start], points[lay.end]
-    ca, cb, ba, ha = lay.cull_a[k1], lay.cull_b[k1], lay.cull_a[n_cap + k2], ha[k3]
-    # Each kernel costs tens of numpy calls whatever its size: skip the empty ones.
-    dist1, pa1, pb1, n1 = _zeros(len(k1)) if skip_cap or not len(k1) else capsule_capsule(
-        start[ca], end[ca], lay.cap_r_arm[k1], start[cb], end[cb], lay.cap_r_other[k1])
-    gap2, seg2, box2, n2 = _zeros(len(k2)) if skip_box or not len(k2) else segment_box(
-        start[ba], end[ba], lay.box_pose[k2], lay.box_half[k2])
-    r2 = lay.box_r[k2]
-    n3, r3 = lay.plane_normal[k3], lay.plane_r[k3]
-    gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, lay.plane_offset[k3])
-    index = np.concatenate((k1, k2 + n_cap, k3 + n_cap + lay.n_box))
-    normals = np.concatenate((n1, n2, n3))
-    points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3 - r3[:, None] * n3))
-    points_other = np.concatenate((pb1, box2, plane3))
+    # Each kernel costs tens of numpy calls whatever its size: only the kinds with pairs.
+    parts: list[tuple[NDArray[np.intp], Array, Array, Array, Array]] = []
+    if len(k1):
+        ca, cb = lay.cull_a[k1], lay.cull_b[k1]
+        dist1, pa1, pb1, n1 = _zeros(len(k1)) if skip_cap else capsule_capsule(
+            start[ca], end[ca], lay.cap_r_arm[k1], start[cb], end[cb], lay.cap_r_other[k1])
+        parts.append((k1, dist1, pa1, pb1, n1))
+    if len(k2):
+        ba, r2 = lay.cull_a[n_cap + k2], lay.box_r[k2]
+        gap2, seg2, box2, n2 = _zeros(len(k2)) if skip_box else segment_box(
+            start[ba], end[ba], lay.box_pose[k2], lay.box_half[k2])
+        parts.append((k2 + n_cap, gap2 - r2, seg2 - r2[:, None] * n2, box2, n2))
+    if len(k3):
+        ha, n3, r3 = lay.plane_a[k3], lay.plane_normal[k3], lay.plane_r[k3]
+        gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, lay.plane_offset[k3])
+        parts.append((k3 + n_culled, gap3 - r3, end3 - r3[:, None] * n3, plane3, n3))
+    if not parts:  # a model without pairs
+        return Clearances.none_within(model.arm.n, beyond)
+    index, distances, points_arm, points_other, normals = (
+        part[0] if len(parts) == 1 else np.concatenate(part) for part in zip(*parts))
     axes = _axes(frames)
     rows = _rate_rows(model.arm, axes, points_arm, normals) * lay.mask_arm[index]
     if len(k1) and not skip_cap:
         other = lay.mask_other[k1]
         rows[:len(k1)] -= _rate_rows(model.arm, axes, points_other[:len(k1)], n1) * other
-    distances = np.concatenate((dist1, gap2 - r2, gap3 - r3))
     lower = None
     if bound is not None:
         lower = bound
