@@ -52,7 +52,6 @@ from .transforms import rotation_aligning_z
 Array = NDArray[np.float64]
 
 _EPS = 1e-12  # squared lengths below this are points (m²)
-_NONE = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3)))  # no pairs
 _EMPTY, _EMPTY_3, _NO_INDEX = np.zeros(0), np.zeros((0, 3)), np.zeros(0, np.intp)
 for _shared in (_EMPTY, _EMPTY_3, _NO_INDEX):
     _shared.setflags(write=False)
