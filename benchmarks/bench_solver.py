@@ -22,8 +22,11 @@ runtime/control/solver.py). Every figure is printed with the load average.
 Clearance (--cell, default the demo cell `bench`): the same solve with and without the
 velocity damper (runtime/control/clearance.py), interleaved at each pose of a jog that
 drives into the cell's objects under the damper (3 s gestures at 0.3 m/s, mostly downward
-and sideways, from home); the added time per cycle, in all cycles and in those with a pair
-inside the influence distance. Run from the repository root:
+and sideways, from home); the added time per cycle and the C calls it adds (numpy's
+functions and methods as the profiler sees them, counted in an untimed replay), split by
+kind of cycle (CYCLE_KINDS: nothing measured on the carried bounds, culled, measured with
+nothing inside d_i, a pair inside d_i), each against the pin reference of the same run.
+Run from the repository root:
 
     python benchmarks/bench_solver.py [--cycles N] [--arm reach7] [--cell bench]
 """
@@ -280,20 +283,59 @@ def load_average() -> str:
     return " ".join(f"{x:.2f}" for x in os.getloadavg())
 
 
+CYCLE_KINDS = {
+    "bound": "nothing measured: every pair's carried bound beyond d_i (no distances at all)",
+    "culled": "distances placed, the cull found nothing within d_i",
+    "measured": "pairs measured, none inside d_i",
+    "inside": "a pair inside d_i (the damper's rows)",
+}
+
+
+def cycle_kind(sol, d_i: float) -> str:
+    """Which of CYCLE_KINDS a solve with a cell was (from what its clearance report holds)."""
+    found = sol.clearance.distances
+    if sol.clearance.min_distance_m < d_i:
+        return "inside"
+    if len(found.pairs):
+        return "measured"
+    return "bound" if found.lower_m is None else "culled"
+
+
+def c_calls(f, *args, **kwargs) -> int:
+    """C-level calls while f runs, as the profiler sees them: numpy's functions and array
+    methods, ufuncs called by name; arithmetic operators on arrays are not seen (so the
+    count is a floor of the numpy operations)."""
+    count = 0
+
+    def hook(frame, event, arg):
+        nonlocal count
+        count += event == "c_call"
+
+    sys.setprofile(hook)
+    try:
+        f(*args, **kwargs)
+    finally:
+        sys.setprofile(None)
+    return count
+
+
 def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
                    ) -> dict[str, np.ndarray]:
-    """Per cycle: solve time without and with the cell, and whether a pair was inside d_i."""
+    """Per cycle: solve time without and with the cell, its kind (CYCLE_KINDS), and the C
+    calls it added (counted in a replay of the same inputs with a fresh limit, untimed)."""
     cell = load_cell(cell_name, arm)
     limit = ClearanceLimit.of(arm, cell)
+    d_i = cell.clearance.influence_distance_m
     rng = np.random.default_rng(seed)
     hold = int(3.0 / DT_S)
     plain, guarded = np.empty(cycles), np.empty(cycles)
     inputs = []
-    near = np.zeros(cycles, dtype=bool)
+    kinds = np.empty(cycles, dtype=object)
     q, prev = arm.home(), np.zeros(arm.n)
-    for v in jog_twists(200):  # warm-up
+    warm_up = ClearanceLimit.of(arm, cell)  # the timed limit starts fresh, as its replay
+    for v in jog_twists(200):
         solve(arm, q, v, prev_rates=prev, dt_s=DT_S)
-        solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
+        solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=warm_up)
     clock = time.perf_counter
     for k in range(cycles):
         if k % hold == 0:  # a new gesture from home: 0.3 m/s, mostly down and sideways
@@ -307,11 +349,36 @@ def clearance_cost(arm: Arm, cell_name: str, cycles: int, seed: int = 5
         sol = solve(arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=limit)
         t2 = clock()
         plain[k], guarded[k] = t1 - t0, t2 - t1
-        near[k] = sol.clearance.min_distance_m < cell.clearance.influence_distance_m
+        kinds[k] = cycle_kind(sol, d_i)
         prev = sol.rates
         q = q + prev * DT_S
-    return {"plain": plain, "guarded": guarded, "near": near, "inputs": inputs,
-            "limit": limit, "load": load_average()}
+    load = load_average()
+    replay = ClearanceLimit.of(arm, cell)
+    calls = np.array([c_calls(solve, arm, q, v, prev_rates=prev, dt_s=DT_S, clearance=replay)
+                      - c_calls(solve, arm, q, v, prev_rates=prev, dt_s=DT_S)
+                      for q, v, prev in inputs])
+    return {"plain": plain, "guarded": guarded, "kinds": kinds, "calls": calls,
+            "inputs": inputs, "limit": limit, "load": load}
+
+
+def print_clearance(cost: dict, cell_name: str, reference_us: float) -> None:
+    """The clearance figures by kind of cycle, against the same run's reference."""
+    us = 1e6
+    plain, guarded, kinds = cost["plain"] * us, cost["guarded"] * us, cost["kinds"]
+    print(f"Clearance in cell {cell_name} ({len(kinds)} cycles; load after it {cost['load']}); "
+          f"ratio: the solve with the cell over the reference above (pin J + "
+          f"numpy.linalg.solve DLS, gestures median {reference_us:.1f} µs):")
+    groups = [("all cycles", np.ones(len(kinds), dtype=bool), "")] + \
+        [(kind, kinds == kind, what) for kind, what in CYCLE_KINDS.items()]
+    for name, chosen, what in groups:
+        if not chosen.any():
+            continue
+        with_cell = float(np.median(guarded[chosen]))
+        print(f"  {name:<10} {chosen.mean():4.0%}  solve {np.median(plain[chosen]):6.1f} µs, "
+              f"with the cell {with_cell:6.1f} µs (p99 {np.percentile(guarded[chosen], 99):6.1f}), "
+              f"added {np.median(guarded[chosen] - plain[chosen]):6.1f} µs, "
+              f"C calls added {np.median(cost['calls'][chosen]):4.0f}, "
+              f"ratio {with_cell / reference_us:4.1f}" + (f"   {what}" if what else ""))
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -355,15 +422,7 @@ def main(argv: list[str] | None = None) -> int:
     for name, t in options.items():
         print(f"  {name:<48} {t:6.1f}")
     cost = clearance_cost(arm, args.cell, args.cycles)
-    plain, guarded, near = cost["plain"] * us, cost["guarded"] * us, cost["near"]
-    print(f"Clearance in cell {args.cell} ({args.cycles} cycles; a pair inside d_i in "
-          f"{near.mean():.0%} of them; load after it {cost['load']}):")
-    for name, chosen in (("all cycles", np.ones_like(near)), ("a pair inside d_i", near),
-                         ("nothing inside d_i", ~near)):
-        if chosen.any():
-            print(f"  {name:<20} solve median {np.median(plain[chosen]):6.1f} µs, with the "
-                  f"cell {np.median(guarded[chosen]):6.1f} µs, added (median of per-cycle "
-                  f"differences) {np.median(guarded[chosen] - plain[chosen]):6.1f} µs")
+    print_clearance(cost, args.cell, float(np.median(results["gestures"]["theirs"])) * us)
     print_split(stage_split(arm, cost["inputs"], cost["limit"]),
                 f"the jog into cell {args.cell}")
     print(f"load average at the end {os.getloadavg()[0]:.2f}")

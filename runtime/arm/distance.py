@@ -38,7 +38,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Any, Callable
+from typing import Any, Callable, cast
 
 import numpy as np
 from numpy.typing import NDArray
@@ -52,7 +52,20 @@ from .transforms import rotation_aligning_z
 Array = NDArray[np.float64]
 
 _EPS = 1e-12  # squared lengths below this are points (m²)
-_NONE = (np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros((0, 3)))  # no pairs
+_EMPTY, _EMPTY_3, _NO_INDEX = np.zeros(0), np.zeros((0, 3)), np.zeros(0, np.intp)
+for _shared in (_EMPTY, _EMPTY_3, _NO_INDEX):
+    _shared.setflags(write=False)
+_MARGIN_M = 1e-9
+"""A pair is left out on a bound only this far beyond the threshold (m): far above the
+rounding of any distance here (~1e-15 m), so a pair the exact pass would place inside is
+never left out."""
+
+
+@lru_cache(maxsize=64)
+def _empty_rows(n: int) -> Array:
+    rows = np.zeros((0, n))
+    rows.setflags(write=False)
+    return rows
 
 
 @dataclass(frozen=True, eq=False)
@@ -69,6 +82,9 @@ class Clearances:
     index         (p,) each pair's position in the model's `pair_names`
     beyond_m      a lower bound of the distance of every pair not measured (inf: none left
                   out; see `clearances`)
+    lower_m       (P,) with a cull (`clearances` with `within_m`): a lower bound of every
+                  pair of the model at this pose, in `pair_names` order, exact where measured;
+                  None otherwise
     """
 
     pairs: tuple[tuple[str, str], ...]
@@ -79,14 +95,15 @@ class Clearances:
     rate_rows: Array
     index: NDArray[np.intp]
     beyond_m: float = math.inf
+    lower_m: Array | None = None
 
     @staticmethod
-    def none_within(n: int, beyond_m: float) -> "Clearances":
+    def none_within(n: int, beyond_m: float, lower_m: Array | None = None) -> "Clearances":
         """No pair measured (none can be within reach); `beyond_m` bounds them all."""
-        empty = np.zeros((0, 3))
-        return Clearances(pairs=(), distances=np.zeros(0), points_arm=empty,
-                          points_other=empty, normals=empty, rate_rows=np.zeros((0, n)),
-                          index=np.zeros(0, np.intp), beyond_m=beyond_m)
+        empty = _EMPTY_3
+        return Clearances(pairs=(), distances=_EMPTY, points_arm=empty, points_other=empty,
+                          normals=empty, rate_rows=_empty_rows(n), index=_NO_INDEX,
+                          beyond_m=beyond_m, lower_m=lower_m)
 
     def nearest(self) -> int | None:
         """Index of the smallest distance, or None without pairs."""
@@ -106,14 +123,17 @@ class Clearances:
 # ----------------------------------------------------------------------------------------
 
 def _dot(a: Array, b: Array) -> Array:
-    return np.asarray(np.einsum("ij,ij->i", a, b), dtype=float)
+    return cast(Array, np.einsum("ij,ij->i", a, b))
 
 
 def _cross(a: Array, b: Array) -> Array:
-    """Row-wise cross product (np.cross costs several times more on small arrays)."""
-    a0, a1, a2 = a[:, 0], a[:, 1], a[:, 2]
-    b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
-    return np.stack((a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0), axis=1)
+    """Row-wise cross product, each component a_i·b_j − a_j·b_i rounded as written (np.cross
+    costs several times more on small arrays): one gather per operand order, not per
+    component."""
+    return np.asarray(a[:, _NEXT] * b[:, _AFTER] - a[:, _AFTER] * b[:, _NEXT], dtype=float)
+
+
+_NEXT, _AFTER = np.array([1, 2, 0]), np.array([2, 0, 1])
 
 
 def segment_parameters(p1: Array, d1: Array, p2: Array, d2: Array) -> tuple[Array, Array]:
@@ -130,16 +150,20 @@ def segment_parameters(p1: Array, d1: Array, p2: Array, d2: Array) -> tuple[Arra
     a_s, e_s = np.where(a_ok, a, 1.0), np.where(e_ok, e, 1.0)
     denom = a * e - b * b
     skew = denom > 1e-12 * a * e  # not parallel: the closest points of the lines, clamped
-    s = np.where(skew, np.clip((b * f - c * e) / np.where(skew, denom, 1.0), 0.0, 1.0), 0.0)
+    # (ndarray.clip is what np.clip calls, without its dispatch)
+    s = np.where(skew, ((b * f - c * e) / np.where(skew, denom, 1.0)).clip(0.0, 1.0), 0.0)
     t = (b * s + f) / e_s
-    s = np.where(t < 0.0, np.clip(-c / a_s, 0.0, 1.0),
-                 np.where(t > 1.0, np.clip((b - c) / a_s, 0.0, 1.0), s))
-    t = np.clip(t, 0.0, 1.0)
-    # Degenerate segments: a point against a segment, or two points.
-    s = np.where(e_ok, s, np.clip(-c / a_s, 0.0, 1.0))
-    t = np.where(e_ok, t, 0.0)
-    t = np.where(a_ok, t, np.clip(f / e_s, 0.0, 1.0))
-    s = np.where(a_ok, s, 0.0)
+    s = np.where(t < 0.0, (-c / a_s).clip(0.0, 1.0),
+                 np.where(t > 1.0, ((b - c) / a_s).clip(0.0, 1.0), s))
+    t = t.clip(0.0, 1.0)
+    # Degenerate segments: a point against a segment, or two points (where none is, these
+    # would change nothing).
+    if not e_ok.all():
+        s = np.where(e_ok, s, (-c / a_s).clip(0.0, 1.0))
+        t = np.where(e_ok, t, 0.0)
+    if not a_ok.all():
+        t = np.where(a_ok, t, (f / e_s).clip(0.0, 1.0))
+        s = np.where(a_ok, s, 0.0)
     return s, t
 
 
@@ -183,7 +207,7 @@ def segment_box(p: Array, q: Array, pose: Array, half: Array
     R, centre = pose[:, :3, :3], pose[:, :3, 3]
     x0 = np.einsum("pji,pj->pi", R, p - centre)  # box frame: Rᵀ(p − c)
     dx = np.einsum("pji,pj->pi", R, q - p)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # dx ≈ 0: no crossing
         crossings = np.concatenate(((half - x0) / dx, (-half - x0) / dx), axis=1)
     crossings = np.where(np.isfinite(crossings), np.clip(crossings, 0.0, 1.0), 0.0)
     m = len(p)
@@ -218,7 +242,7 @@ def _deepest(x0: Array, dx: Array, half: Array, knots: Array
     nearest face among the candidates where that depth, a concave piecewise-linear function
     of t, can peak (face crossings, end points, coordinate zero crossings, the point nearest
     the centre), its projection on that face, the face normal and −depth."""
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         zero = -x0 / dx
         centre = -_dot(x0, dx) / _dot(dx, dx)
     candidates = np.concatenate((knots, zero, centre[:, None]), axis=1)
@@ -352,24 +376,29 @@ def _layout(model: CollisionModel) -> _Layout:
 
 
 def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
-               within_m: float = math.inf) -> Clearances:
+               within_m: float = math.inf, known_m: Array | None = None) -> Clearances:
     """The pairs of `model` at the pose given by `kinematics.joint_frames` (frames, T_tcp).
 
     With `within_m`, only pairs that may be closer than that are measured: a cheap lower
     bound of every pair's distance (see `_Layout`) culls the rest, and `beyond_m` is the
-    smallest bound among those left out (a distance never overstated). The control cycle
+    smallest bound among those left out (a distance never overstated); `lower_m` then holds
+    a lower bound of every pair at this pose (exact where measured). `known_m` (one per
+    pair, m) are lower bounds known from elsewhere (`reach_weights`): a kind of pair whose
+    every pair the cull keeps is known to be beyond `within_m` is not measured either. Its
+    rows still take their places, as zeros, in the product that makes the rate rows, so the
+    rows of the pairs measured are the very numbers a pass without `known_m` gives (the
+    product's rounding may depend on how many rows it has and where). The control cycle
     measures exactly what the damper needs this way; probe and preflight measure every pair.
     """
     lay = _layout(model)
-    frames_0 = np.concatenate((_EYE4, frames))  # index 0: the base frame (static parts)
-    placed = np.einsum("kij,kj->ki", frames_0[lay.frame_of_point, :3], lay.local_points)
-    points = np.concatenate((placed, lay.static_points, T_tcp[None, :3, 3]))
+    frames_0, points = _point_table(lay, frames, T_tcp)
     # Half-spaces are as cheap as a bound: every point against every plane in one product.
     heights = np.dot(points, lay.plane_normals_T)
-    dist3 = np.minimum(heights.take(lay.plane_start_flat), heights.take(lay.plane_end_flat)) \
-        - lay.plane_offset - lay.plane_r
-    ha = lay.plane_a
+    dist3 = _plane_distances(lay, heights.take(lay.plane_start_flat),
+                             heights.take(lay.plane_end_flat))
     n_cap, n_culled = lay.n_cap, len(lay.cull_a)
+    skip_cap = skip_box = False
+    bound = None
     if within_m < math.inf:
         mid = points[lay.mid]
         centres = np.concatenate((mid, lay.box_centres))
@@ -381,52 +410,188 @@ def clearances(model: CollisionModel, frames: Array, T_tcp: Array,
                                 - lay.cull_reach, dist3))
         keep = bound < within_m
         if not keep.any():
-            return Clearances.none_within(model.arm.n, float(bound.min(initial=math.inf)))
+            return Clearances.none_within(model.arm.n, float(bound.min(initial=math.inf)),
+                                          bound)
         beyond = float(bound[~keep].min(initial=math.inf))
         kept = np.flatnonzero(keep)
-        k1 = kept[kept < n_cap]
-        k2 = kept[(kept >= n_cap) & (kept < n_culled)] - n_cap
-        k3 = kept[kept >= n_culled] - n_culled
+        first_box, first_plane = np.searchsorted(kept, (n_cap, n_culled)).tolist()
+        k1, k2, k3 = (kept[:first_box], kept[first_box:first_plane] - n_cap,
+                      kept[first_plane:] - n_culled)
+        if known_m is not None:
+            far = known_m >= within_m + _MARGIN_M
+            skip_cap = bool(len(k1)) and bool(far[k1].all())
+            skip_box = bool(len(k2)) and bool(far[kept[first_box:first_plane]].all())
     else:
         beyond = math.inf
-        k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(ha))
+        k1, k2, k3 = np.arange(n_cap), np.arange(lay.n_box), np.arange(len(lay.plane_a))
     start, end = points[lay.start], points[lay.end]
-    ca, cb, ba, ha = lay.cull_a[k1], lay.cull_b[k1], lay.cull_a[n_cap + k2], ha[k3]
-    # Each kernel costs tens of numpy calls whatever its size: skip the empty ones.
-    dist1, pa1, pb1, n1 = capsule_capsule(start[ca], end[ca], lay.cap_r_arm[k1], start[cb],
-                                          end[cb], lay.cap_r_other[k1]) if len(k1) else _NONE
-    gap2, seg2, box2, n2 = segment_box(start[ba], end[ba], lay.box_pose[k2],
-                                       lay.box_half[k2]) if len(k2) else _NONE
-    r2 = lay.box_r[k2]
-    n3, r3 = lay.plane_normal[k3], lay.plane_r[k3]
-    gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, lay.plane_offset[k3])
-    index = np.concatenate((k1, k2 + n_cap, k3 + n_cap + lay.n_box))
-    normals = np.concatenate((n1, n2, n3))
-    points_arm = np.concatenate((pa1, seg2 - r2[:, None] * n2, end3 - r3[:, None] * n3))
-    points_other = np.concatenate((pb1, box2, plane3))
-    rows = _rate_rows(model.arm, frames, points_arm, normals) * lay.mask_arm[index]
+    # Each kernel costs tens of numpy calls whatever its size: only the kinds with pairs.
+    parts: list[tuple[NDArray[np.intp], Array, Array, Array, Array]] = []
     if len(k1):
+        ca, cb = lay.cull_a[k1], lay.cull_b[k1]
+        dist1, pa1, pb1, n1 = _zeros(len(k1)) if skip_cap else capsule_capsule(
+            start[ca], end[ca], lay.cap_r_arm[k1], start[cb], end[cb], lay.cap_r_other[k1])
+        parts.append((k1, dist1, pa1, pb1, n1))
+    if len(k2):
+        ba, r2 = lay.cull_a[n_cap + k2], lay.box_r[k2]
+        gap2, seg2, box2, n2 = _zeros(len(k2)) if skip_box else segment_box(
+            start[ba], end[ba], lay.box_pose[k2], lay.box_half[k2])
+        parts.append((k2 + n_cap, gap2 - r2, seg2 - r2[:, None] * n2, box2, n2))
+    if len(k3):
+        ha, n3, r3 = lay.plane_a[k3], lay.plane_normal[k3], lay.plane_r[k3]
+        gap3, end3, plane3 = segment_plane(start[ha], end[ha], n3, lay.plane_offset[k3])
+        parts.append((k3 + n_culled, gap3 - r3, end3 - r3[:, None] * n3, plane3, n3))
+    if not parts:  # a model without pairs
+        return Clearances.none_within(model.arm.n, beyond)
+    index, distances, points_arm, points_other, normals = (
+        part[0] if len(parts) == 1 else np.concatenate(part) for part in zip(*parts))
+    axes = _axes(frames)
+    rows = _rate_rows(model.arm, axes, points_arm, normals) * lay.mask_arm[index]
+    if len(k1) and not skip_cap:
         other = lay.mask_other[k1]
-        rows[:len(k1)] -= _rate_rows(model.arm, frames, points_other[:len(k1)], n1) * other
+        rows[:len(k1)] -= _rate_rows(model.arm, axes, points_other[:len(k1)], n1) * other
+    lower = None
+    if bound is not None:
+        lower = bound
+        if skip_cap or skip_box:  # leave out the kinds not measured
+            assert known_m is not None
+            measured = np.concatenate((np.full(len(k1), not skip_cap),
+                                       np.full(len(k2), not skip_box), np.ones(len(k3), bool)))
+            beyond = min(beyond, float(known_m[index[~measured]].min()))
+            index, distances, normals = index[measured], distances[measured], normals[measured]
+            points_arm, points_other = points_arm[measured], points_other[measured]
+            rows = rows[measured]
+        lower[index] = distances
     names = model.pair_names
-    return Clearances(pairs=tuple(names[i] for i in index.tolist()),
-                      distances=np.concatenate((dist1, gap2 - r2, gap3 - r3)),
+    return Clearances(pairs=tuple(names[i] for i in index.tolist()), distances=distances,
                       points_arm=points_arm, points_other=points_other, normals=normals,
-                      rate_rows=rows, index=index, beyond_m=beyond)
+                      rate_rows=rows, index=index, beyond_m=beyond, lower_m=lower)
+
+
+def _point_table(lay: _Layout, frames: Array, T_tcp: Array) -> tuple[Array, Array]:
+    """The joint frames with the base frame first (index 0, static parts), and the point
+    table of the pose (see `_Layout`)."""
+    frames_0 = np.concatenate((_EYE4, frames))
+    placed = np.einsum("kij,kj->ki", frames_0[lay.frame_of_point, :3], lay.local_points)
+    return frames_0, np.concatenate((placed, lay.static_points, T_tcp[None, :3, 3]))
+
+
+def _plane_distances(lay: _Layout, start_heights: Array, end_heights: Array) -> Array:
+    """Every plane pair's distance from its end points' heights above the planes."""
+    return np.minimum(start_heights, end_heights) - lay.plane_offset - lay.plane_r
+
+
+def distance_table(model: CollisionModel, qs: Array, block: int = 512) -> Array:
+    """(N, P): every pair's distance (m, `pair_names` order) at each of N poses qs (N, n).
+
+    Row k is, bit for bit, `clearances_at(model, qs[k]).distances`: each pose's points are
+    placed as there, and the kernels, which treat every pair alone, take the pairs of
+    `block` poses in one pass instead of one pose's. For a whole run's poses at once
+    (the preflight's verdict), without witness points, normals or rate rows.
+    """
+    lay = _layout(model)
+    qs = np.asarray(qs, dtype=float).reshape(-1, model.arm.n)
+    table = np.empty((len(qs), len(model.pair_names)))
+    for first in range(0, len(qs), block):
+        table[first:first + block] = _distance_block(model, lay, qs[first:first + block])
+    return table
+
+
+def _distance_block(model: CollisionModel, lay: _Layout, qs: Array) -> Array:
+    m = len(qs)
+    points = np.empty((m, len(lay.frame_of_point) + len(lay.static_points) + 1, 3))
+    heights = np.empty((m, points.shape[1] * lay.plane_normals_T.shape[1]))
+    for k, q in enumerate(qs):
+        frames, T_tcp = joint_frames(model.arm, q)
+        points[k] = _point_table(lay, frames, T_tcp)[1]
+        heights[k] = np.dot(points[k], lay.plane_normals_T).ravel()  # as in `clearances`
+    start, end = points[:, lay.start], points[:, lay.end]
+    ca, cb, ba = lay.cull_a[:lay.n_cap], lay.cull_b, lay.cull_a[lay.n_cap:]
+
+    def flat(a: Array) -> Array:
+        return a.reshape(-1, 3)
+
+    dist1 = capsule_capsule(flat(start[:, ca]), flat(end[:, ca]), np.tile(lay.cap_r_arm, m),
+                            flat(start[:, cb]), flat(end[:, cb]), np.tile(lay.cap_r_other, m)
+                            )[0] if lay.n_cap else np.zeros(0)
+    gap2 = segment_box(flat(start[:, ba]), flat(end[:, ba]), np.tile(lay.box_pose, (m, 1, 1)),
+                       np.tile(lay.box_half, (m, 1)))[0] if lay.n_box else np.zeros(0)
+    dist3 = _plane_distances(lay, heights[:, lay.plane_start_flat],
+                             heights[:, lay.plane_end_flat])
+    return np.concatenate((dist1.reshape(m, -1), (gap2 - np.tile(lay.box_r, m)).reshape(m, -1),
+                           dist3), axis=1)
+
+
+def _zeros(p: int) -> tuple[Array, Array, Array, Array]:
+    """A kernel's outputs for p pairs not measured: zeros that only hold their places."""
+    return np.zeros(p), np.zeros((p, 3)), np.zeros((p, 3)), np.zeros((p, 3))
 
 
 _EYE4 = np.eye(4)[None]
 
 
-def _rate_rows(arm: Arm, frames: Array, points: Array, normals: Array) -> Array:
+def _axes(frames: Array) -> tuple[Array, Array]:
+    """Every joint's axis z and its moment z × o (o: the joint's origin), base frame."""
+    z = frames[:, :3, 2]
+    return z, _cross(z, frames[:, :3, 3])
+
+
+def _rate_rows(arm: Arm, axes: tuple[Array, Array], points: Array, normals: Array) -> Array:
     """n·J(p) for every point as if every joint moved it (the caller masks the rest)."""
-    z, o = frames[:, :3, 2], frames[:, :3, 3]
-    moment = _cross(z, o)
+    z, moment = axes
     rows = np.dot(_cross(points, normals), z.T) - np.dot(normals, moment.T)
     pri = arm.prismatic_index
     if len(pri):
         rows[:, pri] = np.dot(normals, z[pri].T)
     return np.asarray(rows, dtype=float)
+
+
+@lru_cache(maxsize=32)
+def reach_weights(model: CollisionModel) -> Array | None:
+    """(P, n), m/rad: how fast each pair's distance can change with each joint, in any pose;
+    None for arms with prismatic joints (their offsets change with q).
+
+    A point carried by joint frame f moves, when revolute joint j ≤ f turns by dq, at most
+    |dq| times its distance from joint j's origin, which no pose makes larger than the link
+    offsets from joint j to frame f, summed, plus the point's own distance from frame f's
+    origin. A pair's distance changes by no more than its two sides' points move relative to
+    each other: for an object, by the arm side's motion; for two links, only joints between
+    their frames move one against the other (those below carry both alike). So along a
+    straight move from q₀ to q
+
+        d(q) ≥ d(q₀) − Σ_j W[pair, j]·|q_j − q₀_j|
+
+    for every pair, with d(q₀) its distance or any lower bound of it, wherever the right
+    side is positive: the gap between two sets changes by no more than their relative
+    motion, and a positive distance here is such a gap (for a cylinder, the gap to its
+    enclosing capsule). Segment end points bound every point of a capsule (it is convex);
+    radii do not move.
+    """
+    arm, caps, lay = model.arm, model.capsules, _layout(model)
+    if not arm.is_revolute.all():
+        return None
+    n, s = arm.n, len(model.static_radius)
+    offsets = np.array([0.0] + [float(np.linalg.norm(j.origin[:3, 3])) for j in arm.joints[1:]])
+    carried = np.cumsum(offsets)  # carried[f] − carried[j]: offsets from joint j to frame f
+    frame = np.concatenate((caps.frame, np.full(s, -1), [n - 1]))
+    local = np.concatenate((np.maximum(np.linalg.norm(caps.start, axis=1),
+                                       np.linalg.norm(caps.end, axis=1)),
+                            np.zeros(s), [float(np.linalg.norm(arm.tip[:3, 3]))]))
+    joints = np.arange(n)
+    # reach[row, j]: farthest point of capsule-table row `row` from joint j's origin
+    reach = np.where(joints[None, :] <= frame[:, None],
+                     carried[np.maximum(frame, 0)][:, None] - carried[None, :] + local[:, None],
+                     0.0)
+    cp, bp, hp = model.capsule_pairs, model.box_pairs, model.plane_pairs
+    rows_a = np.concatenate((cp[:, 0], bp[:, 0], hp[:, 0]))  # the TCP: the table's last row
+    rows_b = np.concatenate((cp[:, 1], np.full(len(bp) + len(hp), -1)))
+    frame_b = np.where(rows_b >= 0, frame[np.maximum(rows_b, 0)], -1)
+    frame_a = frame[rows_a]
+    moving = np.where(frame_b > frame_a, rows_b, rows_a)
+    low, high = np.minimum(frame_a, frame_b), np.maximum(frame_a, frame_b)
+    between = (joints[None, :] > low[:, None]) & (joints[None, :] <= high[:, None])
+    assert len(rows_a) == len(lay.cull_a) + len(lay.plane_a)
+    return np.asarray(np.where(between, reach[moving], 0.0), dtype=float)
 
 
 def clearances_at(model: CollisionModel, q: Array) -> Clearances:
@@ -447,4 +612,6 @@ def cell_distances(arm: Arm, cell: Cell | None, q: Array) -> Clearances:
 
 
 __all__ = ["Clearances", "capsule_capsule", "cell_distances", "clearances", "clearances_at",
-           "collision_model", "segment_box", "segment_parameters", "segment_plane"]
+           "distance_table",
+           "collision_model", "reach_weights", "segment_box", "segment_parameters",
+           "segment_plane"]

@@ -56,7 +56,7 @@ from numpy.typing import NDArray
 
 from ..arm.cell import Cell, ClearanceSettings
 from ..arm.collision import CollisionModel
-from ..arm.distance import Clearances, clearances
+from ..arm.distance import Clearances, clearances, reach_weights
 from ..arm.kinematics import joint_frames
 from ..arm.model import Arm
 from .limits import Limited
@@ -73,16 +73,34 @@ than max_accel to keep a pair from approaching faster than the damper allows."""
 
 _SLACK_M_S = 1e-9  # a row counts as met within this (m/s)
 _MOVABLE = 1e-12   # rows with a smaller squared norm: the joints cannot change that distance
+_BOUND_MARGIN_M = 1e-9  # a pair is taken as beyond d_i on its bound only this far beyond (m)
 
 
 class _Memo:
-    """The last pose at which nothing was near, and the lower bound of every distance there."""
+    """Per pair, a lower bound of its distance and the pose it holds at (`reach_weights`)."""
 
     __slots__ = ("q", "bound_m")
 
     def __init__(self) -> None:
-        self.q: list[float] | None = None
-        self.bound_m = 0.0
+        self.q: NDArray[np.float64] | None = None   # (P, n)
+        self.bound_m: NDArray[np.float64] = np.zeros(0)
+
+    def bounds_at(self, q: Vector, weights: NDArray[np.float64]) -> NDArray[np.float64] | None:
+        """A lower bound of every pair's distance at q, or None before the first pose."""
+        if self.q is None:
+            return None
+        moved = np.einsum("pj,pj->p", weights, np.abs(q - self.q))
+        return np.asarray(self.bound_m - moved, dtype=float)
+
+    def update(self, q: Vector, fresh: NDArray[np.float64],
+               now: NDArray[np.float64] | None) -> None:
+        """Keep `fresh` (bounds taken at q) wherever it beats the bound carried to q."""
+        if self.q is None or now is None:
+            self.q, self.bound_m = np.tile(q, (len(fresh), 1)), fresh.copy()
+            return
+        better = fresh > now
+        self.bound_m = np.where(better, fresh, self.bound_m)
+        self.q[better] = q
 
 
 @dataclass(frozen=True, eq=False)
@@ -90,44 +108,23 @@ class ClearanceLimit:
     """An arm's collision model in one cell, with the damper settings: built once, passed to
     every `solve`.
 
-    `sweep_m` bounds how far any point of the arm can move per unit motion of each joint:
-    the distance from joint j's axis to the farthest capsule point or the TCP beyond it, in
-    any pose (the link offsets along the chain, summed). A pose that differs from the last
-    pose found clear of d_i by Δq keeps every distance above that pose's bound minus
-    2·Σ|Δq_j|·sweep_j (both sides of a self pair may move), so while that stays above d_i
-    the cycle needs no distances at all (`_Memo`). The rates are the same either way (no
-    row can bind); only the reported lower bound is looser. None for arms with prismatic
-    joints, whose offsets change with q.
+    `weights` (`runtime.arm.distance.reach_weights`) bound how fast each pair's distance can
+    change with each joint, so a distance once measured (or bounded) at one pose bounds it
+    at the next ones: pairs whose bound stays beyond d_i need no measuring, and while every
+    pair's does, the cycle needs no distances at all (`_Memo`). The rates are the same
+    either way (a pair beyond d_i has no row); only the reported lower bound differs. None
+    for arms with prismatic joints: they measure every cycle.
     """
 
     model: CollisionModel
     settings: ClearanceSettings
-    sweep_m: tuple[float, ...] | None
+    weights: NDArray[np.float64] | None
     memo: _Memo = field(default_factory=_Memo, repr=False)
 
     @staticmethod
     def of(arm: Arm, cell: Cell) -> "ClearanceLimit":
         model = CollisionModel.build(arm, cell)
-        return ClearanceLimit(model, cell.clearance, _sweep(model))
-
-
-def _sweep(model: CollisionModel) -> tuple[float, ...] | None:
-    arm, caps = model.arm, model.capsules
-    if not arm.is_revolute.all():
-        return None
-    n = arm.n
-    # reach[i]: the farthest point carried by joint frame i, from that frame's origin
-    reach = [float(np.linalg.norm(arm.tip[:3, 3])) if i == n - 1 else 0.0 for i in range(n)]
-    for f, start, end, r in zip(caps.frame.tolist(), caps.start, caps.end, caps.radius.tolist()):
-        if f >= 0:
-            reach[f] = max(reach[f], float(max(np.linalg.norm(start), np.linalg.norm(end))) + r)
-    offsets = [float(np.linalg.norm(arm.joints[i].origin[:3, 3])) for i in range(1, n)]
-    sweep = [0.0] * n
-    carried = 0.0  # the farthest point beyond joint j, from joint j's origin
-    for j in range(n - 1, -1, -1):
-        carried = max(reach[j], (offsets[j] + carried) if j < n - 1 else 0.0)
-        sweep[j] = carried
-    return tuple(sweep)
+        return ClearanceLimit(model, cell.clearance, reach_weights(model))
 
 
 @dataclass(frozen=True, eq=False)
@@ -255,17 +252,18 @@ class ClearanceGuard:
 
 def _measure(limit: ClearanceLimit, q: Vector) -> Clearances:
     """The pairs that may be inside d_i at q (see `ClearanceLimit` for the shortcut)."""
-    d_i, memo, sweep = limit.settings.influence_distance_m, limit.memo, limit.sweep_m
-    ql = q.tolist()
-    if memo.q is not None and sweep is not None:
-        moved = sum(abs(a - b) * s for a, b, s in zip(ql, memo.q, sweep))
-        if memo.bound_m - 2.0 * moved >= d_i:
-            return Clearances.none_within(len(ql), memo.bound_m - 2.0 * moved)
+    d_i, memo, weights = limit.settings.influence_distance_m, limit.memo, limit.weights
+    known = None if weights is None else memo.bounds_at(q, weights)
+    if known is not None:
+        nearest = float(known.min(initial=np.inf))
+        if nearest >= d_i + _BOUND_MARGIN_M:
+            return Clearances.none_within(len(q), nearest)
     frames, T_tcp = joint_frames(limit.model.arm, q)
     # Only pairs within d_i can bind: the rest are culled by a lower bound of their
     # distance, which then stands in for the nearest distance (never overstated).
-    found = clearances(limit.model, frames, T_tcp, d_i)
-    memo.q, memo.bound_m = (ql, found.beyond_m) if not len(found.distances) else (None, 0.0)
+    found = clearances(limit.model, frames, T_tcp, d_i, known)
+    if weights is not None and found.lower_m is not None:
+        memo.update(q, found.lower_m, known)
     return found
 
 

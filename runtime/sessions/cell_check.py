@@ -23,13 +23,13 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
-from typing import Any, Callable, Sequence
+from typing import Any, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
 
 from ..arm.cell import Cell
-from ..arm.distance import clearances_at, collision_model
+from ..arm.distance import collision_model, distance_table
 from ..arm.model import Arm
 from ..link.protocol import CellHello, cell_digest
 from .preflight import Finding, PreflightResult, Trace
@@ -114,19 +114,19 @@ def contact_episodes(contacts: Sequence[tuple[float, str, str, float]]
 
 
 def evaluate_cell(t: NDArray[np.float64], q: NDArray[np.float64], *, cell: str,
-                  pairs: Sequence[Pair], distances: Callable[[NDArray[np.float64]],
-                                                             NDArray[np.float64]],
+                  pairs: Sequence[Pair], distances: NDArray[np.float64],
                   safety_m: float, influence_m: float,
                   contacts: Sequence[tuple[float, str, str, float]],
                   contacts_measured: bool) -> tuple[CellVerdict, list[Finding]]:
     """The verdict on a run's clearance and contacts, and its findings.
 
     t, q: each cycle's time and the measured pose after its step (N,), (N, n);
-    distances(q) → the distance of every pair in `pairs` at pose q (m, negative when
-    they overlap); contacts: (t, a, b, depth) as the simulated arm reported them.
+    distances: (N, len(pairs)), the distance of every pair in `pairs` at each pose (m,
+    negative when they overlap; `runtime.arm.distance.distance_table`); contacts:
+    (t, a, b, depth) as the simulated arm reported them.
     """
     n = len(t)
-    raw = np.array([distances(qk) for qk in q]).reshape(n, len(pairs))
+    raw = np.asarray(distances, dtype=float).reshape(n, len(pairs))
     # One column per named pair: the keep-in box's six faces are one pair (tcp, box).
     names = [tuple(p) for p in pairs]
     pairs = list(dict.fromkeys(names))
@@ -196,7 +196,7 @@ def judge_cell(arm: Arm, cell: Cell, trace: Trace,
     c = cell.clearance
     confirmed = arm_cell is not None and arm_cell.digest == cell_digest(cell)
     return evaluate_cell(trace.t, trace.q, cell=cell.name, pairs=model.pair_names,
-                         distances=lambda q: clearances_at(model, q).distances,
+                         distances=distance_table(model, trace.q),
                          safety_m=c.safety_distance_m, influence_m=c.influence_distance_m,
                          contacts=contacts, contacts_measured=confirmed)
 

@@ -216,3 +216,45 @@ def test_cull_keeps_every_pair_within_reach_and_bounds_the_rest(arm_in_bench) ->
         assert (full.distances[left_out] >= 0.15).all()
         if len(left_out):
             assert part.beyond_m <= full.distances[left_out].min() + 1e-12
+
+
+def test_known_bounds_leave_out_pairs_and_keep_the_rows_bit_for_bit(arm_in_bench) -> None:
+    """With bounds known from elsewhere (`known_m`), a kind of pair the cull keeps but the
+    bounds place beyond within_m is not measured; the rows of the pairs measured are the
+    same numbers, bit for bit, as without (the rate-row product keeps its shape), and
+    every pair left out is reported as beyond."""
+    from runtime.arm.distance import clearances, collision_model
+    from runtime.arm.kinematics import joint_frames
+    arm, cell = arm_in_bench
+    model = collision_model(arm, cell)
+    rng = np.random.default_rng(4)
+    left_out = 0
+    for _ in range(60):
+        q = arm.home() + rng.uniform(-1.0, 1.0, arm.n)
+        frames, T = joint_frames(arm, q)
+        plain = clearances(model, frames, T, within_m=0.15)
+        exact = clearances(model, frames, T).distances
+        # true lower bounds that place every pair beyond 0.15 m beyond it
+        known = np.where(exact >= 0.15 + 1e-6, exact, -np.inf)
+        part = clearances(model, frames, T, within_m=0.15, known_m=known)
+        assert set(part.index.tolist()) <= set(plain.index.tolist())
+        assert (exact[np.setdiff1d(plain.index, part.index)] >= 0.15).all()
+        left_out += len(plain.index) - len(part.index)
+        where = np.searchsorted(plain.index, part.index)
+        assert plain.rate_rows[where].tobytes() == part.rate_rows.tobytes()
+        assert plain.distances[where].tobytes() == part.distances.tobytes()
+        assert part.beyond_m <= exact[np.setdiff1d(np.arange(len(exact)), part.index)].min()
+        assert part.lower_m is not None and (part.lower_m <= exact + 1e-12).all()
+    assert left_out > 0
+
+
+def test_distance_table_is_the_distances_of_each_pose_bit_for_bit(arm_in_bench) -> None:
+    """The preflight's table of every pair at every pose, taken many poses per pass, is
+    `clearances_at` pose by pose, to the bit (blocks of 7 poses: a last block shorter)."""
+    from runtime.arm.distance import clearances_at, collision_model, distance_table
+    arm, cell = arm_in_bench
+    model = collision_model(arm, cell)
+    qs = arm.home() + np.random.default_rng(5).uniform(-1.5, 1.5, (40, arm.n))
+    table = distance_table(model, qs, block=7)
+    assert table.shape == (40, len(model.pair_names))
+    assert table.tobytes() == np.array([clearances_at(model, q).distances for q in qs]).tobytes()

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 from runtime.arm.cell import load_cell
+from runtime.arm.distance import clearances_at
 from runtime.arm.kinematics import tcp_pose
 from runtime.arm.load import load_arm
 from runtime.control.clearance import ClearanceLimit
@@ -143,22 +144,34 @@ def test_the_arm_keeps_clear_of_itself(elbow6_bench) -> None:
         cell.clearance.safety_distance_m - 1e-4
 
 
-def test_the_shortcut_far_from_everything_changes_no_rate(elbow6_bench) -> None:
-    """ClearanceLimit remembers the last pose found clear of d_i and skips measuring while
-    the arm cannot have come closer (its sweep bound): along a jog into the bench the rates
-    equal those of a solve that measures every cycle afresh."""
-    arm, cell, limit = elbow6_bench
+@pytest.mark.parametrize("name, twist", [("elbow6", [0.1, -0.1, -0.3, 0.2, 0.0, 0.1]),
+                                         ("reach7", [0.3, 0.0, -0.3, 0.0, 0.0, 0.0])])
+def test_the_bounds_carried_over_change_no_rate(name: str, twist: list[float]) -> None:
+    """ClearanceLimit carries each pair's last distance (or bound) to the next poses with
+    its motion bound and leaves out the pairs, or the whole pass, that cannot have come
+    within d_i: along a jog into the bench the rates equal, bit for bit, those of a solve
+    without the bound (weights None: the cull alone, every cycle)."""
+    arm = load_arm(name)
+    cell = load_cell("bench", arm)
+    limit = ClearanceLimit.of(arm, cell)
+    assert limit.weights is not None
     remembering = ClearanceLimit.of(arm, cell)
     q, prev = arm.home(), np.zeros(arm.n)
-    skipped = 0
+    skipped = near = 0
     for _ in range(900):
-        twist = np.array([0.1, -0.1, -0.3, 0.2, 0.0, 0.1])
-        fresh = solve(arm, q, twist, prev_rates=prev, dt_s=DT, clearance=ClearanceLimit(
-            limit.model, limit.settings, limit.sweep_m))
-        kept = solve(arm, q, twist, prev_rates=prev, dt_s=DT, clearance=remembering)
-        assert np.array_equal(fresh.rates, kept.rates)
-        assert kept.clearance.min_distance_m <= fresh.clearance.min_distance_m + 1e-12
-        # a looser bound than measuring afresh: this cycle took the shortcut
-        skipped += kept.clearance.min_distance_m < fresh.clearance.min_distance_m - 1e-12
+        fresh = solve(arm, q, np.array(twist), prev_rates=prev, dt_s=DT, clearance=ClearanceLimit(
+            limit.model, limit.settings, None))
+        kept = solve(arm, q, np.array(twist), prev_rates=prev, dt_s=DT, clearance=remembering)
+        assert fresh.rates.tobytes() == kept.rates.tobytes()
+        assert fresh.scales == kept.scales and fresh.binding_limit == kept.binding_limit
+        assert fresh.clearance.binding_pair == kept.clearance.binding_pair
+        exact = float(clearances_at(limit.model, q).distances.min())
+        assert kept.clearance.min_distance_m <= exact + 1e-12   # never overstated
+        if exact < cell.clearance.influence_distance_m:         # exact inside d_i
+            near += 1
+            assert kept.clearance.min_distance_m == fresh.clearance.min_distance_m == exact
+            assert kept.clearance.nearest_pair == fresh.clearance.nearest_pair
+        # fewer pairs measured than the cull alone keeps: the bound left them out
+        skipped += len(kept.clearance.distances.pairs) < len(fresh.clearance.distances.pairs)
         q, prev = q + kept.rates * DT, kept.rates
-    assert skipped > 100 and kept.binding_limit == "clearance"
+    assert skipped > 100 and near > 100

@@ -34,11 +34,11 @@ def arm():
     return load_arm("planar3")
 
 
-def distances(arm):
-    def of(q):
-        x = tcp_pose(arm, q)[0, 3]
-        return np.array([WALL_X_M - x, 0.5])     # point to plane; a post always 0.5 m off
-    return of
+def distances(arm, q):
+    """(N, 2): the TCP's distance to the wall at each pose (point to plane), and a post
+    always 0.5 m off."""
+    x = np.array([tcp_pose(arm, qk)[0, 3] for qk in q])
+    return np.stack((WALL_X_M - x, np.full(len(q), 0.5)), axis=1)
 
 
 def joint1_run(arm, rate: float, seconds: float):
@@ -63,7 +63,7 @@ def test_clearance_below_the_safety_distance_fails_naming_the_pair_and_time(arm)
     x = np.array([tcp_pose(arm, qk)[0, 3] for qk in trace.q])
     gap = WALL_X_M - x
     verdict, findings = evaluate_cell(trace.t, trace.q, cell="test", pairs=PAIRS,
-                                      distances=distances(arm), safety_m=SAFETY_M,
+                                      distances=distances(arm, trace.q), safety_m=SAFETY_M,
                                       influence_m=INFLUENCE_M, contacts=(),
                                       contacts_measured=True)
     k = int(np.argmin(gap))
@@ -90,7 +90,7 @@ def test_contacts_fail_the_run_one_finding_per_pair(arm):
     trace = joint1_run(arm, 0.1, 0.2)               # away from the wall: clearance is fine
     result = evaluate(arm, trace, rate_hz=RATE_HZ)
     verdict, findings = evaluate_cell(trace.t, trace.q, cell="test", pairs=PAIRS,
-                                      distances=distances(arm), safety_m=SAFETY_M,
+                                      distances=distances(arm, trace.q), safety_m=SAFETY_M,
                                       influence_m=INFLUENCE_M, contacts=reported,
                                       contacts_measured=True)
     assert [f.code for f in findings] == ["contact", "contact"]
@@ -105,7 +105,7 @@ def test_contacts_fail_the_run_one_finding_per_pair(arm):
 def test_a_clear_run_passes_and_an_unconfirmed_workcell_does_not(arm):
     trace = joint1_run(arm, 0.1, 0.2)
     result = evaluate(arm, trace, rate_hz=RATE_HZ)
-    args = dict(cell="test", pairs=PAIRS, distances=distances(arm), safety_m=SAFETY_M,
+    args = dict(cell="test", pairs=PAIRS, distances=distances(arm, trace.q), safety_m=SAFETY_M,
                 influence_m=INFLUENCE_M, contacts=())
     clear = with_cell(result, *evaluate_cell(trace.t, trace.q, contacts_measured=True, **args))
     assert not any(f.code.startswith(("contact", "clearance")) for f in clear.findings)
@@ -119,7 +119,7 @@ def test_the_report_plots_clearance_and_shows_the_closest_approach(arm):
     import matplotlib.image
     trace = joint1_run(arm, -0.6, 1.5)
     verdict, findings = evaluate_cell(trace.t, trace.q, cell="test", pairs=PAIRS,
-                                      distances=distances(arm), safety_m=SAFETY_M,
+                                      distances=distances(arm, trace.q), safety_m=SAFETY_M,
                                       influence_m=INFLUENCE_M,
                                       contacts=[(1.2, "tool", "wall", 0.002)],
                                       contacts_measured=True)
