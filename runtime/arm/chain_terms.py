@@ -34,7 +34,8 @@ rounding. A prismatic joint stands alone: its link matrix is affine in q itself.
 from __future__ import annotations
 
 import itertools
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -56,6 +57,7 @@ class ChainTerms:
     which the chain multiplies its local products by (the first group's are final).
     axis_rows: the row of each joint's Jacobian column (row 2 or 6 of its Xᵀ);
     tcp_row: row 3 of the TCP's Xᵀ, (p_tcp, 1, *).
+    buffers: working arrays for `kinematics.pose_and_jacobian`, one set per thread.
     """
 
     angles: NDArray[np.float64]
@@ -65,6 +67,11 @@ class ChainTerms:
     steps: tuple[tuple[slice, slice], ...]
     axis_rows: slice | NDArray[np.intp]
     tcp_row: int
+    buffers: dict[int, Any] = field(default_factory=dict, repr=False)
+
+    def __getstate__(self) -> dict[str, object]:
+        # Each thread's working arrays (runtime.arm.kinematics) stay in their process.
+        return {**self.__dict__, "buffers": {}}
 
 
 def augmented(T: Mat4) -> NDArray[np.float64]:
