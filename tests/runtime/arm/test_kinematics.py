@@ -5,6 +5,8 @@ sheet of published check values (each there with its source and how it was verif
 from __future__ import annotations
 
 import math
+import pickle
+import threading
 
 import numpy as np
 import pytest
@@ -288,6 +290,45 @@ def test_paired_chain_equals_the_plain_product_on_random_chains(kinds: str) -> N
         np.testing.assert_array_equal(T_again, got_T)
         np.testing.assert_allclose(J, jacobian_from_frames(arm, np.array(frames), T), rtol=0,
                                    atol=1e-13)
+
+
+def test_pose_and_jacobian_keeps_its_results_apart_from_the_next_call_and_other_threads(
+) -> None:
+    """The solver's pass writes into arrays kept per thread and arm: what it returns must
+    not change with the next call, on this thread or another, nor after a pickle round trip
+    (a preflight's child gets the arm by value). Checked against the allocating
+    `joint_frames` and the cross-product Jacobian (Siciliano et al. 2009, eq. 3.30)."""
+    rng = np.random.default_rng(17)
+    for name in DEMO_ARMS:
+        arm = load_arm(name)
+        qs = [random_q(arm, rng) for _ in range(40)]
+        expected = []
+        for q in qs:
+            frames, T = joint_frames(arm, q)
+            expected.append((T.copy(), jacobian_from_frames(arm, frames, T)))
+        first = [pose_and_jacobian(arm, q) for q in qs]       # all kept, then compared
+        for (T, J), (T_ref, J_ref) in zip(first, expected):
+            np.testing.assert_array_equal(T, T_ref)
+            np.testing.assert_allclose(J, J_ref, rtol=0, atol=1e-13)
+
+        results: dict[int, list[tuple[np.ndarray, np.ndarray]]] = {}
+
+        def run(k: int, arm: Arm = arm) -> None:
+            results[k] = [pose_and_jacobian(arm, q) for q in qs[k::4] for _ in range(25)]
+
+        workers = [threading.Thread(target=run, args=(k,)) for k in range(4)]
+        for w in workers:
+            w.start()
+        for w in workers:
+            w.join()
+        for k, got in results.items():
+            for (T, J), (T_ref, J_ref) in zip(got[::25], first[k::4]):
+                np.testing.assert_array_equal(T, T_ref)
+                np.testing.assert_array_equal(J, J_ref)
+        copied = pickle.loads(pickle.dumps(arm))
+        T, J = pose_and_jacobian(copied, qs[0])
+        np.testing.assert_array_equal(T, first[0][0])
+        np.testing.assert_array_equal(J, first[0][1])
 
 
 def test_reach7_manipulability_is_sqrt_det_j_jt() -> None:
