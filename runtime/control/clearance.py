@@ -178,14 +178,14 @@ class _Rows:
         self.stop = np.minimum(self.floor, 0.0)
 
     def violated(self, rates: Vector, floor: Vector) -> bool:
-        return bool(len(self.index)) and bool((np.dot(self.A, rates) < floor
+        return bool(len(self.index)) and bool((self.A.dot(rates) < floor
                                                - _SLACK_M_S).any())
 
     def scale_into(self, rates: Vector) -> float:
         """Largest c ≤ 1 with c·rates meeting the `stop` rows (c = 0 always does)."""
         if not len(self.index):
             return 1.0
-        approach = np.dot(self.A, rates)
+        approach = self.A.dot(rates)
         over = approach < self.stop - _SLACK_M_S
         if not over.any():
             return 1.0
@@ -212,7 +212,7 @@ class ClearanceGuard:
         self.rates = rates
         if rows.violated(rates, rows.floor) and bool(rates.any()):
             mu = max(damping * damping, METRIC_FLOOR)
-            H = np.dot(Jt.T, Jt) + mu * np.eye(len(rates))
+            H = Jt.T.dot(Jt) + mu * np.eye(len(rates))
             # Pairs inside d_s pinched from two sides can make the push-out rows conflict:
             # then only approach is refused.
             for floor in (rows.floor, rows.stop):
@@ -237,7 +237,7 @@ class ClearanceGuard:
         if c < 1.0:
             binding = report.binding_pair
             if binding is None:
-                margin = np.dot(self._rows.A, rates) - self._rows.stop
+                margin = self._rows.A.dot(rates) - self._rows.stop
                 binding = report.distances.pairs[int(self._rows.index[int(np.argmin(margin))])]
             rates, twist = rates * c, twist * c
             report = ClearanceReport(report.min_distance_m, report.nearest_pair, binding,
@@ -271,11 +271,11 @@ def _kept(Jt: NDArray[np.float64], before: Vector, after: Vector) -> float:
     """(J·after · J·before)/‖J·before‖² in [0, 1]; 1 when nothing was commanded or changed."""
     if after is before:
         return 1.0
-    v0 = np.dot(Jt, before)
-    size = float(np.dot(v0, v0))
+    v0 = Jt.dot(before)
+    size = float(v0.dot(v0))
     if size <= 0.0:
         return 1.0
-    return min(1.0, max(0.0, float(np.dot(np.dot(Jt, after), v0)) / size))
+    return min(1.0, max(0.0, float(Jt.dot(after).dot(v0)) / size))
 
 
 def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.float64]
@@ -289,8 +289,8 @@ def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.fl
     toward zero as far as that meets the rows: feasible though not closest when every
     floor is ≤ 0, and reported as not met otherwise."""
     HiAt = np.linalg.solve(H, A.T)           # (n, m)
-    W = np.dot(A, HiAt)                      # (m, m), positive semi-definite
-    slack0 = np.dot(A, x0) - floor
+    W = A.dot(HiAt)                          # (m, m), positive semi-definite
+    slack0 = A.dot(x0) - floor
     active = [int(np.argmin(slack0))]
     x = x0
     for _ in range(2 * len(floor) + 2):
@@ -303,8 +303,8 @@ def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.fl
             if not active:
                 break
             continue
-        x = x0 + np.dot(HiAt[:, idx], lam)
-        slack = np.dot(A, x) - floor
+        x = x0 + HiAt[:, idx].dot(lam)
+        slack = A.dot(x) - floor
         worst = int(np.argmin(slack))
         if slack[worst] >= -_SLACK_M_S:
             return x, idx, True
@@ -313,7 +313,7 @@ def _project(x0: Vector, A: NDArray[np.float64], floor: Vector, H: NDArray[np.fl
         active.append(worst)
     if (floor > 0.0).any():
         return x0, np.array(active, dtype=np.intp), False
-    approach = np.dot(A, x)
+    approach = A.dot(x)
     over = approach < floor - _SLACK_M_S
     c = 1.0 if not over.any() else max(0.0, float(np.min(floor[over] / approach[over])))
     return x * c, np.array(active, dtype=np.intp), True

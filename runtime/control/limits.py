@@ -420,7 +420,7 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
     f_brake = 1.0 if clear else braking_factor(b, q, r, dt_s)
     if f_brake < 1.0:
         r = r * f_brake
-    twist = np.dot(J, r)  # np.dot: cheaper than @ on small arrays
+    twist = J.dot(r)  # the method: cheaper than np.dot or @ on small arrays
     f_lin, f_ang, f_red = tcp_caps(arm, twist, reduced)
     c = f_lin * f_ang * f_red
     if c < 1.0:
@@ -437,11 +437,11 @@ def apply_limits(arm: Arm, q: Vector, rates: Vector, J: NDArray[np.float64], *,
         if f_acc < 1.0:
             # prev was capped at last cycle's pose; here it may be over a cap (the pose moved,
             # or reduced speed was just switched on): start the step from it brought within.
-            start = math.prod(tcp_caps(arm, np.dot(J, prev), reduced))
+            start = math.prod(tcp_caps(arm, J.dot(prev), reduced))
             if start < 1.0:
                 r, f_acc = acceleration_step(b, q, prev, target, dt_s, clear=clear, start=start,
                                              step_s=step_s)
-            twist = np.dot(J, r)
+            twist = J.dot(r)
             # Safety net (per-joint steps, round-off): the cap outranks the ramp.
             g_lin, g_ang, g_red = tcp_caps(arm, twist, reduced)
             g = g_lin * g_ang * g_red

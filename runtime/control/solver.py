@@ -46,7 +46,7 @@ from functools import lru_cache, partial
 from typing import Any, Callable, Iterable, NamedTuple
 
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import NDArray
 
 from ..arm.kinematics import pose_and_jacobian, tool_frame_jacobian, twist_to_base
 from ..arm.model import FRAMES, TASK_AXES, Arm
@@ -83,9 +83,8 @@ goes through its eigenvectors, and the null-space projection is refined."""
 
 _IS_LINEAR = (True, True, True, False, False, False)
 
-# np.dot: on these small arrays about 0.5 µs cheaper per call than the @ operator;
-# for a vector x, Jᵀx is written np.dot(x, J)
-_dot: Callable[[ArrayLike, ArrayLike], Vector] = np.dot
+# Products as array methods: on these small arrays about 0.2 µs cheaper a call than np.dot
+# (which dispatches first) and 0.5 µs cheaper than the @ operator; Jᵀx is written x.dot(J).
 
 
 def _linalg_kernels() -> tuple[Callable[..., Vector], Callable[..., Vector],
@@ -247,7 +246,7 @@ class DampedSolve:
                  threshold: float, damping_max: float) -> None:
         m, k = J.shape
         wide = m <= k
-        G = _dot(J, J.T) if wide else _dot(J.T, J)
+        G = J.dot(J.T) if wide else J.T.dot(J)
         values = _eigvalsh(G).tolist()  # ascending; σ_i²
         smallest, largest = max(values[0], 0.0), max(values[-1], 0.0)
         self.sigma_min = math.sqrt(smallest)
@@ -260,10 +259,10 @@ class DampedSolve:
         elif z is None or m == k:
             self.rates = _damped_wide(J, v, G, lam2, smallest, largest)
         elif lam2 == 0.0 and regular:  # the usual case: task and null space in one solve
-            self.rates = _dot(_solve(G, v - _dot(J, z)), J) + z
+            self.rates = _solve(G, v - J.dot(z)).dot(J) + z
         else:
-            Jz = _dot(J, z)
-            null = z - _dot(_solve(G, Jz) if regular else _eigen_pinv_gram(J, Jz, G), J)
+            Jz = J.dot(z)
+            null = z - (_solve(G, Jz) if regular else _eigen_pinv_gram(J, Jz, G)).dot(J)
             self.rates = _damped_wide(J, v, G, lam2, smallest, largest) + null
 
 
@@ -271,14 +270,17 @@ def _damped_wide(J: NDArray[np.float64], v: Vector, G: NDArray[np.float64], lam2
                  smallest: float, largest: float) -> Vector:
     """Jᵀ(JJᵀ + λ²I)⁻¹v."""
     if smallest + lam2 > _REFINE_BELOW * (largest + lam2):
-        return _dot(_solve(G + lam2 * _identity(len(G)), v), J)
-    return _dot(_eigen_inverse(G, v, lam2), J)
+        y: Vector = _solve(G + lam2 * _identity(len(G)), v)
+    else:
+        y = _eigen_inverse(G, v, lam2)
+    rates: Vector = y.dot(J)
+    return rates
 
 
 def _damped_tall(J: NDArray[np.float64], v: Vector, G: NDArray[np.float64], lam2: float,
                  smallest: float, largest: float) -> Vector:
     """(JᵀJ + λ²I)⁻¹Jᵀv, the same for fewer joints than task rows."""
-    b = _dot(v, J)
+    b = v.dot(J)
     if smallest + lam2 > _REFINE_BELOW * (largest + lam2):
         return _solve(G + lam2 * _identity(len(G)), b)
     return _eigen_inverse(G, b, lam2)
