@@ -133,7 +133,7 @@ class ClearanceReport:
 
     min_distance_m  the smallest distance over all pairs (m; negative: overlap); exact
                     inside the influence distance d_i, a lower bound beyond it
-    nearest_pair    the pair at that distance (None beyond d_i)
+    nearest_pair    the pair measured at that distance (None when it is only a lower bound)
     binding_pair    the pair whose row bound the motion this cycle, or None
     factor          share of the commanded task motion kept (1.0: clearance did not bind)
     distances       the pairs measured this cycle, those that may be inside d_i
