@@ -57,7 +57,8 @@ class ChainTerms:
     which the chain multiplies its local products by (the first group's are final).
     axis_rows: the row of each joint's Jacobian column (row 2 or 6 of its Xᵀ);
     tcp_row: row 3 of the TCP's Xᵀ, (p_tcp, 1, *).
-    buffers: working arrays for `kinematics.pose_and_jacobian`, one set per thread.
+    spare_buffers: working arrays for `kinematics.pose_and_jacobian` not in use now (one
+    set per caller running at the same time).
     """
 
     angles: NDArray[np.float64]
@@ -67,11 +68,11 @@ class ChainTerms:
     steps: tuple[tuple[slice, slice], ...]
     axis_rows: slice | NDArray[np.intp]
     tcp_row: int
-    buffers: dict[int, Any] = field(default_factory=dict, repr=False)
+    spare_buffers: list[Any] = field(default_factory=list, repr=False)
 
     def __getstate__(self) -> dict[str, object]:
-        # Each thread's working arrays (runtime.arm.kinematics) stay in their process.
-        return {**self.__dict__, "buffers": {}}
+        # The working arrays (runtime.arm.kinematics) stay in their process.
+        return {**self.__dict__, "spare_buffers": []}
 
 
 def augmented(T: Mat4) -> NDArray[np.float64]:

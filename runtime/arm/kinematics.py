@@ -14,7 +14,7 @@ Example: planar 2R, a1 = 0.4 m, a2 = 0.3 m, q = (30°, 60°) →
 
 The hot path (`pose_and_jacobian`, every control cycle) multiplies 7×7 matrices that carry
 each frame's Plücker moment, with revolute joints in pairs (runtime/arm/chain_terms.py), so
-it makes about 15 numpy calls for seven joints, into arrays and views kept per thread, and
+it makes about 15 numpy calls for seven joints, into arrays and views kept with the arm, and
 as array methods (np.dot and np.copyto dispatch first: about 0.7 µs more a call here).
 `jacobian_from_frames` computes the same Jacobian from any given frames with the cross
 products above.
@@ -22,7 +22,6 @@ products above.
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -87,11 +86,13 @@ def pose_and_jacobian(arm: Arm, q: NDArray[np.float64]) -> tuple[Mat4, Jacobian]
     joint's augmented matrix, and S(p) = [−p̂ 0 I; I 0 0] moves the reference point to the
     TCP at p: z × (p − o) = o × z − p × z.
 
-    The same products as `_chain`, written into this thread's buffers through views made
-    once (`_Buffers`): about half the interpreter round trips, the same numbers.
+    The same products as `_chain`, written into arrays through views made once
+    (`_Buffers`, kept with the arm's terms, one set per concurrent caller): about half the
+    interpreter round trips, the same numbers.
     """
     c = arm.chain_terms
-    b = _buffers(c)
+    spare = c.spare_buffers    # list.pop and .append are atomic: each caller its own set
+    b = spare.pop() if spare else _Buffers(c)
     c.angles.dot(q, out=b.angle)           # methods: np.dot and np.copyto cost a dispatch
     np.add(b.angle, c.phases, out=b.angle)
     np.sin(b.angle, out=b.angle)
@@ -103,11 +104,13 @@ def pose_and_jacobian(arm: Arm, q: NDArray[np.float64]) -> tuple[Mat4, Jacobian]
         local.dot(before, out=out)
     axes = b.axes if b.axes is not None else b.chain[c.axis_rows].T
     J = _SHIFT.dot(b.tcp).reshape(6, 7).dot(axes)
-    return b.pose.copy().T, J
+    T = b.pose.copy().T
+    spare.append(b)
+    return T, J
 
 
 class _Buffers:
-    """One thread's arrays for `pose_and_jacobian` on one arm, and the views it reads and
+    """A set of arrays for `pose_and_jacobian` on one arm, and the views it reads and
     writes, made once: `_chain`'s arrays, kept."""
 
     def __init__(self, c: ChainTerms) -> None:
@@ -125,15 +128,6 @@ class _Buffers:
         self.tcp = self.chain[c.tcp_row, :4]
         self.pose = self.chain[-7:-3, :4]
         self.axes = self.chain[c.axis_rows].T if isinstance(c.axis_rows, slice) else None
-
-
-def _buffers(c: ChainTerms) -> _Buffers:
-    """This thread's `_Buffers` for `c` (the solver's loop and a window may both ask)."""
-    key = threading.get_ident()
-    b = c.buffers.get(key)
-    if b is None:
-        b = c.buffers[key] = _Buffers(c)
-    return b
 
 
 def tcp_pose(arm: Arm, q: NDArray[np.float64]) -> Mat4:

@@ -294,10 +294,11 @@ def test_paired_chain_equals_the_plain_product_on_random_chains(kinds: str) -> N
 
 def test_pose_and_jacobian_keeps_its_results_apart_from_the_next_call_and_other_threads(
 ) -> None:
-    """The solver's pass writes into arrays kept per thread and arm: what it returns must
-    not change with the next call, on this thread or another, nor after a pickle round trip
-    (a preflight's child gets the arm by value). Checked against the allocating
-    `joint_frames` and the cross-product Jacobian (Siciliano et al. 2009, eq. 3.30)."""
+    """The solver's pass writes into arrays kept with the arm (a set per concurrent
+    caller): what it returns must not change with the next call, on this thread or
+    another, nor after a pickle round trip (a preflight's child gets the arm by value).
+    Checked against the allocating `joint_frames` and the cross-product Jacobian
+    (Siciliano et al. 2009, eq. 3.30)."""
     rng = np.random.default_rng(17)
     for name in DEMO_ARMS:
         arm = load_arm(name)
