@@ -14,8 +14,7 @@ Example: planar 2R, a1 = 0.4 m, a2 = 0.3 m, q = (30°, 60°) →
 
 The hot path (`pose_and_jacobian`, every control cycle) multiplies 7×7 matrices that carry
 each frame's Plücker moment, with revolute joints in pairs (runtime/arm/chain_terms.py), so
-it makes about 15 numpy calls for seven joints, into arrays and views kept with the arm, and
-as array methods (np.dot and np.copyto dispatch first: about 0.7 µs more a call here).
+it makes about 15 numpy calls for seven joints, into arrays kept with the arm.
 `jacobian_from_frames` computes the same Jacobian from any given frames with the cross
 products above.
 """
@@ -50,22 +49,26 @@ def link_transforms(arm: Arm, q: NDArray[np.float64]) -> NDArray[np.float64]:
     return L
 
 
-def _chain(c: ChainTerms, q: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Every frame and the TCP as 7×7 augmented matrices, transposed and stacked: rows
-    7i … 7i + 6 are frame i's Xᵀ, the last seven the TCP's (runtime/arm/chain_terms.py).
+def _chain(c: ChainTerms, b: _Buffers, q: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Every frame and the TCP as 7×7 augmented matrices, transposed and stacked, into
+    b.chain: rows 7i … 7i + 6 are frame i's Xᵀ, the last seven the TCP's
+    (runtime/arm/chain_terms.py).
 
     About one microsecond per numpy call whatever the array size, so it makes few: one sine
     for every joint's terms, one matrix product for every pair's local products, then one
-    product per pair along the chain.
+    product per pair along the chain, each into arrays and views made once (`_Buffers`), as
+    array methods (np.dot and np.copyto dispatch first: about 0.7 µs more a call here).
     """
-    s = np.sin(c.angles.dot(q) + c.phases)
+    c.angles.dot(q, out=b.angle)
+    np.add(b.angle, c.phases, out=b.angle)
+    np.sin(b.angle, out=b.angle)
     if c.with_q:
-        s = np.concatenate((s, q))
-    local = c.matrix.dot(s).reshape(-1, 7)
-    chain: NDArray[np.float64] = local.copy()  # the first group's products are final
-    for rows, before in c.steps:              # the chain product is sequential by nature
-        local[rows].dot(chain[before], out=chain[rows])
-    return chain
+        b.q[:] = q
+    c.matrix.dot(b.s, out=b.local_flat)
+    b.chain_first[:] = b.local_first             # the first group's products are final
+    for local, before, out in b.steps:           # the chain product is sequential by nature
+        local.dot(before, out=out)
+    return b.chain
 
 
 def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64], Mat4]:
@@ -74,7 +77,10 @@ def joint_frames(arm: Arm, q: NDArray[np.float64]) -> tuple[NDArray[np.float64],
     Joint i's axis is frames[i][:3, 2] and a point on it is frames[i][:3, 3]. Both are
     views into the one array of the chain product (not contiguous).
     """
-    chain = _chain(arm.chain_terms, q)
+    c = arm.chain_terms
+    b = _take(c)
+    chain = _chain(c, b, q).copy()
+    c.spare_buffers.append(b)
     return chain.reshape(-1, 7, 7)[:-1, :4, :4].transpose(0, 2, 1), chain[-7:-3, :4].T
 
 
@@ -85,33 +91,27 @@ def pose_and_jacobian(arm: Arm, q: NDArray[np.float64]) -> tuple[Mat4, Jacobian]
     W stacks column 2 (revolute: z, 0, o × z) or column 6 (prismatic: 0, 0, z) of each
     joint's augmented matrix, and S(p) = [−p̂ 0 I; I 0 0] moves the reference point to the
     TCP at p: z × (p − o) = o × z − p × z.
-
-    The same products as `_chain`, written into arrays through views made once
-    (`_Buffers`, kept with the arm's terms, one set per concurrent caller): about half the
-    interpreter round trips, the same numbers.
     """
     c = arm.chain_terms
-    spare = c.spare_buffers    # list.pop and .append are atomic: each caller its own set
-    b = spare.pop() if spare else _Buffers(c)
-    c.angles.dot(q, out=b.angle)           # methods: np.dot and np.copyto cost a dispatch
-    np.add(b.angle, c.phases, out=b.angle)
-    np.sin(b.angle, out=b.angle)
-    if c.with_q:
-        b.q[:] = q
-    c.matrix.dot(b.s, out=b.local_flat)
-    b.chain_first[:] = b.local_first
-    for local, before, out in b.steps:
-        local.dot(before, out=out)
+    b = _take(c)
+    _chain(c, b, q)
     axes = b.axes if b.axes is not None else b.chain[c.axis_rows].T
     J = _SHIFT.dot(b.tcp).reshape(6, 7).dot(axes)
     T = b.pose.copy().T
-    spare.append(b)
+    c.spare_buffers.append(b)
     return T, J
 
 
+def _take(c: ChainTerms) -> _Buffers:
+    """A set of working arrays for the arm, to be put back in c.spare_buffers after use:
+    list.pop and .append are atomic, so callers at the same time never share a set (one
+    that raises in between only leaves its set to the collector)."""
+    return c.spare_buffers.pop() if c.spare_buffers else _Buffers(c)
+
+
 class _Buffers:
-    """A set of arrays for `pose_and_jacobian` on one arm, and the views it reads and
-    writes, made once: `_chain`'s arrays, kept."""
+    """The arrays `_chain` works in for one arm, and the views it reads and writes, made
+    once."""
 
     def __init__(self, c: ChainTerms) -> None:
         rows = c.matrix.shape[0] // 7

@@ -298,7 +298,8 @@ def test_pose_and_jacobian_keeps_its_results_apart_from_the_next_call_and_other_
     caller): what it returns must not change with the next call, on this thread or
     another, nor after a pickle round trip (a preflight's child gets the arm by value).
     Checked against the allocating `joint_frames` and the cross-product Jacobian
-    (Siciliano et al. 2009, eq. 3.30)."""
+    (Siciliano et al. 2009, eq. 3.30); `joint_frames` shares the working arrays, so its
+    frames are checked to stay apart too."""
     rng = np.random.default_rng(17)
     for name in DEMO_ARMS:
         arm = load_arm(name)
@@ -308,6 +309,10 @@ def test_pose_and_jacobian_keeps_its_results_apart_from_the_next_call_and_other_
             frames, T = joint_frames(arm, q)
             expected.append((T.copy(), jacobian_from_frames(arm, frames, T)))
         first = [pose_and_jacobian(arm, q) for q in qs]       # all kept, then compared
+        kept_frames = [joint_frames(arm, q) for q in qs]
+        for (frames, T), q in zip(kept_frames, qs):
+            np.testing.assert_array_equal(T, joint_frames(arm, q)[1])
+            np.testing.assert_array_equal(frames, joint_frames(arm, q)[0])
         for (T, J), (T_ref, J_ref) in zip(first, expected):
             np.testing.assert_array_equal(T, T_ref)
             np.testing.assert_allclose(J, J_ref, rtol=0, atol=1e-13)
@@ -322,8 +327,11 @@ def test_pose_and_jacobian_keeps_its_results_apart_from_the_next_call_and_other_
             w.start()
         for w in workers:
             w.join()
+        assert sorted(results) == [0, 1, 2, 3]                # every thread finished
         for k, got in results.items():
-            for (T, J), (T_ref, J_ref) in zip(got[::25], first[k::4]):
+            assert len(got) == 25 * len(first[k::4])
+            for i, (T, J) in enumerate(got):
+                T_ref, J_ref = first[k::4][i // 25]
                 np.testing.assert_array_equal(T, T_ref)
                 np.testing.assert_array_equal(J, J_ref)
         copied = pickle.loads(pickle.dumps(arm))
