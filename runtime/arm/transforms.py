@@ -69,9 +69,17 @@ def rot4(R: Mat3) -> Mat4:
 
 
 def rotation_aligning_z(axis: Sequence[float] | NDArray[np.float64]) -> Mat3:
-    """A rotation R with R·ẑ = axis (unit). Used to give every joint a local z axis."""
+    """A rotation R with R·ẑ = axis (any length but zero, rescaled to unit). Used to give
+    every joint a local z axis. A zero axis is a ValueError."""
     a = np.asarray(axis, dtype=float)
-    a = a / np.linalg.norm(a)
+    size = float(np.linalg.norm(a))
+    if not size > 1e-150:       # squares underflow: rescale by the largest component first
+        largest = float(np.abs(a).max())
+        if largest == 0.0:
+            raise ValueError("a zero vector has no direction to align z with")
+        a = a / largest
+        size = float(np.linalg.norm(a))
+    a = a / size
     z = np.array([0.0, 0.0, 1.0])
     c = float(z @ a)
     if c > 1.0 - 1e-15:

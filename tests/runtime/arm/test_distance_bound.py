@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -22,7 +23,7 @@ from runtime.arm.collision import CollisionModel
 from runtime.arm.distance import clearances, clearances_at, reach_weights
 from runtime.arm.kinematics import joint_frames
 from runtime.arm.model import Arm, DHRow, Joint, chain_from_dh
-from runtime.arm.transforms import make_transform
+from runtime.arm.transforms import make_transform, rotation_aligning_z
 
 finite = dict(allow_nan=False, allow_infinity=False)
 length = st.floats(-0.4, 0.4, **finite)
@@ -100,3 +101,22 @@ def test_arms_with_prismatic_joints_have_no_bound() -> None:
     from runtime.arm.load import load_arm
     arm = load_arm("scara4")
     assert reach_weights(CollisionModel.build(arm, load_cell("bench", arm))) is None
+
+
+
+@pytest.mark.parametrize("axis", [(3e-170, 0.0, 1e-170), (0.0, -8e-284, -1.3e-160),
+                                  (1e-300, 2e-300, -2e-300), (0.3, -0.2, 0.6)])
+def test_the_cull_axis_of_a_segment_too_short_to_square(axis) -> None:
+    """The cull aligns z with each capsule's segment (`rotation_aligning_z`); hypothesis found
+    random DH tables whose segments are so short that their squared length underflows to
+    zero. The result is still a rotation (RᵀR = I, det R = 1) taking ẑ to the direction,
+    here worked out by hand from the scaled vector."""
+    a = np.array(axis)
+    scaled = a / np.abs(a).max()
+    direction = scaled / math.sqrt(float(scaled @ scaled))
+    R = rotation_aligning_z(a)
+    np.testing.assert_allclose(R.T @ R, np.eye(3), atol=1e-15)
+    assert abs(np.linalg.det(R) - 1.0) < 1e-15
+    np.testing.assert_allclose(R[:, 2], direction, atol=1e-15)
+    with pytest.raises(ValueError, match="zero vector"):
+        rotation_aligning_z((0.0, 0.0, 0.0))
