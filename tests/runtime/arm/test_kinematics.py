@@ -304,15 +304,16 @@ def test_pose_and_jacobian_keeps_its_results_apart_from_the_next_call_and_other_
     for name in DEMO_ARMS:
         arm = load_arm(name)
         qs = [random_q(arm, rng) for _ in range(40)]
-        expected = []
-        for q in qs:
+        expected, expected_frames = [], []
+        for q in qs:                                           # each copied at once
             frames, T = joint_frames(arm, q)
             expected.append((T.copy(), jacobian_from_frames(arm, frames, T)))
+            expected_frames.append(frames.copy())
         first = [pose_and_jacobian(arm, q) for q in qs]       # all kept, then compared
         kept_frames = [joint_frames(arm, q) for q in qs]
-        for (frames, T), q in zip(kept_frames, qs):
-            np.testing.assert_array_equal(T, joint_frames(arm, q)[1])
-            np.testing.assert_array_equal(frames, joint_frames(arm, q)[0])
+        for (frames, T), frames_ref, (T_ref, _) in zip(kept_frames, expected_frames, expected):
+            np.testing.assert_array_equal(T, T_ref)
+            np.testing.assert_array_equal(frames, frames_ref)
         for (T, J), (T_ref, J_ref) in zip(first, expected):
             np.testing.assert_array_equal(T, T_ref)
             np.testing.assert_allclose(J, J_ref, rtol=0, atol=1e-13)
