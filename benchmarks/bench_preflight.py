@@ -17,7 +17,8 @@ Measured in one run, on the same machine state:
                    control cycle      ControlCycle.step on the run's recorded poses;
                                       again with this process on one core and a busy
                                       loop on the other (a lag-1 run keeps both busy)
-                   bookkeeping        the cycle's record (built and encoded), the trace
+                   bookkeeping        the cycle kept, its block gathered and packed (every
+                                      256 cycles), the verdict's trace
                    lockstep exchange  one rates → state exchange with the simulated arm
                                       child over each link (2 physics steps inside)
                    arm side's work    the child's handling of one message, in process
@@ -82,12 +83,10 @@ from runtime.link.pipes import (  # noqa: E402
 from runtime.link.protocol import Rates, State, decode, encode, hello_for  # noqa: E402
 from runtime.operator.progress import Progress  # noqa: E402
 from runtime.sessions.cell_check import CellRun
+from runtime.sessions.cycle_columns import CycleColumns  # noqa: E402
 from runtime.sessions.lockstep import LockstepSim  # noqa: E402
 from runtime.sessions.log_reader import read_session  # noqa: E402
-from runtime.sessions.log_schema import (
-    cycle_record,  # noqa: E402
-    frame_from_wire,  # noqa: E402
-)
+from runtime.sessions.log_schema import frame_from_wire  # noqa: E402
 from runtime.sessions.log_writer import SessionRecorder  # noqa: E402
 from runtime.sessions.preflight import TraceBuilder  # noqa: E402
 from runtime.sessions.preflight_run import load_profile, preflight_settings, run_preflight  # noqa: E402
@@ -209,10 +208,9 @@ def bench_preflight(folder: Path, seconds: float, state_lag: int,
 # calls take longer there than alone (caches shared with everything else the loop does).
 IN_RUN_PARTS = (
     (ControlCycle, "step", "control cycle"),
-    (preflight_run, "cycle_record", "the cycle's record built"),
-    (SessionRecorder, "record", "the record handed over (a block packed per 256)"),
-    (TraceBuilder, "add_cycle", "the verdict's trace: the cycle"),
-    (TraceBuilder, "add_state", "the verdict's trace: the state after it"),
+    (CycleColumns, "add", "the cycle kept for the log and the verdict"),
+    (preflight_run, "_hand_over", "a block gathered, packed, traced (one per 256)"),
+    (TraceBuilder, "add_state", "the verdict's trace: the state after the cycle"),
     (LockstepSim, "send", "rates built, encoded and sent"),
     (LockstepSim, "wait", "the state taken"),
     (PipeEnd, "poll", "  of it: waiting for the state"),   # nested parts start with a space
@@ -300,17 +298,18 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
             SessionRecorder.start(Path(tmp) / "b.jwlog", arm, {"rate_hz": RATE_HZ},
                                   queue_size=1 << 16, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, arm.home(), np.zeros(arm.n), capacity=len(records))
+        cycles = CycleColumns()
         for k, (rec, frame, o) in enumerate(zip(records, frames, outs)):
             t = time.perf_counter_ns()
-            r = cycle_record(k, rec.t_s, frame, o, rec.q, state_age_s=0.0, overrun_streak=0,
-                             period_s=1 / RATE_HZ, compute_s=0.0, overrun=False)
-            recorder.record(r)
-            trace.add_cycle(r, commanded_twist=o.solution.commanded_twist
-                            if o.solution is not None else np.zeros(6))
-            trace.add_state(rec.q, rec.rates)
+            cycles.add(k, rec.t_s, frame, o, rec.q, state_age_s=0.0, overrun_streak=0,
+                       period_s=1 / RATE_HZ, compute_s=0.0, overrun=False)
+            if len(cycles) == preflight_run.BLOCK_CYCLES:
+                preflight_run._hand_over(cycles, recorder, trace)
+            trace.add_state(rec.q, rec.rates, cycle=k)
             times.append(time.perf_counter_ns() - t)
-    # The mean: the caller packs a block every 256 cycles, which a median would not see
-    out["bookkeeping (record built + packed, trace; mean)"] = statistics.fmean(times) / 1e3
+    # The mean: a block is gathered and packed every 256 cycles, which a median would not see
+    out["bookkeeping (cycle kept, block gathered + packed, trace; mean)"] = \
+        statistics.fmean(times) / 1e3
 
     rates = np.array([r.rates for r in records])
     for link in links:
@@ -588,7 +587,8 @@ def main() -> int:
     for name, value in parts.items():
         print(f"  {name:<62} {value:8.1f}")
     period = 1e6 / RATE_HZ
-    here = parts["control cycle"] + parts["bookkeeping (record built + packed, trace; mean)"]
+    here = parts["control cycle"] + \
+        parts["bookkeeping (cycle kept, block gathered + packed, trace; mean)"]
     there = parts["arm side's work per message, in process"]
     exchange = parts[f"lockstep exchange ({links[0]} + child)"]
     print(f"  work per cycle: here (control cycle + bookkeeping) {here:.0f} µs, at the arm "

@@ -209,10 +209,15 @@ class CycleBlock:
         values = zip(*map(attrgetter(*FIELDS), records))
         cols = {}
         for (name, kind), vals in zip(COLUMNS, values):
-            cols[name] = _GATHER[kind](vals)
+            cols[name] = gather_column(kind, vals)
             if kind == STR:
                 check_table(name, cols[name].table)
         return cls(n, cols)
+
+
+def gather_column(kind: str, values: Sequence[Any]) -> Any:
+    """One field's values, a row each, as a column of type `kind` (COLUMN_TYPES)."""
+    return _GATHER[kind](values)
 
 
 def check_table(name: str, table: Sequence[Any]) -> None:
@@ -394,8 +399,12 @@ def _stride(lengths: np.ndarray) -> int:
 
 def encode_block(block: CycleBlock) -> dict[str, Any]:
     """The msgpack map of a cycle block (the payload of its frame)."""
-    return block_map(block.n, [_pack_column(name, kind, block.columns[name])
-                               for name, kind in COLUMNS])
+    return block_map(block.n, pack_block(block))
+
+
+def pack_block(block: CycleBlock) -> "PackedColumns":
+    """The columns of a gathered block, packed (`block_map` compresses them)."""
+    return [_pack_column(name, kind, block.columns[name]) for name, kind in COLUMNS]
 
 
 PackedColumns = list[tuple[dict[str, Any], bytes]]

@@ -15,6 +15,7 @@ import tomllib
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any, Mapping, Sequence
 
 import msgpack
@@ -302,8 +303,8 @@ def protocol_version() -> int | None:
     return PROTOCOL_VERSION
 
 
-_BUTTONS_LOGGED = 16  # pad buttons 0…15 as flags; `input` keeps every key by name
-_NO_BUTTONS = (False,) * _BUTTONS_LOGGED
+BUTTONS_LOGGED = 16  # pad buttons 0…15 as flags; `input` keeps every key by name
+NO_BUTTONS = (False,) * BUTTONS_LOGGED
 
 
 def _plain_floats(values: Sequence[float] | np.ndarray | None) -> tuple[float, ...]:
@@ -319,30 +320,60 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
                  q: Sequence[float] | None, *, state_age_s: float | None, overrun_streak: int,
                  period_s: float, compute_s: float, overrun: bool) -> CycleRecord:
     """The log record of one `ControlCycle.step` (drive, preflight and re-runs share it)."""
-    sol, intent = out.solution, out.intent
-    nan = float("nan")
-    clearance = None if sol is None else sol.clearance   # with a workcell only
+    return record_of_row(cycle_row(cycle, t_s, frame, out, q, state_age_s=state_age_s,
+                                   overrun_streak=overrun_streak, period_s=period_s,
+                                   compute_s=compute_s, overrun=overrun))
+
+
+CycleRow = tuple[Any, ...]
+"""The values of one cycle's record in field order, as the loop has them: float rows
+(axes, twist, q, rates, achieved_twist) still arrays or sequences, `scales` the solver's own
+map. `record_of_row` makes the record; `cycle_columns` gathers many rows at once."""
+
+
+def cycle_row(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
+              q: Sequence[float] | None, *, state_age_s: float | None, overrun_streak: int,
+              period_s: float, compute_s: float, overrun: bool) -> CycleRow:
+    """What `cycle_record` records of one cycle, before the float rows become tuples."""
+    sol, intent, verdict = out.solution, out.intent, out.verdict
+    buttons = frame.button_flags(BUTTONS_LOGGED) if frame.pressed else NO_BUTTONS
+    head = (cycle, t_s, frame.axes, buttons, verdict.allowed, verdict.reason, intent.twist,
+            intent.frame, () if q is None else q, out.rates)
+    tail = (period_s, compute_s, overrun, intent.reduced, frame_to_wire(frame), state_age_s,
+            overrun_streak, verdict.state)
+    if sol is None:
+        return head + _UNSOLVED + tail + (None, None, None)
+    clearance = sol.clearance                 # with a workcell only
     pair = None if clearance is None else clearance.nearest_pair
-    return CycleRecord(
-        cycle=cycle, t_s=t_s, axes=tuple(frame.axes),
-        buttons=frame.button_flags(_BUTTONS_LOGGED) if frame.pressed else _NO_BUTTONS,
-        enabled=out.verdict.allowed,
-        enable_reason=out.verdict.reason, twist=tuple(intent.twist.tolist()),
-        frame=intent.frame, q=_plain_floats(q),
-        rates=tuple(out.rates.tolist()),
-        damping=0.0 if sol is None else sol.damping,
-        sigma_min=nan if sol is None else sol.sigma_min,
-        manipulability=nan if sol is None else sol.manipulability,
-        achieved_twist=(0.0,) * 6 if sol is None else tuple(sol.achieved_twist.tolist()),
-        tracking_error=0.0 if sol is None else sol.tracking_error,
-        scales={} if sol is None else dict(sol.scales),
-        binding_limit=None if sol is None else sol.binding_limit,
-        period_s=period_s, compute_s=compute_s, overrun=overrun, reduced=intent.reduced,
-        input=frame_to_wire(frame), state_age_s=state_age_s, overrun_streak=overrun_streak,
-        safety_state=out.verdict.state,
-        min_clearance_m=None if clearance is None else clearance.min_distance_m,
-        clearance_arm=None if pair is None else pair[0],
-        clearance_other=None if pair is None else pair[1])
+    return head + (sol.damping, sol.sigma_min, sol.manipulability, sol.achieved_twist,
+                   sol.tracking_error, sol.scales, sol.binding_limit) + tail + (
+        None if clearance is None else clearance.min_distance_m,
+        None if pair is None else pair[0], None if pair is None else pair[1])
+
+
+def record_of_row(row: CycleRow) -> CycleRecord:
+    """The record of a `cycle_row`: float rows as tuples of floats, `scales` a copy."""
+    values = list(row)
+    values[_AXES] = tuple(values[_AXES])
+    for i in _FLOAT_ROWS:
+        values[i] = _plain_floats(values[i])
+    values[_SCALES] = dict(values[_SCALES])
+    return CycleRecord(*values)
+
+
+def _frozen_zeros(n: int) -> np.ndarray:
+    out = np.zeros(n)
+    out.flags.writeable = False         # shared by every unsolved row
+    return out
+
+
+# damping, sigma_min, manipulability, achieved_twist, tracking_error, scales, binding_limit
+_UNSOLVED: CycleRow = (0.0, float("nan"), float("nan"), _frozen_zeros(6), 0.0,
+                       MappingProxyType({}), None)
+FLOAT_ROWS = ("twist", "q", "rates", "achieved_twist")   # and axes, kept as the device gave
+_FIELD_INDEX = {name: i for i, name in enumerate(CycleRecord.__dataclass_fields__)}
+_FLOAT_ROWS = tuple(_FIELD_INDEX[name] for name in FLOAT_ROWS)
+_AXES, _SCALES = _FIELD_INDEX["axes"], _FIELD_INDEX["scales"]
 
 
 def frame_to_wire(frame: InputFrame) -> dict[str, Any]:

@@ -33,7 +33,14 @@ import msgpack
 
 from ..arm.model import Arm
 from ..errors import LogError
-from .log_blocks import PackedColumns, block_map, encode_records, pack_records
+from .log_blocks import (
+    CycleBlock,
+    PackedColumns,
+    block_map,
+    encode_records,
+    pack_block,
+    pack_records,
+)
 from .log_schema import (
     FORMAT_VERSION,
     FRAME_MARK,
@@ -225,6 +232,28 @@ class SessionRecorder:
             self._collected.append(rec)
             if len(self._collected) >= CALLER_BLOCK_RECORDS:
                 self._hand_over_collected()
+        return True
+
+    def record_block(self, block: CycleBlock) -> bool:
+        """Hand over many cycles at once, already gathered into columns
+        (`cycle_columns`): what `record` does for each of them, packed here in the caller.
+        A block that cannot be packed goes record by record (the bad ones are skipped)."""
+        if self._failed is not None or self._closed:
+            self._refused += block.n
+            return False
+        if len(self._queue) + len(self._collected) >= self._capacity:
+            self._dropped += block.n
+            return False
+        try:
+            packed = pack_block(block) if self.format_version != 1 else None
+        except Exception:  # noqa: BLE001 - one bad record must not stop the session
+            packed = None
+        if packed is None:
+            return all([self.record(rec) for rec in block.records()])
+        if self._collected:
+            self._hand_over_collected()               # records handed earlier go first
+        self._handed += block.n
+        self._queue.append(_Packed(packed, block.n))
         return True
 
     def _hand_over_collected(self) -> None:

@@ -137,9 +137,9 @@ class TraceBuilder:
         self._arrays = {k: np.zeros((size, *s)) for k, s in shapes.items()}
         self._arrays.update({k: np.zeros(size, dtype=bool) for k in flags})
         self._arrays["binding"] = np.full(size, -1, dtype=int)
-        if old is not None:
+        if old is not None:        # states may be ahead of their cycles (`add_state`)
             for k, a in old.items():
-                self._arrays[k][:self._n] = a[:self._n]
+                self._arrays[k][:len(a)] = a
 
     def add(self, rec: Any, q_after: Sequence[float], qd_after: Sequence[float],
             limited: bool = False, commanded_twist: Sequence[float] | None = None,
@@ -177,13 +177,41 @@ class TraceBuilder:
         self._reasons.append(rec.enable_reason)
         self._n += 1
 
+    def add_cycles(self, block: Any, commanded_twists: NDArray[np.float64]) -> None:
+        """The next `block.n` cycles at once, from their records gathered into columns (a
+        `log_blocks.CycleBlock`, not imported: its module reaches files and clocks), with
+        each cycle's commanded twist in base axes (n, 6) (NaN in joint jogs): what
+        `add_cycle` does for each record, in a few array copies."""
+        k, n = self._n, block.n
+        while k + n > len(self._arrays["t"]):
+            self._alloc(2 * len(self._arrays["t"]))
+        a, rows, joints = self._arrays, slice(k, k + n), self.arm.n
+        a["t"][rows] = block["t_s"]
+        a["q_used"][rows] = block.matrix("q", joints)
+        a["rates"][rows] = block.matrix("rates", joints)
+        a["allowed"][rows] = block["enabled"]
+        a["reduced"][rows] = block["reduced"]
+        a["twist_rates"][rows] = block.matrix("achieved_twist", 6)
+        a["sigma_min"][rows] = block["sigma_min"]
+        a["damping"][rows] = block["damping"]
+        a["twist_cmd"][rows] = commanded_twists
+        binding = block["binding_limit"]          # names numbered in order of first binding
+        index = [-1 if name is None else self._names.setdefault(name, len(self._names))
+                 for name in binding.table]
+        a["binding"][rows] = np.array(index, dtype=int)[binding.codes] if n else -1
+        self._reasons += block["enable_reason"].tolist()
+        self._n += n
+
     def add_state(self, q_after: Sequence[float], qd_after: Sequence[float],
                   limited: bool = False, *, cycle: int | None = None) -> None:
-        """The arm's state after the step of cycle number `cycle` (already added; default:
-        the cycle added last). A run whose states lag its cycles adds them later."""
+        """The arm's state after the step of cycle number `cycle` (default: the cycle
+        added last). A run whose states lag its cycles adds them later, and one that adds
+        its cycles in blocks may add a state before its cycle."""
         k = self._n - 1 if cycle is None else cycle
-        if not 0 <= k < self._n:
-            raise IndexError(f"no cycle {k} to add a state to ({self._n} added)")
+        if k < 0:
+            raise IndexError(f"no cycle {k} to add a state to")
+        while k >= len(self._arrays["t"]):
+            self._alloc(2 * len(self._arrays["t"]))
         a = self._arrays
         a["q"][k] = q_after
         a["qd"][k] = qd_after

@@ -19,7 +19,7 @@ from typing import Any, Callable
 import numpy as np
 
 from ..arm.model import Arm
-from ..control.cycle import ControlCycle
+from ..control.cycle import ControlCycle, CycleOutput
 from ..control.intent import InputFrame
 from ..control.pads import load_pad
 from ..control.settings import RunSettings
@@ -28,10 +28,11 @@ from ..link.protocol import cell_hello_for
 from ..operator.inputs.script import ScriptSource, load_script
 from ..operator.progress import Progress
 from .cell_check import CellRun, judge_cell, with_cell
+from .cycle_columns import CycleColumns
 from .lockstep import LockstepSim, run_closed_loop
 from .log_reader import read_session
-from .log_schema import SESSION_SUFFIX, cycle_record
-from .log_writer import SessionRecorder
+from .log_schema import SESSION_SUFFIX
+from .log_writer import CALLER_BLOCK_RECORDS, SessionRecorder
 from .preflight import Finding, PreflightResult, TraceBuilder, evaluate
 from .rerun import RecordedInputs, continuous_records, cycle_settings, inputs_of
 
@@ -39,6 +40,7 @@ __all__ = ["PreflightRun", "Profile", "load_profile", "preflight_settings", "run
 
 TAIL_S = 0.1          # cycles run after the profile ends: the arm is seen to come to rest
 RECORDER_QUEUE = 1 << 16
+BLOCK_CYCLES = CALLER_BLOCK_RECORDS   # cycles a block of the log holds, as the recorder packs
 # The safety gate's stale_after in a preflight run. In lockstep each cycle works on a pose at
 # most `state_lag_cycles` old, so at the usual rates it never binds; 0.05 s is what preflight
 # has always recorded in its logs.
@@ -146,23 +148,26 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
             SessionRecorder.start(log_path, arm, header, started_at=started_at,
                                   queue_size=RECORDER_QUEUE, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, sim.first.q, sim.first.qd, capacity=n_cycles)
+        cycles = CycleColumns()
+        commanded: list[np.ndarray] = []     # each kept cycle's commanded twist, base axes
 
         def prepare(k: int, t: float, frame: InputFrame, out: Any, q: np.ndarray,
                     compute_s: float, state_age_s: float) -> None:
-            """Record the cycle while the simulated arm steps."""
-            rec = cycle_record(k, t, frame, out, q, state_age_s=state_age_s, overrun_streak=0,
-                               period_s=dt, compute_s=compute_s, overrun=False)
-            recorder.record(rec)
-            sol = out.solution
-            trace.add_cycle(rec, joint_mode=out.intent.mode == "joint",
-                            commanded_twist=np.zeros(6) if sol is None else sol.commanded_twist)
+            """Keep the cycle for the log and the verdict while the simulated arm steps."""
+            cycles.add(k, t, frame, out, q, state_age_s=state_age_s, overrun_streak=0,
+                       period_s=dt, compute_s=compute_s, overrun=False)
+            commanded.append(_commanded_twist(out))
             computes[k] = compute_s
+            if len(cycles) == BLOCK_CYCLES:
+                _hand_over(cycles, commanded, recorder, trace)
 
         for c in run_closed_loop(cycle, sim, profile.frame_at, n_cycles,
                                  state_lag=settings.effective_state_lag, prepare=prepare):
             trace.add_state(c.after.q, c.after.qd, c.after.limited, cycle=c.k)
-            contacts += [(c.t_s, a, b, depth) for a, b, depth in c.after.contacts]
+            if c.after.contacts:
+                contacts += [(c.t_s, a, b, depth) for a, b, depth in c.after.contacts]
             bar.update((c.k + 1) * dt)
+        _hand_over(cycles, commanded, recorder, trace)
         bar.close()
         arm_cell = sim.arm_cell
     wall = time.perf_counter() - wall0
@@ -181,6 +186,37 @@ def run_preflight(arm_spec: str, arm: Arm, profile: Profile, settings: RunSettin
             f"the profile log is damaged: {profile.damage}; the rest was not proven"))
     return PreflightRun(result, log_path, started_at.isoformat(timespec="seconds"), wall,
                         n_cycles, float(np.median(computes)) if n_cycles else 0.0)
+
+
+def _hand_over(cycles: CycleColumns, commanded: list[np.ndarray], recorder: SessionRecorder,
+               trace: TraceBuilder) -> None:
+    """The cycles kept so far, with their commanded twists, to the log and the verdict's
+    trace as one block; record by record should they not gather into one (a value that
+    fits no column: the log skips that record, the trace still gets it)."""
+    if not cycles:
+        return
+    try:
+        block = cycles.block()
+    except (TypeError, ValueError, LogError):
+        for rec, twist in zip(cycles.records(), commanded):
+            recorder.record(rec)
+            trace.add_cycle(rec, commanded_twist=twist)
+    else:
+        recorder.record_block(block)
+        trace.add_cycles(block, np.array(commanded).reshape(-1, 6))
+    cycles.clear()
+    commanded.clear()
+
+
+_NO_TWIST = np.zeros(6)
+_JOINT_JOG = np.full(6, math.nan)
+
+
+def _commanded_twist(out: CycleOutput) -> np.ndarray:
+    """The twist the cycle was asked for, in base axes (NaN in a joint jog)."""
+    if out.intent.mode == "joint":
+        return _JOINT_JOG
+    return _NO_TWIST if out.solution is None else out.solution.commanded_twist
 
 
 def _add_finding(result: PreflightResult, finding: Finding) -> PreflightResult:

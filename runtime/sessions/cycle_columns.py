@@ -1,0 +1,78 @@
+"""A run's cycles gathered into a log block column by column, with no record per cycle
+(pure).
+
+The usual way to log a cycle is its record (`log_schema.cycle_record`), whose fields the
+log writer later gathers into a block's columns (`log_blocks`). A lockstep run (preflight)
+is bound by this process's work per cycle, and a record of 28 fields built and gathered
+again cost it about a quarter of its cycle. So it keeps each cycle's values as the loop has
+them (`log_schema.cycle_row`: a plain tuple, arrays not yet converted) and gathers a block's
+columns from those rows with one conversion per column: `CycleColumns.block()` is exactly
+`CycleBlock.from_records` of the cycles' records, value for value and bit for bit
+(tests/runtime/sessions/test_cycle_columns.py holds the two together).
+
+A row keeps the cycle's arrays by reference until its block is taken: the loop must not
+change them afterwards (the control cycle returns new ones every cycle).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ..control.cycle import CycleOutput
+from ..control.intent import InputFrame
+from .log_blocks import COLUMNS, STR, CycleBlock, Ragged, check_table, gather_column
+from .log_schema import FLOAT_ROWS, CycleRecord, CycleRow, cycle_row, record_of_row
+
+_u4 = np.dtype("<u4")
+
+
+class CycleColumns:
+    """Cycles collected as the loop produced them; `block()` gathers them as columns."""
+
+    def __init__(self) -> None:
+        self.rows: list[CycleRow] = []
+
+    def add(self, cycle: int, t_s: float, frame: InputFrame, out: CycleOutput, q: Any, *,
+            state_age_s: float | None, overrun_streak: int, period_s: float,
+            compute_s: float, overrun: bool) -> None:
+        """One cycle, with `cycle_record`'s arguments."""
+        self.rows.append(cycle_row(cycle, t_s, frame, out, q, state_age_s=state_age_s,
+                                   overrun_streak=overrun_streak, period_s=period_s,
+                                   compute_s=compute_s, overrun=overrun))
+
+    def __len__(self) -> int:
+        return len(self.rows)
+
+    def block(self) -> CycleBlock:
+        """The cycles collected so far as one block. Raises TypeError, ValueError or
+        LogError where `CycleBlock.from_records` would."""
+        return CycleBlock(len(self.rows), _columns(self.rows))
+
+    def records(self) -> list[CycleRecord]:
+        """The cycles collected so far as records (the slow way: for cycles that do not
+        gather into a block)."""
+        return [record_of_row(row) for row in self.rows]
+
+    def clear(self) -> None:
+        self.rows = []
+
+
+def _columns(rows: list[CycleRow]) -> dict[str, Any]:
+    fields = zip(*rows) if rows else [()] * len(COLUMNS)
+    columns: dict[str, Any] = {}
+    for (name, kind), values in zip(COLUMNS, fields):
+        col: Any = _float_rows(values) if name in FLOAT_ROWS else gather_column(kind, values)
+        if kind == STR:
+            check_table(name, col.table)
+        columns[name] = col
+    return columns
+
+
+def _float_rows(rows: tuple[Any, ...]) -> Ragged:
+    """Rows of floats (arrays or sequences) as a list column, the same as their tuples of
+    floats gather into (`log_blocks`), in one concatenation."""
+    lengths = np.fromiter(map(len, rows), _u4, len(rows))
+    flat = np.concatenate(rows, dtype=np.float64) if rows else np.zeros(0)
+    return Ragged(lengths, flat)
