@@ -298,13 +298,14 @@ def bench_components(log: Path, cycles: int, links: list[str]) -> dict[str, floa
             SessionRecorder.start(Path(tmp) / "b.jwlog", arm, {"rate_hz": RATE_HZ},
                                   queue_size=1 << 16, encode_in_caller=True) as recorder:
         trace = TraceBuilder(arm, arm.home(), np.zeros(arm.n), capacity=len(records))
-        cycles = CycleColumns()
+        cycles, commanded = CycleColumns(), []
         for k, (rec, frame, o) in enumerate(zip(records, frames, outs)):
             t = time.perf_counter_ns()
             cycles.add(k, rec.t_s, frame, o, rec.q, state_age_s=0.0, overrun_streak=0,
                        period_s=1 / RATE_HZ, compute_s=0.0, overrun=False)
+            commanded.append(preflight_run._commanded_twist(o))
             if len(cycles) == preflight_run.BLOCK_CYCLES:
-                preflight_run._hand_over(cycles, recorder, trace)
+                preflight_run._hand_over(cycles, commanded, recorder, trace)
             trace.add_state(rec.q, rec.rates, cycle=k)
             times.append(time.perf_counter_ns() - t)
     # The mean: a block is gathered and packed every 256 cycles, which a median would not see

@@ -318,6 +318,9 @@ def _as_rows(col: Any) -> list[Any]:
 # ----------------------------------------------------------------------------------------
 
 def _dictionary(values: Sequence[Any]) -> tuple[np.ndarray, list[Any]]:
+    n = len(values)
+    if n and values.count(values[0]) == n:      # one value throughout: the usual block
+        return np.zeros(n, _u4), [values[0]]
     table = list(dict.fromkeys(values))
     index = {v: i for i, v in enumerate(table)}
     return np.fromiter(map(index.__getitem__, values), _u4, len(values)), table
@@ -331,7 +334,10 @@ def _gather_str(vals: Sequence[Any]) -> Strings:
 def _gather_list(dtype: Any) -> Callable[[Sequence[Any]], Ragged]:
     def gather(vals: Sequence[Any]) -> Ragged:
         lengths = np.fromiter(map(len, vals), _u4, len(vals))
-        flat = np.fromiter(chain.from_iterable(vals), dtype, int(lengths.sum()))
+        if len(vals) and lengths.min() == lengths.max() > 0:    # rows of one length
+            flat = np.array(vals, dtype).reshape(-1)
+        else:
+            flat = np.fromiter(chain.from_iterable(vals), dtype, int(lengths.sum()))
         return Ragged(lengths, flat)
     return gather
 
@@ -345,6 +351,11 @@ def _gather_map(vals: Sequence[Mapping[str, float]]) -> KeyedFloats:
 
 
 def _gather_optional(vals: Sequence[float | None]) -> tuple[np.ndarray, np.ndarray]:
+    n = len(vals)
+    if vals.count(None) == n:                      # absent throughout (no workcell)
+        return np.zeros(n, bool), np.zeros(n)
+    if None not in vals:
+        return np.ones(n, bool), np.array(vals, dtype=np.float64).reshape(n)
     present = np.fromiter((v is not None for v in vals), bool, len(vals))
     values = np.fromiter((0.0 if v is None else v for v in vals), np.float64, len(vals))
     return present, values
