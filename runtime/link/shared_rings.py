@@ -141,11 +141,13 @@ class RingChannel:
         Polls the count for the first BUSY_S, then yields the core to anything else
         runnable between looks until `spin_s`, then sleeps until a bell rings (or NAP_S
         passes: see "the bell" in the module's notes)."""
+        words, written, taken, asleep = self.words, self.in_written, self.in_taken, \
+            self.in_asleep
+        if self.ended or words[written] != words[taken]:
+            return True                    # already there (the usual lockstep case)
         now = time.monotonic()
         deadline = now + max(timeout_s, 0.0)
         busy_until, spin_until = now + min(BUSY_S, timeout_s), now + min(self.spin_s, timeout_s)
-        words, written, taken, asleep = self.words, self.in_written, self.in_taken, \
-            self.in_asleep
         try:
             while True:
                 if self.ended or words[written] != words[taken]:

@@ -231,9 +231,11 @@ class LockstepSim:
     def wait(self, seq: int) -> SimStep:
         """The arm's state after the rates numbered `seq` (sent, and not yet waited for)."""
         state = self._wait_for(seq)
-        contact = self.contacts.pop(state.seq, None)
-        for older in [k for k in self.contacts if k < state.seq]:   # a state not waited for
-            del self.contacts[older]
+        contact = None
+        if self.contacts:                      # with a workcell only
+            contact = self.contacts.pop(state.seq, None)
+            for older in [k for k in self.contacts if k < state.seq]:  # a state not waited for
+                del self.contacts[older]
         return SimStep(np.array(state.q), np.array(state.qd), bool(state.limited),
                        () if contact is None else tuple(contact.pairs))
 
