@@ -40,11 +40,12 @@ import time
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Union, cast
+from typing import TYPE_CHECKING, Any, Union, cast
 
 import zmq
-import zmq.auth
-from zmq.auth.thread import ThreadAuthenticator
+
+if TYPE_CHECKING:
+    from zmq.auth.thread import ThreadAuthenticator
 
 from ..errors import ModelMismatch, ProtocolError, TransportError
 from .protocol import (
@@ -138,7 +139,7 @@ def make_keys(directory: str | Path, *, names: tuple[str, ...] = (SERVER_KEY_NAM
     os.chmod(directory, stat.S_IRWXU)
     written = []
     for name in names:
-        public, secret = (Path(p) for p in zmq.auth.create_certificates(directory, name))
+        public, secret = (Path(p) for p in _zmq_auth().create_certificates(directory, name))
         os.chmod(secret, stat.S_IRUSR | stat.S_IWUSR)
         written += [public, secret]
         if name != SERVER_KEY_NAME:
@@ -146,12 +147,20 @@ def make_keys(directory: str | Path, *, names: tuple[str, ...] = (SERVER_KEY_NAM
     return written
 
 
+def _zmq_auth() -> Any:
+    """pyzmq's key tools, imported on first use: with its authenticator thread they take
+    some 40 ms to import, which a process that never uses keys should not pay (the simulated
+    arm's lockstep child, whose start counts in a preflight's time)."""
+    import zmq.auth
+    return zmq.auth
+
+
 def _load_pair(path: Path) -> tuple[bytes, bytes]:
     if not path.exists():
         raise TransportError(f"no secret key {path}; make keys with `jogwire keys "
                              f"{path.parent}`")
     try:
-        public, secret = zmq.auth.load_certificate(path)
+        public, secret = _zmq_auth().load_certificate(path)
     except (OSError, ValueError) as exc:
         raise TransportError(f"cannot read key {path}: {exc}") from None
     if secret is None:
@@ -178,7 +187,7 @@ def load_client_keys(directory: str | Path, name: str = CLIENT_KEY_NAME,
     if not server_path.exists():
         raise TransportError(f"no server public key {server_path}")
     try:
-        server_public, _ = zmq.auth.load_certificate(server_path)
+        server_public, _ = _zmq_auth().load_certificate(server_path)
     except (OSError, ValueError) as exc:
         raise TransportError(f"cannot read key {server_path}: {exc}") from None
     return ClientKeys(public, secret, server_public)
@@ -233,6 +242,7 @@ class _Socket:
                 s.ipv6 = True
             self._configure(s)
             if isinstance(keys, ServerKeys):
+                from zmq.auth.thread import ThreadAuthenticator
                 self.auth = ThreadAuthenticator(self.context)
                 self.auth.start()
                 self.auth.configure_curve(domain="*", location=str(keys.authorized_dir))
