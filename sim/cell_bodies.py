@@ -24,7 +24,6 @@ import pybullet as pb
 
 from runtime import palette
 from runtime.arm.cell import Cell
-from runtime.arm.distance import collision_model
 from runtime.arm.model import Arm
 from runtime.arm.solids import Solid, capsule, cell_solids
 from runtime.link.protocol import cell_digest
@@ -142,6 +141,9 @@ PART_PREFIX = "part_"
 
 def sim_cell(arm: Arm, cell: Cell) -> SimCell:
     """The workcell and the arm's collision model (runtime/arm/collision.py) for PyBullet."""
+    # Imported here: the distance code is some 10 ms to import, which a simulated arm
+    # without a workcell (a preflight's lockstep child) need not pay at its start.
+    from runtime.arm.distance import collision_model
     model = collision_model(arm, cell)
     caps = model.capsules
     root = "base_link" if np.array_equal(arm.base, np.eye(4)) else "world"

@@ -32,7 +32,6 @@ from .model import (
     configs_dir,
 )
 from .transforms import Mat4, make_transform
-from .urdf import load_urdf_arm
 
 __all__ = ["arm_from_toml", "load_arm", "resolve_arm_path", "resolve_shipped"]
 
@@ -69,7 +68,7 @@ def load_arm(name_or_path: str | Path, *, base_link: str | None = None,
     """Load an arm from a shipped name, a TOML file or a URDF file."""
     path = resolve_arm_path(name_or_path)
     if path.suffix == ".urdf":
-        return load_urdf_arm(path, base_link=base_link, tip_link=tip_link)
+        return _urdf_arm(path, base_link=base_link, tip_link=tip_link)
     data, src = read_toml(path, "arm")
     return arm_from_toml(data, src)
 
@@ -285,6 +284,14 @@ _URDF_OVERRIDE_KEYS = {"name", "max_speed", "max_accel", "rated_speed", "rated_a
                        "link_radius"}
 
 
+def _urdf_arm(path: Path, *, base_link: str | None, tip_link: str | None) -> Arm:
+    """The arm in a URDF file. Its reader (with an XML parser) is imported here, for URDF
+    arms only: a process that loads a DH arm, such as the simulated arm's child whose start
+    counts in a preflight's time, does not pay for it."""
+    from .urdf import load_urdf_arm
+    return load_urdf_arm(path, base_link=base_link, tip_link=tip_link)
+
+
 def _arm_from_urdf_toml(data: dict[str, Any], src: _Source, common: dict[str, Any]) -> Arm:
     """An arm TOML that points at a URDF file and adds what URDF lacks (accelerations, task).
 
@@ -297,7 +304,7 @@ def _arm_from_urdf_toml(data: dict[str, Any], src: _Source, common: dict[str, An
         if key in data and not isinstance(data[key], str):
             raise src.error(f"must be a string, got {data[key]!r}", key, None, None, key)
     urdf_path = (src.path.parent / data["urdf"]).resolve()
-    arm = load_urdf_arm(urdf_path, base_link=data.get("base_link"), tip_link=data.get("tip_link"))
+    arm = _urdf_arm(urdf_path, base_link=data.get("base_link"), tip_link=data.get("tip_link"))
     specs = data.get("joints", [])
     if not isinstance(specs, list):
         raise src.error("must be a list of [[joints]] tables", "joints", None, None, "joints")

@@ -6,16 +6,19 @@ import math
 import xml.etree.ElementTree as ET
 from dataclasses import replace
 from pathlib import Path
+from xml.sax.saxutils import quoteattr
 
 import numpy as np
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
 from runtime import palette
 from runtime.arm.kinematics import geometric_jacobian, tcp_pose
 from runtime.arm.load import load_arm
 from runtime.arm.transforms import make_transform, rpy_to_matrix
 from runtime.arm.urdf import load_urdf_arm
-from sim.urdf import arm_to_urdf, matrix_to_rpy_exact, write_urdf
+from sim.urdf import _attribute, arm_to_urdf, matrix_to_rpy_exact, write_urdf
 
 DEMO_ARMS = ["elbow6", "reach7", "scara4", "planar3"]
 
@@ -135,3 +138,10 @@ def test_materials_are_the_palette_colours(name: str) -> None:
     tool = [v for link in root.findall("link") if link.get("name") in ("flange", "tcp")
             for v in link.findall("visual")]
     assert tool and all(v.find("material").get("name") == "tool" for v in tool)
+
+
+@given(st.text())
+def test_attribute_values_are_quoted_as_the_standard_library_quotes_them(text: str) -> None:
+    # Reference: xml.sax.saxutils.quoteattr (Python standard library); ours avoids its import
+    # of urllib.request, which slowed the simulated arm's start.
+    assert _attribute(text) == quoteattr(text)
