@@ -61,11 +61,13 @@ def main() -> int:
     first = runs[args.sides[0]]
     for side, results in runs.items():
         ratios = [loop / base for (loop, _), (base, _) in zip(results, first)]
+        gains = [f / base for (_, f), (_, base) in zip(results, first)]
         factors = [f for _, f in results]
         print(f"{side}: loop {statistics.median(r[0] for r in results):.1f} µs a cycle, "
               f"{statistics.median(factors):.2f}x real time (best {max(factors):.2f}x); "
-              f"loop time / the first side's in the same round: median "
-              f"{statistics.median(ratios):.3f} ({', '.join(f'{r:.2f}' for r in ratios)})")
+              f"against the first side in the same round: loop time "
+              f"{statistics.median(ratios):.3f}x ({', '.join(f'{r:.2f}' for r in ratios)}), "
+              f"real-time factor {statistics.median(gains):.3f}x (the child's start included)")
     print(f"load average at end: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
     return 0
 
