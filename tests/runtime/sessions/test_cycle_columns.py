@@ -27,7 +27,7 @@ from runtime.control.settings import RunSettings
 from runtime.sessions.cycle_columns import CycleColumns
 from runtime.sessions.log_blocks import pack_block, pack_records
 from runtime.sessions.log_reader import read_session
-from runtime.sessions.log_schema import cycle_record
+from runtime.sessions.log_schema import cycle_record, frame_to_wire
 from runtime.sessions.log_writer import SessionRecorder
 from runtime.sessions.preflight import TraceBuilder
 from runtime.sessions.preflight_run import _commanded_twist, _hand_over
@@ -281,3 +281,43 @@ def test_gathering_needs_no_record_objects(cycles, monkeypatch) -> None:
         raise AssertionError("a record was built")
     monkeypatch.setattr(log_schema, "CycleRecord", no_records)
     assert columns.block().n == 64
+
+
+def test_each_field_of_a_record_comes_from_its_own_part_of_the_cycle(all_cycles) -> None:
+    # The row is positional; every field named here is read back by name from the cycle.
+    seen_solved = seen_unsolved = seen_pair = False
+    for args, kwargs in all_cycles:
+        k, t, frame, out, q = args
+        rec = cycle_record(*args, **kwargs)
+        sol, verdict, intent = out.solution, out.verdict, out.intent
+        assert (rec.cycle, rec.t_s, rec.axes) == (k, t, tuple(frame.axes))
+        assert rec.buttons == frame.button_flags(16)
+        assert (rec.enabled, rec.enable_reason, rec.safety_state) == \
+            (verdict.allowed, verdict.reason, verdict.state)
+        assert (rec.twist, rec.frame, rec.reduced) == \
+            (tuple(intent.twist.tolist()), intent.frame, intent.reduced)
+        assert rec.q == (() if q is None else tuple(q.tolist()))
+        assert rec.rates == tuple(out.rates.tolist())
+        assert (rec.period_s, rec.compute_s, rec.overrun, rec.overrun_streak,
+                rec.state_age_s) == (kwargs["period_s"], kwargs["compute_s"],
+                                     kwargs["overrun"], kwargs["overrun_streak"],
+                                     kwargs["state_age_s"])
+        assert rec.input == frame_to_wire(frame)
+        if sol is None:
+            seen_unsolved = True
+            assert (rec.damping, rec.tracking_error, rec.scales, rec.binding_limit) == \
+                (0.0, 0.0, {}, None)
+            assert math.isnan(rec.sigma_min) and math.isnan(rec.manipulability)
+            assert rec.achieved_twist == (0.0,) * 6 and rec.min_clearance_m is None
+        else:
+            seen_solved = True
+            assert (rec.damping, rec.sigma_min, rec.manipulability, rec.tracking_error) == \
+                (sol.damping, sol.sigma_min, sol.manipulability, sol.tracking_error)
+            assert rec.achieved_twist == tuple(sol.achieved_twist.tolist())
+            assert rec.scales == sol.scales and rec.scales is not sol.scales
+            assert rec.binding_limit == sol.binding_limit
+            near = sol.clearance                   # None in a joint jog
+            assert rec.min_clearance_m == (None if near is None else near.min_distance_m)
+            assert rec.clearance_pair == (None if near is None else near.nearest_pair)
+            seen_pair |= rec.clearance_pair is not None
+    assert seen_solved and seen_unsolved and seen_pair
