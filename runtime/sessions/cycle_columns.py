@@ -1,14 +1,12 @@
-"""A run's cycles gathered into a log block column by column, with no record per cycle
-(pure).
+"""A run's cycles kept as rows and gathered into a log block, with no record per cycle.
 
 The usual way to log a cycle is its record (`log_schema.cycle_record`), whose fields the
 log writer later gathers into a block's columns (`log_blocks`). A lockstep run (preflight)
 is bound by this process's work per cycle, and a record of 28 fields built and gathered
 again cost it about a quarter of its cycle. So it keeps each cycle's values as the loop has
-them (`log_schema.cycle_row`: a plain tuple, arrays not yet converted) and gathers a block's
-columns from those rows with one conversion per column: `CycleColumns.block()` is exactly
-`CycleBlock.from_records` of the cycles' records, value for value and bit for bit
-(tests/runtime/sessions/test_cycle_columns.py holds the two together).
+them (`log_schema.cycle_row`: a plain tuple, arrays not yet converted) and gathers a block
+from those rows (`CycleBlock.from_rows`, one numpy conversion per column): the same block,
+bit for bit, that the cycles' records make (tests/runtime/sessions/test_cycle_columns.py).
 
 A row keeps the cycle's arrays by reference until its block is taken: the loop must not
 change them afterwards (the control cycle returns new ones every cycle).
@@ -18,14 +16,10 @@ from __future__ import annotations
 
 from typing import Any
 
-import numpy as np
-
 from ..control.cycle import CycleOutput
 from ..control.intent import InputFrame
-from .log_blocks import COLUMNS, STR, CycleBlock, Ragged, check_table, gather_column
-from .log_schema import FLOAT_ROWS, CycleRecord, CycleRow, cycle_row, record_of_row
-
-_u4 = np.dtype("<u4")
+from .log_blocks import CycleBlock
+from .log_schema import CycleRecord, CycleRow, cycle_row, record_of_row
 
 
 class CycleColumns:
@@ -48,7 +42,7 @@ class CycleColumns:
     def block(self) -> CycleBlock:
         """The cycles collected so far as one block. Raises TypeError, ValueError or
         LogError where `CycleBlock.from_records` would."""
-        return CycleBlock(len(self.rows), _columns(self.rows))
+        return CycleBlock.from_rows(self.rows)
 
     def records(self) -> list[CycleRecord]:
         """The cycles collected so far as records (the slow way: for cycles that do not
@@ -57,22 +51,3 @@ class CycleColumns:
 
     def clear(self) -> None:
         self.rows = []
-
-
-def _columns(rows: list[CycleRow]) -> dict[str, Any]:
-    fields = zip(*rows) if rows else [()] * len(COLUMNS)
-    columns: dict[str, Any] = {}
-    for (name, kind), values in zip(COLUMNS, fields):
-        col: Any = _float_rows(values) if name in FLOAT_ROWS else gather_column(kind, values)
-        if kind == STR:
-            check_table(name, col.table)
-        columns[name] = col
-    return columns
-
-
-def _float_rows(rows: tuple[Any, ...]) -> Ragged:
-    """Rows of floats (arrays or sequences) as a list column, the same as their tuples of
-    floats gather into (`log_blocks`), in one concatenation."""
-    lengths = np.fromiter(map(len, rows), _u4, len(rows))
-    flat = np.concatenate(rows, dtype=np.float64) if rows else np.zeros(0)
-    return Ragged(lengths, flat)

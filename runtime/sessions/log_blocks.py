@@ -203,21 +203,20 @@ class CycleBlock:
     def from_records(cls, records: Sequence[CycleRecord]) -> "CycleBlock":
         """Gather records into columns. Raises (TypeError, ValueError, LogError) on a
         value that does not fit its column."""
-        n = len(records)
-        if n == 0:
-            return cls(0, {name: _GATHER[kind](()) for name, kind in COLUMNS})
-        values = zip(*map(attrgetter(*FIELDS), records))
+        return cls.from_rows(list(map(attrgetter(*FIELDS), records)))
+
+    @classmethod
+    def from_rows(cls, rows: Sequence[Sequence[Any]]) -> "CycleBlock":
+        """Gather rows of field values in FIELDS order into columns: a record's values, or
+        a `log_schema.cycle_row` (whose float rows may still be arrays: the same column).
+        Raises as `from_records` does."""
+        fields = zip(*rows) if rows else [()] * len(COLUMNS)
         cols = {}
-        for (name, kind), vals in zip(COLUMNS, values):
-            cols[name] = gather_column(kind, vals)
+        for (name, kind), vals in zip(COLUMNS, fields):
+            cols[name] = _GATHER[kind](vals)
             if kind == STR:
                 check_table(name, cols[name].table)
-        return cls(n, cols)
-
-
-def gather_column(kind: str, values: Sequence[Any]) -> Any:
-    """One field's values, a row each, as a column of type `kind` (COLUMN_TYPES)."""
-    return _GATHER[kind](values)
+        return cls(len(rows), cols)
 
 
 def check_table(name: str, table: Sequence[Any]) -> None:

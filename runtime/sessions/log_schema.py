@@ -328,7 +328,7 @@ def cycle_record(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
 CycleRow = tuple[Any, ...]
 """The values of one cycle's record in field order, as the loop has them: float rows
 (axes, twist, q, rates, achieved_twist) still arrays or sequences, `scales` the solver's own
-map. `record_of_row` makes the record; `cycle_columns` gathers many rows at once."""
+map. `record_of_row` makes the record; `CycleBlock.from_rows` gathers many at once."""
 
 
 def cycle_row(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
@@ -370,9 +370,9 @@ def _frozen_zeros(n: int) -> np.ndarray:
 # damping, sigma_min, manipulability, achieved_twist, tracking_error, scales, binding_limit
 _UNSOLVED: CycleRow = (0.0, float("nan"), float("nan"), _frozen_zeros(6), 0.0,
                        MappingProxyType({}), None)
-FLOAT_ROWS = ("twist", "q", "rates", "achieved_twist")   # and axes, kept as the device gave
 _FIELD_INDEX = {name: i for i, name in enumerate(CycleRecord.__dataclass_fields__)}
-_FLOAT_ROWS = tuple(_FIELD_INDEX[name] for name in FLOAT_ROWS)
+# Made tuples of floats for a record (axes stay as the device gave them)
+_FLOAT_ROWS = tuple(_FIELD_INDEX[name] for name in ("twist", "q", "rates", "achieved_twist"))
 _AXES, _SCALES = _FIELD_INDEX["axes"], _FIELD_INDEX["scales"]
 
 
