@@ -103,17 +103,16 @@ def test_arms_with_prismatic_joints_have_no_bound() -> None:
     assert reach_weights(CollisionModel.build(arm, load_cell("bench", arm))) is None
 
 
-
 @pytest.mark.parametrize("axis", [(3e-170, 0.0, 1e-170), (0.0, -8e-284, -1.3e-160),
                                   (1e-300, 2e-300, -2e-300), (0.3, -0.2, 0.6)])
 def test_the_cull_axis_of_a_segment_too_short_to_square(axis) -> None:
     """The cull aligns z with each capsule's segment (`rotation_aligning_z`); hypothesis found
     random DH tables whose segments are so short that their squared length underflows to
-    zero. The result is still a rotation (RᵀR = I, det R = 1) taking ẑ to the direction,
-    here worked out by hand from the scaled vector."""
+    zero. The result is still a rotation (RᵀR = I, det R = 1) taking ẑ to the direction.
+    Reference for the direction: the standard library's `math.hypot`, which computes the
+    length without underflow (Python docs, math.hypot; multi-argument since 3.8)."""
     a = np.array(axis)
-    scaled = a / np.abs(a).max()
-    direction = scaled / math.sqrt(float(scaled @ scaled))
+    direction = a / math.hypot(*axis)
     R = rotation_aligning_z(a)
     np.testing.assert_allclose(R.T @ R, np.eye(3), atol=1e-15)
     assert abs(np.linalg.det(R) - 1.0) < 1e-15
