@@ -303,8 +303,8 @@ def protocol_version() -> int | None:
     return PROTOCOL_VERSION
 
 
-BUTTONS_LOGGED = 16  # pad buttons 0…15 as flags; `input` keeps every key by name
-NO_BUTTONS = (False,) * BUTTONS_LOGGED
+_BUTTONS_LOGGED = 16  # pad buttons 0…15 as flags; `input` keeps every key by name
+_NO_BUTTONS = (False,) * _BUTTONS_LOGGED
 
 
 def _plain_floats(values: Sequence[float] | np.ndarray | None) -> tuple[float, ...]:
@@ -336,7 +336,7 @@ def cycle_row(cycle: int, t_s: float, frame: InputFrame, out: CycleOutput,
               period_s: float, compute_s: float, overrun: bool) -> CycleRow:
     """What `cycle_record` records of one cycle, before the float rows become tuples."""
     sol, intent, verdict = out.solution, out.intent, out.verdict
-    buttons = frame.button_flags(BUTTONS_LOGGED) if frame.pressed else NO_BUTTONS
+    buttons = frame.button_flags(_BUTTONS_LOGGED) if frame.pressed else _NO_BUTTONS
     head = (cycle, t_s, frame.axes, buttons, verdict.allowed, verdict.reason, intent.twist,
             intent.frame, () if q is None else q, out.rates)
     tail = (period_s, compute_s, overrun, intent.reduced, frame_to_wire(frame), state_age_s,
