@@ -616,6 +616,11 @@ class StateFreshness:
         self.latest, self.received_ns = state, recv_ns
         return True
 
+    def refuse_overtaken(self, n: int) -> None:
+        """States that reached us after a newer one in the same read (`Inbox.overtaken`):
+        never offered, since the newer one was, and refused all the same."""
+        self.refused += n
+
     def age_s(self, now_ns: int) -> float:
         """Seconds since the newest accepted state arrived (inf before the first)."""
         return math.inf if self.received_ns is None else (now_ns - self.received_ns) * 1e-9

@@ -353,6 +353,7 @@ class Inbox:
     cell: CellHello | None = None
     contacts: list[Contact] = field(default_factory=list)
     count: int = 0
+    overtaken: int = 0      # states that came after a newer one (reordered on the way)
 
     def add(self, msg: Message | ProtocolError, dropped: Counter[str]) -> None:
         """Sort one decoded message in (malformed ones were counted when decoded); a
@@ -360,6 +361,8 @@ class Inbox:
         if isinstance(msg, State):
             if self.state is None or msg.seq > self.state.seq:
                 self.state = msg
+            elif msg.seq < self.state.seq:  # the arm side sends in order: this one is old
+                self.overtaken += 1
         elif isinstance(msg, Hello):
             self.hello = msg
         elif isinstance(msg, Refuse):

@@ -211,6 +211,7 @@ class DriveSession:
                              f"{inbox.refuse.reason}", now)
         if inbox.hello is not None:
             self._on_hello(inbox.hello, now)
+        self.freshness.refuse_overtaken(inbox.overtaken)
         if inbox.state is not None:
             self.offer_state(inbox.state, now if timeout_s == 0.0 else self.clock())
 

@@ -97,8 +97,8 @@ def test_a_stalled_stream(direction, tmp_path) -> None:
 
 @pytest.mark.parametrize("name", ["loss_20", "dup_reorder", "garbage"])
 def test_a_bad_link_is_ridden_through_and_nothing_bad_is_acted_on(name, tmp_path) -> None:
-    # A reordered state is refused only when it reaches the runtime alone in one read (the
-    # transport keeps the newest of what is waiting): a run may see none; try again.
+    # Reordered states reach the runtime and are refused, alone in a read or after a newer
+    # one (Inbox.overtaken): hundreds a run; a run that saw none is tried again.
     r = run(name, tmp_path, reached=lambda r: name != "dup_reorder" or
             r.runtime_dropped.get("refused (old or late)", 0) > 0)
     nothing_bad_acted_on(r)

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import threading
 import time
+from collections import Counter
 from pathlib import Path
 
 import msgpack
@@ -22,6 +23,7 @@ from runtime.link.protocol import (
     Rates,
     Refuse,
     State,
+    StateFreshness,
     Twist,
     encode,
     hello_for,
@@ -29,6 +31,7 @@ from runtime.link.protocol import (
 from runtime.link.transport import (
     ArmClient,
     ArmServer,
+    Inbox,
     LatestSubscriber,
     Publisher,
     check_endpoint,
@@ -371,3 +374,17 @@ def test_jogwire_keys_command(tmp_path: Path, capsys) -> None:
 def test_missing_keys_say_how_to_make_them(tmp_path: Path) -> None:
     with pytest.raises(TransportError, match="jogwire keys"):
         load_server_keys(tmp_path)
+
+
+def test_a_state_that_comes_after_a_newer_one_in_a_read_is_counted_and_refused() -> None:
+    # The arm side numbers its states in order, so one that arrives after a higher number
+    # was overtaken on the way: old. A repeat of the newest is a duplicate, not old.
+    inbox = Inbox()
+    dropped: Counter[str] = Counter()
+    for seq in (5, 7, 6, 7, 3, 8):
+        inbox.add(State(seq, seq, (0.0,) * N, (0.0,) * N, 0, 0, "tracking"), dropped)
+    assert (inbox.state.seq, inbox.overtaken) == (8, 2)
+    freshness = StateFreshness(0.1)
+    assert freshness.offer(inbox.state, 8)
+    freshness.refuse_overtaken(inbox.overtaken)
+    assert freshness.refused == 2 and freshness.latest is inbox.state
